@@ -1,0 +1,529 @@
+//! State-of-charge models: the map between SOC and open-circuit voltage.
+//!
+//! Two families, both monotone so that the inverse (SOC from a measured
+//! voltage) is unique:
+//!
+//! * [`NernstModel`]: species activities as functions of SOC, combined into
+//!   ln Q(SOC) = Σ ν ln a, and E(SOC, T) = E°(T) − (RT/nF) ln Q(SOC).
+//! * [`OcvTable`]: a measured (SOC, OCV) curve at a reference temperature,
+//!   with an optional entropic coefficient per point, interpolated by a
+//!   monotone cubic (Fritsch–Carlson PCHIP) or linearly.
+//!
+//! Inverses use bisection: it always converges on a monotone function, needs
+//! no derivative and cannot leave the bracket, which matters more here than
+//! the speed of Newton's method (60 halvings of [0, 1] reach 1e-18).
+
+use super::error::ChemistryError;
+use super::thermo;
+use serde::Serialize;
+
+/// How a species' activity depends on SOC.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum Activity {
+    /// Constant: 1 for a pure solid or liquid, a set value for a buffered
+    /// ion, the partial pressure in bar for a gas.
+    Fixed { activity: f64 },
+    /// a = per_soc · SOC + at_zero_soc, relative to 1 mol/L (ideal solution).
+    Linear { per_soc: f64, at_zero_soc: f64 },
+}
+
+impl Activity {
+    pub fn at(&self, soc: f64) -> f64 {
+        match *self {
+            Activity::Fixed { activity } => activity,
+            Activity::Linear {
+                per_soc,
+                at_zero_soc,
+            } => per_soc * soc + at_zero_soc,
+        }
+    }
+}
+
+/// One species in the reaction quotient.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Species {
+    pub name: String,
+    /// Stoichiometric exponent: products positive, reactants negative.
+    pub nu: f64,
+    pub activity: Activity,
+}
+
+/// SOC through the Nernst equation and species activities.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct NernstModel {
+    pub species: Vec<Species>,
+}
+
+/// How many points of [0, 1] are checked when a model is validated.
+const VALIDATION_GRID_POINTS: usize = 201;
+
+impl NernstModel {
+    /// ln Q at `soc` (activities must be positive: checked by [`validate`]).
+    pub fn ln_q(&self, soc: f64) -> f64 {
+        self.species
+            .iter()
+            .map(|s| s.nu * s.activity.at(soc).ln())
+            .sum()
+    }
+
+    /// Rejects models whose activities are not positive on [0, 1] or whose
+    /// ln Q does not fall strictly as SOC rises (E must rise with SOC).
+    pub fn validate(&self) -> Result<(), ChemistryError> {
+        if self.species.is_empty() {
+            return Err(ChemistryError::invalid(
+                "soc_model.species",
+                "[]",
+                "at least one species is needed",
+            ));
+        }
+        for (i, s) in self.species.iter().enumerate() {
+            let field = format!("soc_model.species[{i}]");
+            if !s.nu.is_finite() || s.nu == 0.0 {
+                return Err(ChemistryError::invalid(
+                    format!("{field}.nu"),
+                    s.nu,
+                    "must be finite and non-zero",
+                ));
+            }
+            for k in 0..VALIDATION_GRID_POINTS {
+                let soc = k as f64 / (VALIDATION_GRID_POINTS - 1) as f64;
+                let a = s.activity.at(soc);
+                if !(a.is_finite() && a > 0.0) {
+                    return Err(ChemistryError::invalid(
+                        format!("{field}.activity"),
+                        a,
+                        format!(
+                            "activity of {} must be positive for every SOC in [0, 1]; it is {a} at SOC {soc}",
+                            s.name
+                        ),
+                    ));
+                }
+            }
+        }
+        let mut previous = self.ln_q(0.0);
+        for k in 1..VALIDATION_GRID_POINTS {
+            let soc = k as f64 / (VALIDATION_GRID_POINTS - 1) as f64;
+            let now = self.ln_q(soc);
+            if now >= previous {
+                return Err(ChemistryError::invalid(
+                    "soc_model.species",
+                    format!("ln Q({soc}) = {now}"),
+                    "ln Q must fall strictly as SOC rises (charged species are reactants of the discharge reaction)",
+                ));
+            }
+            previous = now;
+        }
+        Ok(())
+    }
+}
+
+/// Interpolation between table points.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum Interpolation {
+    /// Monotone piecewise cubic Hermite (Fritsch & Carlson, SIAM J. Numer.
+    /// Anal. 17, 1980): smooth and never overshoots between points.
+    #[default]
+    Pchip,
+    Linear,
+}
+
+/// A measured OCV–SOC curve.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct OcvTable {
+    pub reference_temp_k: f64,
+    pub interpolation: Interpolation,
+    pub soc: Vec<f64>,
+    pub ocv_volts: Vec<f64>,
+    /// dOCV/dT per point, V/K (zeros when not measured).
+    pub entropic_volts_per_k: Vec<f64>,
+}
+
+/// Temperature range over which a table must stay monotone: a rig outside
+/// it is outside any plausible OCV measurement anyway.
+pub const TABLE_CHECK_TEMPS_K: [f64; 2] = [233.15, 373.15];
+
+impl OcvTable {
+    pub fn validate(&self) -> Result<(), ChemistryError> {
+        let n = self.soc.len();
+        if n < 2 {
+            return Err(ChemistryError::invalid(
+                "soc_model.points",
+                n,
+                "a table needs at least two points",
+            ));
+        }
+        if self.ocv_volts.len() != n || self.entropic_volts_per_k.len() != n {
+            return Err(ChemistryError::invalid(
+                "soc_model.entropic_mv_per_k",
+                self.entropic_volts_per_k.len(),
+                format!("needs one value per point ({n})"),
+            ));
+        }
+        if !(self.reference_temp_k.is_finite() && self.reference_temp_k > 0.0) {
+            return Err(ChemistryError::invalid(
+                "soc_model.reference_temp_c",
+                self.reference_temp_k - 273.15,
+                "must be above absolute zero",
+            ));
+        }
+        for i in 0..n {
+            for (name, value) in [
+                ("soc", self.soc[i]),
+                ("ocv", self.ocv_volts[i]),
+                ("entropic", self.entropic_volts_per_k[i]),
+            ] {
+                if !value.is_finite() {
+                    return Err(ChemistryError::invalid(
+                        format!("soc_model.points[{i}].{name}"),
+                        value,
+                        "must be finite",
+                    ));
+                }
+            }
+            if !(0.0..=1.0).contains(&self.soc[i]) {
+                return Err(ChemistryError::invalid(
+                    format!("soc_model.points[{i}].soc"),
+                    self.soc[i],
+                    "must lie in [0, 1]",
+                ));
+            }
+        }
+        for i in 1..n {
+            if self.soc[i] <= self.soc[i - 1] {
+                return Err(ChemistryError::invalid(
+                    "soc_model.points",
+                    format!(
+                        "points {} and {i}: soc {} then {}",
+                        i - 1,
+                        self.soc[i - 1],
+                        self.soc[i]
+                    ),
+                    "SOC must increase strictly",
+                ));
+            }
+        }
+        for temp_k in std::iter::once(self.reference_temp_k).chain(TABLE_CHECK_TEMPS_K) {
+            let knots = self.knots_at(temp_k);
+            for i in 1..n {
+                if knots[i] <= knots[i - 1] {
+                    return Err(ChemistryError::invalid(
+                        "soc_model.points",
+                        format!(
+                            "points {} and {i}: ocv {:.6} V then {:.6} V at {:.2} K",
+                            i - 1,
+                            knots[i - 1],
+                            knots[i],
+                            temp_k
+                        ),
+                        "OCV must increase strictly with SOC (a non-monotone table has no unique inverse)",
+                    ));
+                }
+            }
+        }
+        Ok(())
+    }
+
+    fn knots_at(&self, temp_k: f64) -> Vec<f64> {
+        let dt = temp_k - self.reference_temp_k;
+        self.ocv_volts
+            .iter()
+            .zip(&self.entropic_volts_per_k)
+            .map(|(ocv, ds)| ocv + ds * dt)
+            .collect()
+    }
+
+    /// OCV at `soc` (clamped to the table's SOC span) and `temp_k`.
+    pub fn ocv_volts(&self, soc: f64, temp_k: f64) -> f64 {
+        let ys = self.knots_at(temp_k);
+        let xs = &self.soc;
+        let soc = soc.clamp(xs[0], xs[xs.len() - 1]);
+        let i = match xs.partition_point(|&x| x <= soc) {
+            0 => 0,
+            p if p >= xs.len() => xs.len() - 2,
+            p => p - 1,
+        };
+        let h = xs[i + 1] - xs[i];
+        let t = (soc - xs[i]) / h;
+        match self.interpolation {
+            Interpolation::Linear => ys[i] + t * (ys[i + 1] - ys[i]),
+            Interpolation::Pchip => {
+                let (d0, d1) = (pchip_slope(xs, &ys, i), pchip_slope(xs, &ys, i + 1));
+                let (t2, t3) = (t * t, t * t * t);
+                let h00 = 2.0 * t3 - 3.0 * t2 + 1.0;
+                let h10 = t3 - 2.0 * t2 + t;
+                let h01 = -2.0 * t3 + 3.0 * t2;
+                let h11 = t3 - t2;
+                h00 * ys[i] + h10 * h * d0 + h01 * ys[i + 1] + h11 * h * d1
+            }
+        }
+    }
+
+    pub fn soc_span(&self) -> (f64, f64) {
+        (self.soc[0], self.soc[self.soc.len() - 1])
+    }
+}
+
+/// Fritsch–Carlson derivative at knot `k`, in the form used by SciPy's
+/// `PchipInterpolator` (weighted harmonic mean of neighbouring secants,
+/// zero at a local extremum; one-sided three-point formula at the ends).
+fn pchip_slope(xs: &[f64], ys: &[f64], k: usize) -> f64 {
+    let n = xs.len();
+    let secant = |j: usize| (ys[j + 1] - ys[j]) / (xs[j + 1] - xs[j]);
+    if n == 2 {
+        return secant(0);
+    }
+    let end_slope = |h0: f64, h1: f64, m0: f64, m1: f64| {
+        let d = ((2.0 * h0 + h1) * m0 - h0 * m1) / (h0 + h1);
+        if d.signum() != m0.signum() {
+            0.0
+        } else if m0.signum() != m1.signum() && d.abs() > 3.0 * m0.abs() {
+            3.0 * m0
+        } else {
+            d
+        }
+    };
+    if k == 0 {
+        return end_slope(xs[1] - xs[0], xs[2] - xs[1], secant(0), secant(1));
+    }
+    if k == n - 1 {
+        return end_slope(
+            xs[n - 1] - xs[n - 2],
+            xs[n - 2] - xs[n - 3],
+            secant(n - 2),
+            secant(n - 3),
+        );
+    }
+    let (m0, m1) = (secant(k - 1), secant(k));
+    if m0 * m1 <= 0.0 {
+        return 0.0;
+    }
+    let (h0, h1) = (xs[k] - xs[k - 1], xs[k + 1] - xs[k]);
+    let (w1, w2) = (2.0 * h1 + h0, h1 + 2.0 * h0);
+    (w1 + w2) / (w1 / m0 + w2 / m1)
+}
+
+/// The model a chemistry uses for SOC.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum SocModel {
+    Nernst(NernstModel),
+    OcvTable(OcvTable),
+    /// Thermodynamic state only (fuel cells, electrolysers, teaching cells).
+    None,
+}
+
+impl SocModel {
+    pub fn name(&self) -> &'static str {
+        match self {
+            SocModel::Nernst(_) => "nernst",
+            SocModel::OcvTable(_) => "ocv_table",
+            SocModel::None => "none",
+        }
+    }
+}
+
+/// Inputs shared by the forward and inverse maps of a Nernst model.
+#[derive(Debug, Clone, Copy)]
+pub struct NernstContext {
+    pub n_electrons: u32,
+    pub e_standard_volts: f64,
+    pub temp_k: f64,
+}
+
+/// SOC from a voltage, with a flag when the voltage was out of reach.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SocEstimate {
+    pub soc: f64,
+    /// The voltage lay outside [E(SOC_min), E(SOC_max)]; `soc` is the bound.
+    pub clamped: bool,
+}
+
+impl SocModel {
+    /// Open-circuit voltage of one cell at `soc`. `None` for a model without SOC.
+    pub fn ocv_volts(&self, soc: f64, ctx: NernstContext) -> Option<f64> {
+        match self {
+            SocModel::Nernst(m) => Some(thermo::nernst_volts(
+                ctx.n_electrons,
+                ctx.e_standard_volts,
+                m.ln_q(soc.clamp(0.0, 1.0)),
+                ctx.temp_k,
+            )),
+            SocModel::OcvTable(t) => Some(t.ocv_volts(soc, ctx.temp_k)),
+            SocModel::None => None,
+        }
+    }
+
+    fn soc_span(&self) -> (f64, f64) {
+        match self {
+            SocModel::OcvTable(t) => t.soc_span(),
+            _ => (0.0, 1.0),
+        }
+    }
+
+    /// SOC at which one cell shows `cell_volts` at open circuit. `None` for a
+    /// model without SOC. Never NaN for finite input.
+    pub fn soc_from_volts(&self, cell_volts: f64, ctx: NernstContext) -> Option<SocEstimate> {
+        if matches!(self, SocModel::None) {
+            return None;
+        }
+        let (lo_soc, hi_soc) = self.soc_span();
+        let f = |soc: f64| self.ocv_volts(soc, ctx).unwrap_or(f64::NAN);
+        let (lo_v, hi_v) = (f(lo_soc), f(hi_soc));
+        if cell_volts <= lo_v {
+            return Some(SocEstimate {
+                soc: lo_soc,
+                clamped: cell_volts < lo_v,
+            });
+        }
+        if cell_volts >= hi_v {
+            return Some(SocEstimate {
+                soc: hi_soc,
+                clamped: cell_volts > hi_v,
+            });
+        }
+        let (mut lo, mut hi) = (lo_soc, hi_soc);
+        for _ in 0..200 {
+            let mid = 0.5 * (lo + hi);
+            if mid <= lo || mid >= hi {
+                break;
+            }
+            if f(mid) < cell_volts {
+                lo = mid;
+            } else {
+                hi = mid;
+            }
+        }
+        Some(SocEstimate {
+            soc: 0.5 * (lo + hi),
+            clamped: false,
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn table(points: &[(f64, f64)], interpolation: Interpolation) -> OcvTable {
+        OcvTable {
+            reference_temp_k: 298.15,
+            interpolation,
+            soc: points.iter().map(|p| p.0).collect(),
+            ocv_volts: points.iter().map(|p| p.1).collect(),
+            entropic_volts_per_k: vec![0.0; points.len()],
+        }
+    }
+
+    #[test]
+    fn pchip_hits_knots_and_does_not_overshoot() {
+        let t = table(
+            &[(0.0, 1.0), (0.5, 2.0), (0.6, 2.01), (1.0, 3.0)],
+            Interpolation::Pchip,
+        );
+        t.validate().unwrap();
+        for (s, v) in [(0.0, 1.0), (0.5, 2.0), (0.6, 2.01), (1.0, 3.0)] {
+            assert!((t.ocv_volts(s, 298.15) - v).abs() < 1e-12);
+        }
+        // Monotone between knots (the property PCHIP exists for).
+        let mut prev = f64::MIN;
+        for k in 0..=1000 {
+            let v = t.ocv_volts(k as f64 / 1000.0, 298.15);
+            assert!(v >= prev);
+            prev = v;
+        }
+    }
+
+    #[test]
+    fn pchip_matches_scipy() {
+        // Check values from SciPy 1.17.1, scipy.interpolate.PchipInterpolator
+        // on x = [0, 1/3, 2/3, 1], y = [0, 1, 1.5, 3] (run here, from PyPI):
+        // p(0.5) = 1.2395833333333333, p(0.1) = 0.35775, p(0.9) = 2.42925.
+        let t = OcvTable {
+            reference_temp_k: 298.15,
+            interpolation: Interpolation::Pchip,
+            soc: vec![0.0, 1.0 / 3.0, 2.0 / 3.0, 1.0],
+            ocv_volts: vec![0.0, 1.0, 1.5, 3.0],
+            entropic_volts_per_k: vec![0.0; 4],
+        };
+        for (soc, scipy) in [(0.5, 1.2395833333333333), (0.1, 0.35775), (0.9, 2.42925)] {
+            let ours = t.ocv_volts(soc, 298.15);
+            assert!((ours - scipy).abs() < 1e-12, "soc {soc}: {ours} vs {scipy}");
+        }
+    }
+
+    #[test]
+    fn non_monotone_table_names_the_points() {
+        let t = table(
+            &[(0.0, 1.0), (0.5, 2.0), (0.7, 1.9), (1.0, 3.0)],
+            Interpolation::Linear,
+        );
+        let err = t.validate().unwrap_err().to_string();
+        assert!(err.contains("points 1 and 2"), "{err}");
+    }
+
+    #[test]
+    fn table_needs_two_points() {
+        let t = table(&[(0.5, 2.0)], Interpolation::Linear);
+        assert!(t.validate().is_err());
+    }
+
+    #[test]
+    fn inverse_clamps_and_flags() {
+        let model = SocModel::OcvTable(table(&[(0.0, 1.0), (1.0, 2.0)], Interpolation::Linear));
+        let ctx = NernstContext {
+            n_electrons: 1,
+            e_standard_volts: 1.5,
+            temp_k: 298.15,
+        };
+        assert_eq!(
+            model.soc_from_volts(0.5, ctx),
+            Some(SocEstimate {
+                soc: 0.0,
+                clamped: true
+            })
+        );
+        assert_eq!(
+            model.soc_from_volts(2.5, ctx),
+            Some(SocEstimate {
+                soc: 1.0,
+                clamped: true
+            })
+        );
+        let mid = model.soc_from_volts(1.25, ctx).unwrap();
+        assert!(!mid.clamped && (mid.soc - 0.25).abs() < 1e-12);
+    }
+
+    #[test]
+    fn nernst_model_rejects_nonpositive_activity() {
+        let m = NernstModel {
+            species: vec![Species {
+                name: "X".into(),
+                nu: -1.0,
+                activity: Activity::Linear {
+                    per_soc: 1.0,
+                    at_zero_soc: 0.0,
+                },
+            }],
+        };
+        let err = m.validate().unwrap_err().to_string();
+        assert!(err.contains("activity"), "{err}");
+    }
+
+    #[test]
+    fn nernst_model_rejects_wrong_direction() {
+        // A reactant whose activity falls with SOC makes E fall with SOC.
+        let m = NernstModel {
+            species: vec![Species {
+                name: "X".into(),
+                nu: -1.0,
+                activity: Activity::Linear {
+                    per_soc: -0.5,
+                    at_zero_soc: 1.0,
+                },
+            }],
+        };
+        assert!(m.validate().is_err());
+    }
+}

@@ -1,0 +1,7 @@
+//! gibbsline: electrochemical cell readings in, thermodynamic state out.
+//!
+//! The crate is split by what a module may touch. `electrochem` is pure
+//! computation (no I/O, no async, no clock); the service shells around it
+//! call in so every path gives the same answer for the same reading.
+
+pub mod electrochem;
