@@ -5,3 +5,6 @@
 //! call in so every path gives the same answer for the same reading.
 
 pub mod electrochem;
+pub mod estimator;
+pub mod pb;
+pub mod sim;

@@ -15,7 +15,15 @@ fn rust_files(dir: &Path, out: &mut Vec<std::path::PathBuf>) {
 
 #[test]
 fn pure_modules_do_no_io() {
-    let forbidden = ["tokio", "sqlx", "tonic", "std::time::SystemTime", "Instant::now", "std::fs", "std::net"];
+    let forbidden = [
+        "tokio",
+        "sqlx",
+        "tonic",
+        "std::time::SystemTime",
+        "Instant::now",
+        "std::fs",
+        "std::net",
+    ];
     let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("src");
     let mut files = Vec::new();
     for pure in ["electrochem", "estimator", "alerts/rules.rs"] {

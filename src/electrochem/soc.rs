@@ -9,9 +9,10 @@
 //!   with an optional entropic coefficient per point, interpolated by a
 //!   monotone cubic (Fritsch–Carlson PCHIP) or linearly.
 //!
-//! Inverses use bisection: it always converges on a monotone function, needs
-//! no derivative and cannot leave the bracket, which matters more here than
-//! the speed of Newton's method (60 halvings of [0, 1] reach 1e-18).
+//! Inverses use a bracketing root-finder (Illinois regula falsi): on a
+//! monotone function it always converges, needs no derivative and cannot
+//! leave the bracket, and it needs about ten evaluations, not bisection's
+//! fifty.
 
 use super::error::ChemistryError;
 use super::thermo;
@@ -383,16 +384,41 @@ impl SocModel {
                 clamped: cell_volts > hi_v,
             });
         }
+        // Illinois variant of regula falsi: keeps the bracket like bisection
+        // but converges superlinearly (about ten evaluations instead of
+        // fifty), which matters on the ingest path.
         let (mut lo, mut hi) = (lo_soc, hi_soc);
+        let (mut f_lo, mut f_hi) = (lo_v - cell_volts, hi_v - cell_volts);
+        let mut side = 0i8;
         for _ in 0..200 {
-            let mid = 0.5 * (lo + hi);
-            if mid <= lo || mid >= hi {
+            if hi - lo < 1e-13 {
                 break;
             }
-            if f(mid) < cell_volts {
-                lo = mid;
+            let mut x = (lo * f_hi - hi * f_lo) / (f_hi - f_lo);
+            if !(x > lo && x < hi) {
+                x = 0.5 * (lo + hi);
+            }
+            let fx = f(x) - cell_volts;
+            if fx == 0.0 {
+                return Some(SocEstimate {
+                    soc: x,
+                    clamped: false,
+                });
+            }
+            if fx < 0.0 {
+                lo = x;
+                f_lo = fx;
+                if side == -1 {
+                    f_hi *= 0.5;
+                }
+                side = -1;
             } else {
-                hi = mid;
+                hi = x;
+                f_hi = fx;
+                if side == 1 {
+                    f_lo *= 0.5;
+                }
+                side = 1;
             }
         }
         Some(SocEstimate {

@@ -1,0 +1,562 @@
+//! Per-channel estimator: turns a reading under current into the state a
+//! practitioner would report.
+//!
+//! Owns ohmic compensation (E_ocv ≈ V − I·R, with R configured or estimated
+//! online from current steps: the current-interrupt method), rest detection
+//! and relaxation (dV/dt), coulomb and energy counting by the trapezoid
+//! rule, the fused SOC (model SOC re-anchored at settled rests, counted in
+//! between), Faradaic product accounting and cycle segmentation.
+//!
+//! Pure: time comes from the readings, never from a clock. Currents here
+//! are always charge-positive; the caller normalises the instrument's sign.
+
+mod cycles;
+
+pub use cycles::{CycleRecord, CycleTracker};
+
+use crate::electrochem::constants::FARADAY_C_PER_MOL;
+use crate::electrochem::{self, Chemistry, EvalRequest, Evaluation};
+use serde::{Deserialize, Serialize};
+use std::collections::VecDeque;
+
+/// Molar mass of H2, g/mol (IUPAC standard atomic weight of H, 1.00794 ×2, rounded).
+pub const H2_MOLAR_MASS_G_PER_MOL: f64 = 2.01588;
+/// Molar volume of an ideal gas at 0 °C and 1 atm, L/mol (CODATA 2018: 22.413 969 54).
+pub const NORMAL_MOLAR_VOLUME_L_PER_MOL: f64 = 22.413_969_54;
+
+/// How an instrument signs its current.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum CurrentSign {
+    ChargePositive,
+    DischargePositive,
+}
+
+impl CurrentSign {
+    /// The instrument's amps as charge-positive amps.
+    pub fn to_charge_positive(self, amps: f64) -> f64 {
+        match self {
+            CurrentSign::ChargePositive => amps,
+            CurrentSign::DischargePositive => -amps,
+        }
+    }
+}
+
+/// What the estimator needs to know about its channel.
+#[derive(Debug, Clone, PartialEq)]
+pub struct EstimatorConfig {
+    pub cells_in_series: u32,
+    /// 0 = unknown: no counted SOC.
+    pub capacity_ah: f64,
+    /// Configured stack resistance; `None` = estimate online.
+    pub resistance_ohm: Option<f64>,
+    /// Fraction of charge current that ends up stored (0–1].
+    pub coulombic_efficiency: f64,
+    /// Fraction of charge current that makes product in an electrolyser (0–1].
+    pub faradaic_efficiency: f64,
+    pub default_temp_k: f64,
+    pub equilibrium_tolerance_volts: f64,
+    /// |I| below this is "no current", A.
+    pub rest_current_amps: f64,
+    /// Current must stay below the threshold this long to count as a rest.
+    pub rest_min_s: f64,
+    /// |dV/dt| per cell below this (mV/min) for `settle_hold_s` = settled.
+    pub settle_mv_per_min: f64,
+    pub settle_hold_s: f64,
+    /// dV/dt is the least-squares slope over this window.
+    pub settle_window_s: f64,
+    /// Readings further apart than this are not integrated across.
+    pub gap_limit_s: f64,
+    /// A current change at least this large between readings at most
+    /// `step_window_s` apart is used to estimate R.
+    pub step_min_amps: f64,
+    pub step_window_s: f64,
+}
+
+impl EstimatorConfig {
+    /// Practitioner defaults for a channel (thresholds are common practice:
+    /// a rest is |I| < C/200 or 1 mA, settled at 1 mV/min for a minute).
+    pub fn for_channel(
+        cells_in_series: u32,
+        capacity_ah: f64,
+        default_temp_k: f64,
+    ) -> EstimatorConfig {
+        let c_rate_amps = if capacity_ah > 0.0 { capacity_ah } else { 1.0 };
+        EstimatorConfig {
+            cells_in_series,
+            capacity_ah,
+            resistance_ohm: None,
+            coulombic_efficiency: 1.0,
+            faradaic_efficiency: 1.0,
+            default_temp_k,
+            equilibrium_tolerance_volts: electrochem::thermo::DEFAULT_EQUILIBRIUM_TOLERANCE_VOLTS,
+            rest_current_amps: (c_rate_amps / 200.0).max(1e-3),
+            rest_min_s: 10.0,
+            settle_mv_per_min: 1.0,
+            settle_hold_s: 60.0,
+            settle_window_s: 60.0,
+            gap_limit_s: 300.0,
+            step_min_amps: (c_rate_amps / 10.0).max(0.01),
+            step_window_s: 2.0,
+        }
+    }
+}
+
+/// Online resistance estimate.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, Default)]
+pub struct ResistanceEstimate {
+    pub ohm: f64,
+    /// Exponentially weighted standard deviation of the samples.
+    pub uncertainty_ohm: f64,
+    pub samples: u64,
+    pub last_sample_ns: i64,
+}
+
+/// Everything carried from one reading to the next. Serialisable so the
+/// server can restore it after a restart.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
+pub struct EstimatorState {
+    pub last_time_ns: Option<i64>,
+    pub last_stack_volts: f64,
+    pub last_amps: Option<f64>,
+    pub resistance: Option<ResistanceEstimate>,
+    pub rest_since_ns: Option<i64>,
+    pub settled_since_ns: Option<i64>,
+    /// (time, per-cell volts) during the current rest, for dV/dt.
+    pub rest_window: VecDeque<(i64, f64)>,
+    /// Charge into the cell since the run began (charge positive), Ah.
+    pub charge_ah: f64,
+    pub energy_wh: f64,
+    pub charge_in_ah: f64,
+    pub charge_out_ah: f64,
+    pub energy_in_wh: f64,
+    pub energy_out_wh: f64,
+    /// Efficiency-weighted charge, Ah: what counted SOC integrates.
+    pub stored_charge_ah: f64,
+    pub anchor: Option<SocAnchor>,
+    pub gaps: u64,
+    pub cycles: CycleTracker,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct SocAnchor {
+    pub soc: f64,
+    pub stored_charge_ah: f64,
+    pub time_ns: i64,
+}
+
+/// One reading as the estimator sees it.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct EstimatorInput {
+    pub time_ns: i64,
+    pub stack_volts: f64,
+    /// Charge-positive amps.
+    pub amps: Option<f64>,
+    pub temp_k: Option<f64>,
+}
+
+/// Which voltage the thermodynamics of a reading used.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum OcvSource {
+    /// The terminal voltage as measured (no current, or no R known).
+    Terminal,
+    /// V − I·R.
+    OhmicCompensated,
+    /// The SOC model's OCV at the counted SOC (under current, capacity known).
+    CountedSoc,
+}
+
+impl OcvSource {
+    pub fn code(self) -> i64 {
+        match self {
+            OcvSource::Terminal => 0,
+            OcvSource::OhmicCompensated => 1,
+            OcvSource::CountedSoc => 2,
+        }
+    }
+    pub fn from_code(code: i64) -> OcvSource {
+        match code {
+            1 => OcvSource::OhmicCompensated,
+            2 => OcvSource::CountedSoc,
+            _ => OcvSource::Terminal,
+        }
+    }
+    pub fn as_str(self) -> &'static str {
+        match self {
+            OcvSource::Terminal => "terminal",
+            OcvSource::OhmicCompensated => "ohmic_compensated",
+            OcvSource::CountedSoc => "counted_soc",
+        }
+    }
+}
+
+/// How the fused SOC was obtained.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum SocMethod {
+    /// No SOC model.
+    None,
+    /// The model SOC of this reading (no capacity or no current known).
+    Model,
+    /// Model SOC at a settled rest (or the first reading), anchoring the count.
+    Anchored,
+    /// Anchor plus counted charge.
+    Counted,
+}
+
+impl SocMethod {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            SocMethod::None => "none",
+            SocMethod::Model => "model",
+            SocMethod::Anchored => "anchored",
+            SocMethod::Counted => "counted",
+        }
+    }
+}
+
+/// The estimator's output for one reading.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Estimate {
+    pub evaluation: Evaluation,
+    pub temp_k: f64,
+    /// Per-cell voltage used for the thermodynamics.
+    pub cell_volts_used: f64,
+    pub ocv_source: OcvSource,
+    pub resistance_ohm: Option<f64>,
+    pub soc_counted: Option<f64>,
+    pub soc_fused: Option<f64>,
+    pub soc_method: SocMethod,
+    pub resting: bool,
+    pub rest_settled: bool,
+    /// Per-cell relaxation rate during a rest, mV/min.
+    pub dv_dt_mv_per_min: Option<f64>,
+    /// dSOC/dt from the current (per second), when capacity is known.
+    pub soc_rate_per_s: Option<f64>,
+    pub charge_ah: f64,
+    pub energy_wh: f64,
+    /// True when this reading followed a gap and was not integrated.
+    pub gap: bool,
+    pub cycle_closed: Option<CycleRecord>,
+}
+
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum EstimatorError {
+    #[error(transparent)]
+    Chemistry(#[from] electrochem::ChemistryError),
+}
+
+const NS_PER_S: f64 = 1e9;
+/// Samples kept for dV/dt; decimated beyond this so memory stays bounded
+/// however fast a rig samples.
+const REST_WINDOW_MAX_POINTS: usize = 256;
+/// Weight of a new resistance sample in the running estimate.
+const RESISTANCE_EWMA_ALPHA: f64 = 0.2;
+
+/// Advances `state` by one reading.
+pub fn step(
+    chemistry: &Chemistry,
+    config: &EstimatorConfig,
+    state: &mut EstimatorState,
+    input: EstimatorInput,
+) -> Result<Estimate, EstimatorError> {
+    let temp_k = input.temp_k.unwrap_or(config.default_temp_k);
+    let cells = f64::from(config.cells_in_series.max(1));
+    let dt_s = state
+        .last_time_ns
+        .map(|last| (input.time_ns - last) as f64 / NS_PER_S);
+    let integrable = matches!(dt_s, Some(dt) if dt > 0.0 && dt <= config.gap_limit_s);
+    let gap = matches!(dt_s, Some(dt) if dt > config.gap_limit_s);
+    if gap {
+        state.gaps += 1;
+    }
+
+    // Resistance from a current step (ΔV/ΔI across a short interval).
+    if let (Some(i_now), Some(i_prev), Some(dt)) = (input.amps, state.last_amps, dt_s) {
+        let di = i_now - i_prev;
+        if dt > 0.0 && dt <= config.step_window_s && di.abs() >= config.step_min_amps {
+            let sample = (input.stack_volts - state.last_stack_volts) / di;
+            if sample.is_finite() && sample > 0.0 {
+                let r = state.resistance.get_or_insert(ResistanceEstimate {
+                    ohm: sample,
+                    uncertainty_ohm: 0.0,
+                    samples: 0,
+                    last_sample_ns: input.time_ns,
+                });
+                if r.samples > 0 {
+                    let diff = sample - r.ohm;
+                    r.ohm += RESISTANCE_EWMA_ALPHA * diff;
+                    let var = (1.0 - RESISTANCE_EWMA_ALPHA)
+                        * (r.uncertainty_ohm.powi(2) + RESISTANCE_EWMA_ALPHA * diff * diff);
+                    r.uncertainty_ohm = var.sqrt();
+                }
+                r.samples += 1;
+                r.last_sample_ns = input.time_ns;
+            }
+        }
+    }
+
+    // Coulomb and energy counting (trapezoid rule).
+    if integrable && let (Some(i_now), Some(i_prev), Some(dt)) = (input.amps, state.last_amps, dt_s)
+    {
+        let dq_ah = 0.5 * (i_now + i_prev) * dt / 3600.0;
+        let de_wh =
+            0.5 * (input.stack_volts * i_now + state.last_stack_volts * i_prev) * dt / 3600.0;
+        state.charge_ah += dq_ah;
+        state.energy_wh += de_wh;
+        let stored_delta_ah = if dq_ah >= 0.0 {
+            state.charge_in_ah += dq_ah;
+            dq_ah * config.coulombic_efficiency
+        } else {
+            state.charge_out_ah -= dq_ah;
+            dq_ah
+        };
+        if de_wh >= 0.0 {
+            state.energy_in_wh += de_wh;
+        } else {
+            state.energy_out_wh -= de_wh;
+        }
+        state.stored_charge_ah += stored_delta_ah;
+    }
+
+    let resistance_ohm = config.resistance_ohm.or(state.resistance.map(|r| r.ohm));
+    let (stack_ocv, compensated) = match (resistance_ohm, input.amps) {
+        (Some(r), Some(i)) if i != 0.0 => (input.stack_volts - i * r, true),
+        _ => (input.stack_volts, false),
+    };
+    let evaluation = electrochem::evaluate(
+        chemistry,
+        EvalRequest {
+            stack_volts: stack_ocv,
+            cells_in_series: config.cells_in_series.max(1),
+            temp_k,
+            equilibrium_tolerance_volts: config.equilibrium_tolerance_volts,
+        },
+    )?;
+    let cell_terminal = input.stack_volts / cells;
+    let mut ocv_source = if compensated {
+        OcvSource::OhmicCompensated
+    } else {
+        OcvSource::Terminal
+    };
+
+    // Rest detection and relaxation.
+    let no_current = input
+        .amps
+        .is_some_and(|i| i.abs() < config.rest_current_amps);
+    if no_current {
+        state.rest_since_ns.get_or_insert(input.time_ns);
+        state.rest_window.push_back((input.time_ns, cell_terminal));
+        let window_ns = (config.settle_window_s * NS_PER_S) as i64;
+        while state
+            .rest_window
+            .front()
+            .is_some_and(|(t, _)| input.time_ns - t > window_ns)
+        {
+            state.rest_window.pop_front();
+        }
+        if state.rest_window.len() > REST_WINDOW_MAX_POINTS {
+            // Keep every other point: the slope survives, memory stays bounded.
+            state.rest_window = state.rest_window.iter().copied().step_by(2).collect();
+        }
+    } else {
+        state.rest_since_ns = None;
+        state.settled_since_ns = None;
+        state.rest_window.clear();
+    }
+    let resting = state
+        .rest_since_ns
+        .is_some_and(|since| (input.time_ns - since) as f64 / NS_PER_S >= config.rest_min_s);
+    let dv_dt_mv_per_min = if resting {
+        slope_mv_per_min(&state.rest_window, config.settle_window_s)
+    } else {
+        None
+    };
+    let calm = dv_dt_mv_per_min.is_some_and(|s| s.abs() < config.settle_mv_per_min);
+    if calm {
+        state.settled_since_ns.get_or_insert(input.time_ns);
+    } else {
+        state.settled_since_ns = None;
+    }
+    let rest_settled = state
+        .settled_since_ns
+        .is_some_and(|since| (input.time_ns - since) as f64 / NS_PER_S >= config.settle_hold_s);
+
+    // Fused SOC.
+    let model_soc = evaluation.soc;
+    let counting = config.capacity_ah > 0.0 && input.amps.is_some();
+    let (soc_counted, soc_fused, soc_method) = match model_soc {
+        None => (None, None, SocMethod::None),
+        Some(model) if !counting => (None, Some(model), SocMethod::Model),
+        Some(model) => {
+            if rest_settled || state.anchor.is_none() {
+                state.anchor = Some(SocAnchor {
+                    soc: model,
+                    stored_charge_ah: state.stored_charge_ah,
+                    time_ns: input.time_ns,
+                });
+            }
+            let anchor = state.anchor.expect("anchor set above");
+            let counted = anchor.soc
+                + (state.stored_charge_ah - anchor.stored_charge_ah) / config.capacity_ah;
+            let counted = counted.clamp(0.0, 1.0);
+            let method = if anchor.time_ns == input.time_ns {
+                SocMethod::Anchored
+            } else {
+                SocMethod::Counted
+            };
+            (Some(counted), Some(counted), method)
+        }
+    };
+    // Under current the terminal voltage also carries polarisation, which
+    // V − I·R cannot remove; between rests the counted SOC is the better
+    // witness of the equilibrium potential (common practice), so the
+    // thermodynamics use the model OCV at that SOC.
+    let mut evaluation = evaluation;
+    if soc_method == SocMethod::Counted
+        && let (Some(counted), Some(i)) = (soc_counted, input.amps)
+        && i.abs() >= config.rest_current_amps
+    {
+        let ctx = electrochem::NernstContext {
+            n_electrons: chemistry.n_electrons,
+            e_standard_volts: evaluation.thermo.e_standard_volts,
+            temp_k,
+        };
+        if let Some(ocv_cell) = chemistry.soc_model.ocv_volts(counted, ctx) {
+            evaluation.thermo = electrochem::thermo::thermo_state(
+                chemistry.n_electrons,
+                chemistry.standard_potential(),
+                ocv_cell,
+                temp_k,
+                config.equilibrium_tolerance_volts,
+            );
+            ocv_source = OcvSource::CountedSoc;
+        }
+    }
+    let soc_rate_per_s = match (input.amps, config.capacity_ah > 0.0) {
+        (Some(i), true) => {
+            let eff = if i > 0.0 {
+                config.coulombic_efficiency
+            } else {
+                1.0
+            };
+            Some(i * eff / (3600.0 * config.capacity_ah))
+        }
+        _ => None,
+    };
+
+    let direction = match input.amps {
+        Some(i) if i >= config.rest_current_amps => cycles::Direction::Charge,
+        Some(i) if i <= -config.rest_current_amps => cycles::Direction::Discharge,
+        _ => cycles::Direction::Rest,
+    };
+    let cycle_closed = state.cycles.observe(cycles::Observation {
+        time_ns: input.time_ns,
+        direction,
+        cell_volts: cell_terminal,
+        delta_g_kj_per_mol: evaluation.thermo.delta_g_kj_per_mol,
+        soc: soc_fused,
+        charge_in_ah: state.charge_in_ah,
+        charge_out_ah: state.charge_out_ah,
+        energy_in_wh: state.energy_in_wh,
+        energy_out_wh: state.energy_out_wh,
+    });
+
+    state.last_time_ns = Some(input.time_ns);
+    state.last_stack_volts = input.stack_volts;
+    state.last_amps = input.amps;
+
+    Ok(Estimate {
+        temp_k,
+        cell_volts_used: evaluation.thermo.cell_volts,
+        ocv_source,
+        resistance_ohm,
+        soc_counted,
+        soc_fused,
+        soc_method,
+        resting,
+        rest_settled,
+        dv_dt_mv_per_min,
+        soc_rate_per_s,
+        charge_ah: state.charge_ah,
+        energy_wh: state.energy_wh,
+        gap,
+        cycle_closed,
+        evaluation,
+    })
+}
+
+/// Least-squares slope of the rest window, mV/min, once it spans at least
+/// half the window (a shorter span is too noisy to call a rest settled).
+fn slope_mv_per_min(window: &VecDeque<(i64, f64)>, window_s: f64) -> Option<f64> {
+    let (first, last) = (window.front()?, window.back()?);
+    let span_s = (last.0 - first.0) as f64 / NS_PER_S;
+    if window.len() < 3 || span_s < 0.5 * window_s {
+        return None;
+    }
+    let n = window.len() as f64;
+    let t0 = first.0;
+    let (mut st, mut sv, mut stt, mut stv) = (0.0, 0.0, 0.0, 0.0);
+    for &(t, v) in window {
+        let x = (t - t0) as f64 / NS_PER_S;
+        st += x;
+        sv += v;
+        stt += x * x;
+        stv += x * v;
+    }
+    let denom = n * stt - st * st;
+    if denom <= 0.0 {
+        return None;
+    }
+    let volts_per_s = (n * stv - st * sv) / denom;
+    Some(volts_per_s * 1e3 * 60.0)
+}
+
+/// Products and efficiencies of a water electrolyser / hydrogen fuel cell.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct HydrogenAccount {
+    /// Positive: produced (electrolysis); negative: consumed (fuel cell).
+    pub hydrogen_mol: f64,
+    pub hydrogen_g: f64,
+    pub hydrogen_normal_litres: f64,
+    pub oxygen_mol: f64,
+    pub specific_energy_kwh_per_kg: Option<f64>,
+}
+
+/// Extent of the cell reaction as written (discharge direction), mol:
+/// Faraday's law ξ = Q/(nF), charge out positive.
+pub fn reaction_extent_mol(state: &EstimatorState, n_electrons: u32) -> f64 {
+    -state.charge_ah * 3600.0 / (f64::from(n_electrons) * FARADAY_C_PER_MOL)
+}
+
+/// Faraday's law for H2 + ½O2 ⇌ H2O with z = 2 per H2: per cell of the
+/// stack, charge in makes hydrogen at the Faradaic efficiency, charge out
+/// consumes it at 100 %.
+pub fn hydrogen_account(state: &EstimatorState, config: &EstimatorConfig) -> HydrogenAccount {
+    let cells = f64::from(config.cells_in_series.max(1));
+    let per_cell_mol = |ah: f64| ah * 3600.0 / (2.0 * FARADAY_C_PER_MOL);
+    let hydrogen_mol = cells
+        * (config.faradaic_efficiency * per_cell_mol(state.charge_in_ah)
+            - per_cell_mol(state.charge_out_ah));
+    let hydrogen_g = hydrogen_mol * H2_MOLAR_MASS_G_PER_MOL;
+    let specific_energy_kwh_per_kg =
+        (hydrogen_g > 0.0).then(|| (state.energy_in_wh / 1e3) / (hydrogen_g / 1e3));
+    HydrogenAccount {
+        hydrogen_mol,
+        hydrogen_g,
+        hydrogen_normal_litres: hydrogen_mol * NORMAL_MOLAR_VOLUME_L_PER_MOL,
+        oxygen_mol: hydrogen_mol / 2.0,
+        specific_energy_kwh_per_kg,
+    }
+}
+
+/// Voltage efficiency of a driven cell: reversible (or thermoneutral)
+/// voltage over the per-cell terminal voltage.
+pub fn driven_voltage_efficiency(reference_volts: f64, cell_terminal_volts: f64) -> Option<f64> {
+    (cell_terminal_volts > 0.0 && reference_volts > 0.0)
+        .then(|| reference_volts / cell_terminal_volts)
+}
+
+#[cfg(test)]
+mod tests;
