@@ -4,6 +4,7 @@
 //! computation (no I/O, no async, no clock); the service shells around it
 //! call in so every path gives the same answer for the same reading.
 
+pub mod alerts;
 pub mod electrochem;
 pub mod estimator;
 pub mod pb;

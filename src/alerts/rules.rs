@@ -1,0 +1,634 @@
+//! Alert rule evaluation: pure, with hysteresis and debounce.
+//!
+//! Each rule watches one value. It raises when the value has been past
+//! `raise_at` for `hold_s` (time from the readings, not a clock) and clears
+//! when the value comes back past `clear_at`, so noise around a threshold
+//! gives one alert, not a storm. At most one alert per (channel, kind) is
+//! active at a time; the state here says which are.
+
+use serde::{Deserialize, Serialize};
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum AlertKind {
+    EquilibriumApproach,
+    EndOfCharge,
+    EndOfDischarge,
+    RestSettled,
+    VoltageLimit,
+    CurrentLimit,
+    TemperatureLimit,
+    SilentRig,
+}
+
+impl AlertKind {
+    pub const ALL: [AlertKind; 8] = [
+        AlertKind::EquilibriumApproach,
+        AlertKind::EndOfCharge,
+        AlertKind::EndOfDischarge,
+        AlertKind::RestSettled,
+        AlertKind::VoltageLimit,
+        AlertKind::CurrentLimit,
+        AlertKind::TemperatureLimit,
+        AlertKind::SilentRig,
+    ];
+    pub fn code(self) -> i64 {
+        self as i64 + 1
+    }
+    pub fn from_code(code: i64) -> Option<AlertKind> {
+        AlertKind::ALL.get(usize::try_from(code - 1).ok()?).copied()
+    }
+    pub fn severity(self) -> Severity {
+        match self {
+            AlertKind::VoltageLimit | AlertKind::CurrentLimit | AlertKind::TemperatureLimit => {
+                Severity::Critical
+            }
+            AlertKind::RestSettled => Severity::Info,
+            _ => Severity::Warning,
+        }
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Severity {
+    Info = 1,
+    Warning = 2,
+    Critical = 3,
+}
+
+impl Severity {
+    pub fn code(self) -> i64 {
+        self as i64
+    }
+    pub fn from_code(code: i64) -> Severity {
+        match code {
+            3 => Severity::Critical,
+            2 => Severity::Warning,
+            _ => Severity::Info,
+        }
+    }
+}
+
+/// A raise/clear pair with a hold time.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Threshold {
+    pub enabled: bool,
+    pub raise_at: f64,
+    pub clear_at: f64,
+    pub hold_s: f64,
+}
+
+impl Threshold {
+    pub const fn new(raise_at: f64, clear_at: f64, hold_s: f64) -> Threshold {
+        Threshold {
+            enabled: true,
+            raise_at,
+            clear_at,
+            hold_s,
+        }
+    }
+}
+
+/// Rules for one channel.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct AlertRules {
+    pub equilibrium_delta_g_kj_per_mol: Threshold,
+    pub end_of_charge_soc: Threshold,
+    pub end_of_charge_cell_volts: Threshold,
+    pub end_of_charge_lead_s: f64,
+    pub end_of_discharge_soc: Threshold,
+    pub end_of_discharge_cell_volts: Threshold,
+    pub rest_settled_mv_per_min: Threshold,
+    pub min_cell_volts: f64,
+    pub max_cell_volts: f64,
+    pub max_abs_amps: f64,
+    pub min_temp_c: f64,
+    pub max_temp_c: f64,
+    pub silent_interval_multiple: f64,
+    pub silent_min_s: f64,
+}
+
+impl AlertRules {
+    /// Defaults from the chemistry's per-cell window (common practice:
+    /// end of charge at SOC 0.95 or the charge cutoff, end of discharge at
+    /// 0.05 or the discharge cutoff; limits 50 mV beyond the cutoffs).
+    pub fn defaults_for(min_cell_volts: f64, max_cell_volts: f64) -> AlertRules {
+        AlertRules {
+            equilibrium_delta_g_kj_per_mol: Threshold::new(1.0, 2.0, 10.0),
+            end_of_charge_soc: Threshold::new(0.95, 0.90, 5.0),
+            end_of_charge_cell_volts: Threshold::new(max_cell_volts, max_cell_volts - 0.02, 2.0),
+            end_of_charge_lead_s: 0.0,
+            end_of_discharge_soc: Threshold::new(0.05, 0.10, 5.0),
+            end_of_discharge_cell_volts: Threshold::new(min_cell_volts, min_cell_volts + 0.02, 2.0),
+            rest_settled_mv_per_min: Threshold::new(1.0, 3.0, 60.0),
+            min_cell_volts: min_cell_volts - 0.05,
+            max_cell_volts: max_cell_volts + 0.05,
+            max_abs_amps: 0.0,
+            min_temp_c: -20.0,
+            max_temp_c: 70.0,
+            silent_interval_multiple: 10.0,
+            silent_min_s: 30.0,
+        }
+    }
+
+    /// Rejects rules that cannot work, naming the field and value.
+    pub fn validate(&self) -> Result<(), String> {
+        let pairs: [(&str, Threshold, bool); 6] = [
+            (
+                "equilibrium_delta_g_kj_per_mol",
+                self.equilibrium_delta_g_kj_per_mol,
+                false,
+            ),
+            ("end_of_charge_soc", self.end_of_charge_soc, true),
+            (
+                "end_of_charge_cell_volts",
+                self.end_of_charge_cell_volts,
+                true,
+            ),
+            ("end_of_discharge_soc", self.end_of_discharge_soc, false),
+            (
+                "end_of_discharge_cell_volts",
+                self.end_of_discharge_cell_volts,
+                false,
+            ),
+            (
+                "rest_settled_mv_per_min",
+                self.rest_settled_mv_per_min,
+                false,
+            ),
+        ];
+        for (name, t, rising) in pairs {
+            for (part, v) in [
+                ("raise_at", t.raise_at),
+                ("clear_at", t.clear_at),
+                ("hold_s", t.hold_s),
+            ] {
+                if !v.is_finite() {
+                    return Err(format!("{name}.{part} = {v}: must be finite"));
+                }
+            }
+            if t.hold_s < 0.0 {
+                return Err(format!(
+                    "{name}.hold_s = {}: must not be negative",
+                    t.hold_s
+                ));
+            }
+            let ok = if rising {
+                t.clear_at <= t.raise_at
+            } else {
+                t.clear_at >= t.raise_at
+            };
+            if !ok {
+                return Err(format!(
+                    "{name}.clear_at = {}: must be on the safe side of raise_at ({}) for hysteresis",
+                    t.clear_at, t.raise_at
+                ));
+            }
+        }
+        for (name, v) in [
+            ("end_of_charge_lead_s", self.end_of_charge_lead_s),
+            ("min_cell_volts", self.min_cell_volts),
+            ("max_cell_volts", self.max_cell_volts),
+            ("max_abs_amps", self.max_abs_amps),
+            ("min_temp_c", self.min_temp_c),
+            ("max_temp_c", self.max_temp_c),
+            ("silent_interval_multiple", self.silent_interval_multiple),
+            ("silent_min_s", self.silent_min_s),
+        ] {
+            if !v.is_finite() {
+                return Err(format!("{name} = {v}: must be finite"));
+            }
+        }
+        if self.min_cell_volts >= self.max_cell_volts {
+            return Err(format!(
+                "max_cell_volts = {}: must be above min_cell_volts ({})",
+                self.max_cell_volts, self.min_cell_volts
+            ));
+        }
+        if self.min_temp_c >= self.max_temp_c {
+            return Err(format!(
+                "max_temp_c = {}: must be above min_temp_c ({})",
+                self.max_temp_c, self.min_temp_c
+            ));
+        }
+        Ok(())
+    }
+}
+
+/// Debounce state of one rule.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, Default)]
+pub struct RuleState {
+    pub pending_since_ns: Option<i64>,
+    pub active: bool,
+}
+
+/// Per-channel state of all rules.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
+pub struct ChannelRuleState {
+    pub rules: std::collections::BTreeMap<AlertKind, RuleState>,
+}
+
+impl ChannelRuleState {
+    /// State after a restart: the kinds with an alert still active.
+    pub fn with_active(kinds: impl IntoIterator<Item = AlertKind>) -> ChannelRuleState {
+        let mut s = ChannelRuleState::default();
+        for kind in kinds {
+            s.rules.insert(
+                kind,
+                RuleState {
+                    pending_since_ns: None,
+                    active: true,
+                },
+            );
+        }
+        s
+    }
+    pub fn is_active(&self, kind: AlertKind) -> bool {
+        self.rules.get(&kind).is_some_and(|r| r.active)
+    }
+}
+
+/// What the rules see of one derived reading.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct RuleInput {
+    pub time_ns: i64,
+    pub seq: u64,
+    pub cell_volts_terminal: f64,
+    /// Charge-positive amps.
+    pub amps: Option<f64>,
+    pub temp_c: Option<f64>,
+    pub delta_g_kj_per_mol: f64,
+    pub soc: Option<f64>,
+    pub charging: bool,
+    pub discharging: bool,
+    pub resting: bool,
+    pub dv_dt_mv_per_min: Option<f64>,
+    pub soc_rate_per_s: Option<f64>,
+}
+
+/// A change the caller must store and publish.
+#[derive(Debug, Clone, PartialEq)]
+pub enum AlertChange {
+    Raise(RaisedAlert),
+    Clear { kind: AlertKind, time_ns: i64 },
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct RaisedAlert {
+    pub kind: AlertKind,
+    pub severity: Severity,
+    pub time_ns: i64,
+    pub seq: u64,
+    pub trigger_value: f64,
+    pub threshold: f64,
+    pub unit: &'static str,
+    pub message: String,
+    pub seconds_to_target: Option<f64>,
+}
+
+/// Which side of a threshold is the alarm side.
+#[derive(Clone, Copy, PartialEq, Eq)]
+enum Side {
+    AtOrAbove,
+    AtOrBelow,
+}
+
+struct Check {
+    kind: AlertKind,
+    /// `Some(true)` past raise, `Some(false)` back past clear, `None` in between
+    /// (keep what we have) or not applicable.
+    past_raise: bool,
+    past_clear: bool,
+    hold_s: f64,
+    trigger_value: f64,
+    threshold: f64,
+    unit: &'static str,
+    message: String,
+    seconds_to_target: Option<f64>,
+}
+
+fn compare(t: &Threshold, side: Side, value: f64) -> (bool, bool) {
+    match side {
+        Side::AtOrAbove => (value >= t.raise_at, value < t.clear_at),
+        Side::AtOrBelow => (value <= t.raise_at, value > t.clear_at),
+    }
+}
+
+/// Evaluates every rule against one reading.
+pub fn evaluate(
+    rules: &AlertRules,
+    state: &mut ChannelRuleState,
+    input: &RuleInput,
+) -> Vec<AlertChange> {
+    let mut checks: Vec<Check> = Vec::with_capacity(8);
+    let t = &rules.equilibrium_delta_g_kj_per_mol;
+    if t.enabled {
+        let value = input.delta_g_kj_per_mol.abs();
+        let (past_raise, past_clear) = compare(t, Side::AtOrBelow, value);
+        checks.push(Check {
+            kind: AlertKind::EquilibriumApproach,
+            past_raise,
+            past_clear,
+            hold_s: t.hold_s,
+            trigger_value: value,
+            threshold: t.raise_at,
+            unit: "kJ/mol",
+            message: format!("|ΔG| {value:.3} kJ/mol: the cell reaction is near equilibrium (driving force nearly spent)"),
+            seconds_to_target: None,
+        });
+    }
+
+    // End of charge: SOC target (with lead time) or voltage cutoff, while charging.
+    let mut eoc_past = false;
+    let mut eoc_clear = true;
+    let mut eoc_value = input.cell_volts_terminal;
+    let mut eoc_threshold = rules.end_of_charge_cell_volts.raise_at;
+    let mut eoc_unit = "V";
+    let mut eoc_hold = rules.end_of_charge_cell_volts.hold_s;
+    let mut eta = None;
+    if rules.end_of_charge_soc.enabled
+        && let Some(soc) = input.soc
+    {
+        let t = &rules.end_of_charge_soc;
+        let (raise, clear) = compare(t, Side::AtOrAbove, soc);
+        if let Some(rate) = input.soc_rate_per_s.filter(|r| *r > 0.0) {
+            eta = Some(((t.raise_at - soc) / rate).max(0.0));
+        }
+        let early = rules.end_of_charge_lead_s > 0.0
+            && eta.is_some_and(|e| e <= rules.end_of_charge_lead_s);
+        eoc_past |= input.charging && (raise || early);
+        eoc_clear &= clear && !early;
+        if raise || early {
+            eoc_value = soc;
+            eoc_threshold = t.raise_at;
+            eoc_unit = "SOC";
+            eoc_hold = t.hold_s;
+        }
+    }
+    if rules.end_of_charge_cell_volts.enabled {
+        let (raise, clear) = compare(
+            &rules.end_of_charge_cell_volts,
+            Side::AtOrAbove,
+            input.cell_volts_terminal,
+        );
+        if input.charging && raise && !eoc_past {
+            eoc_value = input.cell_volts_terminal;
+            eoc_threshold = rules.end_of_charge_cell_volts.raise_at;
+            eoc_unit = "V";
+        }
+        eoc_past |= input.charging && raise;
+        // At rest the terminal voltage relaxes below the cutoff by itself;
+        // only SOC decides clearing once current has stopped.
+        eoc_clear &= clear || !input.charging;
+    }
+    if rules.end_of_charge_soc.enabled || rules.end_of_charge_cell_volts.enabled {
+        checks.push(Check {
+            kind: AlertKind::EndOfCharge,
+            past_raise: eoc_past,
+            past_clear: eoc_clear && !eoc_past,
+            hold_s: eoc_hold,
+            trigger_value: eoc_value,
+            threshold: eoc_threshold,
+            unit: eoc_unit,
+            message: match eta {
+                Some(e) if eoc_unit == "SOC" && e > 0.0 => format!("end of charge in about {e:.0} s (SOC {eoc_value:.3}, target {eoc_threshold:.3})"),
+                _ => format!("end of charge: {eoc_unit} {eoc_value:.4} reached {eoc_threshold:.4}"),
+            },
+            seconds_to_target: eta,
+        });
+    }
+
+    // End of discharge.
+    let mut eod_past = false;
+    let mut eod_clear = true;
+    let mut eod_value = input.cell_volts_terminal;
+    let mut eod_threshold = rules.end_of_discharge_cell_volts.raise_at;
+    let mut eod_unit = "V";
+    let mut eod_hold = rules.end_of_discharge_cell_volts.hold_s;
+    if rules.end_of_discharge_soc.enabled
+        && let Some(soc) = input.soc
+    {
+        let (raise, clear) = compare(&rules.end_of_discharge_soc, Side::AtOrBelow, soc);
+        eod_past |= input.discharging && raise;
+        eod_clear &= clear;
+        if raise {
+            eod_value = soc;
+            eod_threshold = rules.end_of_discharge_soc.raise_at;
+            eod_unit = "SOC";
+            eod_hold = rules.end_of_discharge_soc.hold_s;
+        }
+    }
+    if rules.end_of_discharge_cell_volts.enabled {
+        let (raise, clear) = compare(
+            &rules.end_of_discharge_cell_volts,
+            Side::AtOrBelow,
+            input.cell_volts_terminal,
+        );
+        eod_past |= input.discharging && raise;
+        eod_clear &= clear || !input.discharging;
+    }
+    if rules.end_of_discharge_soc.enabled || rules.end_of_discharge_cell_volts.enabled {
+        checks.push(Check {
+            kind: AlertKind::EndOfDischarge,
+            past_raise: eod_past,
+            past_clear: eod_clear && !eod_past,
+            hold_s: eod_hold,
+            trigger_value: eod_value,
+            threshold: eod_threshold,
+            unit: eod_unit,
+            message: format!(
+                "end of discharge: {eod_unit} {eod_value:.4} reached {eod_threshold:.4}"
+            ),
+            seconds_to_target: None,
+        });
+    }
+
+    let t = &rules.rest_settled_mv_per_min;
+    if t.enabled {
+        let rate = input.dv_dt_mv_per_min.map(f64::abs);
+        let (raise, clear) = match rate {
+            Some(r) if input.resting => compare(t, Side::AtOrBelow, r),
+            _ => (false, true),
+        };
+        checks.push(Check {
+            kind: AlertKind::RestSettled,
+            past_raise: raise,
+            past_clear: clear || !input.resting,
+            hold_s: t.hold_s,
+            trigger_value: rate.unwrap_or(f64::NAN),
+            threshold: t.raise_at,
+            unit: "mV/min",
+            message: format!(
+                "rest settled: |dV/dt| {:.3} mV/min; the open-circuit SOC is now trustworthy",
+                rate.unwrap_or(0.0)
+            ),
+            seconds_to_target: None,
+        });
+    }
+
+    // Limits: raised at once, cleared once back inside by a small margin.
+    let v = input.cell_volts_terminal;
+    let span = rules.max_cell_volts - rules.min_cell_volts;
+    let v_margin = 0.01 * span;
+    let outside_v = v < rules.min_cell_volts || v > rules.max_cell_volts;
+    checks.push(Check {
+        kind: AlertKind::VoltageLimit,
+        past_raise: outside_v,
+        past_clear: v > rules.min_cell_volts + v_margin && v < rules.max_cell_volts - v_margin,
+        hold_s: 0.0,
+        trigger_value: v,
+        threshold: if v < rules.min_cell_volts {
+            rules.min_cell_volts
+        } else {
+            rules.max_cell_volts
+        },
+        unit: "V",
+        message: format!(
+            "cell voltage {v:.4} V outside the safe window {:.3}–{:.3} V",
+            rules.min_cell_volts, rules.max_cell_volts
+        ),
+        seconds_to_target: None,
+    });
+    if rules.max_abs_amps > 0.0
+        && let Some(i) = input.amps
+    {
+        checks.push(Check {
+            kind: AlertKind::CurrentLimit,
+            past_raise: i.abs() > rules.max_abs_amps,
+            past_clear: i.abs() < 0.99 * rules.max_abs_amps,
+            hold_s: 0.0,
+            trigger_value: i,
+            threshold: rules.max_abs_amps,
+            unit: "A",
+            message: format!(
+                "current {i:.3} A beyond the limit ±{:.3} A",
+                rules.max_abs_amps
+            ),
+            seconds_to_target: None,
+        });
+    }
+    if let Some(temp) = input.temp_c {
+        checks.push(Check {
+            kind: AlertKind::TemperatureLimit,
+            past_raise: temp < rules.min_temp_c || temp > rules.max_temp_c,
+            past_clear: temp > rules.min_temp_c + 0.5 && temp < rules.max_temp_c - 0.5,
+            hold_s: 0.0,
+            trigger_value: temp,
+            threshold: if temp < rules.min_temp_c {
+                rules.min_temp_c
+            } else {
+                rules.max_temp_c
+            },
+            unit: "°C",
+            message: format!(
+                "temperature {temp:.2} °C outside {:.1}–{:.1} °C",
+                rules.min_temp_c, rules.max_temp_c
+            ),
+            seconds_to_target: None,
+        });
+    }
+
+    let mut changes = Vec::new();
+    for check in checks {
+        if let Some(change) = apply(state, check, input) {
+            changes.push(change);
+        }
+    }
+    // A reading arriving ends a silence.
+    if state.is_active(AlertKind::SilentRig) {
+        state
+            .rules
+            .insert(AlertKind::SilentRig, RuleState::default());
+        changes.push(AlertChange::Clear {
+            kind: AlertKind::SilentRig,
+            time_ns: input.time_ns,
+        });
+    }
+    changes
+}
+
+fn apply(state: &mut ChannelRuleState, check: Check, input: &RuleInput) -> Option<AlertChange> {
+    let rule = state.rules.entry(check.kind).or_default();
+    if rule.active {
+        if check.past_clear && !check.past_raise {
+            *rule = RuleState::default();
+            return Some(AlertChange::Clear {
+                kind: check.kind,
+                time_ns: input.time_ns,
+            });
+        }
+        return None;
+    }
+    if !check.past_raise {
+        rule.pending_since_ns = None;
+        return None;
+    }
+    let since = *rule.pending_since_ns.get_or_insert(input.time_ns);
+    if (input.time_ns - since) as f64 / 1e9 < check.hold_s {
+        return None;
+    }
+    *rule = RuleState {
+        pending_since_ns: None,
+        active: true,
+    };
+    Some(AlertChange::Raise(RaisedAlert {
+        kind: check.kind,
+        severity: check.kind.severity(),
+        time_ns: input.time_ns,
+        seq: input.seq,
+        trigger_value: check.trigger_value,
+        threshold: check.threshold,
+        unit: check.unit,
+        message: check.message,
+        seconds_to_target: check.seconds_to_target,
+    }))
+}
+
+/// Is a channel silent? `usual_interval_s` is its typical spacing of readings.
+pub fn is_silent(
+    last_seen_ns: i64,
+    now_ns: i64,
+    usual_interval_s: f64,
+    rules: &AlertRules,
+) -> bool {
+    let quiet_s = (now_ns - last_seen_ns) as f64 / 1e9;
+    let limit_s = (usual_interval_s * rules.silent_interval_multiple).max(rules.silent_min_s);
+    rules.silent_interval_multiple > 0.0 && quiet_s > limit_s
+}
+
+/// Marks a silent-rig alert raised; returns it unless one is already active.
+pub fn raise_silent(
+    state: &mut ChannelRuleState,
+    last_seen_ns: i64,
+    now_ns: i64,
+    last_seq: u64,
+) -> Option<RaisedAlert> {
+    if state.is_active(AlertKind::SilentRig) {
+        return None;
+    }
+    state.rules.insert(
+        AlertKind::SilentRig,
+        RuleState {
+            pending_since_ns: None,
+            active: true,
+        },
+    );
+    let quiet_s = (now_ns - last_seen_ns) as f64 / 1e9;
+    Some(RaisedAlert {
+        kind: AlertKind::SilentRig,
+        severity: AlertKind::SilentRig.severity(),
+        time_ns: now_ns,
+        seq: last_seq,
+        trigger_value: quiet_s,
+        threshold: 0.0,
+        unit: "s",
+        message: format!("no reading for {quiet_s:.0} s"),
+        seconds_to_target: None,
+    })
+}
+
+#[cfg(test)]
+mod tests;
