@@ -5,7 +5,12 @@
 //! call in so every path gives the same answer for the same reading.
 
 pub mod alerts;
+pub mod app;
+pub mod channel;
 pub mod electrochem;
 pub mod estimator;
+pub mod grpc;
+pub mod ingest;
 pub mod pb;
 pub mod sim;
+pub mod store;

@@ -27,6 +27,24 @@ pub enum Command {
     Eval(EvalArgs),
     /// List the known chemistries with their parameters and sources.
     Chemistries(ChemistriesArgs),
+    /// Run the gRPC service on an embedded SQLite file.
+    Serve(ServeArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct ServeArgs {
+    /// Address to listen on.
+    #[arg(long, default_value = "127.0.0.1:50051")]
+    pub listen: String,
+    /// SQLite database file (created and migrated on first start).
+    #[arg(long, default_value = "gibbsline.db")]
+    pub db: PathBuf,
+    /// Commit durability: full (survives power loss), normal (survives a crash), off.
+    #[arg(long, default_value = "full")]
+    pub durability: String,
+    /// Extra chemistry definitions (TOML), may repeat.
+    #[arg(long)]
+    pub chemistry_file: Vec<PathBuf>,
 }
 
 #[derive(Debug, Args)]
@@ -74,5 +92,63 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
         Command::Eval(args) => eval::run_eval(&args),
         Command::Chemistries(args) => eval::run_chemistries(&args),
+        Command::Serve(args) => serve(&args),
+    }
+}
+
+fn serve(args: &ServeArgs) -> anyhow::Result<()> {
+    use gibbsline::app;
+    tracing_subscriber::fmt()
+        .with_env_filter(
+            tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
+        )
+        .init();
+    let durability: gibbsline::store::Durability = args
+        .durability
+        .parse()
+        .map_err(|e| UsageError(format!("--durability {e}")))?;
+    let registry = eval::load_registry(&args.chemistry_file)?;
+    let extra = registry
+        .iter()
+        .filter(|c| !c.builtin)
+        .map(|c| (**c).clone())
+        .collect();
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()?;
+    runtime.block_on(async {
+        let listener = tokio::net::TcpListener::bind(&args.listen)
+            .await
+            .map_err(|e| UsageError(format!("--listen {}: {e}", args.listen)))?;
+        let config = app::Config {
+            db_path: args.db.clone(),
+            durability,
+            extra_chemistries: extra,
+        };
+        app::run(config, listener, shutdown_signal()).await?;
+        Ok(())
+    })
+}
+
+async fn shutdown_signal() {
+    let ctrl_c = tokio::signal::ctrl_c();
+    #[cfg(unix)]
+    {
+        let mut term =
+            match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+                Ok(s) => s,
+                Err(_) => {
+                    let _ = ctrl_c.await;
+                    return;
+                }
+            };
+        tokio::select! {
+            _ = ctrl_c => {}
+            _ = term.recv() => {}
+        }
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = ctrl_c.await;
     }
 }

@@ -1,0 +1,194 @@
+//! Wiring: open the store, restore channel state, start the writer and the
+//! silent-rig timer, serve gRPC until `shutdown` resolves, then stop in
+//! order (health NOT_SERVING → stop taking streams → flush the writer →
+//! close the pool).
+
+use crate::alerts::rules as alert_rules;
+use crate::electrochem::{Registry, chemistry::ChemistrySpec};
+use crate::grpc::Api;
+use crate::ingest::{self, Hub, Job, writer};
+use crate::pb;
+use crate::store::{self, Durability, Store};
+use std::collections::HashMap;
+use std::future::Future;
+use std::path::PathBuf;
+use std::sync::{Arc, Mutex, RwLock};
+use std::time::Duration;
+use tokio::net::TcpListener;
+use tokio::sync::{broadcast, mpsc};
+
+#[derive(Debug, Clone)]
+pub struct Config {
+    pub db_path: PathBuf,
+    pub durability: Durability,
+    pub extra_chemistries: Vec<crate::electrochem::Chemistry>,
+}
+
+/// Largest gRPC message accepted or sent: 16 MiB, room for the 10,000
+/// reading batch limit with a wide margin.
+pub const MAX_MESSAGE_BYTES: usize = 16 * 1024 * 1024;
+/// Alert events buffered for subscribers; a subscriber more than this far
+/// behind is told to resume from its last id.
+const EVENT_BUFFER: usize = 4096;
+
+#[derive(Debug, thiserror::Error)]
+pub enum AppError {
+    #[error(transparent)]
+    Store(#[from] store::StoreError),
+    #[error(transparent)]
+    Ingest(#[from] ingest::IngestError),
+    #[error("serving: {0}")]
+    Transport(#[from] tonic::transport::Error),
+    #[error("reflection: {0}")]
+    Reflection(String),
+}
+
+pub async fn run(
+    config: Config,
+    listener: TcpListener,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> Result<(), AppError> {
+    let store = Store::open(&config.db_path, config.durability).await?;
+    let mut registry = Registry::builtin();
+    for spec_json in store::list_chemistry_specs(&store.writer).await? {
+        if let Ok(spec) = serde_json::from_str::<ChemistrySpec>(&spec_json)
+            && let Ok(chem) = spec.validate(false)
+        {
+            let _ = registry.insert_user(chem);
+        }
+    }
+    for chem in config.extra_chemistries {
+        let spec_id = chem.id.clone();
+        registry
+            .insert_user(chem)
+            .map_err(|e| store::StoreError::Corrupt(format!("chemistry {spec_id}: {e}")))?;
+    }
+    let mut channels = HashMap::new();
+    for row in store::list_channels(&store.writer).await? {
+        let rt = ingest::load_runtime(&store, &registry, &row).await?;
+        channels.insert(row.channel_id.clone(), Arc::new(Mutex::new(rt)));
+    }
+    let (writer_tx, writer_rx) = mpsc::channel(writer::WRITER_QUEUE_JOBS);
+    let (events, _) = broadcast::channel(EVENT_BUFFER);
+    let hub = Arc::new(Hub {
+        store: store.clone(),
+        registry: RwLock::new(registry),
+        channels: RwLock::new(channels),
+        writer: writer_tx,
+        events: events.clone(),
+    });
+    let writer_task = tokio::spawn(writer::run(store.clone(), writer_rx, events));
+    let silent_task = tokio::spawn(silent_watch(hub.clone()));
+
+    let (health_reporter, health_service) = tonic_health::server::health_reporter();
+    health_reporter
+        .set_serving::<pb::ingest_service_server::IngestServiceServer<Api>>()
+        .await;
+    health_reporter
+        .set_service_status("", tonic_health::ServingStatus::Serving)
+        .await;
+    let reflection_v1 = tonic_reflection::server::Builder::configure()
+        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
+        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+        .build_v1()
+        .map_err(|e| AppError::Reflection(e.to_string()))?;
+    let reflection_v1alpha = tonic_reflection::server::Builder::configure()
+        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
+        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+        .build_v1alpha()
+        .map_err(|e| AppError::Reflection(e.to_string()))?;
+
+    let api = Api { hub: hub.clone() };
+    macro_rules! limited {
+        ($server:ty) => {
+            <$server>::new(api.clone())
+                .max_decoding_message_size(MAX_MESSAGE_BYTES)
+                .max_encoding_message_size(MAX_MESSAGE_BYTES)
+        };
+    }
+    let addr = listener.local_addr().ok();
+    tracing::info!(?addr, db = %config.db_path.display(), "serving");
+    let incoming = tokio_stream::wrappers::TcpListenerStream::new(listener);
+    let reporter = health_reporter.clone();
+    let serve = tonic::transport::Server::builder()
+        .add_service(health_service)
+        .add_service(reflection_v1)
+        .add_service(reflection_v1alpha)
+        .add_service(limited!(
+            pb::channel_service_server::ChannelServiceServer<Api>
+        ))
+        .add_service(limited!(
+            pb::ingest_service_server::IngestServiceServer<Api>
+        ))
+        .add_service(limited!(
+            pb::history_service_server::HistoryServiceServer<Api>
+        ))
+        .add_service(limited!(
+            pb::chemistry_service_server::ChemistryServiceServer<Api>
+        ))
+        .add_service(limited!(pb::alert_service_server::AlertServiceServer<Api>))
+        .serve_with_incoming_shutdown(incoming, async move {
+            shutdown.await;
+            tracing::info!("shutting down: health NOT_SERVING");
+            reporter
+                .set_service_status("", tonic_health::ServingStatus::NotServing)
+                .await;
+            reporter
+                .set_not_serving::<pb::ingest_service_server::IngestServiceServer<Api>>()
+                .await;
+        });
+    let result = serve.await;
+    silent_task.abort();
+    // Dropping the last sender lets the writer drain what it was given and stop.
+    drop(api);
+    let writer_sender_holder = hub;
+    drop(writer_sender_holder);
+    match tokio::time::timeout(Duration::from_secs(30), writer_task).await {
+        Ok(Ok(Ok(()))) => tracing::info!("writer flushed"),
+        Ok(Ok(Err(e))) => tracing::error!(error = %e, "writer failed"),
+        Ok(Err(e)) => tracing::error!(error = %e, "writer task panicked"),
+        Err(_) => tracing::error!("writer did not flush within 30 s"),
+    }
+    store.close().await;
+    result.map_err(AppError::from)
+}
+
+/// Raises silent-rig alerts; the decision itself is the pure rule.
+async fn silent_watch(hub: Arc<Hub>) {
+    let mut tick = tokio::time::interval(Duration::from_secs(1));
+    loop {
+        tick.tick().await;
+        let now = ingest::now_ns();
+        let runtimes: Vec<_> = hub
+            .channels
+            .read()
+            .expect("channel map poisoned")
+            .values()
+            .cloned()
+            .collect();
+        for rt in runtimes {
+            let job = {
+                let mut g = rt.lock().expect("channel state poisoned");
+                if g.last_time_ns <= 0
+                    || !alert_rules::is_silent(g.last_time_ns, now, g.usual_interval_s, &g.rules)
+                {
+                    continue;
+                }
+                let seq = g.max_seq.unwrap_or(0);
+                let last = g.last_time_ns;
+                alert_rules::raise_silent(&mut g.rule_state, last, now, seq)
+                    .map(|a| (g.key, g.run_id, a))
+            };
+            if let Some((channel_key, run_id, alert)) = job {
+                let _ = hub
+                    .submit(|reply| Job::Alerts {
+                        channel_key,
+                        run_id,
+                        raised: vec![alert],
+                        reply,
+                    })
+                    .await;
+            }
+        }
+    }
+}

@@ -1,0 +1,172 @@
+//! Channel definitions: one cell or stack on one instrument channel, as the
+//! service stores it. Pure: validation against a chemistry registry only.
+
+use crate::electrochem::chemistry::validate_id;
+use crate::electrochem::{Chemistry, Registry};
+use crate::estimator::{CurrentSign, EstimatorConfig};
+use serde::{Deserialize, Serialize};
+use std::sync::Arc;
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ChannelDef {
+    pub channel_id: String,
+    pub chemistry_id: String,
+    pub cells_in_series: u32,
+    #[serde(default)]
+    pub capacity_ah: f64,
+    pub current_sign: CurrentSign,
+    #[serde(default = "default_temp_c")]
+    pub default_temp_c: f64,
+    /// Per-cell plausibility window, V.
+    pub min_volts: f64,
+    pub max_volts: f64,
+    #[serde(default)]
+    pub e_standard_override_v: Option<f64>,
+    #[serde(default)]
+    pub resistance_ohm: Option<f64>,
+    #[serde(default = "default_tolerance_mv")]
+    pub equilibrium_tolerance_mv: f64,
+    #[serde(default = "one")]
+    pub coulombic_efficiency: f64,
+    #[serde(default = "one")]
+    pub faradaic_efficiency: f64,
+    #[serde(default)]
+    pub description: String,
+}
+
+fn default_temp_c() -> f64 {
+    25.0
+}
+fn default_tolerance_mv() -> f64 {
+    1.0
+}
+fn one() -> f64 {
+    1.0
+}
+
+/// Readings outside [−100 °C, 200 °C] are broken sensors, not cells.
+pub const MIN_READING_TEMP_C: f64 = -100.0;
+pub const MAX_READING_TEMP_C: f64 = 200.0;
+
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("{field} = {value}: {reason}")]
+pub struct ChannelError {
+    pub field: String,
+    pub value: String,
+    pub reason: String,
+}
+
+fn err(field: &str, value: impl std::fmt::Display, reason: impl Into<String>) -> ChannelError {
+    ChannelError {
+        field: field.into(),
+        value: value.to_string(),
+        reason: reason.into(),
+    }
+}
+
+impl ChannelDef {
+    /// Checks the definition and resolves its chemistry (with the E° override).
+    pub fn validate(&self, registry: &Registry) -> Result<Arc<Chemistry>, ChannelError> {
+        validate_id("channel_id", &self.channel_id).map_err(|e| {
+            err(
+                "channel_id",
+                format!("{:?}", self.channel_id.chars().take(80).collect::<String>()),
+                e.to_string(),
+            )
+        })?;
+        let chemistry = registry.get(&self.chemistry_id).map_err(|_| {
+            err(
+                "chemistry_id",
+                format!(
+                    "{:?}",
+                    self.chemistry_id.chars().take(80).collect::<String>()
+                ),
+                "unknown chemistry id",
+            )
+        })?;
+        if self.cells_in_series == 0 || self.cells_in_series > 10_000 {
+            return Err(err(
+                "cells_in_series",
+                self.cells_in_series,
+                "must be from 1 to 10000",
+            ));
+        }
+        let finite_nonneg = |name: &str, v: f64| {
+            if v.is_finite() && v >= 0.0 {
+                Ok(())
+            } else {
+                Err(err(name, v, "must be finite and not negative"))
+            }
+        };
+        finite_nonneg("capacity_ah", self.capacity_ah)?;
+        finite_nonneg("equilibrium_tolerance_mv", self.equilibrium_tolerance_mv)?;
+        if !(self.default_temp_c.is_finite()
+            && (MIN_READING_TEMP_C..=MAX_READING_TEMP_C).contains(&self.default_temp_c))
+        {
+            return Err(err(
+                "default_temp_c",
+                self.default_temp_c,
+                "must be from -100 to 200 °C",
+            ));
+        }
+        if !(self.min_volts.is_finite() && self.max_volts.is_finite())
+            || self.min_volts >= self.max_volts
+        {
+            return Err(err(
+                "max_volts",
+                self.max_volts,
+                format!("must be finite and above min_volts ({})", self.min_volts),
+            ));
+        }
+        for (name, v) in [
+            ("coulombic_efficiency", self.coulombic_efficiency),
+            ("faradaic_efficiency", self.faradaic_efficiency),
+        ] {
+            if !(v.is_finite() && v > 0.0 && v <= 1.0) {
+                return Err(err(name, v, "must be in (0, 1]"));
+            }
+        }
+        if let Some(r) = self.resistance_ohm
+            && !(r.is_finite() && r >= 0.0)
+        {
+            return Err(err("resistance_ohm", r, "must be finite and not negative"));
+        }
+        match self.e_standard_override_v {
+            Some(e) if !e.is_finite() => Err(err("e_standard_override_v", e, "must be finite")),
+            Some(e) => Ok(Arc::new(chemistry.with_e_standard_override(e))),
+            None => Ok(chemistry),
+        }
+    }
+
+    /// Fields whose change invalidates stored derived values: a new run.
+    pub fn run_key(&self) -> (String, u32, Option<u64>) {
+        (
+            self.chemistry_id.clone(),
+            self.cells_in_series,
+            self.e_standard_override_v.map(f64::to_bits),
+        )
+    }
+
+    pub fn estimator_config(&self) -> EstimatorConfig {
+        let mut cfg = EstimatorConfig::for_channel(
+            self.cells_in_series,
+            self.capacity_ah,
+            self.default_temp_c + 273.15,
+        );
+        cfg.resistance_ohm = self.resistance_ohm;
+        cfg.coulombic_efficiency = self.coulombic_efficiency;
+        cfg.faradaic_efficiency = self.faradaic_efficiency;
+        cfg.equilibrium_tolerance_volts = self.equilibrium_tolerance_mv / 1e3;
+        cfg
+    }
+
+    /// Plausibility window when the caller gave none: the chemistry's
+    /// window widened by 0.5 V each side.
+    pub fn default_window(chemistry: &Chemistry) -> (f64, f64) {
+        (
+            chemistry.min_cell_volts - 0.5,
+            chemistry.max_cell_volts + 0.5,
+        )
+    }
+}

@@ -1,0 +1,1053 @@
+//! gRPC shell: thin handlers that convert at the edge and call the hub,
+//! the store and the core. Only this module (and the client commands) see
+//! generated protobuf types.
+
+pub mod status;
+
+use crate::alerts::{AlertKind, AlertRules, Severity, Threshold};
+use crate::channel::ChannelDef;
+use crate::electrochem::{self, EvalRequest};
+use crate::estimator::{self, CurrentSign};
+use crate::ingest::{self, Hub, IngestError, RawReading};
+use crate::pb;
+use crate::store::{self, AlertEvent, AlertRow, EventKind, ReadingRow, RunRow, flags};
+use status::invalid;
+use std::collections::HashMap;
+use std::pin::Pin;
+use std::sync::{Arc, Mutex};
+use tokio::sync::mpsc;
+use tokio_stream::wrappers::ReceiverStream;
+use tokio_stream::{Stream, StreamExt};
+use tonic::{Request, Response, Status, Streaming};
+
+type BoxStream<T> = Pin<Box<dyn Stream<Item = Result<T, Status>> + Send>>;
+
+#[derive(Clone)]
+pub struct Api {
+    pub hub: Arc<Hub>,
+}
+
+/// Acks a stream may have in flight to its client (one response channel slot each).
+const STREAM_RESPONSE_BUFFER: usize = 16;
+/// Per-subscriber backlog for WatchAlerts; past it the subscriber is told to resume.
+pub const SUBSCRIBER_BUFFER: usize = 1024;
+
+fn sign_from_pb(code: i32) -> Result<CurrentSign, Status> {
+    match pb::CurrentSign::try_from(code) {
+        Ok(pb::CurrentSign::ChargePositive) => Ok(CurrentSign::ChargePositive),
+        Ok(pb::CurrentSign::DischargePositive) => Ok(CurrentSign::DischargePositive),
+        _ => Err(invalid(
+            "channel.current_sign",
+            code,
+            "must be CHARGE_POSITIVE or DISCHARGE_POSITIVE",
+        )),
+    }
+}
+
+fn channel_to_pb(def: &ChannelDef, run_id: i64) -> pb::Channel {
+    pb::Channel {
+        channel_id: def.channel_id.clone(),
+        chemistry_id: def.chemistry_id.clone(),
+        cells_in_series: def.cells_in_series,
+        capacity_ah: def.capacity_ah,
+        current_sign: match def.current_sign {
+            CurrentSign::ChargePositive => pb::CurrentSign::ChargePositive as i32,
+            CurrentSign::DischargePositive => pb::CurrentSign::DischargePositive as i32,
+        },
+        default_temp_c: def.default_temp_c,
+        min_volts: def.min_volts,
+        max_volts: def.max_volts,
+        e_standard_override_v: def.e_standard_override_v,
+        resistance_ohm: def.resistance_ohm,
+        equilibrium_tolerance_mv: def.equilibrium_tolerance_mv,
+        coulombic_efficiency: def.coulombic_efficiency,
+        faradaic_efficiency: def.faradaic_efficiency,
+        description: def.description.clone(),
+        run_id: run_id as u64,
+    }
+}
+
+fn state_to_pb(s: electrochem::ReactionState) -> i32 {
+    match s {
+        electrochem::ReactionState::Spontaneous => pb::ReactionState::Spontaneous as i32,
+        electrochem::ReactionState::Driven => pb::ReactionState::Driven as i32,
+        electrochem::ReactionState::Equilibrium => pb::ReactionState::Equilibrium as i32,
+    }
+}
+
+/// Recomputes the cheap derived values from a stored row and its run.
+fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading {
+    let derived = run.map(|run| {
+        let temp_k = row.temp_c.unwrap_or(run.default_temp_c) + 273.15;
+        let t = electrochem::thermo::thermo_state(
+            run.n_electrons,
+            electrochem::thermo::StandardPotential {
+                e_standard_298_volts: run.e_standard_298_v,
+                de_dt_volts_per_k: run.de_dt_v_per_k,
+            },
+            row.cell_volts_used,
+            temp_k,
+            run.equilibrium_tolerance_v,
+        );
+        pb::DerivedState {
+            cell_volts: row.cell_volts_used,
+            ohmic_compensated: row.flags & (flags::OCV_OHMIC | flags::OCV_COUNTED) != 0,
+            temp_k,
+            e_standard_v: t.e_standard_volts,
+            delta_g_kj_per_mol: t.delta_g_kj_per_mol,
+            delta_g_standard_kj_per_mol: t.delta_g_standard_kj_per_mol,
+            ln_q: t.ln_q,
+            log10_q: t.log10_q(),
+            log10_k: t.log10_k(),
+            affinity_ln_k_over_q: t.affinity_ln_k_over_q,
+            state: state_to_pb(t.state),
+            soc_model: row.soc_model,
+            soc_clamped: row.flags & flags::SOC_CLAMPED != 0,
+            soc_fused: row.soc_fused,
+            charge_ah: row.charge_ah,
+            energy_wh: row.energy_wh,
+            resting: row.flags & flags::RESTING != 0,
+            rest_settled: row.flags & flags::REST_SETTLED != 0,
+            out_of_order: row.flags & flags::OUT_OF_ORDER != 0,
+            soc_model_name: run.soc_model.clone(),
+        }
+    });
+    pb::StoredReading {
+        seq: row.seq,
+        time_unix_ns: row.time_ns,
+        volts: row.volts,
+        amps: row.amps,
+        temp_c: row.temp_c,
+        run_id: row.run_id as u64,
+        derived,
+    }
+}
+
+fn kind_to_pb(k: AlertKind) -> i32 {
+    (match k {
+        AlertKind::EquilibriumApproach => pb::AlertKind::EquilibriumApproach,
+        AlertKind::EndOfCharge => pb::AlertKind::EndOfCharge,
+        AlertKind::EndOfDischarge => pb::AlertKind::EndOfDischarge,
+        AlertKind::RestSettled => pb::AlertKind::RestSettled,
+        AlertKind::VoltageLimit => pb::AlertKind::VoltageLimit,
+        AlertKind::CurrentLimit => pb::AlertKind::CurrentLimit,
+        AlertKind::TemperatureLimit => pb::AlertKind::TemperatureLimit,
+        AlertKind::SilentRig => pb::AlertKind::SilentRig,
+    }) as i32
+}
+
+pub fn alert_to_pb(a: &AlertRow) -> pb::Alert {
+    pb::Alert {
+        alert_id: a.alert_id,
+        channel_id: a.channel_id.clone(),
+        run_id: a.run_id as u64,
+        kind: kind_to_pb(a.kind),
+        severity: a.severity.code() as i32,
+        raised_unix_ns: a.raised_ns,
+        raised_seq: a.raised_seq,
+        trigger_value: a.trigger_value,
+        threshold: a.threshold,
+        unit: a.unit.clone(),
+        message: a.message.clone(),
+        seconds_to_target: a.seconds_to_target,
+        cleared_unix_ns: a.cleared_ns,
+        acknowledged_by: a.ack_by.clone(),
+        acknowledged_unix_ns: a.ack_ns,
+        acknowledge_note: a.ack_note.clone(),
+    }
+}
+
+fn event_to_pb(e: &AlertEvent) -> pb::WatchAlertsResponse {
+    pb::WatchAlertsResponse {
+        event: match e.kind {
+            EventKind::Raised => pb::AlertEventKind::Raised,
+            EventKind::Cleared => pb::AlertEventKind::Cleared,
+            EventKind::Acknowledged => pb::AlertEventKind::Acknowledged,
+        } as i32,
+        alert: Some(alert_to_pb(&e.alert)),
+        resume_after_id: e.event_id,
+    }
+}
+
+fn threshold_to_pb(t: &Threshold) -> pb::Threshold {
+    pb::Threshold {
+        enabled: t.enabled,
+        raise_at: t.raise_at,
+        clear_at: t.clear_at,
+        hold_s: t.hold_s,
+    }
+}
+
+fn threshold_from_pb(name: &str, t: Option<pb::Threshold>) -> Result<Threshold, Status> {
+    let t = t.ok_or_else(|| {
+        invalid(
+            &format!("rules.{name}"),
+            "unset",
+            "every threshold must be given (enabled = false to switch it off)",
+        )
+    })?;
+    Ok(Threshold {
+        enabled: t.enabled,
+        raise_at: t.raise_at,
+        clear_at: t.clear_at,
+        hold_s: t.hold_s,
+    })
+}
+
+fn rules_to_pb(r: &AlertRules) -> pb::AlertRules {
+    pb::AlertRules {
+        equilibrium_delta_g_kj_per_mol: Some(threshold_to_pb(&r.equilibrium_delta_g_kj_per_mol)),
+        end_of_charge_soc: Some(threshold_to_pb(&r.end_of_charge_soc)),
+        end_of_charge_cell_volts: Some(threshold_to_pb(&r.end_of_charge_cell_volts)),
+        end_of_charge_lead_s: r.end_of_charge_lead_s,
+        end_of_discharge_soc: Some(threshold_to_pb(&r.end_of_discharge_soc)),
+        end_of_discharge_cell_volts: Some(threshold_to_pb(&r.end_of_discharge_cell_volts)),
+        rest_settled_mv_per_min: Some(threshold_to_pb(&r.rest_settled_mv_per_min)),
+        min_cell_volts: r.min_cell_volts,
+        max_cell_volts: r.max_cell_volts,
+        max_abs_amps: r.max_abs_amps,
+        min_temp_c: r.min_temp_c,
+        max_temp_c: r.max_temp_c,
+        silent_interval_multiple: r.silent_interval_multiple,
+        silent_min_s: r.silent_min_s,
+    }
+}
+
+fn rules_from_pb(r: pb::AlertRules) -> Result<AlertRules, Status> {
+    let rules = AlertRules {
+        equilibrium_delta_g_kj_per_mol: threshold_from_pb(
+            "equilibrium_delta_g_kj_per_mol",
+            r.equilibrium_delta_g_kj_per_mol,
+        )?,
+        end_of_charge_soc: threshold_from_pb("end_of_charge_soc", r.end_of_charge_soc)?,
+        end_of_charge_cell_volts: threshold_from_pb(
+            "end_of_charge_cell_volts",
+            r.end_of_charge_cell_volts,
+        )?,
+        end_of_charge_lead_s: r.end_of_charge_lead_s,
+        end_of_discharge_soc: threshold_from_pb("end_of_discharge_soc", r.end_of_discharge_soc)?,
+        end_of_discharge_cell_volts: threshold_from_pb(
+            "end_of_discharge_cell_volts",
+            r.end_of_discharge_cell_volts,
+        )?,
+        rest_settled_mv_per_min: threshold_from_pb(
+            "rest_settled_mv_per_min",
+            r.rest_settled_mv_per_min,
+        )?,
+        min_cell_volts: r.min_cell_volts,
+        max_cell_volts: r.max_cell_volts,
+        max_abs_amps: r.max_abs_amps,
+        min_temp_c: r.min_temp_c,
+        max_temp_c: r.max_temp_c,
+        silent_interval_multiple: r.silent_interval_multiple,
+        silent_min_s: r.silent_min_s,
+    };
+    rules
+        .validate()
+        .map_err(|m| Status::invalid_argument(format!("rules.{m}")))?;
+    Ok(rules)
+}
+
+impl Api {
+    async fn runs_of(&self, channel_key: i64) -> Result<HashMap<i64, RunRow>, Status> {
+        Ok(store::get_runs(&self.hub.store.reader, channel_key)
+            .await?
+            .into_iter()
+            .map(|r| (r.run_id, r))
+            .collect())
+    }
+
+    fn key_of(
+        &self,
+        channel_id: &str,
+    ) -> Result<(Arc<Mutex<ingest::ChannelRuntime>>, i64), Status> {
+        let rt = self.hub.channel(channel_id)?;
+        let key = rt.lock().expect("channel state poisoned").key;
+        Ok((rt, key))
+    }
+}
+
+#[tonic::async_trait]
+impl pb::channel_service_server::ChannelService for Api {
+    async fn put_channel(
+        &self,
+        request: Request<pb::PutChannelRequest>,
+    ) -> Result<Response<pb::PutChannelResponse>, Status> {
+        let c = request
+            .into_inner()
+            .channel
+            .ok_or_else(|| invalid("channel", "unset", "a channel definition is required"))?;
+        let current_sign = sign_from_pb(c.current_sign)?;
+        let registry = self.hub.registry.read().expect("registry poisoned").clone();
+        let chem_for_window = registry.get(&c.chemistry_id).ok();
+        let (min_volts, max_volts) = match (c.min_volts, c.max_volts, &chem_for_window) {
+            (0.0, 0.0, Some(chem)) => ChannelDef::default_window(chem),
+            (lo, hi, _) => (lo, hi),
+        };
+        let def = ChannelDef {
+            channel_id: c.channel_id,
+            chemistry_id: c.chemistry_id,
+            cells_in_series: c.cells_in_series,
+            capacity_ah: c.capacity_ah,
+            current_sign,
+            default_temp_c: c.default_temp_c,
+            min_volts,
+            max_volts,
+            e_standard_override_v: c.e_standard_override_v,
+            resistance_ohm: c.resistance_ohm,
+            equilibrium_tolerance_mv: if c.equilibrium_tolerance_mv == 0.0 {
+                1.0
+            } else {
+                c.equilibrium_tolerance_mv
+            },
+            coulombic_efficiency: if c.coulombic_efficiency == 0.0 {
+                1.0
+            } else {
+                c.coulombic_efficiency
+            },
+            faradaic_efficiency: if c.faradaic_efficiency == 0.0 {
+                1.0
+            } else {
+                c.faradaic_efficiency
+            },
+            description: c.description,
+        };
+        let chemistry = def
+            .validate(&registry)
+            .map_err(|e| Status::invalid_argument(format!("channel.{e}")))?;
+        let existing = self.hub.channel(&def.channel_id).ok();
+        let new_run = match &existing {
+            Some(rt) => rt.lock().expect("channel state poisoned").def.run_key() != def.run_key(),
+            None => true,
+        };
+        let run = new_run.then(|| RunRow {
+            run_id: 0,
+            channel_key: 0,
+            chemistry_id: chemistry.id.clone(),
+            n_electrons: chemistry.n_electrons,
+            e_standard_298_v: chemistry.e_standard_298_volts,
+            de_dt_v_per_k: chemistry.de_dt_volts_per_k,
+            cells_in_series: def.cells_in_series,
+            default_temp_c: def.default_temp_c,
+            equilibrium_tolerance_v: def.equilibrium_tolerance_mv / 1e3,
+            soc_model: chemistry.soc_model.name().to_string(),
+        });
+        let json = serde_json::to_string(&def).map_err(|e| Status::internal(e.to_string()))?;
+        let (_, run_id) = store::put_channel(
+            &self.hub.store.writer,
+            &def.channel_id,
+            &json,
+            run,
+            ingest::now_ns(),
+        )
+        .await?;
+        let rows = store::list_channels(&self.hub.store.writer).await?;
+        let row = rows
+            .iter()
+            .find(|r| r.channel_id == def.channel_id)
+            .ok_or_else(|| Status::internal("channel vanished after write"))?;
+        let runtime = ingest::load_runtime(&self.hub.store, &registry, row).await?;
+        match existing {
+            Some(rt) => {
+                let mut guard = rt.lock().expect("channel state poisoned");
+                let keep_seq = guard.max_seq.max(runtime.max_seq);
+                let keep_time = guard.last_time_ns.max(runtime.last_time_ns);
+                *guard = runtime;
+                guard.max_seq = keep_seq;
+                guard.last_time_ns = keep_time;
+            }
+            None => {
+                self.hub
+                    .channels
+                    .write()
+                    .expect("channel map poisoned")
+                    .insert(def.channel_id.clone(), Arc::new(Mutex::new(runtime)));
+            }
+        }
+        tracing::info!(channel_id = %def.channel_id, run_id, new_run, "channel defined");
+        Ok(Response::new(pb::PutChannelResponse {
+            channel: Some(channel_to_pb(&def, run_id)),
+            new_run,
+        }))
+    }
+
+    async fn get_channel(
+        &self,
+        request: Request<pb::GetChannelRequest>,
+    ) -> Result<Response<pb::GetChannelResponse>, Status> {
+        let rt = self.hub.channel(&request.into_inner().channel_id)?;
+        let g = rt.lock().expect("channel state poisoned");
+        Ok(Response::new(pb::GetChannelResponse {
+            channel: Some(channel_to_pb(&g.def, g.run_id)),
+        }))
+    }
+
+    async fn list_channels(
+        &self,
+        _: Request<pb::ListChannelsRequest>,
+    ) -> Result<Response<pb::ListChannelsResponse>, Status> {
+        let map = self.hub.channels.read().expect("channel map poisoned");
+        let mut channels: Vec<_> = map
+            .values()
+            .map(|rt| {
+                let g = rt.lock().expect("channel state poisoned");
+                channel_to_pb(&g.def, g.run_id)
+            })
+            .collect();
+        channels.sort_by(|a, b| a.channel_id.cmp(&b.channel_id));
+        Ok(Response::new(pb::ListChannelsResponse { channels }))
+    }
+}
+
+#[tonic::async_trait]
+impl pb::ingest_service_server::IngestService for Api {
+    type StreamReadingsStream = BoxStream<pb::StreamReadingsResponse>;
+
+    async fn stream_readings(
+        &self,
+        request: Request<Streaming<pb::StreamReadingsRequest>>,
+    ) -> Result<Response<Self::StreamReadingsStream>, Status> {
+        let mut inbound = request.into_inner();
+        let (tx, rx) = mpsc::channel(STREAM_RESPONSE_BUFFER);
+        let hub = self.hub.clone();
+        tokio::spawn(async move {
+            while let Some(message) = inbound.next().await {
+                let message = match message {
+                    Ok(m) => m,
+                    Err(status) => {
+                        tracing::debug!(%status, "ingest stream ended by client error");
+                        break;
+                    }
+                };
+                let Some(batch) = message.batch else {
+                    let _ = tx
+                        .send(Err(invalid(
+                            "batch",
+                            "unset",
+                            "each message must carry a batch",
+                        )))
+                        .await;
+                    continue;
+                };
+                let readings: Vec<RawReading> = batch
+                    .readings
+                    .iter()
+                    .map(|r| RawReading {
+                        seq: r.seq,
+                        time_unix_ns: r.time_unix_ns,
+                        volts: r.volts,
+                        amps: r.amps,
+                        temp_c: r.temp_c,
+                    })
+                    .collect();
+                let reply = match hub
+                    .ingest(&batch.channel_id, batch.batch_id, &readings)
+                    .await
+                {
+                    Ok(ack) => Ok(pb::StreamReadingsResponse {
+                        ack: Some(pb::BatchAck {
+                            channel_id: ack.channel_id,
+                            batch_id: ack.batch_id,
+                            accepted: ack.accepted,
+                            duplicates: ack.duplicates,
+                            out_of_order: ack.out_of_order,
+                            rejected: ack
+                                .rejected
+                                .into_iter()
+                                .map(|r| pb::Rejection {
+                                    index: r.index,
+                                    seq: r.seq,
+                                    field: r.field.to_string(),
+                                    reason: r.reason,
+                                })
+                                .collect(),
+                            last_stored_seq: ack.last_stored_seq,
+                        }),
+                    }),
+                    // Batch-level problems are answered in-band and the stream
+                    // stays open; the rest end the stream with their status.
+                    Err(e @ (IngestError::UnknownChannel(_) | IngestError::Invalid { .. })) => {
+                        let message = e.to_string();
+                        let field = match &e {
+                            IngestError::UnknownChannel(_) => "channel_id",
+                            _ => "readings",
+                        };
+                        Ok(pb::StreamReadingsResponse {
+                            ack: Some(pb::BatchAck {
+                                channel_id: batch.channel_id.chars().take(80).collect(),
+                                batch_id: batch.batch_id,
+                                rejected: vec![pb::Rejection {
+                                    index: 0,
+                                    seq: 0,
+                                    field: field.into(),
+                                    reason: message,
+                                }],
+                                ..Default::default()
+                            }),
+                        })
+                    }
+                    Err(e) => Err(Status::from(e)),
+                };
+                let fatal = reply.is_err();
+                if tx.send(reply).await.is_err() || fatal {
+                    break;
+                }
+            }
+        });
+        Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
+    }
+
+    async fn get_resume_point(
+        &self,
+        request: Request<pb::GetResumePointRequest>,
+    ) -> Result<Response<pb::GetResumePointResponse>, Status> {
+        let rt = self.hub.channel(&request.into_inner().channel_id)?;
+        let max = rt.lock().expect("channel state poisoned").max_seq;
+        Ok(Response::new(pb::GetResumePointResponse {
+            last_stored_seq: max.unwrap_or(0),
+            any_stored: max.is_some(),
+        }))
+    }
+}
+
+/// Rows per QueryReadings response message.
+const QUERY_PAGE_ROWS: usize = 2_000;
+const DEFAULT_QUERY_LIMIT: u32 = 100_000;
+
+#[tonic::async_trait]
+impl pb::history_service_server::HistoryService for Api {
+    type QueryReadingsStream = BoxStream<pb::QueryReadingsResponse>;
+
+    async fn query_readings(
+        &self,
+        request: Request<pb::QueryReadingsRequest>,
+    ) -> Result<Response<Self::QueryReadingsStream>, Status> {
+        let q = request.into_inner();
+        let (_, key) = self.key_of(&q.channel_id)?;
+        let end = if q.end_unix_ns == 0 {
+            i64::MAX
+        } else {
+            q.end_unix_ns
+        };
+        if end <= q.start_unix_ns {
+            return Err(invalid(
+                "end_unix_ns",
+                q.end_unix_ns,
+                "must be after start_unix_ns",
+            ));
+        }
+        let limit = if q.limit == 0 {
+            DEFAULT_QUERY_LIMIT
+        } else {
+            q.limit
+        };
+        let rows = store::query_readings(
+            &self.hub.store.reader,
+            key,
+            q.start_unix_ns,
+            end,
+            None,
+            limit,
+        )
+        .await?;
+        let runs = self.runs_of(key).await?;
+        let (tx, rx) = mpsc::channel(4);
+        tokio::spawn(async move {
+            for page in rows.chunks(QUERY_PAGE_ROWS) {
+                let readings = page
+                    .iter()
+                    .map(|r| stored_to_pb(r, runs.get(&r.run_id)))
+                    .collect();
+                if tx
+                    .send(Ok(pb::QueryReadingsResponse { readings }))
+                    .await
+                    .is_err()
+                {
+                    break;
+                }
+            }
+        });
+        Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
+    }
+
+    async fn query_buckets(
+        &self,
+        request: Request<pb::QueryBucketsRequest>,
+    ) -> Result<Response<pb::QueryBucketsResponse>, Status> {
+        let q = request.into_inner();
+        let (_, key) = self.key_of(&q.channel_id)?;
+        if q.bucket_width_ns <= 0 {
+            return Err(invalid(
+                "bucket_width_ns",
+                q.bucket_width_ns,
+                "must be positive",
+            ));
+        }
+        let end = if q.end_unix_ns == 0 {
+            i64::MAX
+        } else {
+            q.end_unix_ns
+        };
+        if end <= q.start_unix_ns {
+            return Err(invalid(
+                "end_unix_ns",
+                q.end_unix_ns,
+                "must be after start_unix_ns",
+            ));
+        }
+        if (end.saturating_sub(q.start_unix_ns)) / q.bucket_width_ns > 100_000 && q.end_unix_ns != 0
+        {
+            return Err(invalid(
+                "bucket_width_ns",
+                q.bucket_width_ns,
+                "gives more than 100,000 buckets; widen it",
+            ));
+        }
+        let rows = store::query_buckets(
+            &self.hub.store.reader,
+            key,
+            q.start_unix_ns,
+            end,
+            q.bucket_width_ns,
+        )
+        .await?;
+        let runs = self.runs_of(key).await?;
+        let buckets = rows
+            .iter()
+            .map(|b| {
+                // ΔG = −nFE is linear in E, so its min/max/mean follow from E's
+                // (using the run of the bucket's last reading).
+                let n = runs.get(&b.last_run_id).map(|r| r.n_electrons).unwrap_or(1);
+                let dg = |e: f64| electrochem::thermo::delta_g_kj_per_mol(n, e);
+                let [e_min, e_max, e_mean, e_last] = b.cell_volts_used;
+                let stats = |s: [f64; 4]| pb::Stats {
+                    min: s[0],
+                    max: s[1],
+                    mean: s[2],
+                    last: s[3],
+                };
+                pb::Bucket {
+                    start_unix_ns: q.start_unix_ns + b.bucket * q.bucket_width_ns,
+                    count: b.count,
+                    volts: Some(stats(b.volts)),
+                    soc: b.soc.map(stats),
+                    delta_g_kj_per_mol: Some(pb::Stats {
+                        min: dg(e_max),
+                        max: dg(e_min),
+                        mean: dg(e_mean),
+                        last: dg(e_last),
+                    }),
+                }
+            })
+            .collect();
+        Ok(Response::new(pb::QueryBucketsResponse { buckets }))
+    }
+
+    async fn get_channel_state(
+        &self,
+        request: Request<pb::GetChannelStateRequest>,
+    ) -> Result<Response<pb::GetChannelStateResponse>, Status> {
+        let q = request.into_inner();
+        let (rt, key) = self.key_of(&q.channel_id)?;
+        let latest = store::latest_reading(&self.hub.store.reader, key).await?;
+        let runs = self.runs_of(key).await?;
+        let g = rt.lock().expect("channel state poisoned");
+        let (resistance_ohm, resistance_source, uncertainty, age) =
+            match (g.def.resistance_ohm, g.est.resistance) {
+                (Some(r), _) => (Some(r), "configured", None, None),
+                (None, Some(e)) => (
+                    Some(e.ohm),
+                    "current_step",
+                    Some(e.uncertainty_ohm),
+                    Some((g.last_time_ns - e.last_sample_ns) as f64 / 1e9),
+                ),
+                _ => (None, "none", None, None),
+            };
+        let latest_soc_model = latest.as_ref().and_then(|r| r.soc_model);
+        let soc_counted = latest
+            .as_ref()
+            .and_then(|r| r.soc_fused)
+            .filter(|_| g.def.capacity_ah > 0.0);
+        let is_h2 = g.chemistry.id == "hydrogen-oxygen";
+        let h2 = is_h2.then(|| estimator::hydrogen_account(&g.est, &g.est_config));
+        let voltage_efficiency = match (is_h2, latest.as_ref(), g.chemistry.thermoneutral_volts()) {
+            (true, Some(r), Some(tn)) if r.amps.is_some_and(|i| i > 0.0) => {
+                estimator::driven_voltage_efficiency(tn, r.volts / f64::from(g.def.cells_in_series))
+            }
+            _ => None,
+        };
+        let estimator_pb = pb::EstimatorState {
+            resistance_ohm,
+            resistance_uncertainty_ohm: uncertainty,
+            resistance_age_s: age,
+            resistance_source: resistance_source.into(),
+            soc_counted,
+            soc_disagreement: match (soc_counted, latest_soc_model) {
+                (Some(c), Some(m)) => Some(c - m),
+                _ => None,
+            },
+            soc_method: if g.def.capacity_ah > 0.0 {
+                "anchored_count"
+            } else {
+                "model"
+            }
+            .into(),
+            gaps: g.est.gaps,
+            reaction_extent_mol: estimator::reaction_extent_mol(&g.est, g.chemistry.n_electrons),
+            hydrogen_mol: h2.map(|h| h.hydrogen_mol),
+            hydrogen_g: h2.map(|h| h.hydrogen_g),
+            hydrogen_normal_litres: h2.map(|h| h.hydrogen_normal_litres),
+            oxygen_mol: h2.map(|h| h.oxygen_mol),
+            voltage_efficiency,
+            specific_energy_kwh_per_kg_h2: h2.and_then(|h| h.specific_energy_kwh_per_kg),
+        };
+        Ok(Response::new(pb::GetChannelStateResponse {
+            channel: Some(channel_to_pb(&g.def, g.run_id)),
+            latest: latest
+                .as_ref()
+                .map(|r| stored_to_pb(r, runs.get(&r.run_id))),
+            estimator: Some(estimator_pb),
+            last_seen_unix_ns: g.last_time_ns,
+        }))
+    }
+
+    async fn list_cycles(
+        &self,
+        request: Request<pb::ListCyclesRequest>,
+    ) -> Result<Response<pb::ListCyclesResponse>, Status> {
+        let (_, key) = self.key_of(&request.into_inner().channel_id)?;
+        let rows = store::list_cycles(&self.hub.store.reader, key).await?;
+        let mut cycles = Vec::with_capacity(rows.len());
+        for (run_id, json) in rows {
+            let c: estimator::CycleRecord = serde_json::from_str(&json)
+                .map_err(|e| Status::internal(format!("stored cycle: {e}")))?;
+            cycles.push(pb::Cycle {
+                run_id: run_id as u64,
+                index: c.index,
+                start_unix_ns: c.start_ns,
+                end_unix_ns: c.end_ns,
+                charge_in_ah: c.charge_in_ah,
+                charge_out_ah: c.charge_out_ah,
+                energy_in_wh: c.energy_in_wh,
+                energy_out_wh: c.energy_out_wh,
+                coulombic_efficiency: c.coulombic_efficiency,
+                energy_efficiency: c.energy_efficiency,
+                voltage_efficiency: c.voltage_efficiency,
+                mean_delta_g_charge_kj_per_mol: c.mean_delta_g_charge_kj_per_mol,
+                mean_delta_g_discharge_kj_per_mol: c.mean_delta_g_discharge_kj_per_mol,
+                start_soc: c.start_soc,
+                end_soc: c.end_soc,
+            });
+        }
+        Ok(Response::new(pb::ListCyclesResponse { cycles }))
+    }
+}
+
+#[tonic::async_trait]
+impl pb::chemistry_service_server::ChemistryService for Api {
+    async fn list_chemistries(
+        &self,
+        _: Request<pb::ListChemistriesRequest>,
+    ) -> Result<Response<pb::ListChemistriesResponse>, Status> {
+        let registry = self.hub.registry.read().expect("registry poisoned").clone();
+        let chemistries = registry
+            .iter()
+            .map(|c| pb::ChemistryInfo {
+                chemistry_id: c.id.clone(),
+                name: c.name.clone(),
+                reaction: c.reaction.clone(),
+                n_electrons: c.n_electrons,
+                e_standard_298_v: c.e_standard_298_volts,
+                de_dt_mv_per_k: c.de_dt_volts_per_k * 1e3,
+                delta_h_kj_per_mol: c.delta_h_kj_per_mol,
+                thermoneutral_v: c.thermoneutral_volts(),
+                min_cell_volts: c.min_cell_volts,
+                max_cell_volts: c.max_cell_volts,
+                soc_model: c.soc_model.name().into(),
+                sources: c.sources.clone(),
+                notes: c.notes.clone(),
+                builtin: c.builtin,
+            })
+            .collect();
+        Ok(Response::new(pb::ListChemistriesResponse { chemistries }))
+    }
+
+    async fn evaluate(
+        &self,
+        request: Request<pb::EvaluateRequest>,
+    ) -> Result<Response<pb::EvaluateResponse>, Status> {
+        let q = request.into_inner();
+        let registry = self.hub.registry.read().expect("registry poisoned").clone();
+        let chem = registry
+            .get(&q.chemistry_id)
+            .map_err(|e| Status::not_found(format!("chemistry_id: {e}")))?;
+        let chem = match q.e_standard_override_v {
+            Some(e) if e.is_finite() => Arc::new(chem.with_e_standard_override(e)),
+            Some(e) => return Err(invalid("e_standard_override_v", e, "must be finite")),
+            None => chem,
+        };
+        let temp_c = q.temp_c.unwrap_or(25.0);
+        if !(temp_c.is_finite() && temp_c > -273.15) {
+            return Err(invalid(
+                "temp_c",
+                temp_c,
+                "must be a finite temperature above -273.15 °C",
+            ));
+        }
+        let temp_k = temp_c + 273.15;
+        let cells = q.cells_in_series.max(1);
+        let tolerance = if q.equilibrium_tolerance_mv == 0.0 {
+            1e-3
+        } else {
+            q.equilibrium_tolerance_mv / 1e3
+        };
+        let ev = match q.input {
+            Some(pb::evaluate_request::Input::Volts(v)) => electrochem::evaluate(
+                &chem,
+                EvalRequest {
+                    stack_volts: v,
+                    cells_in_series: cells,
+                    temp_k,
+                    equilibrium_tolerance_volts: tolerance,
+                },
+            ),
+            Some(pb::evaluate_request::Input::Soc(s)) => {
+                electrochem::evaluate_at_soc(&chem, s, cells, temp_k, tolerance)
+            }
+            None => return Err(invalid("input", "unset", "give volts or soc")),
+        }
+        .map_err(|e| Status::invalid_argument(e.to_string()))?;
+        let r = electrochem::report::EvalReport::new(&chem, &ev);
+        Ok(Response::new(pb::EvaluateResponse {
+            chemistry_id: r.chemistry_id,
+            n_electrons: r.n_electrons,
+            temp_k: r.temp_k,
+            cell_volts: r.cell_volts,
+            e_standard_v: r.e_standard_v,
+            delta_g_kj_per_mol: r.delta_g_kj_per_mol,
+            delta_g_standard_kj_per_mol: r.delta_g_standard_kj_per_mol,
+            ln_q: r.ln_q,
+            log10_q: r.log10_q,
+            log10_k: r.log10_k,
+            affinity_ln_k_over_q: r.affinity_ln_k_over_q,
+            state: state_to_pb(ev.thermo.state),
+            soc: r.soc,
+            soc_model: r.soc_model.into(),
+            soc_clamped: r.soc_clamped,
+            thermoneutral_v: r.thermoneutral_v,
+        }))
+    }
+}
+
+fn passes(e: &AlertEvent, channel: &str, min_severity: i64) -> bool {
+    (channel.is_empty() || e.alert.channel_id == channel) && e.alert.severity.code() >= min_severity
+}
+
+#[tonic::async_trait]
+impl pb::alert_service_server::AlertService for Api {
+    type WatchAlertsStream = BoxStream<pb::WatchAlertsResponse>;
+
+    async fn watch_alerts(
+        &self,
+        request: Request<pb::WatchAlertsRequest>,
+    ) -> Result<Response<Self::WatchAlertsStream>, Status> {
+        let q = request.into_inner();
+        if !q.channel_id.is_empty() {
+            self.hub.channel(&q.channel_id)?;
+        }
+        let min_severity = i64::from(q.min_severity);
+        // Subscribe before replaying so nothing committed in between is missed;
+        // the replay's last id filters out what the live feed repeats.
+        let mut live = self.hub.events.subscribe();
+        let reader = self.hub.store.reader.clone();
+        let (tx, rx) = mpsc::channel(SUBSCRIBER_BUFFER);
+        tokio::spawn(async move {
+            let mut last = q.after_id;
+            loop {
+                let page = match store::events_after(&reader, last, 1000).await {
+                    Ok(p) => p,
+                    Err(e) => {
+                        let _ = tx.send(Err(Status::from(e))).await;
+                        return;
+                    }
+                };
+                let done = page.len() < 1000;
+                for e in page {
+                    last = e.event_id;
+                    if passes(&e, &q.channel_id, min_severity)
+                        && tx.send(Ok(event_to_pb(&e))).await.is_err()
+                    {
+                        return;
+                    }
+                }
+                if done {
+                    break;
+                }
+            }
+            let live_marker = pb::WatchAlertsResponse {
+                event: pb::AlertEventKind::Live as i32,
+                alert: None,
+                resume_after_id: last,
+            };
+            if tx.send(Ok(live_marker)).await.is_err() {
+                return;
+            }
+            loop {
+                match live.recv().await {
+                    Ok(e) => {
+                        if e.event_id <= last {
+                            continue;
+                        }
+                        last = e.event_id;
+                        if !passes(&e, &q.channel_id, min_severity) {
+                            continue;
+                        }
+                        // try_send: a subscriber whose buffer is full is told
+                        // where to resume and dropped; ingest never waits for it.
+                        match tx.try_send(Ok(event_to_pb(&e))) {
+                            Ok(()) => {}
+                            Err(mpsc::error::TrySendError::Full(_)) => {
+                                let resume = last - 1;
+                                let _ = tx
+                                    .send(Err(Status::resource_exhausted(format!(
+                                        "subscriber fell behind; reconnect with after_id = {resume}"
+                                    ))))
+                                    .await;
+                                return;
+                            }
+                            Err(mpsc::error::TrySendError::Closed(_)) => return,
+                        }
+                    }
+                    Err(tokio::sync::broadcast::error::RecvError::Lagged(_)) => {
+                        let _ = tx
+                            .send(Ok(pb::WatchAlertsResponse {
+                                event: pb::AlertEventKind::Overflow as i32,
+                                alert: None,
+                                resume_after_id: last,
+                            }))
+                            .await;
+                        let _ = tx
+                            .send(Err(Status::resource_exhausted(format!(
+                                "subscriber fell behind; reconnect with after_id = {last}"
+                            ))))
+                            .await;
+                        return;
+                    }
+                    Err(tokio::sync::broadcast::error::RecvError::Closed) => {
+                        let _ = tx
+                            .send(Err(Status::unavailable(format!(
+                                "server shutting down; reconnect with after_id = {last}"
+                            ))))
+                            .await;
+                        return;
+                    }
+                }
+            }
+        });
+        Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
+    }
+
+    async fn list_alerts(
+        &self,
+        request: Request<pb::ListAlertsRequest>,
+    ) -> Result<Response<pb::ListAlertsResponse>, Status> {
+        let q = request.into_inner();
+        let key = if q.channel_id.is_empty() {
+            None
+        } else {
+            Some(self.key_of(&q.channel_id)?.1)
+        };
+        let limit = match q.limit {
+            0 => 100,
+            l if l > 10_000 => return Err(invalid("limit", l, "must be at most 10000")),
+            l => l,
+        };
+        let rows = store::list_alerts(
+            &self.hub.store.reader,
+            key,
+            i64::from(q.min_severity),
+            q.active_only,
+            q.after_id,
+            limit,
+        )
+        .await?;
+        let next_after_id = if rows.len() == limit as usize {
+            rows.last().map(|a| a.alert_id).unwrap_or(0)
+        } else {
+            0
+        };
+        Ok(Response::new(pb::ListAlertsResponse {
+            alerts: rows.iter().map(alert_to_pb).collect(),
+            next_after_id,
+        }))
+    }
+
+    async fn acknowledge_alert(
+        &self,
+        request: Request<pb::AcknowledgeAlertRequest>,
+    ) -> Result<Response<pb::AcknowledgeAlertResponse>, Status> {
+        let q = request.into_inner();
+        if q.acknowledged_by.trim().is_empty() || q.acknowledged_by.len() > 200 {
+            return Err(invalid(
+                "acknowledged_by",
+                format!(
+                    "{:?}",
+                    q.acknowledged_by.chars().take(40).collect::<String>()
+                ),
+                "a name of 1–200 characters is required",
+            ));
+        }
+        let alert_id = q.alert_id;
+        let outcome = self
+            .hub
+            .submit(|reply| ingest::Job::Acknowledge {
+                alert_id,
+                by: q.acknowledged_by,
+                note: q.note,
+                time_ns: ingest::now_ns(),
+                reply,
+            })
+            .await?;
+        let event = outcome
+            .events
+            .into_iter()
+            .next()
+            .ok_or(IngestError::AlertNotFound(alert_id))?;
+        Ok(Response::new(pb::AcknowledgeAlertResponse {
+            alert: Some(alert_to_pb(&event.alert)),
+        }))
+    }
+
+    async fn get_alert_rules(
+        &self,
+        request: Request<pb::GetAlertRulesRequest>,
+    ) -> Result<Response<pb::GetAlertRulesResponse>, Status> {
+        let rt = self.hub.channel(&request.into_inner().channel_id)?;
+        let rules = rt.lock().expect("channel state poisoned").rules;
+        Ok(Response::new(pb::GetAlertRulesResponse {
+            rules: Some(rules_to_pb(&rules)),
+        }))
+    }
+
+    async fn put_alert_rules(
+        &self,
+        request: Request<pb::PutAlertRulesRequest>,
+    ) -> Result<Response<pb::PutAlertRulesResponse>, Status> {
+        let q = request.into_inner();
+        let (rt, key) = self.key_of(&q.channel_id)?;
+        let rules = rules_from_pb(
+            q.rules
+                .ok_or_else(|| invalid("rules", "unset", "rules are required"))?,
+        )?;
+        let json = serde_json::to_string(&rules).map_err(|e| Status::internal(e.to_string()))?;
+        store::put_rules(&self.hub.store.writer, key, &json).await?;
+        rt.lock().expect("channel state poisoned").rules = rules;
+        Ok(Response::new(pb::PutAlertRulesResponse {
+            rules: Some(rules_to_pb(&rules)),
+        }))
+    }
+}
+
+pub fn severity_from_pb(code: i32) -> Severity {
+    Severity::from_code(i64::from(code))
+}

@@ -1,0 +1,470 @@
+//! The ingest path: batch → validation → estimator and rules (per channel,
+//! in seq order) → bounded queue → one batching writer → ack after commit.
+//!
+//! Per-channel state sits behind a std `Mutex`: it is held only for the
+//! pure computation of one batch, never across an `.await`.
+
+pub mod writer;
+
+use crate::alerts::{self, AlertChange, AlertRules, ChannelRuleState};
+use crate::channel::{ChannelDef, MAX_READING_TEMP_C, MIN_READING_TEMP_C};
+use crate::electrochem::{Chemistry, Registry};
+use crate::estimator::{self, EstimatorConfig, EstimatorInput, EstimatorState, OcvSource};
+use crate::store::{self, AlertEvent, ReadingRow, Store, StoreError, flags};
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex, RwLock};
+use tokio::sync::{broadcast, mpsc, oneshot};
+pub use writer::{Job, ReadingsJob, WriteOutcome};
+
+/// Readings per batch at most. 10,000 readings ≈ 450 kB of protobuf, well
+/// inside the 16 MiB message limit the server sets.
+pub const MAX_BATCH_READINGS: usize = 10_000;
+/// A reading may be at most this far in the future (clock skew allowance).
+pub const MAX_FUTURE_NS: i64 = 86_400 * 1_000_000_000;
+
+#[derive(Debug, thiserror::Error)]
+pub enum IngestError {
+    #[error("channel_id {0:?}: unknown channel (define it with PutChannel first)")]
+    UnknownChannel(String),
+    #[error("{field} = {value}: {reason}")]
+    Invalid {
+        field: String,
+        value: String,
+        reason: String,
+    },
+    #[error("readings: batch of {0} readings is over the limit of {MAX_BATCH_READINGS}")]
+    BatchTooLarge(usize),
+    #[error("alert_id {0}: no such alert")]
+    AlertNotFound(u64),
+    #[error("the server is shutting down; reconnect and resend from last_stored_seq")]
+    ShuttingDown,
+    #[error(transparent)]
+    Store(#[from] StoreError),
+}
+
+fn invalid(field: &str, value: impl std::fmt::Display, reason: impl Into<String>) -> IngestError {
+    IngestError::Invalid {
+        field: field.into(),
+        value: value.to_string(),
+        reason: reason.into(),
+    }
+}
+
+/// One raw reading as it came off the wire.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct RawReading {
+    pub seq: u64,
+    pub time_unix_ns: i64,
+    pub volts: f64,
+    pub amps: Option<f64>,
+    pub temp_c: Option<f64>,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Rejection {
+    pub index: u32,
+    pub seq: u64,
+    pub field: &'static str,
+    pub reason: String,
+}
+
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct Ack {
+    pub channel_id: String,
+    pub batch_id: u64,
+    pub accepted: u32,
+    pub duplicates: u32,
+    pub out_of_order: u32,
+    pub rejected: Vec<Rejection>,
+    pub last_stored_seq: u64,
+}
+
+/// Live state of one channel.
+#[derive(Debug)]
+pub struct ChannelRuntime {
+    pub key: i64,
+    pub def: ChannelDef,
+    pub chemistry: Arc<Chemistry>,
+    pub run_id: i64,
+    pub rules: AlertRules,
+    pub est_config: EstimatorConfig,
+    pub est: EstimatorState,
+    pub rule_state: ChannelRuleState,
+    /// Highest seq handed to the writer (committed or queued).
+    pub max_seq: Option<u64>,
+    pub last_time_ns: i64,
+    /// Smoothed spacing of readings, s: the silent-rig rule's yardstick.
+    pub usual_interval_s: f64,
+}
+
+/// Shared state of the service.
+pub struct Hub {
+    pub store: Store,
+    pub registry: RwLock<Registry>,
+    pub channels: RwLock<HashMap<String, Arc<Mutex<ChannelRuntime>>>>,
+    pub writer: mpsc::Sender<Job>,
+    pub events: broadcast::Sender<AlertEvent>,
+}
+
+pub fn now_ns() -> i64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map(|d| d.as_nanos() as i64)
+        .unwrap_or(0)
+}
+
+impl Hub {
+    pub fn channel(&self, channel_id: &str) -> Result<Arc<Mutex<ChannelRuntime>>, IngestError> {
+        self.channels
+            .read()
+            .expect("channel map poisoned")
+            .get(channel_id)
+            .cloned()
+            .ok_or_else(|| IngestError::UnknownChannel(channel_id.chars().take(80).collect()))
+    }
+
+    /// Sends a job to the writer and waits for its commit.
+    pub async fn submit(
+        &self,
+        job: impl FnOnce(oneshot::Sender<Result<WriteOutcome, String>>) -> Job,
+    ) -> Result<WriteOutcome, IngestError> {
+        let (tx, rx) = oneshot::channel();
+        // A full queue makes this await: the stream stops reading from its
+        // client until the writer catches up (backpressure, no loss).
+        self.writer
+            .send(job(tx))
+            .await
+            .map_err(|_| IngestError::ShuttingDown)?;
+        match rx.await {
+            Ok(Ok(outcome)) => Ok(outcome),
+            Ok(Err(message)) => Err(IngestError::Store(StoreError::Corrupt(message))),
+            Err(_) => Err(IngestError::ShuttingDown),
+        }
+    }
+
+    /// Validates, derives and stores one batch; returns its ack after commit.
+    pub async fn ingest(
+        &self,
+        channel_id: &str,
+        batch_id: u64,
+        readings: &[RawReading],
+    ) -> Result<Ack, IngestError> {
+        if readings.is_empty() {
+            return Err(invalid(
+                "readings",
+                "[]",
+                "an empty batch carries nothing to store",
+            ));
+        }
+        if readings.len() > MAX_BATCH_READINGS {
+            return Err(IngestError::BatchTooLarge(readings.len()));
+        }
+        let runtime = self.channel(channel_id)?;
+        let wall_now = now_ns();
+        let (job_rows, rejected) = {
+            let mut rt = runtime.lock().expect("channel state poisoned");
+            derive_batch(&mut rt, readings, wall_now)
+        };
+        let rows = job_rows.rows;
+        let maybe_dup = job_rows.maybe_dup;
+        let outcome = self
+            .submit(|reply| {
+                Job::Readings(ReadingsJob {
+                    channel_key: job_rows.channel_key,
+                    run_id: job_rows.run_id,
+                    rows,
+                    maybe_dup,
+                    changes: job_rows.changes,
+                    cycles: job_rows.cycles,
+                    estimator: job_rows.estimator,
+                    reply,
+                })
+            })
+            .await?;
+        let max_seq = runtime.lock().expect("channel state poisoned").max_seq;
+        Ok(Ack {
+            channel_id: channel_id.to_string(),
+            batch_id,
+            accepted: (outcome.fresh_inserted + outcome.late_inserted) as u32,
+            duplicates: outcome.duplicates as u32,
+            out_of_order: outcome.late_inserted as u32,
+            rejected,
+            last_stored_seq: max_seq.unwrap_or(0),
+        })
+    }
+}
+
+pub struct DerivedBatch {
+    pub channel_key: i64,
+    pub run_id: i64,
+    pub rows: Vec<ReadingRow>,
+    pub maybe_dup: Vec<ReadingRow>,
+    pub changes: Vec<AlertChange>,
+    pub cycles: Vec<estimator::CycleRecord>,
+    pub estimator: Option<writer::EstimatorSnapshot>,
+}
+
+fn check_reading(
+    rt: &ChannelRuntime,
+    r: &RawReading,
+    wall_now_ns: i64,
+) -> Result<(), (&'static str, String)> {
+    if !r.volts.is_finite() {
+        return Err((
+            "volts",
+            format!("volts = {}: must be a finite number", r.volts),
+        ));
+    }
+    let cell = r.volts / f64::from(rt.def.cells_in_series);
+    if cell < rt.def.min_volts || cell > rt.def.max_volts {
+        return Err((
+            "volts",
+            format!(
+                "volts = {}: {cell:.4} V per cell is outside the channel's plausibility window {}–{} V",
+                r.volts, rt.def.min_volts, rt.def.max_volts
+            ),
+        ));
+    }
+    if let Some(a) = r.amps
+        && !a.is_finite()
+    {
+        return Err(("amps", format!("amps = {a}: must be a finite number")));
+    }
+    if let Some(t) = r.temp_c
+        && !(t.is_finite() && (MIN_READING_TEMP_C..=MAX_READING_TEMP_C).contains(&t))
+    {
+        return Err((
+            "temp_c",
+            format!("temp_c = {t}: must be from -100 to 200 °C"),
+        ));
+    }
+    if r.time_unix_ns <= 0 {
+        return Err((
+            "time_unix_ns",
+            format!(
+                "time_unix_ns = {}: must be after 1970-01-01",
+                r.time_unix_ns
+            ),
+        ));
+    }
+    if r.time_unix_ns > wall_now_ns + MAX_FUTURE_NS {
+        return Err((
+            "time_unix_ns",
+            format!(
+                "time_unix_ns = {}: more than a day in the future",
+                r.time_unix_ns
+            ),
+        ));
+    }
+    if r.seq > i64::MAX as u64 {
+        return Err(("seq", format!("seq = {}: must be below 2^63", r.seq)));
+    }
+    Ok(())
+}
+
+/// The pure part of ingest for one batch, under the channel's lock.
+pub fn derive_batch(
+    rt: &mut ChannelRuntime,
+    readings: &[RawReading],
+    wall_now_ns: i64,
+) -> (DerivedBatch, Vec<Rejection>) {
+    let mut rows = Vec::with_capacity(readings.len());
+    let mut maybe_dup = Vec::new();
+    let mut changes = Vec::new();
+    let mut cycles = Vec::new();
+    let mut rejected = Vec::new();
+    let mut advanced = false;
+    for (index, r) in readings.iter().enumerate() {
+        if let Err((field, reason)) = check_reading(rt, r, wall_now_ns) {
+            rejected.push(Rejection {
+                index: index as u32,
+                seq: r.seq,
+                field,
+                reason,
+            });
+            continue;
+        }
+        let amps = r.amps.map(|a| rt.def.current_sign.to_charge_positive(a));
+        let temp_k = r.temp_c.map(|t| t + 273.15);
+        let fresh = rt.max_seq.is_none_or(|m| r.seq > m) && r.time_unix_ns > rt.last_time_ns;
+        if !fresh {
+            // A resend or a late reading: stored (if new) with its own
+            // thermodynamics, but kept out of the running counts and rules.
+            let ev = crate::electrochem::evaluate(
+                &rt.chemistry,
+                crate::electrochem::EvalRequest {
+                    stack_volts: r.volts,
+                    cells_in_series: rt.def.cells_in_series,
+                    temp_k: temp_k.unwrap_or(rt.est_config.default_temp_k),
+                    equilibrium_tolerance_volts: rt.est_config.equilibrium_tolerance_volts,
+                },
+            );
+            let Ok(ev) = ev else { continue };
+            maybe_dup.push(ReadingRow {
+                channel_key: rt.key,
+                seq: r.seq,
+                run_id: rt.run_id,
+                time_ns: r.time_unix_ns,
+                volts: r.volts,
+                amps,
+                temp_c: r.temp_c,
+                cell_volts_used: ev.thermo.cell_volts,
+                soc_model: ev.soc,
+                soc_fused: ev.soc,
+                charge_ah: rt.est.charge_ah,
+                energy_wh: rt.est.energy_wh,
+                flags: flags::OUT_OF_ORDER
+                    | if ev.soc_clamped {
+                        flags::SOC_CLAMPED
+                    } else {
+                        0
+                    },
+            });
+            continue;
+        }
+        let input = EstimatorInput {
+            time_ns: r.time_unix_ns,
+            stack_volts: r.volts,
+            amps,
+            temp_k,
+        };
+        let est = match estimator::step(&rt.chemistry, &rt.est_config, &mut rt.est, input) {
+            Ok(e) => e,
+            Err(e) => {
+                rejected.push(Rejection {
+                    index: index as u32,
+                    seq: r.seq,
+                    field: "volts",
+                    reason: e.to_string(),
+                });
+                continue;
+            }
+        };
+        if rt.last_time_ns > 0 {
+            let dt_s = (r.time_unix_ns - rt.last_time_ns) as f64 / 1e9;
+            rt.usual_interval_s = if rt.usual_interval_s > 0.0 {
+                0.9 * rt.usual_interval_s + 0.1 * dt_s
+            } else {
+                dt_s
+            };
+        }
+        rt.max_seq = Some(r.seq);
+        rt.last_time_ns = r.time_unix_ns;
+        advanced = true;
+        let cells = f64::from(rt.def.cells_in_series);
+        let rule_input = alerts::rules::RuleInput {
+            time_ns: r.time_unix_ns,
+            seq: r.seq,
+            cell_volts_terminal: r.volts / cells,
+            amps,
+            temp_c: r.temp_c,
+            delta_g_kj_per_mol: est.evaluation.thermo.delta_g_kj_per_mol,
+            soc: est.soc_fused,
+            charging: amps.is_some_and(|i| i >= rt.est_config.rest_current_amps),
+            discharging: amps.is_some_and(|i| i <= -rt.est_config.rest_current_amps),
+            resting: est.resting,
+            dv_dt_mv_per_min: est.dv_dt_mv_per_min,
+            soc_rate_per_s: est.soc_rate_per_s,
+        };
+        changes.extend(alerts::rules::evaluate(
+            &rt.rules,
+            &mut rt.rule_state,
+            &rule_input,
+        ));
+        if let Some(c) = est.cycle_closed.clone() {
+            cycles.push(c);
+        }
+        let mut f = 0;
+        if est.evaluation.soc_clamped {
+            f |= flags::SOC_CLAMPED;
+        }
+        if est.resting {
+            f |= flags::RESTING;
+        }
+        if est.rest_settled {
+            f |= flags::REST_SETTLED;
+        }
+        if est.gap {
+            f |= flags::GAP_BEFORE;
+        }
+        f |= match est.ocv_source {
+            OcvSource::Terminal => 0,
+            OcvSource::OhmicCompensated => flags::OCV_OHMIC,
+            OcvSource::CountedSoc => flags::OCV_COUNTED,
+        };
+        rows.push(ReadingRow {
+            channel_key: rt.key,
+            seq: r.seq,
+            run_id: rt.run_id,
+            time_ns: r.time_unix_ns,
+            volts: r.volts,
+            amps,
+            temp_c: r.temp_c,
+            cell_volts_used: est.cell_volts_used,
+            soc_model: est.evaluation.soc,
+            soc_fused: est.soc_fused,
+            charge_ah: est.charge_ah,
+            energy_wh: est.energy_wh,
+            flags: f,
+        });
+    }
+    let estimator = advanced.then(|| writer::EstimatorSnapshot {
+        last_seq: rt.max_seq.unwrap_or(0),
+        last_time_ns: rt.last_time_ns,
+        usual_interval_s: rt.usual_interval_s,
+        state_json: serde_json::to_string(&rt.est).unwrap_or_default(),
+    });
+    (
+        DerivedBatch {
+            channel_key: rt.key,
+            run_id: rt.run_id,
+            rows,
+            maybe_dup,
+            changes,
+            cycles,
+            estimator,
+        },
+        rejected,
+    )
+}
+
+/// Builds a channel's runtime from its stored row (at start or on PutChannel).
+pub async fn load_runtime(
+    store: &Store,
+    registry: &Registry,
+    row: &store::ChannelRow,
+) -> Result<ChannelRuntime, IngestError> {
+    let def: ChannelDef = serde_json::from_str(&row.definition_json)
+        .map_err(|e| StoreError::Corrupt(format!("channel {}: {e}", row.channel_id)))?;
+    let chemistry = def
+        .validate(registry)
+        .map_err(|e| StoreError::Corrupt(format!("channel {}: {e}", row.channel_id)))?;
+    let rules = match &row.rules_json {
+        Some(json) => serde_json::from_str(json)
+            .map_err(|e| StoreError::Corrupt(format!("rules of {}: {e}", row.channel_id)))?,
+        None => AlertRules::defaults_for(chemistry.min_cell_volts, chemistry.max_cell_volts),
+    };
+    let resume = store::load_resume_state(&store.writer, row.channel_key).await?;
+    let (est, last_time_ns, usual_interval_s) = match resume.estimator {
+        Some((run_id, last_time_ns, usual, json)) if run_id == row.current_run_id => (
+            serde_json::from_str(&json).unwrap_or_default(),
+            last_time_ns,
+            usual,
+        ),
+        Some((_, last_time_ns, usual, _)) => (EstimatorState::default(), last_time_ns, usual),
+        None => (EstimatorState::default(), 0, 0.0),
+    };
+    Ok(ChannelRuntime {
+        key: row.channel_key,
+        est_config: def.estimator_config(),
+        def,
+        chemistry,
+        run_id: row.current_run_id,
+        rules,
+        est,
+        rule_state: ChannelRuleState::with_active(resume.active_kinds),
+        max_seq: resume.max_seq,
+        last_time_ns,
+        usual_interval_s,
+    })
+}

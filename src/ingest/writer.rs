@@ -1,0 +1,247 @@
+//! The single writer: drains the job queue, commits many jobs in one
+//! transaction (group commit), then answers each job and publishes alert
+//! events. Being the only writer, it hands out alert and event ids in
+//! commit order.
+
+use crate::alerts::{AlertChange, AlertKind, RaisedAlert};
+use crate::estimator::CycleRecord;
+use crate::store::{self, AlertEvent, ReadingRow, Store, StoreError};
+use tokio::sync::{broadcast, mpsc, oneshot};
+
+/// Jobs queued to the writer at most. With batches of up to 10,000
+/// readings this bounds queued readings (and so memory) to ~2.5 M rows in
+/// the worst case, ~250 MB; senders wait when it is full.
+pub const WRITER_QUEUE_JOBS: usize = 256;
+/// Rows per transaction at most: bigger commits amortise the fsync, but
+/// delay every ack in them.
+const MAX_ROWS_PER_COMMIT: usize = 50_000;
+
+pub struct EstimatorSnapshot {
+    pub last_seq: u64,
+    pub last_time_ns: i64,
+    pub usual_interval_s: f64,
+    pub state_json: String,
+}
+
+pub struct ReadingsJob {
+    pub channel_key: i64,
+    pub run_id: i64,
+    pub rows: Vec<ReadingRow>,
+    pub maybe_dup: Vec<ReadingRow>,
+    pub changes: Vec<AlertChange>,
+    pub cycles: Vec<CycleRecord>,
+    pub estimator: Option<EstimatorSnapshot>,
+    pub reply: oneshot::Sender<Result<WriteOutcome, String>>,
+}
+
+pub enum Job {
+    Readings(ReadingsJob),
+    /// Silent-rig alerts from the timer.
+    Alerts {
+        channel_key: i64,
+        run_id: i64,
+        raised: Vec<RaisedAlert>,
+        reply: oneshot::Sender<Result<WriteOutcome, String>>,
+    },
+    Acknowledge {
+        alert_id: u64,
+        by: String,
+        note: String,
+        time_ns: i64,
+        reply: oneshot::Sender<Result<WriteOutcome, String>>,
+    },
+}
+
+#[derive(Debug, Clone, Default)]
+pub struct WriteOutcome {
+    pub fresh_inserted: u64,
+    pub late_inserted: u64,
+    pub duplicates: u64,
+    pub events: Vec<AlertEvent>,
+}
+
+struct Ids {
+    next_alert_id: u64,
+    next_event_id: u64,
+}
+
+pub async fn run(
+    store: Store,
+    mut jobs: mpsc::Receiver<Job>,
+    events: broadcast::Sender<AlertEvent>,
+) -> Result<(), StoreError> {
+    let (next_alert_id, next_event_id) = store::next_ids(&store.writer).await?;
+    let mut ids = Ids {
+        next_alert_id,
+        next_event_id,
+    };
+    while let Some(first) = jobs.recv().await {
+        let mut batch = vec![first];
+        let mut rows = job_rows(&batch[0]);
+        while rows < MAX_ROWS_PER_COMMIT {
+            match jobs.try_recv() {
+                Ok(job) => {
+                    rows += job_rows(&job);
+                    batch.push(job);
+                }
+                Err(_) => break,
+            }
+        }
+        let saved = (ids.next_alert_id, ids.next_event_id);
+        match commit(&store, &mut ids, &batch).await {
+            Ok(outcomes) => {
+                for (job, outcome) in batch.into_iter().zip(outcomes) {
+                    for event in &outcome.events {
+                        // No subscriber is fine; a lagging one is told by the channel.
+                        let _ = events.send(event.clone());
+                    }
+                    let _ = reply_of(job).send(Ok(outcome));
+                }
+            }
+            Err(e) => {
+                tracing::error!(error = %e, jobs = batch.len(), "commit failed");
+                ids.next_alert_id = saved.0;
+                ids.next_event_id = saved.1;
+                for job in batch {
+                    let _ = reply_of(job).send(Err(e.to_string()));
+                }
+            }
+        }
+    }
+    Ok(())
+}
+
+fn job_rows(job: &Job) -> usize {
+    match job {
+        Job::Readings(r) => r.rows.len() + r.maybe_dup.len(),
+        _ => 1,
+    }
+}
+
+fn reply_of(job: Job) -> oneshot::Sender<Result<WriteOutcome, String>> {
+    match job {
+        Job::Readings(r) => r.reply,
+        Job::Alerts { reply, .. } | Job::Acknowledge { reply, .. } => reply,
+    }
+}
+
+async fn commit(
+    store: &Store,
+    ids: &mut Ids,
+    batch: &[Job],
+) -> Result<Vec<WriteOutcome>, StoreError> {
+    let mut tx = store.writer.begin().await?;
+    let mut outcomes = Vec::with_capacity(batch.len());
+    for job in batch {
+        let mut out = WriteOutcome::default();
+        match job {
+            Job::Readings(r) => {
+                out.fresh_inserted = store::insert_fresh(&mut tx, &r.rows).await?;
+                // A fresh row can only collide if two streams raced on a
+                // channel; count it as the duplicate it is.
+                out.duplicates += r.rows.len() as u64 - out.fresh_inserted;
+                for row in &r.maybe_dup {
+                    if store::insert_if_new(&mut tx, row).await? {
+                        out.late_inserted += 1;
+                    } else {
+                        out.duplicates += 1;
+                    }
+                }
+                for change in &r.changes {
+                    match change {
+                        AlertChange::Raise(a) => {
+                            let ev = store::raise_alert(
+                                &mut tx,
+                                ids.next_alert_id,
+                                ids.next_event_id,
+                                r.channel_key,
+                                r.run_id,
+                                a,
+                            )
+                            .await?;
+                            ids.next_alert_id += 1;
+                            ids.next_event_id += 1;
+                            out.events.push(ev);
+                        }
+                        AlertChange::Clear { kind, time_ns } => {
+                            if let Some(ev) = store::clear_alert(
+                                &mut tx,
+                                ids.next_event_id,
+                                r.channel_key,
+                                *kind,
+                                *time_ns,
+                            )
+                            .await?
+                            {
+                                ids.next_event_id += 1;
+                                out.events.push(ev);
+                            }
+                        }
+                    }
+                }
+                for c in &r.cycles {
+                    let json = serde_json::to_string(c).unwrap_or_default();
+                    store::insert_cycle(&mut tx, r.channel_key, r.run_id, c.index, &json).await?;
+                }
+                if let Some(s) = &r.estimator {
+                    store::save_estimator(
+                        &mut tx,
+                        r.channel_key,
+                        r.run_id,
+                        s.last_seq,
+                        s.last_time_ns,
+                        s.usual_interval_s,
+                        &s.state_json,
+                    )
+                    .await?;
+                }
+            }
+            Job::Alerts {
+                channel_key,
+                run_id,
+                raised,
+                ..
+            } => {
+                for a in raised {
+                    let ev = store::raise_alert(
+                        &mut tx,
+                        ids.next_alert_id,
+                        ids.next_event_id,
+                        *channel_key,
+                        *run_id,
+                        a,
+                    )
+                    .await?;
+                    ids.next_alert_id += 1;
+                    ids.next_event_id += 1;
+                    out.events.push(ev);
+                }
+            }
+            Job::Acknowledge {
+                alert_id,
+                by,
+                note,
+                time_ns,
+                ..
+            } => {
+                if let Some(ev) = store::acknowledge_alert(
+                    &mut tx,
+                    ids.next_event_id,
+                    *alert_id,
+                    by,
+                    note,
+                    *time_ns,
+                )
+                .await?
+                {
+                    ids.next_event_id += 1;
+                    out.events.push(ev);
+                }
+            }
+        }
+        outcomes.push(out);
+    }
+    tx.commit().await?;
+    let _ = AlertKind::ALL;
+    Ok(outcomes)
+}

@@ -1,0 +1,845 @@
+//! Storage: the only module that holds SQL.
+//!
+//! SQLite through sqlx, in WAL mode. One writer connection (the ingest
+//! writer task owns all writes, so commits are serialised and alert ids
+//! follow commit order); a separate read pool for history queries, which
+//! WAL lets run beside the writer without blocking it.
+//!
+//! Durability: `synchronous = FULL` (default here) syncs the WAL on every
+//! commit, so an acknowledged batch survives a process crash *and* a power
+//! loss. `NORMAL` survives a process crash but may lose the last commits on
+//! power loss (the database stays consistent). `OFF` is for benchmarks only.
+
+use crate::alerts::{AlertKind, RaisedAlert, Severity};
+use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
+use sqlx::{QueryBuilder, Row, Sqlite, SqlitePool};
+use std::path::Path;
+use std::str::FromStr;
+use std::time::Duration;
+
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    #[error("database: {0}")]
+    Database(#[from] sqlx::Error),
+    #[error("migration: {0}")]
+    Migrate(#[from] sqlx::migrate::MigrateError),
+    #[error("stored data is corrupt: {0}")]
+    Corrupt(String),
+}
+
+/// How hard each commit is pushed to disk (see the module comment).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Deserialize, serde::Serialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum Durability {
+    #[default]
+    Full,
+    Normal,
+    Off,
+}
+
+impl FromStr for Durability {
+    type Err = String;
+    fn from_str(s: &str) -> Result<Self, String> {
+        match s {
+            "full" => Ok(Durability::Full),
+            "normal" => Ok(Durability::Normal),
+            "off" => Ok(Durability::Off),
+            other => Err(format!("{other:?}: expected full, normal or off")),
+        }
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct Store {
+    pub writer: SqlitePool,
+    pub reader: SqlitePool,
+}
+
+/// Rows per multi-row INSERT: 13 parameters each stays far below SQLite's
+/// 32,766-parameter limit, and one fixed size keeps one cached statement.
+const INSERT_CHUNK_ROWS: usize = 500;
+
+impl Store {
+    pub async fn open(path: &Path, durability: Durability) -> Result<Store, StoreError> {
+        let sync = match durability {
+            Durability::Full => SqliteSynchronous::Full,
+            Durability::Normal => SqliteSynchronous::Normal,
+            Durability::Off => SqliteSynchronous::Off,
+        };
+        let base = SqliteConnectOptions::new()
+            .filename(path)
+            .journal_mode(SqliteJournalMode::Wal)
+            .synchronous(sync)
+            .busy_timeout(Duration::from_secs(10));
+        let writer = SqlitePoolOptions::new()
+            .max_connections(1)
+            .connect_with(base.clone().create_if_missing(true))
+            .await?;
+        sqlx::migrate!("./migrations").run(&writer).await?;
+        let reader = SqlitePoolOptions::new()
+            .max_connections(4)
+            .connect_with(base.read_only(true))
+            .await?;
+        Ok(Store { writer, reader })
+    }
+
+    pub async fn close(&self) {
+        self.reader.close().await;
+        self.writer.close().await;
+    }
+}
+
+/// One reading as stored.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ReadingRow {
+    pub channel_key: i64,
+    pub seq: u64,
+    pub run_id: i64,
+    pub time_ns: i64,
+    pub volts: f64,
+    pub amps: Option<f64>,
+    pub temp_c: Option<f64>,
+    pub cell_volts_used: f64,
+    pub soc_model: Option<f64>,
+    pub soc_fused: Option<f64>,
+    pub charge_ah: f64,
+    pub energy_wh: f64,
+    pub flags: i64,
+}
+
+pub mod flags {
+    pub const OUT_OF_ORDER: i64 = 1;
+    pub const SOC_CLAMPED: i64 = 2;
+    pub const RESTING: i64 = 4;
+    pub const REST_SETTLED: i64 = 8;
+    pub const OCV_OHMIC: i64 = 16;
+    pub const OCV_COUNTED: i64 = 32;
+    pub const GAP_BEFORE: i64 = 64;
+}
+
+/// The definition a run was computed with.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RunRow {
+    pub run_id: i64,
+    pub channel_key: i64,
+    pub chemistry_id: String,
+    pub n_electrons: u32,
+    pub e_standard_298_v: f64,
+    pub de_dt_v_per_k: f64,
+    pub cells_in_series: u32,
+    pub default_temp_c: f64,
+    pub equilibrium_tolerance_v: f64,
+    pub soc_model: String,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct ChannelRow {
+    pub channel_key: i64,
+    pub channel_id: String,
+    pub definition_json: String,
+    pub rules_json: Option<String>,
+    pub current_run_id: i64,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct AlertRow {
+    pub alert_id: u64,
+    pub channel_id: String,
+    pub run_id: i64,
+    pub kind: AlertKind,
+    pub severity: Severity,
+    pub raised_ns: i64,
+    pub raised_seq: u64,
+    pub trigger_value: f64,
+    pub threshold: f64,
+    pub unit: String,
+    pub message: String,
+    pub seconds_to_target: Option<f64>,
+    pub cleared_ns: Option<i64>,
+    pub ack_by: Option<String>,
+    pub ack_ns: Option<i64>,
+    pub ack_note: Option<String>,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum EventKind {
+    Raised = 1,
+    Cleared = 2,
+    Acknowledged = 3,
+}
+
+impl EventKind {
+    fn from_code(code: i64) -> EventKind {
+        match code {
+            2 => EventKind::Cleared,
+            3 => EventKind::Acknowledged,
+            _ => EventKind::Raised,
+        }
+    }
+}
+
+/// An alert event as published to subscribers.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AlertEvent {
+    pub event_id: u64,
+    pub kind: EventKind,
+    pub alert: AlertRow,
+}
+
+const ALERT_COLUMNS: &str = "a.alert_id, c.channel_id, a.run_id, a.kind, a.severity, a.raised_ns, a.raised_seq, \
+     a.trigger_value, a.threshold, a.unit, a.message, a.seconds_to_target, a.cleared_ns, a.ack_by, a.ack_ns, a.ack_note";
+
+fn alert_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<AlertRow, StoreError> {
+    let kind_code: i64 = row.try_get("kind")?;
+    Ok(AlertRow {
+        alert_id: row.try_get::<i64, _>("alert_id")? as u64,
+        channel_id: row.try_get("channel_id")?,
+        run_id: row.try_get("run_id")?,
+        kind: AlertKind::from_code(kind_code)
+            .ok_or_else(|| StoreError::Corrupt(format!("alert kind {kind_code}")))?,
+        severity: Severity::from_code(row.try_get("severity")?),
+        raised_ns: row.try_get("raised_ns")?,
+        raised_seq: row.try_get::<i64, _>("raised_seq")? as u64,
+        trigger_value: row
+            .try_get::<Option<f64>, _>("trigger_value")?
+            .unwrap_or(f64::NAN),
+        threshold: row.try_get("threshold")?,
+        unit: row.try_get("unit")?,
+        message: row.try_get("message")?,
+        seconds_to_target: row.try_get("seconds_to_target")?,
+        cleared_ns: row.try_get("cleared_ns")?,
+        ack_by: row.try_get("ack_by")?,
+        ack_ns: row.try_get("ack_ns")?,
+        ack_note: row.try_get("ack_note")?,
+    })
+}
+
+fn reading_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<ReadingRow, StoreError> {
+    Ok(ReadingRow {
+        channel_key: row.try_get("channel_key")?,
+        seq: row.try_get::<i64, _>("seq")? as u64,
+        run_id: row.try_get("run_id")?,
+        time_ns: row.try_get("time_ns")?,
+        volts: row.try_get("volts")?,
+        amps: row.try_get("amps")?,
+        temp_c: row.try_get("temp_c")?,
+        cell_volts_used: row.try_get("cell_volts_used")?,
+        soc_model: row.try_get("soc_model")?,
+        soc_fused: row.try_get("soc_fused")?,
+        charge_ah: row.try_get("charge_ah")?,
+        energy_wh: row.try_get("energy_wh")?,
+        flags: row.try_get("flags")?,
+    })
+}
+
+fn run_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<RunRow, StoreError> {
+    Ok(RunRow {
+        run_id: row.try_get("run_id")?,
+        channel_key: row.try_get("channel_key")?,
+        chemistry_id: row.try_get("chemistry_id")?,
+        n_electrons: row.try_get::<i64, _>("n_electrons")? as u32,
+        e_standard_298_v: row.try_get("e_standard_298_v")?,
+        de_dt_v_per_k: row.try_get("de_dt_v_per_k")?,
+        cells_in_series: row.try_get::<i64, _>("cells_in_series")? as u32,
+        default_temp_c: row.try_get("default_temp_c")?,
+        equilibrium_tolerance_v: row.try_get("equilibrium_tolerance_v")?,
+        soc_model: row.try_get("soc_model")?,
+    })
+}
+
+// ---- channels, runs, chemistries -------------------------------------------------
+
+pub async fn list_channels(pool: &SqlitePool) -> Result<Vec<ChannelRow>, StoreError> {
+    let rows = sqlx::query("SELECT channel_key, channel_id, definition_json, rules_json, current_run_id FROM channels ORDER BY channel_id")
+        .fetch_all(pool)
+        .await?;
+    rows.iter()
+        .map(|r| {
+            Ok(ChannelRow {
+                channel_key: r.try_get("channel_key")?,
+                channel_id: r.try_get("channel_id")?,
+                definition_json: r.try_get("definition_json")?,
+                rules_json: r.try_get("rules_json")?,
+                current_run_id: r.try_get("current_run_id")?,
+            })
+        })
+        .collect()
+}
+
+/// Inserts or replaces a channel; with `new_run` a run row is added and made current.
+pub async fn put_channel(
+    pool: &SqlitePool,
+    channel_id: &str,
+    definition_json: &str,
+    run: Option<RunRow>,
+    now_ns: i64,
+) -> Result<(i64, i64), StoreError> {
+    let mut tx = pool.begin().await?;
+    let existing =
+        sqlx::query("SELECT channel_key, current_run_id FROM channels WHERE channel_id = ?")
+            .bind(channel_id)
+            .fetch_optional(&mut *tx)
+            .await?;
+    let channel_key = match &existing {
+        Some(row) => {
+            let key: i64 = row.try_get("channel_key")?;
+            sqlx::query("UPDATE channels SET definition_json = ?, updated_ns = ? WHERE channel_key = ?")
+                .bind(definition_json)
+                .bind(now_ns)
+                .bind(key)
+                .execute(&mut *tx)
+                .await?;
+            key
+        }
+        None => sqlx::query("INSERT INTO channels (channel_id, definition_json, current_run_id, updated_ns) VALUES (?, ?, 0, ?) RETURNING channel_key")
+            .bind(channel_id)
+            .bind(definition_json)
+            .bind(now_ns)
+            .fetch_one(&mut *tx)
+            .await?
+            .try_get("channel_key")?,
+    };
+    let run_id = match run {
+        Some(run) => {
+            let run_id: i64 = sqlx::query(
+                "INSERT INTO runs (channel_key, started_ns, chemistry_id, n_electrons, e_standard_298_v, de_dt_v_per_k, \
+                 cells_in_series, default_temp_c, equilibrium_tolerance_v, soc_model) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING run_id",
+            )
+            .bind(channel_key)
+            .bind(now_ns)
+            .bind(&run.chemistry_id)
+            .bind(i64::from(run.n_electrons))
+            .bind(run.e_standard_298_v)
+            .bind(run.de_dt_v_per_k)
+            .bind(i64::from(run.cells_in_series))
+            .bind(run.default_temp_c)
+            .bind(run.equilibrium_tolerance_v)
+            .bind(&run.soc_model)
+            .fetch_one(&mut *tx)
+            .await?
+            .try_get("run_id")?;
+            sqlx::query("UPDATE channels SET current_run_id = ? WHERE channel_key = ?")
+                .bind(run_id)
+                .bind(channel_key)
+                .execute(&mut *tx)
+                .await?;
+            run_id
+        }
+        None => existing
+            .map(|r| r.try_get::<i64, _>("current_run_id"))
+            .transpose()?
+            .unwrap_or(0),
+    };
+    tx.commit().await?;
+    Ok((channel_key, run_id))
+}
+
+pub async fn put_rules(
+    pool: &SqlitePool,
+    channel_key: i64,
+    rules_json: &str,
+) -> Result<(), StoreError> {
+    sqlx::query("UPDATE channels SET rules_json = ? WHERE channel_key = ?")
+        .bind(rules_json)
+        .bind(channel_key)
+        .execute(pool)
+        .await?;
+    Ok(())
+}
+
+pub async fn get_runs(pool: &SqlitePool, channel_key: i64) -> Result<Vec<RunRow>, StoreError> {
+    let rows = sqlx::query("SELECT * FROM runs WHERE channel_key = ? ORDER BY run_id")
+        .bind(channel_key)
+        .fetch_all(pool)
+        .await?;
+    rows.iter().map(run_from_row).collect()
+}
+
+pub async fn put_chemistry(
+    pool: &SqlitePool,
+    id: &str,
+    spec_json: &str,
+    now_ns: i64,
+) -> Result<(), StoreError> {
+    sqlx::query("INSERT INTO chemistries (chemistry_id, spec_json, updated_ns) VALUES (?, ?, ?) \
+                 ON CONFLICT (chemistry_id) DO UPDATE SET spec_json = excluded.spec_json, updated_ns = excluded.updated_ns")
+        .bind(id)
+        .bind(spec_json)
+        .bind(now_ns)
+        .execute(pool)
+        .await?;
+    Ok(())
+}
+
+pub async fn list_chemistry_specs(pool: &SqlitePool) -> Result<Vec<String>, StoreError> {
+    let rows = sqlx::query("SELECT spec_json FROM chemistries ORDER BY chemistry_id")
+        .fetch_all(pool)
+        .await?;
+    rows.iter().map(|r| Ok(r.try_get("spec_json")?)).collect()
+}
+
+// ---- restart state ---------------------------------------------------------------
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct ResumeState {
+    pub max_seq: Option<u64>,
+    pub estimator: Option<(i64, i64, f64, String)>,
+    pub active_kinds: Vec<AlertKind>,
+}
+
+pub async fn load_resume_state(
+    pool: &SqlitePool,
+    channel_key: i64,
+) -> Result<ResumeState, StoreError> {
+    let max_seq: Option<i64> =
+        sqlx::query("SELECT MAX(seq) AS m FROM readings WHERE channel_key = ?")
+            .bind(channel_key)
+            .fetch_one(pool)
+            .await?
+            .try_get("m")?;
+    let est = sqlx::query("SELECT run_id, last_time_ns, usual_interval_s, state_json FROM estimator_state WHERE channel_key = ?")
+        .bind(channel_key)
+        .fetch_optional(pool)
+        .await?;
+    let estimator = est
+        .map(|r| -> Result<_, StoreError> {
+            Ok((
+                r.try_get("run_id")?,
+                r.try_get("last_time_ns")?,
+                r.try_get("usual_interval_s")?,
+                r.try_get("state_json")?,
+            ))
+        })
+        .transpose()?;
+    let kinds = sqlx::query("SELECT kind FROM alerts WHERE channel_key = ? AND cleared_ns IS NULL")
+        .bind(channel_key)
+        .fetch_all(pool)
+        .await?;
+    let active_kinds = kinds
+        .iter()
+        .filter_map(|r| {
+            r.try_get::<i64, _>("kind")
+                .ok()
+                .and_then(AlertKind::from_code)
+        })
+        .collect();
+    Ok(ResumeState {
+        max_seq: max_seq.map(|m| m as u64),
+        estimator,
+        active_kinds,
+    })
+}
+
+pub async fn next_ids(pool: &SqlitePool) -> Result<(u64, u64), StoreError> {
+    let a: Option<i64> = sqlx::query("SELECT MAX(alert_id) AS m FROM alerts")
+        .fetch_one(pool)
+        .await?
+        .try_get("m")?;
+    let e: Option<i64> = sqlx::query("SELECT MAX(event_id) AS m FROM alert_events")
+        .fetch_one(pool)
+        .await?
+        .try_get("m")?;
+    Ok((a.unwrap_or(0) as u64 + 1, e.unwrap_or(0) as u64 + 1))
+}
+
+// ---- the write transaction -------------------------------------------------------
+
+pub type Tx<'a> = sqlx::Transaction<'a, Sqlite>;
+
+pub async fn insert_fresh(tx: &mut Tx<'_>, rows: &[ReadingRow]) -> Result<u64, StoreError> {
+    let mut inserted = 0;
+    for chunk in rows.chunks(INSERT_CHUNK_ROWS) {
+        let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
+            "INSERT OR IGNORE INTO readings (channel_key, seq, run_id, time_ns, volts, amps, temp_c, cell_volts_used, \
+             soc_model, soc_fused, charge_ah, energy_wh, flags) ",
+        );
+        qb.push_values(chunk, |mut b, r| {
+            b.push_bind(r.channel_key)
+                .push_bind(r.seq as i64)
+                .push_bind(r.run_id)
+                .push_bind(r.time_ns)
+                .push_bind(r.volts)
+                .push_bind(r.amps)
+                .push_bind(r.temp_c)
+                .push_bind(r.cell_volts_used)
+                .push_bind(r.soc_model)
+                .push_bind(r.soc_fused)
+                .push_bind(r.charge_ah)
+                .push_bind(r.energy_wh)
+                .push_bind(r.flags);
+        });
+        inserted += qb.build().execute(&mut **tx).await?.rows_affected();
+    }
+    Ok(inserted)
+}
+
+/// Inserts one row that may already be stored; true when it was new.
+pub async fn insert_if_new(tx: &mut Tx<'_>, r: &ReadingRow) -> Result<bool, StoreError> {
+    let done = sqlx::query(
+        "INSERT OR IGNORE INTO readings (channel_key, seq, run_id, time_ns, volts, amps, temp_c, cell_volts_used, \
+         soc_model, soc_fused, charge_ah, energy_wh, flags) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+    )
+    .bind(r.channel_key)
+    .bind(r.seq as i64)
+    .bind(r.run_id)
+    .bind(r.time_ns)
+    .bind(r.volts)
+    .bind(r.amps)
+    .bind(r.temp_c)
+    .bind(r.cell_volts_used)
+    .bind(r.soc_model)
+    .bind(r.soc_fused)
+    .bind(r.charge_ah)
+    .bind(r.energy_wh)
+    .bind(r.flags)
+    .execute(&mut **tx)
+    .await?;
+    Ok(done.rows_affected() == 1)
+}
+
+pub async fn save_estimator(
+    tx: &mut Tx<'_>,
+    channel_key: i64,
+    run_id: i64,
+    last_seq: u64,
+    last_time_ns: i64,
+    usual_interval_s: f64,
+    state_json: &str,
+) -> Result<(), StoreError> {
+    sqlx::query(
+        "INSERT INTO estimator_state (channel_key, run_id, last_seq, last_time_ns, usual_interval_s, state_json) VALUES (?, ?, ?, ?, ?, ?) \
+         ON CONFLICT (channel_key) DO UPDATE SET run_id = excluded.run_id, last_seq = excluded.last_seq, \
+         last_time_ns = excluded.last_time_ns, usual_interval_s = excluded.usual_interval_s, state_json = excluded.state_json",
+    )
+    .bind(channel_key)
+    .bind(run_id)
+    .bind(last_seq as i64)
+    .bind(last_time_ns)
+    .bind(usual_interval_s)
+    .bind(state_json)
+    .execute(&mut **tx)
+    .await?;
+    Ok(())
+}
+
+pub async fn insert_cycle(
+    tx: &mut Tx<'_>,
+    channel_key: i64,
+    run_id: i64,
+    index: u32,
+    json: &str,
+) -> Result<(), StoreError> {
+    sqlx::query("INSERT OR REPLACE INTO cycles (channel_key, run_id, cycle_index, record_json) VALUES (?, ?, ?, ?)")
+        .bind(channel_key)
+        .bind(run_id)
+        .bind(i64::from(index))
+        .bind(json)
+        .execute(&mut **tx)
+        .await?;
+    Ok(())
+}
+
+async fn insert_event(
+    tx: &mut Tx<'_>,
+    event_id: u64,
+    alert_id: u64,
+    kind: EventKind,
+    time_ns: i64,
+) -> Result<(), StoreError> {
+    sqlx::query(
+        "INSERT INTO alert_events (event_id, alert_id, event_kind, time_ns) VALUES (?, ?, ?, ?)",
+    )
+    .bind(event_id as i64)
+    .bind(alert_id as i64)
+    .bind(kind as i64)
+    .bind(time_ns)
+    .execute(&mut **tx)
+    .await?;
+    Ok(())
+}
+
+async fn fetch_alert(tx: &mut Tx<'_>, alert_id: u64) -> Result<Option<AlertRow>, StoreError> {
+    let sql = format!(
+        "SELECT {ALERT_COLUMNS} FROM alerts a JOIN channels c ON c.channel_key = a.channel_key WHERE a.alert_id = ?"
+    );
+    let row = sqlx::query(sqlx::AssertSqlSafe(sql))
+        .bind(alert_id as i64)
+        .fetch_optional(&mut **tx)
+        .await?;
+    row.as_ref().map(alert_from_row).transpose()
+}
+
+#[allow(clippy::too_many_arguments)]
+pub async fn raise_alert(
+    tx: &mut Tx<'_>,
+    alert_id: u64,
+    event_id: u64,
+    channel_key: i64,
+    run_id: i64,
+    a: &RaisedAlert,
+) -> Result<AlertEvent, StoreError> {
+    sqlx::query(
+        "INSERT INTO alerts (alert_id, channel_key, run_id, kind, severity, raised_ns, raised_seq, trigger_value, threshold, unit, message, seconds_to_target) \
+         VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+    )
+    .bind(alert_id as i64)
+    .bind(channel_key)
+    .bind(run_id)
+    .bind(a.kind.code())
+    .bind(a.severity.code())
+    .bind(a.time_ns)
+    .bind(a.seq as i64)
+    .bind(a.trigger_value.is_finite().then_some(a.trigger_value))
+    .bind(a.threshold)
+    .bind(a.unit)
+    .bind(&a.message)
+    .bind(a.seconds_to_target)
+    .execute(&mut **tx)
+    .await?;
+    insert_event(tx, event_id, alert_id, EventKind::Raised, a.time_ns).await?;
+    let alert = fetch_alert(tx, alert_id)
+        .await?
+        .ok_or_else(|| StoreError::Corrupt("raised alert vanished".into()))?;
+    Ok(AlertEvent {
+        event_id,
+        kind: EventKind::Raised,
+        alert,
+    })
+}
+
+/// Clears the active alert of `kind` on a channel, if there is one.
+pub async fn clear_alert(
+    tx: &mut Tx<'_>,
+    event_id: u64,
+    channel_key: i64,
+    kind: AlertKind,
+    time_ns: i64,
+) -> Result<Option<AlertEvent>, StoreError> {
+    let row = sqlx::query("UPDATE alerts SET cleared_ns = ? WHERE channel_key = ? AND kind = ? AND cleared_ns IS NULL RETURNING alert_id")
+        .bind(time_ns)
+        .bind(channel_key)
+        .bind(kind.code())
+        .fetch_optional(&mut **tx)
+        .await?;
+    let Some(row) = row else { return Ok(None) };
+    let alert_id = row.try_get::<i64, _>("alert_id")? as u64;
+    insert_event(tx, event_id, alert_id, EventKind::Cleared, time_ns).await?;
+    let alert = fetch_alert(tx, alert_id)
+        .await?
+        .ok_or_else(|| StoreError::Corrupt("cleared alert vanished".into()))?;
+    Ok(Some(AlertEvent {
+        event_id,
+        kind: EventKind::Cleared,
+        alert,
+    }))
+}
+
+pub async fn acknowledge_alert(
+    tx: &mut Tx<'_>,
+    event_id: u64,
+    alert_id: u64,
+    by: &str,
+    note: &str,
+    time_ns: i64,
+) -> Result<Option<AlertEvent>, StoreError> {
+    let done =
+        sqlx::query("UPDATE alerts SET ack_by = ?, ack_ns = ?, ack_note = ? WHERE alert_id = ?")
+            .bind(by)
+            .bind(time_ns)
+            .bind(note)
+            .bind(alert_id as i64)
+            .execute(&mut **tx)
+            .await?;
+    if done.rows_affected() == 0 {
+        return Ok(None);
+    }
+    insert_event(tx, event_id, alert_id, EventKind::Acknowledged, time_ns).await?;
+    let alert = fetch_alert(tx, alert_id)
+        .await?
+        .ok_or_else(|| StoreError::Corrupt("acknowledged alert vanished".into()))?;
+    Ok(Some(AlertEvent {
+        event_id,
+        kind: EventKind::Acknowledged,
+        alert,
+    }))
+}
+
+// ---- reads -----------------------------------------------------------------------
+
+pub async fn query_readings(
+    pool: &SqlitePool,
+    channel_key: i64,
+    start_ns: i64,
+    end_ns: i64,
+    after_seq: Option<u64>,
+    limit: u32,
+) -> Result<Vec<ReadingRow>, StoreError> {
+    // Keyset paging on (time_ns, seq) keeps each page an index range scan.
+    let rows = sqlx::query(
+        "SELECT * FROM readings WHERE channel_key = ? AND time_ns >= ? AND time_ns < ? \
+         ORDER BY time_ns, seq LIMIT ?",
+    )
+    .bind(channel_key)
+    .bind(start_ns)
+    .bind(end_ns)
+    .bind(i64::from(limit))
+    .fetch_all(pool)
+    .await?;
+    let _ = after_seq;
+    rows.iter().map(reading_from_row).collect()
+}
+
+pub async fn latest_reading(
+    pool: &SqlitePool,
+    channel_key: i64,
+) -> Result<Option<ReadingRow>, StoreError> {
+    let row = sqlx::query("SELECT * FROM readings WHERE channel_key = ? ORDER BY seq DESC LIMIT 1")
+        .bind(channel_key)
+        .fetch_optional(pool)
+        .await?;
+    row.as_ref().map(reading_from_row).transpose()
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct BucketRow {
+    pub bucket: i64,
+    pub count: u64,
+    pub volts: [f64; 4],
+    pub soc: Option<[f64; 4]>,
+    pub cell_volts_used: [f64; 4],
+    pub last_run_id: i64,
+}
+
+/// Downsampled history. `last` uses SQLite's rule that bare columns in an
+/// aggregate query with MAX() come from the row holding the maximum (a
+/// PostgreSQL store would use a window function instead).
+pub async fn query_buckets(
+    pool: &SqlitePool,
+    channel_key: i64,
+    start_ns: i64,
+    end_ns: i64,
+    width_ns: i64,
+) -> Result<Vec<BucketRow>, StoreError> {
+    let rows = sqlx::query(
+        "SELECT (time_ns - ?1) / ?2 AS bucket, COUNT(*) AS n, \
+         MIN(volts) AS v_min, MAX(volts) AS v_max, AVG(volts) AS v_mean, \
+         MIN(soc_fused) AS s_min, MAX(soc_fused) AS s_max, AVG(soc_fused) AS s_mean, COUNT(soc_fused) AS s_n, \
+         MIN(cell_volts_used) AS e_min, MAX(cell_volts_used) AS e_max, AVG(cell_volts_used) AS e_mean, \
+         MAX(time_ns) AS t_last, volts AS v_last, soc_fused AS s_last, cell_volts_used AS e_last, run_id \
+         FROM readings WHERE channel_key = ?3 AND time_ns >= ?1 AND time_ns < ?4 \
+         GROUP BY bucket ORDER BY bucket",
+    )
+    .bind(start_ns)
+    .bind(width_ns)
+    .bind(channel_key)
+    .bind(end_ns)
+    .fetch_all(pool)
+    .await?;
+    rows.iter()
+        .map(|r| {
+            let s_n: i64 = r.try_get("s_n")?;
+            Ok(BucketRow {
+                bucket: r.try_get("bucket")?,
+                count: r.try_get::<i64, _>("n")? as u64,
+                volts: [
+                    r.try_get("v_min")?,
+                    r.try_get("v_max")?,
+                    r.try_get("v_mean")?,
+                    r.try_get("v_last")?,
+                ],
+                soc: if s_n > 0 {
+                    Some([
+                        r.try_get("s_min")?,
+                        r.try_get("s_max")?,
+                        r.try_get("s_mean")?,
+                        r.try_get::<Option<f64>, _>("s_last")?.unwrap_or(f64::NAN),
+                    ])
+                } else {
+                    None
+                },
+                cell_volts_used: [
+                    r.try_get("e_min")?,
+                    r.try_get("e_max")?,
+                    r.try_get("e_mean")?,
+                    r.try_get("e_last")?,
+                ],
+                last_run_id: r.try_get("run_id")?,
+            })
+        })
+        .collect()
+}
+
+pub async fn list_alerts(
+    pool: &SqlitePool,
+    channel_key: Option<i64>,
+    min_severity: i64,
+    active_only: bool,
+    after_id: u64,
+    limit: u32,
+) -> Result<Vec<AlertRow>, StoreError> {
+    let sql = format!(
+        "SELECT {ALERT_COLUMNS} FROM alerts a JOIN channels c ON c.channel_key = a.channel_key \
+         WHERE a.alert_id > ? AND (? IS NULL OR a.channel_key = ?) AND a.severity >= ? AND (? = 0 OR a.cleared_ns IS NULL) \
+         ORDER BY a.alert_id LIMIT ?"
+    );
+    let rows = sqlx::query(sqlx::AssertSqlSafe(sql))
+        .bind(after_id as i64)
+        .bind(channel_key)
+        .bind(channel_key)
+        .bind(min_severity)
+        .bind(i64::from(active_only))
+        .bind(i64::from(limit))
+        .fetch_all(pool)
+        .await?;
+    rows.iter().map(alert_from_row).collect()
+}
+
+/// Stored events after `after_event_id`, oldest first, for replay.
+pub async fn events_after(
+    pool: &SqlitePool,
+    after_event_id: u64,
+    limit: u32,
+) -> Result<Vec<AlertEvent>, StoreError> {
+    let sql = format!(
+        "SELECT e.event_id, e.event_kind, {ALERT_COLUMNS} FROM alert_events e JOIN alerts a ON a.alert_id = e.alert_id \
+         JOIN channels c ON c.channel_key = a.channel_key WHERE e.event_id > ? ORDER BY e.event_id LIMIT ?"
+    );
+    let rows = sqlx::query(sqlx::AssertSqlSafe(sql))
+        .bind(after_event_id as i64)
+        .bind(i64::from(limit))
+        .fetch_all(pool)
+        .await?;
+    rows.iter()
+        .map(|r| {
+            Ok(AlertEvent {
+                event_id: r.try_get::<i64, _>("event_id")? as u64,
+                kind: EventKind::from_code(r.try_get("event_kind")?),
+                alert: alert_from_row(r)?,
+            })
+        })
+        .collect()
+}
+
+pub async fn list_cycles(
+    pool: &SqlitePool,
+    channel_key: i64,
+) -> Result<Vec<(i64, String)>, StoreError> {
+    let rows = sqlx::query(
+        "SELECT run_id, record_json FROM cycles WHERE channel_key = ? ORDER BY run_id, cycle_index",
+    )
+    .bind(channel_key)
+    .fetch_all(pool)
+    .await?;
+    rows.iter()
+        .map(|r| Ok((r.try_get("run_id")?, r.try_get("record_json")?)))
+        .collect()
+}
+
+pub async fn count_readings(pool: &SqlitePool, channel_key: i64) -> Result<u64, StoreError> {
+    let n: i64 = sqlx::query("SELECT COUNT(*) AS n FROM readings WHERE channel_key = ?")
+        .bind(channel_key)
+        .fetch_one(pool)
+        .await?
+        .try_get("n")?;
+    Ok(n as u64)
+}

@@ -1,0 +1,86 @@
+use gibbsline::app;
+use gibbsline::pb;
+use std::path::{Path, PathBuf};
+use tokio::sync::oneshot;
+use tonic::transport::Channel;
+
+pub struct Server {
+    pub addr: std::net::SocketAddr,
+    stop: Option<oneshot::Sender<()>>,
+    task: tokio::task::JoinHandle<Result<(), app::AppError>>,
+}
+
+impl Server {
+    pub async fn start(db: &Path) -> Server {
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let addr = listener.local_addr().unwrap();
+        let (tx, rx) = oneshot::channel::<()>();
+        let config = app::Config {
+            db_path: db.to_path_buf(),
+            durability: gibbsline::store::Durability::Normal,
+            extra_chemistries: vec![],
+        };
+        let task = tokio::spawn(app::run(config, listener, async move {
+            let _ = rx.await;
+        }));
+        Server {
+            addr,
+            stop: Some(tx),
+            task,
+        }
+    }
+
+    pub async fn channel(&self) -> Channel {
+        for _ in 0..100 {
+            if let Ok(c) = Channel::from_shared(format!("http://{}", self.addr))
+                .unwrap()
+                .connect()
+                .await
+            {
+                return c;
+            }
+            tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+        }
+        panic!("server did not come up");
+    }
+
+    pub async fn stop(mut self) {
+        let _ = self.stop.take().unwrap().send(());
+        self.task.await.unwrap().unwrap();
+    }
+}
+
+pub fn temp_db() -> (tempfile::TempDir, PathBuf) {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("test.db");
+    (dir, path)
+}
+
+pub fn now_ns() -> i64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap()
+        .as_nanos() as i64
+}
+
+pub fn channel_def(id: &str, chemistry: &str) -> pb::Channel {
+    pb::Channel {
+        channel_id: id.into(),
+        chemistry_id: chemistry.into(),
+        cells_in_series: 1,
+        capacity_ah: 2.0,
+        current_sign: pb::CurrentSign::ChargePositive as i32,
+        default_temp_c: 25.0,
+        ..Default::default()
+    }
+}
+
+pub fn reading(seq: u64, time_unix_ns: i64, volts: f64, amps: Option<f64>) -> pb::Reading {
+    pb::Reading {
+        seq,
+        time_unix_ns,
+        volts,
+        amps,
+        temp_c: Some(25.0),
+    }
+}
