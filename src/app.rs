@@ -70,12 +70,14 @@ pub async fn run(
     }
     let (writer_tx, writer_rx) = mpsc::channel(writer::WRITER_QUEUE_JOBS);
     let (events, _) = broadcast::channel(EVENT_BUFFER);
+    let (shutdown_tx, shutdown_rx) = tokio::sync::watch::channel(false);
     let hub = Arc::new(Hub {
         store: store.clone(),
         registry: RwLock::new(registry),
         channels: RwLock::new(channels),
         writer: writer_tx,
         events: events.clone(),
+        shutdown: shutdown_rx,
     });
     let writer_task = tokio::spawn(writer::run(store.clone(), writer_rx, events));
     let silent_task = tokio::spawn(silent_watch(hub.clone()));
@@ -130,6 +132,7 @@ pub async fn run(
         .serve_with_incoming_shutdown(incoming, async move {
             shutdown.await;
             tracing::info!("shutting down: health NOT_SERVING");
+            let _ = shutdown_tx.send(true);
             reporter
                 .set_service_status("", tonic_health::ServingStatus::NotServing)
                 .await;

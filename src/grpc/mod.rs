@@ -408,10 +408,26 @@ impl pb::ingest_service_server::IngestService for Api {
         request: Request<Streaming<pb::StreamReadingsRequest>>,
     ) -> Result<Response<Self::StreamReadingsStream>, Status> {
         let mut inbound = request.into_inner();
+        let shutdown = self.hub.shutdown.clone();
+        if *shutdown.borrow() {
+            return Err(Status::unavailable(
+                "the server is shutting down; reconnect to another or retry shortly",
+            ));
+        }
         let (tx, rx) = mpsc::channel(STREAM_RESPONSE_BUFFER);
         let hub = self.hub.clone();
         tokio::spawn(async move {
-            while let Some(message) = inbound.next().await {
+            loop {
+                let message = tokio::select! {
+                    m = inbound.next() => m,
+                    _ = ingest::stopped(shutdown.clone()) => {
+                        let _ = tx.send(Err(Status::unavailable(
+                            "the server is shutting down; every acknowledged batch is stored: reconnect and resend after last_stored_seq",
+                        ))).await;
+                        break;
+                    }
+                };
+                let Some(message) = message else { break };
                 let message = match message {
                     Ok(m) => m,
                     Err(status) => {
@@ -541,15 +557,8 @@ impl pb::history_service_server::HistoryService for Api {
         } else {
             q.limit
         };
-        let rows = store::query_readings(
-            &self.hub.store.reader,
-            key,
-            q.start_unix_ns,
-            end,
-            None,
-            limit,
-        )
-        .await?;
+        let rows =
+            store::query_readings(&self.hub.store.reader, key, q.start_unix_ns, end, limit).await?;
         let runs = self.runs_of(key).await?;
         let (tx, rx) = mpsc::channel(4);
         tokio::spawn(async move {
@@ -859,6 +868,7 @@ impl pb::alert_service_server::AlertService for Api {
         // Subscribe before replaying so nothing committed in between is missed;
         // the replay's last id filters out what the live feed repeats.
         let mut live = self.hub.events.subscribe();
+        let shutdown = self.hub.shutdown.clone();
         let reader = self.hub.store.reader.clone();
         let (tx, rx) = mpsc::channel(SUBSCRIBER_BUFFER);
         tokio::spawn(async move {
@@ -893,7 +903,14 @@ impl pb::alert_service_server::AlertService for Api {
                 return;
             }
             loop {
-                match live.recv().await {
+                let received = tokio::select! {
+                    r = live.recv() => r,
+                    _ = ingest::stopped(shutdown.clone()) => {
+                        let _ = tx.send(Err(Status::unavailable(format!("server shutting down; reconnect with after_id = {last}")))).await;
+                        return;
+                    }
+                };
+                match received {
                     Ok(e) => {
                         if e.event_id <= last {
                             continue;

@@ -104,6 +104,21 @@ pub struct Hub {
     pub channels: RwLock<HashMap<String, Arc<Mutex<ChannelRuntime>>>>,
     pub writer: mpsc::Sender<Job>,
     pub events: broadcast::Sender<AlertEvent>,
+    /// Turns true when the server begins to shut down: open streams finish
+    /// the batch in hand and end with UNAVAILABLE.
+    pub shutdown: tokio::sync::watch::Receiver<bool>,
+}
+
+/// Resolves once `stop` turns true (never, if its sender is gone without it).
+pub async fn stopped(mut stop: tokio::sync::watch::Receiver<bool>) {
+    loop {
+        if *stop.borrow_and_update() {
+            return;
+        }
+        if stop.changed().await.is_err() {
+            std::future::pending::<()>().await;
+        }
+    }
 }
 
 pub fn now_ns() -> i64 {

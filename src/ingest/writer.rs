@@ -3,7 +3,7 @@
 //! events. Being the only writer, it hands out alert and event ids in
 //! commit order.
 
-use crate::alerts::{AlertChange, AlertKind, RaisedAlert};
+use crate::alerts::{AlertChange, RaisedAlert};
 use crate::estimator::CycleRecord;
 use crate::store::{self, AlertEvent, ReadingRow, Store, StoreError};
 use tokio::sync::{broadcast, mpsc, oneshot};
@@ -242,6 +242,5 @@ async fn commit(
         outcomes.push(out);
     }
     tx.commit().await?;
-    let _ = AlertKind::ALL;
     Ok(outcomes)
 }

@@ -671,10 +671,8 @@ pub async fn query_readings(
     channel_key: i64,
     start_ns: i64,
     end_ns: i64,
-    after_seq: Option<u64>,
     limit: u32,
 ) -> Result<Vec<ReadingRow>, StoreError> {
-    // Keyset paging on (time_ns, seq) keeps each page an index range scan.
     let rows = sqlx::query(
         "SELECT * FROM readings WHERE channel_key = ? AND time_ns >= ? AND time_ns < ? \
          ORDER BY time_ns, seq LIMIT ?",
@@ -685,7 +683,6 @@ pub async fn query_readings(
     .bind(i64::from(limit))
     .fetch_all(pool)
     .await?;
-    let _ = after_seq;
     rows.iter().map(reading_from_row).collect()
 }
 

@@ -1,5 +1,6 @@
 //! Integration tests: the real server on 127.0.0.1:0 with a real SQLite
 //! file, spoken to by a real tonic client.
 
+mod alerts;
 mod harness;
 mod service;
