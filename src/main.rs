@@ -16,6 +16,10 @@ fn main() -> ExitCode {
                 eprintln!("error: {usage}");
                 return ExitCode::from(2);
             }
+            if let Some(unreachable) = err.downcast_ref::<cli::client::Unreachable>() {
+                eprintln!("error: {unreachable}");
+                return ExitCode::from(3);
+            }
             eprintln!("error: {err:#}");
             ExitCode::from(1)
         }

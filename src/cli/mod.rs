@@ -1,5 +1,7 @@
 //! Command-line definitions (stage one: flags only, no I/O) and dispatch.
 
+pub mod bench;
+pub mod client;
 pub mod eval;
 
 use clap::{Args, Parser, Subcommand};
@@ -29,6 +31,15 @@ pub enum Command {
     Chemistries(ChemistriesArgs),
     /// Run the gRPC service on an embedded SQLite file.
     Serve(ServeArgs),
+    /// Benchmarks.
+    #[command(subcommand)]
+    Bench(BenchCommand),
+}
+
+#[derive(Debug, Subcommand)]
+pub enum BenchCommand {
+    /// Sustained ingest rate, ack latency and alert latency.
+    Ingest(bench::BenchIngestArgs),
 }
 
 #[derive(Debug, Args)]
@@ -93,6 +104,7 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Eval(args) => eval::run_eval(&args),
         Command::Chemistries(args) => eval::run_chemistries(&args),
         Command::Serve(args) => serve(&args),
+        Command::Bench(BenchCommand::Ingest(args)) => block_on(bench::run(&args)),
     }
 }
 
@@ -151,4 +163,11 @@ async fn shutdown_signal() {
     {
         let _ = ctrl_c.await;
     }
+}
+
+fn block_on<F: std::future::Future<Output = anyhow::Result<()>>>(f: F) -> anyhow::Result<()> {
+    tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()?
+        .block_on(f)
 }

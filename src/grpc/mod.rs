@@ -872,7 +872,15 @@ impl pb::alert_service_server::AlertService for Api {
         let reader = self.hub.store.reader.clone();
         let (tx, rx) = mpsc::channel(SUBSCRIBER_BUFFER);
         tokio::spawn(async move {
-            let mut last = q.after_id;
+            // An after_id beyond the newest event means "from now on".
+            let newest = match store::next_ids(&reader).await {
+                Ok((_, next_event)) => next_event - 1,
+                Err(e) => {
+                    let _ = tx.send(Err(Status::from(e))).await;
+                    return;
+                }
+            };
+            let mut last = q.after_id.min(newest);
             loop {
                 let page = match store::events_after(&reader, last, 1000).await {
                     Ok(p) => p,

@@ -172,7 +172,7 @@ async fn raise_watch_acknowledge_restart_replay() {
         .into_inner()
         .rules
         .unwrap();
-    let mut bad = rules.clone();
+    let mut bad = rules;
     bad.end_of_charge_soc.as_mut().unwrap().clear_at = 0.99;
     let s = alerts
         .put_alert_rules(pb::PutAlertRulesRequest {
