@@ -273,7 +273,7 @@ pub async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
     tokio::time::sleep(Duration::from_millis(300)).await;
     watcher.abort();
     latencies.sort_by(f64::total_cmp);
-    let acks = ack_times.lock().expect("poisoned");
+    let acks = std::mem::take(&mut *ack_times.lock().expect("poisoned"));
     let mut alert_lat: Vec<f64> = alert_arrivals
         .lock()
         .expect("poisoned")
