@@ -172,13 +172,18 @@ async fn silent_watch(hub: Arc<Hub>) {
         for rt in runtimes {
             let job = {
                 let mut g = rt.lock().expect("channel state poisoned");
-                if g.last_time_ns <= 0
-                    || !alert_rules::is_silent(g.last_time_ns, now, g.usual_interval_s, &g.rules)
+                if g.last_arrival_wall_ns <= 0
+                    || !alert_rules::is_silent(
+                        g.last_arrival_wall_ns,
+                        now,
+                        g.usual_arrival_interval_s,
+                        &g.rules,
+                    )
                 {
                     continue;
                 }
                 let seq = g.max_seq.unwrap_or(0);
-                let last = g.last_time_ns;
+                let last = g.last_arrival_wall_ns;
                 alert_rules::raise_silent(&mut g.rule_state, last, now, seq)
                     .map(|a| (g.key, g.run_id, a))
             };

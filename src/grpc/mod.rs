@@ -312,58 +312,7 @@ impl pb::channel_service_server::ChannelService for Api {
             },
             description: c.description,
         };
-        let chemistry = def
-            .validate(&registry)
-            .map_err(|e| Status::invalid_argument(format!("channel.{e}")))?;
-        let existing = self.hub.channel(&def.channel_id).ok();
-        let new_run = match &existing {
-            Some(rt) => rt.lock().expect("channel state poisoned").def.run_key() != def.run_key(),
-            None => true,
-        };
-        let run = new_run.then(|| RunRow {
-            run_id: 0,
-            channel_key: 0,
-            chemistry_id: chemistry.id.clone(),
-            n_electrons: chemistry.n_electrons,
-            e_standard_298_v: chemistry.e_standard_298_volts,
-            de_dt_v_per_k: chemistry.de_dt_volts_per_k,
-            cells_in_series: def.cells_in_series,
-            default_temp_c: def.default_temp_c,
-            equilibrium_tolerance_v: def.equilibrium_tolerance_mv / 1e3,
-            soc_model: chemistry.soc_model.name().to_string(),
-        });
-        let json = serde_json::to_string(&def).map_err(|e| Status::internal(e.to_string()))?;
-        let (_, run_id) = store::put_channel(
-            &self.hub.store.writer,
-            &def.channel_id,
-            &json,
-            run,
-            ingest::now_ns(),
-        )
-        .await?;
-        let rows = store::list_channels(&self.hub.store.writer).await?;
-        let row = rows
-            .iter()
-            .find(|r| r.channel_id == def.channel_id)
-            .ok_or_else(|| Status::internal("channel vanished after write"))?;
-        let runtime = ingest::load_runtime(&self.hub.store, &registry, row).await?;
-        match existing {
-            Some(rt) => {
-                let mut guard = rt.lock().expect("channel state poisoned");
-                let keep_seq = guard.max_seq.max(runtime.max_seq);
-                let keep_time = guard.last_time_ns.max(runtime.last_time_ns);
-                *guard = runtime;
-                guard.max_seq = keep_seq;
-                guard.last_time_ns = keep_time;
-            }
-            None => {
-                self.hub
-                    .channels
-                    .write()
-                    .expect("channel map poisoned")
-                    .insert(def.channel_id.clone(), Arc::new(Mutex::new(runtime)));
-            }
-        }
+        let (run_id, new_run) = self.hub.put_channel(def.clone()).await?;
         tracing::info!(channel_id = %def.channel_id, run_id, new_run, "channel defined");
         Ok(Response::new(pb::PutChannelResponse {
             channel: Some(channel_to_pb(&def, run_id)),

@@ -93,8 +93,13 @@ pub struct ChannelRuntime {
     /// Highest seq handed to the writer (committed or queued).
     pub max_seq: Option<u64>,
     pub last_time_ns: i64,
-    /// Smoothed spacing of readings, s: the silent-rig rule's yardstick.
+    /// Smoothed spacing of readings by their timestamps, s.
     pub usual_interval_s: f64,
+    /// Wall-clock time the last batch arrived, and the smoothed spacing of
+    /// arrivals: the silent-rig rule's yardstick (rig clocks may be
+    /// replayed or accelerated; the server's clock is what "silent" means).
+    pub last_arrival_wall_ns: i64,
+    pub usual_arrival_interval_s: f64,
 }
 
 /// Shared state of the service.
@@ -138,6 +143,64 @@ impl Hub {
             .ok_or_else(|| IngestError::UnknownChannel(channel_id.chars().take(80).collect()))
     }
 
+    /// Creates or replaces a channel. A change of chemistry, cell count or
+    /// E° override starts a new run (fresh estimator, history keeps the
+    /// old definition); other changes keep the running state.
+    pub async fn put_channel(&self, def: ChannelDef) -> Result<(i64, bool), IngestError> {
+        let registry = self.registry.read().expect("registry poisoned").clone();
+        let chemistry = def.validate(&registry).map_err(|e| IngestError::Invalid {
+            field: format!("channel.{}", e.field),
+            value: e.value,
+            reason: e.reason,
+        })?;
+        let existing = self.channel(&def.channel_id).ok();
+        let new_run = match &existing {
+            Some(rt) => rt.lock().expect("channel state poisoned").def.run_key() != def.run_key(),
+            None => true,
+        };
+        let run = new_run.then(|| store::RunRow {
+            run_id: 0,
+            channel_key: 0,
+            chemistry_id: chemistry.id.clone(),
+            n_electrons: chemistry.n_electrons,
+            e_standard_298_v: chemistry.e_standard_298_volts,
+            de_dt_v_per_k: chemistry.de_dt_volts_per_k,
+            cells_in_series: def.cells_in_series,
+            default_temp_c: def.default_temp_c,
+            equilibrium_tolerance_v: def.equilibrium_tolerance_mv / 1e3,
+            soc_model: chemistry.soc_model.name().to_string(),
+        });
+        let json = serde_json::to_string(&def).map_err(|e| StoreError::Corrupt(e.to_string()))?;
+        let (_, run_id) =
+            store::put_channel(&self.store.writer, &def.channel_id, &json, run, now_ns()).await?;
+        match existing {
+            Some(rt) => {
+                let mut g = rt.lock().expect("channel state poisoned");
+                g.est_config = def.estimator_config();
+                g.def = def;
+                g.chemistry = chemistry;
+                if new_run {
+                    g.est = EstimatorState::default();
+                    g.run_id = run_id;
+                }
+            }
+            None => {
+                let rows = store::list_channels(&self.store.writer).await?;
+                let row = rows
+                    .iter()
+                    .find(|r| r.channel_id == def.channel_id)
+                    .ok_or_else(|| StoreError::Corrupt("channel vanished after write".into()))?;
+                let runtime = load_runtime(&self.store, &registry, row).await?;
+                self.channels
+                    .write()
+                    .expect("channel map poisoned")
+                    .entry(def.channel_id.clone())
+                    .or_insert_with(|| Arc::new(Mutex::new(runtime)));
+            }
+        }
+        Ok((run_id, new_run))
+    }
+
     /// Sends a job to the writer and waits for its commit.
     pub async fn submit(
         &self,
@@ -178,6 +241,15 @@ impl Hub {
         let wall_now = now_ns();
         let (job_rows, rejected) = {
             let mut rt = runtime.lock().expect("channel state poisoned");
+            if rt.last_arrival_wall_ns > 0 {
+                let gap_s = (wall_now - rt.last_arrival_wall_ns) as f64 / 1e9;
+                rt.usual_arrival_interval_s = if rt.usual_arrival_interval_s > 0.0 {
+                    0.9 * rt.usual_arrival_interval_s + 0.1 * gap_s
+                } else {
+                    gap_s
+                };
+            }
+            rt.last_arrival_wall_ns = wall_now;
             derive_batch(&mut rt, readings, wall_now)
         };
         let rows = job_rows.rows;
@@ -481,5 +553,7 @@ pub async fn load_runtime(
         max_seq: resume.max_seq,
         last_time_ns,
         usual_interval_s,
+        last_arrival_wall_ns: 0,
+        usual_arrival_interval_s: 0.0,
     })
 }
