@@ -17,11 +17,27 @@ use std::time::Duration;
 use tokio::net::TcpListener;
 use tokio::sync::{broadcast, mpsc};
 
-#[derive(Debug, Clone)]
+#[derive(Debug)]
 pub struct Config {
     pub db_path: PathBuf,
     pub durability: Durability,
     pub extra_chemistries: Vec<crate::electrochem::Chemistry>,
+    /// Channels (and rules) from the config file, put at every start.
+    pub channels: Vec<crate::config::ChannelEntry>,
+    /// Prometheus text endpoint.
+    pub metrics_listener: Option<TcpListener>,
+}
+
+impl Config {
+    pub fn new(db_path: PathBuf, durability: Durability) -> Config {
+        Config {
+            db_path,
+            durability,
+            extra_chemistries: vec![],
+            channels: vec![],
+            metrics_listener: None,
+        }
+    }
 }
 
 /// Largest gRPC message accepted or sent: 16 MiB, room for the 10,000
@@ -78,8 +94,29 @@ pub async fn run(
         writer: writer_tx,
         events: events.clone(),
         shutdown: shutdown_rx,
+        metrics: Arc::new(crate::metrics::Metrics::default()),
     });
-    let writer_task = tokio::spawn(writer::run(store.clone(), writer_rx, events));
+    for entry in config.channels {
+        let id = entry.def.channel_id.clone();
+        hub.put_channel(entry.def).await?;
+        if let Some(rules) = entry.rules {
+            let rt = hub.channel(&id)?;
+            let key = rt.lock().expect("channel state poisoned").key;
+            let json = serde_json::to_string(&rules)
+                .map_err(|e| store::StoreError::Corrupt(e.to_string()))?;
+            store::put_rules(&store.writer, key, &json).await?;
+            rt.lock().expect("channel state poisoned").rules = rules;
+        }
+    }
+    let metrics_task = config
+        .metrics_listener
+        .map(|l| tokio::spawn(serve_metrics(l, hub.clone())));
+    let writer_task = tokio::spawn(writer::run(
+        store.clone(),
+        writer_rx,
+        events,
+        hub.metrics.clone(),
+    ));
     let silent_task = tokio::spawn(silent_watch(hub.clone()));
 
     let (health_reporter, health_service) = tonic_health::server::health_reporter();
@@ -142,6 +179,9 @@ pub async fn run(
         });
     let result = serve.await;
     silent_task.abort();
+    if let Some(t) = metrics_task {
+        t.abort();
+    }
     // Dropping the last sender lets the writer drain what it was given and stop.
     drop(api);
     let writer_sender_holder = hub;
@@ -199,4 +239,61 @@ async fn silent_watch(hub: Arc<Hub>) {
             }
         }
     }
+}
+
+/// A minimal HTTP/1.1 responder: every request gets the metrics page.
+/// Requests are read only up to the end of their headers and bounded, so a
+/// slow or hostile client cannot hold memory.
+async fn serve_metrics(listener: TcpListener, hub: Arc<Hub>) {
+    use tokio::io::{AsyncReadExt, AsyncWriteExt};
+    loop {
+        let Ok((mut socket, _)) = listener.accept().await else {
+            continue;
+        };
+        let hub = hub.clone();
+        tokio::spawn(async move {
+            let mut buf = vec![0u8; 4096];
+            let mut used = 0;
+            let read = tokio::time::timeout(Duration::from_secs(5), async {
+                while used < buf.len() {
+                    match socket.read(&mut buf[used..]).await {
+                        Ok(0) | Err(_) => break,
+                        Ok(n) => used += n,
+                    }
+                    if buf[..used].windows(4).any(|w| w == b"\r\n\r\n") {
+                        break;
+                    }
+                }
+            });
+            if read.await.is_err() {
+                return;
+            }
+            let body = render_metrics(&hub);
+            let response = format!(
+                "HTTP/1.1 200 OK\r\ncontent-type: text/plain; version=0.0.4\r\ncontent-length: {}\r\nconnection: close\r\n\r\n{body}",
+                body.len()
+            );
+            let _ = socket.write_all(response.as_bytes()).await;
+        });
+    }
+}
+
+pub fn render_metrics(hub: &Hub) -> String {
+    let now = ingest::now_ns();
+    let mut ages: Vec<(String, f64)> = hub
+        .channels
+        .read()
+        .expect("channel map poisoned")
+        .iter()
+        .filter_map(|(id, rt)| {
+            let last = rt
+                .lock()
+                .expect("channel state poisoned")
+                .last_arrival_wall_ns;
+            (last > 0).then(|| (id.clone(), (now - last) as f64 / 1e9))
+        })
+        .collect();
+    ages.sort_by(|a, b| a.0.cmp(&b.0));
+    let depth = writer::WRITER_QUEUE_JOBS - hub.writer.capacity();
+    hub.metrics.render(depth, &ages)
 }

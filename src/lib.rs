@@ -7,10 +7,12 @@
 pub mod alerts;
 pub mod app;
 pub mod channel;
+pub mod config;
 pub mod electrochem;
 pub mod estimator;
 pub mod grpc;
 pub mod ingest;
+pub mod metrics;
 pub mod pb;
 pub mod sim;
 pub mod store;

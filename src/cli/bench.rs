@@ -96,11 +96,7 @@ pub async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
                 .parse()
                 .map_err(|e| super::UsageError(format!("--durability {e}")))?;
             let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
-            let config = gibbsline::app::Config {
-                db_path: db.clone(),
-                durability,
-                extra_chemistries: vec![],
-            };
+            let config = gibbsline::app::Config::new(db.clone(), durability);
             let task = tokio::spawn(gibbsline::app::run(config, listener, async move {
                 let _ = stop_rx.await;
             }));

@@ -34,6 +34,9 @@ pub enum Command {
     /// Benchmarks.
     #[command(subcommand)]
     Bench(BenchCommand),
+    /// Configuration files.
+    #[command(subcommand)]
+    Config(ConfigCommand),
 }
 
 #[derive(Debug, Subcommand)]
@@ -44,18 +47,36 @@ pub enum BenchCommand {
 
 #[derive(Debug, Args)]
 pub struct ServeArgs {
-    /// Address to listen on.
-    #[arg(long, default_value = "127.0.0.1:50051")]
-    pub listen: String,
-    /// SQLite database file (created and migrated on first start).
-    #[arg(long, default_value = "gibbsline.db")]
-    pub db: PathBuf,
+    /// Configuration file (TOML); flags and GIBBSLINE_* variables override it.
+    #[arg(long)]
+    pub config: Option<PathBuf>,
+    /// Address to listen on [default: 127.0.0.1:50051].
+    #[arg(long)]
+    pub listen: Option<String>,
+    /// SQLite database file, created and migrated on first start [default: gibbsline.db].
+    #[arg(long)]
+    pub db: Option<PathBuf>,
     /// Commit durability: full (survives power loss), normal (survives a crash), off.
-    #[arg(long, default_value = "full")]
-    pub durability: String,
+    #[arg(long)]
+    pub durability: Option<String>,
+    /// Serve Prometheus metrics on this address.
+    #[arg(long)]
+    pub metrics_listen: Option<String>,
+    /// Confirm serving plain-text gRPC beyond loopback.
+    #[arg(long)]
+    pub allow_insecure: bool,
     /// Extra chemistry definitions (TOML), may repeat.
     #[arg(long)]
     pub chemistry_file: Vec<PathBuf>,
+    /// Print the effective configuration as TOML and exit.
+    #[arg(long)]
+    pub print_config: bool,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum ConfigCommand {
+    /// Validate a configuration file without starting anything.
+    Check { file: PathBuf },
 }
 
 #[derive(Debug, Args)]
@@ -105,21 +126,76 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Chemistries(args) => eval::run_chemistries(&args),
         Command::Serve(args) => serve(&args),
         Command::Bench(BenchCommand::Ingest(args)) => block_on(bench::run(&args)),
+        Command::Config(ConfigCommand::Check { file }) => {
+            let config = load_config(Some(&file), &std::collections::BTreeMap::new())?;
+            config.check_exposure().map_err(UsageError)?;
+            println!(
+                "{}: ok ({} channels, {} chemistries)",
+                file.display(),
+                config.channel.len(),
+                config.chemistry.len()
+            );
+            Ok(())
+        }
     }
+}
+
+/// Reads and validates a config file (or none) with environment overrides.
+pub fn load_config(
+    path: Option<&std::path::Path>,
+    env: &std::collections::BTreeMap<String, String>,
+) -> anyhow::Result<gibbsline::config::ServerConfig> {
+    let (label, text) = match path {
+        Some(p) => (
+            p.display().to_string(),
+            std::fs::read_to_string(p)
+                .map_err(|e| UsageError(format!("--config {}: {e}", p.display())))?,
+        ),
+        None => ("(defaults)".to_string(), String::new()),
+    };
+    Ok(gibbsline::config::load(&label, &text, env).map_err(|e| UsageError(e.to_string()))?)
 }
 
 fn serve(args: &ServeArgs) -> anyhow::Result<()> {
     use gibbsline::app;
+    let env: std::collections::BTreeMap<String, String> = std::env::vars()
+        .filter(|(k, _)| k.starts_with("GIBBSLINE_"))
+        .collect();
+    let mut config = load_config(args.config.as_deref(), &env)?;
+    if let Some(l) = &args.listen {
+        config.listen = l.clone();
+    }
+    if let Some(db) = &args.db {
+        config.db = db.display().to_string();
+    }
+    if let Some(d) = &args.durability {
+        config.durability = d
+            .parse()
+            .map_err(|e| UsageError(format!("--durability {e}")))?;
+    }
+    if let Some(m) = &args.metrics_listen {
+        config.metrics_listen = Some(m.clone());
+    }
+    config.allow_insecure |= args.allow_insecure;
+    if args.print_config {
+        print!("{}", toml::to_string(&config)?);
+        return Ok(());
+    }
+    config.check_exposure().map_err(UsageError)?;
     tracing_subscriber::fmt()
         .with_env_filter(
             tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
         )
         .init();
-    let durability: gibbsline::store::Durability = args
-        .durability
-        .parse()
-        .map_err(|e| UsageError(format!("--durability {e}")))?;
-    let registry = eval::load_registry(&args.chemistry_file)?;
+    let mut registry = eval::load_registry(&args.chemistry_file)?;
+    for spec in &config.chemistry {
+        let chem = spec
+            .validate(false)
+            .map_err(|e| UsageError(e.to_string()))?;
+        registry
+            .insert_user(chem)
+            .map_err(|e| UsageError(e.to_string()))?;
+    }
     let extra = registry
         .iter()
         .filter(|c| !c.builtin)
@@ -129,15 +205,25 @@ fn serve(args: &ServeArgs) -> anyhow::Result<()> {
         .enable_all()
         .build()?;
     runtime.block_on(async {
-        let listener = tokio::net::TcpListener::bind(&args.listen)
+        let listener = tokio::net::TcpListener::bind(&config.listen)
             .await
-            .map_err(|e| UsageError(format!("--listen {}: {e}", args.listen)))?;
-        let config = app::Config {
-            db_path: args.db.clone(),
-            durability,
-            extra_chemistries: extra,
+            .map_err(|e| UsageError(format!("listen {}: {e}", config.listen)))?;
+        let metrics_listener = match &config.metrics_listen {
+            Some(m) => Some(
+                tokio::net::TcpListener::bind(m)
+                    .await
+                    .map_err(|e| UsageError(format!("metrics_listen {m}: {e}")))?,
+            ),
+            None => None,
         };
-        app::run(config, listener, shutdown_signal()).await?;
+        let app_config = app::Config {
+            db_path: config.db.clone().into(),
+            durability: config.durability,
+            extra_chemistries: extra,
+            channels: config.channel.clone(),
+            metrics_listener,
+        };
+        app::run(app_config, listener, shutdown_signal()).await?;
         Ok(())
     })
 }

@@ -112,6 +112,7 @@ pub struct Hub {
     /// Turns true when the server begins to shut down: open streams finish
     /// the batch in hand and end with UNAVAILABLE.
     pub shutdown: tokio::sync::watch::Receiver<bool>,
+    pub metrics: Arc<crate::metrics::Metrics>,
 }
 
 /// Resolves once `stop` turns true (never, if its sender is gone without it).
@@ -269,6 +270,16 @@ impl Hub {
             })
             .await?;
         let max_seq = runtime.lock().expect("channel state poisoned").max_seq;
+        use std::sync::atomic::Ordering::Relaxed;
+        let m = &self.metrics;
+        m.readings_accepted
+            .fetch_add(outcome.fresh_inserted + outcome.late_inserted, Relaxed);
+        m.readings_duplicate.fetch_add(outcome.duplicates, Relaxed);
+        m.readings_out_of_order
+            .fetch_add(outcome.late_inserted, Relaxed);
+        for r in &rejected {
+            m.reject(r.field);
+        }
         Ok(Ack {
             channel_id: channel_id.to_string(),
             batch_id,

@@ -69,6 +69,7 @@ pub async fn run(
     store: Store,
     mut jobs: mpsc::Receiver<Job>,
     events: broadcast::Sender<AlertEvent>,
+    metrics: std::sync::Arc<crate::metrics::Metrics>,
 ) -> Result<(), StoreError> {
     let (next_alert_id, next_event_id) = store::next_ids(&store.writer).await?;
     let mut ids = Ids {
@@ -88,10 +89,15 @@ pub async fn run(
             }
         }
         let saved = (ids.next_alert_id, ids.next_event_id);
+        let started = std::time::Instant::now();
         match commit(&store, &mut ids, &batch).await {
             Ok(outcomes) => {
+                metrics.observe_commit(started.elapsed().as_secs_f64());
                 for (job, outcome) in batch.into_iter().zip(outcomes) {
                     for event in &outcome.events {
+                        if event.kind == store::EventKind::Raised {
+                            metrics.alert_raised(event.alert.kind.code());
+                        }
                         // No subscriber is fine; a lagging one is told by the channel.
                         let _ = events.send(event.clone());
                     }

@@ -15,11 +15,7 @@ impl Server {
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
         let addr = listener.local_addr().unwrap();
         let (tx, rx) = oneshot::channel::<()>();
-        let config = app::Config {
-            db_path: db.to_path_buf(),
-            durability: gibbsline::store::Durability::Normal,
-            extra_chemistries: vec![],
-        };
+        let config = app::Config::new(db.to_path_buf(), gibbsline::store::Durability::Normal);
         let task = tokio::spawn(app::run(config, listener, async move {
             let _ = rx.await;
         }));

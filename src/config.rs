@@ -1,0 +1,293 @@
+//! Server configuration: TOML file + `GIBBSLINE_*` environment overrides →
+//! a validated [`ServerConfig`]. Parsing does no I/O beyond the text it is
+//! given, and overrides come from a map, so both are testable.
+
+use crate::alerts::AlertRules;
+use crate::channel::ChannelDef;
+use crate::electrochem::{ChemistrySpec, Registry};
+use crate::store::Durability;
+use serde::{Deserialize, Serialize};
+use std::collections::BTreeMap;
+
+/// The file as written.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+pub struct ConfigFile {
+    pub listen: Option<String>,
+    pub db: Option<String>,
+    pub durability: Option<Durability>,
+    /// Prometheus text endpoint, e.g. "127.0.0.1:9464"; unset = off.
+    pub metrics_listen: Option<String>,
+    #[serde(default)]
+    pub allow_insecure: bool,
+    #[serde(default)]
+    pub chemistry: Vec<ChemistrySpec>,
+    #[serde(default)]
+    pub channel: Vec<ChannelEntry>,
+}
+
+/// A channel with optional rules.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ChannelEntry {
+    #[serde(flatten)]
+    pub def: ChannelDef,
+    pub rules: Option<AlertRules>,
+}
+
+/// The effective, validated configuration.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ServerConfig {
+    pub listen: String,
+    pub db: String,
+    pub durability: Durability,
+    pub metrics_listen: Option<String>,
+    pub allow_insecure: bool,
+    pub chemistry: Vec<ChemistrySpec>,
+    pub channel: Vec<ChannelEntry>,
+}
+
+pub const DEFAULT_LISTEN: &str = "127.0.0.1:50051";
+pub const DEFAULT_DB: &str = "gibbsline.db";
+
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("{path}{}: {message}", line.map(|l| format!(":{l}")).unwrap_or_default())]
+pub struct ConfigError {
+    pub path: String,
+    pub line: Option<usize>,
+    pub message: String,
+}
+
+/// Line (1-based) of the `index`-th `[[header]]` table in `text`.
+fn table_line(text: &str, header: &str, index: usize) -> Option<usize> {
+    text.lines()
+        .enumerate()
+        .filter(|(_, l)| l.trim_start().starts_with(header))
+        .nth(index)
+        .map(|(n, _)| n + 1)
+}
+
+fn line_of_offset(text: &str, offset: usize) -> usize {
+    text[..offset.min(text.len())].matches('\n').count() + 1
+}
+
+/// Parses `text` (from `path`, for messages), applies `env` overrides and
+/// validates everything a server would refuse at start.
+pub fn load(
+    path: &str,
+    text: &str,
+    env: &BTreeMap<String, String>,
+) -> Result<ServerConfig, ConfigError> {
+    let file: ConfigFile = toml::from_str(text).map_err(|e| ConfigError {
+        path: path.into(),
+        line: e.span().map(|s| line_of_offset(text, s.start)),
+        message: e.message().to_string(),
+    })?;
+    resolve(path, text, file, env)
+}
+
+pub fn resolve(
+    path: &str,
+    text: &str,
+    file: ConfigFile,
+    env: &BTreeMap<String, String>,
+) -> Result<ServerConfig, ConfigError> {
+    let fail = |line: Option<usize>, message: String| ConfigError {
+        path: path.into(),
+        line,
+        message,
+    };
+    let durability = match env.get("GIBBSLINE_DURABILITY") {
+        Some(v) => v
+            .parse()
+            .map_err(|e| fail(None, format!("GIBBSLINE_DURABILITY {e}")))?,
+        None => file.durability.unwrap_or_default(),
+    };
+    let listen = env
+        .get("GIBBSLINE_LISTEN")
+        .cloned()
+        .or(file.listen)
+        .unwrap_or_else(|| DEFAULT_LISTEN.into());
+    if listen.parse::<std::net::SocketAddr>().is_err() {
+        return Err(fail(
+            None,
+            format!("listen = {listen:?}: expected an address like 127.0.0.1:50051"),
+        ));
+    }
+    let metrics_listen = env
+        .get("GIBBSLINE_METRICS_LISTEN")
+        .cloned()
+        .or(file.metrics_listen);
+    if let Some(m) = &metrics_listen
+        && m.parse::<std::net::SocketAddr>().is_err()
+    {
+        return Err(fail(
+            None,
+            format!("metrics_listen = {m:?}: expected an address like 127.0.0.1:9464"),
+        ));
+    }
+    let allow_insecure = match env.get("GIBBSLINE_ALLOW_INSECURE") {
+        Some(v) => matches!(v.as_str(), "1" | "true" | "yes"),
+        None => file.allow_insecure,
+    };
+    let db = env
+        .get("GIBBSLINE_DB")
+        .cloned()
+        .or(file.db)
+        .unwrap_or_else(|| DEFAULT_DB.into());
+    let mut registry = Registry::builtin();
+    for (i, spec) in file.chemistry.iter().enumerate() {
+        let line = table_line(text, "[[chemistry]]", i);
+        let chem = spec
+            .validate(false)
+            .map_err(|e| fail(line, format!("chemistry[{i}] ({:?}): {e}", spec.id)))?;
+        registry
+            .insert_user(chem)
+            .map_err(|e| fail(line, format!("chemistry[{i}]: {e}")))?;
+    }
+    let mut seen = std::collections::BTreeSet::new();
+    for (i, entry) in file.channel.iter().enumerate() {
+        let line = table_line(text, "[[channel]]", i);
+        let id = &entry.def.channel_id;
+        entry
+            .def
+            .validate(&registry)
+            .map_err(|e| fail(line, format!("channel[{i}] ({id:?}): {e}")))?;
+        if !seen.insert(id.clone()) {
+            return Err(fail(
+                line,
+                format!("channel[{i}]: channel_id = {id:?} is defined twice"),
+            ));
+        }
+        if let Some(rules) = &entry.rules {
+            rules
+                .validate()
+                .map_err(|e| fail(line, format!("channel[{i}] ({id:?}): rules.{e}")))?;
+        }
+    }
+    Ok(ServerConfig {
+        listen,
+        db,
+        durability,
+        metrics_listen,
+        allow_insecure,
+        chemistry: file.chemistry,
+        channel: file.channel,
+    })
+}
+
+impl ServerConfig {
+    /// Refuses to serve beyond loopback without transport security.
+    pub fn check_exposure(&self) -> Result<(), String> {
+        let addr: std::net::SocketAddr = self
+            .listen
+            .parse()
+            .map_err(|_| format!("listen = {:?}", self.listen))?;
+        if !addr.ip().is_loopback() && !self.allow_insecure {
+            return Err(format!(
+                "listen = {}: not a loopback address, and this build serves plain-text gRPC only; \
+                 put it behind a TLS-terminating proxy and pass --allow-insecure (or allow_insecure = true) to confirm",
+                self.listen
+            ));
+        }
+        Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const GOOD: &str = r#"
+listen = "127.0.0.1:50999"
+db = "lab.db"
+durability = "normal"
+
+[[channel]]
+channel_id = "hl-vrb-1"
+chemistry_id = "vanadium-redox"
+cells_in_series = 1
+capacity_ah = 2.0
+current_sign = "charge_positive"
+min_volts = 0.5
+max_volts = 2.0
+"#;
+
+    fn env(pairs: &[(&str, &str)]) -> BTreeMap<String, String> {
+        pairs
+            .iter()
+            .map(|(k, v)| (k.to_string(), v.to_string()))
+            .collect()
+    }
+
+    #[test]
+    fn parses_and_overrides() {
+        let c = load("lab.toml", GOOD, &env(&[])).unwrap();
+        assert_eq!(
+            (c.listen.as_str(), c.db.as_str(), c.durability),
+            ("127.0.0.1:50999", "lab.db", Durability::Normal)
+        );
+        let c = load(
+            "lab.toml",
+            GOOD,
+            &env(&[
+                ("GIBBSLINE_DB", "/var/lib/x.db"),
+                ("GIBBSLINE_DURABILITY", "full"),
+            ]),
+        )
+        .unwrap();
+        assert_eq!(
+            (c.db.as_str(), c.durability),
+            ("/var/lib/x.db", Durability::Full)
+        );
+    }
+
+    fn error_for(from: &str, to: &str) -> String {
+        let text = GOOD.replace(from, to);
+        assert_ne!(text, GOOD);
+        load("lab.toml", &text, &env(&[])).unwrap_err().to_string()
+    }
+
+    #[test]
+    fn errors_name_file_line_and_field() {
+        let e = error_for("cells_in_series = 1", "cells_in_series = 0");
+        assert!(
+            e.starts_with("lab.toml:6:") && e.contains("cells_in_series = 0"),
+            "{e}"
+        );
+        let e = error_for("durability = \"normal\"", "durability = \"sometimes\"");
+        assert!(e.contains("lab.toml:4") && e.contains("sometimes"), "{e}");
+        let e = error_for("capacity_ah = 2.0", "capacity_ah = 2.0\ncolour = \"blue\"");
+        assert!(e.contains("colour"), "{e}");
+        let e = error_for(
+            "chemistry_id = \"vanadium-redox\"",
+            "chemistry_id = \"unobtainium\"",
+        );
+        assert!(
+            e.contains("chemistry_id") && e.contains("unobtainium"),
+            "{e}"
+        );
+        let e = error_for("listen = \"127.0.0.1:50999\"", "listen = \"nowhere\"");
+        assert!(e.contains("listen = \"nowhere\""), "{e}");
+        let e = error_for("max_volts = 2.0", "max_volts = 0.1");
+        assert!(e.contains("max_volts = 0.1"), "{e}");
+    }
+
+    #[test]
+    fn non_loopback_needs_confirmation() {
+        let c = load(
+            "f",
+            &GOOD.replace("127.0.0.1:50999", "0.0.0.0:50051"),
+            &env(&[]),
+        )
+        .unwrap();
+        assert!(c.check_exposure().unwrap_err().contains("--allow-insecure"));
+        let c = load(
+            "f",
+            &GOOD.replace("127.0.0.1:50999", "0.0.0.0:50051"),
+            &env(&[("GIBBSLINE_ALLOW_INSECURE", "true")]),
+        )
+        .unwrap();
+        assert!(c.check_exposure().is_ok());
+    }
+}
