@@ -2,7 +2,10 @@
 
 pub mod bench;
 pub mod client;
+pub mod commands;
+pub mod demo;
 pub mod eval;
+pub mod rig;
 
 use clap::{Args, Parser, Subcommand};
 use std::path::PathBuf;
@@ -37,6 +40,23 @@ pub enum Command {
     /// Configuration files.
     #[command(subcommand)]
     Config(ConfigCommand),
+    /// The whole job in one process: server, simulated bench, live table, alerts.
+    Demo(demo::DemoArgs),
+    /// Simulated rigs.
+    #[command(subcommand)]
+    Rig(commands::RigCommand),
+    /// Stored readings of a channel, raw or in time buckets.
+    Readings(commands::ReadingsArgs),
+    /// Live state of one or all channels.
+    State(commands::StateArgs),
+    /// Watch, list and acknowledge alerts.
+    #[command(subcommand)]
+    Alerts(commands::AlertsCommand),
+    /// Define and inspect channels.
+    #[command(subcommand)]
+    Channels(commands::ChannelsCommand),
+    /// Charge/discharge cycles of a channel with efficiencies.
+    Cycles(commands::CyclesArgs),
 }
 
 #[derive(Debug, Subcommand)]
@@ -126,6 +146,13 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Chemistries(args) => eval::run_chemistries(&args),
         Command::Serve(args) => serve(&args),
         Command::Bench(BenchCommand::Ingest(args)) => block_on(bench::run(&args)),
+        Command::Demo(args) => block_on(demo::run(&args)),
+        Command::Rig(cmd) => block_on(commands::rig_cmd(&cmd)),
+        Command::Readings(args) => block_on(commands::readings(&args)),
+        Command::State(args) => block_on(commands::state(&args)),
+        Command::Alerts(cmd) => block_on(commands::alerts(&cmd)),
+        Command::Channels(cmd) => block_on(commands::channels(&cmd)),
+        Command::Cycles(args) => block_on(commands::cycles(&args)),
         Command::Config(ConfigCommand::Check { file }) => {
             let config = load_config(Some(&file), &std::collections::BTreeMap::new())?;
             config.check_exposure().map_err(UsageError)?;
@@ -256,4 +283,25 @@ fn block_on<F: std::future::Future<Output = anyhow::Result<()>>>(f: F) -> anyhow
         .enable_all()
         .build()?
         .block_on(f)
+}
+
+/// Parses durations like 90s, 5m, 2h, 1d, 250ms (a bare number is seconds).
+pub fn parse_duration(text: &str) -> Result<std::time::Duration, String> {
+    let t = text.trim();
+    let split = t.find(|c: char| c.is_ascii_alphabetic()).unwrap_or(t.len());
+    let (num, unit) = t.split_at(split);
+    let value: f64 = num.parse().map_err(|_| format!("{text:?} is not a duration like 90s, 5m or 2h"))?;
+    let scale = match unit {
+        "" | "s" => 1.0,
+        "ms" => 1e-3,
+        "m" | "min" => 60.0,
+        "h" => 3600.0,
+        "d" => 86_400.0,
+        other => return Err(format!("unknown unit {other:?} in {text:?} (use ms, s, m, h or d)")),
+    };
+    let secs = value * scale;
+    if !(secs.is_finite() && secs >= 0.0 && secs < 1e9) {
+        return Err(format!("{text:?} is out of range"));
+    }
+    Ok(std::time::Duration::from_secs_f64(secs))
 }

@@ -1,0 +1,201 @@
+//! `gibbsline demo`: the server on an embedded SQLite file and the
+//! simulated Harbour Lane rig in one process, talking real gRPC over
+//! loopback, with a live table and the alerts as they arrive.
+
+use super::client;
+use super::rig::{self, RigOptions, RigStats};
+use gibbsline::pb;
+use gibbsline::pb::alert_service_client::AlertServiceClient;
+use gibbsline::pb::history_service_client::HistoryServiceClient;
+use std::io::{IsTerminal, Write};
+use std::path::PathBuf;
+use std::sync::atomic::Ordering;
+use std::sync::{Arc, Mutex};
+use std::time::Duration;
+use tokio_stream::StreamExt;
+
+#[derive(Debug, clap::Args)]
+pub struct DemoArgs {
+    /// How long to run, e.g. 60s, 5m; Ctrl-C ends it sooner.
+    #[arg(long, default_value = "60s", value_parser = super::parse_duration)]
+    pub duration: Duration,
+    /// Simulated seconds per real second.
+    #[arg(long, default_value_t = 120.0)]
+    pub speed: f64,
+    /// SQLite file for the demo (kept afterwards for querying).
+    #[arg(long, default_value = "gibbsline-demo.db")]
+    pub db: PathBuf,
+    /// Address for the demo server.
+    #[arg(long, default_value = "127.0.0.1:50051")]
+    pub listen: String,
+}
+
+pub fn kind_name(code: i32) -> &'static str {
+    match pb::AlertKind::try_from(code) {
+        Ok(pb::AlertKind::EquilibriumApproach) => "equilibrium approach",
+        Ok(pb::AlertKind::EndOfCharge) => "end of charge",
+        Ok(pb::AlertKind::EndOfDischarge) => "end of discharge",
+        Ok(pb::AlertKind::RestSettled) => "rest settled",
+        Ok(pb::AlertKind::VoltageLimit) => "voltage limit",
+        Ok(pb::AlertKind::CurrentLimit) => "current limit",
+        Ok(pb::AlertKind::TemperatureLimit) => "temperature limit",
+        Ok(pb::AlertKind::SilentRig) => "silent rig",
+        _ => "unknown",
+    }
+}
+
+pub fn severity_name(code: i32) -> &'static str {
+    match pb::Severity::try_from(code) {
+        Ok(pb::Severity::Info) => "info",
+        Ok(pb::Severity::Warning) => "WARNING",
+        Ok(pb::Severity::Critical) => "CRITICAL",
+        _ => "-",
+    }
+}
+
+pub fn state_name(code: i32) -> &'static str {
+    match pb::ReactionState::try_from(code) {
+        Ok(pb::ReactionState::Spontaneous) => "spontaneous",
+        Ok(pb::ReactionState::Driven) => "driven",
+        Ok(pb::ReactionState::Equilibrium) => "equilibrium",
+        _ => "-",
+    }
+}
+
+pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
+    if !(args.speed.is_finite() && args.speed > 0.0 && args.speed <= 10_000.0) {
+        return Err(super::UsageError(format!("--speed {}: must be above 0 and at most 10000", args.speed)).into());
+    }
+    let listener = tokio::net::TcpListener::bind(&args.listen)
+        .await
+        .map_err(|e| super::UsageError(format!("--listen {}: {e} (another server running? pick another address)", args.listen)))?;
+    let addr = listener.local_addr()?.to_string();
+    let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
+    let config = gibbsline::app::Config::new(args.db.clone(), gibbsline::store::Durability::Normal);
+    let server = tokio::spawn(gibbsline::app::run(config, listener, async move {
+        let _ = stop_rx.await;
+    }));
+
+    let channels = rig::harbour_lane(4, 11);
+    let ids: Vec<String> = channels.iter().map(|c| c.def.channel_id.clone()).collect();
+    rig::define_channels(&addr, &channels).await?;
+    let stats = Arc::new(RigStats::default());
+    let rig_task = tokio::spawn(rig::run(
+        addr.clone(),
+        channels,
+        RigOptions { speed: args.speed, readings_per_sim_s: 1.0, duration: Some(args.duration), quiet: true },
+        stats.clone(),
+    ));
+
+    let channel = client::connect(&addr).await?;
+    let alert_lines: Arc<Mutex<Vec<String>>> = Arc::default();
+    let lines = alert_lines.clone();
+    let mut alerts = AlertServiceClient::new(channel.clone());
+    let mut watch = alerts.watch_alerts(pb::WatchAlertsRequest { after_id: u64::MAX >> 1, ..Default::default() }).await?.into_inner();
+    let watcher = tokio::spawn(async move {
+        while let Some(Ok(m)) = watch.next().await {
+            let Some(a) = m.alert else { continue };
+            let verb = match pb::AlertEventKind::try_from(m.event) {
+                Ok(pb::AlertEventKind::Raised) => "raised ",
+                Ok(pb::AlertEventKind::Cleared) => "cleared",
+                Ok(pb::AlertEventKind::Acknowledged) => "acked  ",
+                _ => continue,
+            };
+            lines.lock().expect("poisoned").push(format!(
+                "#{:<4} {verb} {:<8} {:<13} {:<19} {}",
+                a.alert_id,
+                severity_name(a.severity),
+                a.channel_id,
+                kind_name(a.kind),
+                a.message
+            ));
+        }
+    });
+
+    let mut history = HistoryServiceClient::new(channel.clone());
+    let tty = std::io::stdout().is_terminal();
+    let started = tokio::time::Instant::now();
+    let mut ctrl_c = Box::pin(tokio::signal::ctrl_c());
+    let mut redraw = tokio::time::interval(if tty { Duration::from_millis(500) } else { Duration::from_secs(10) });
+    println!("gibbsline demo: Harbour Lane bench (invented), {}× speed, database {}", args.speed, args.db.display());
+    println!("monitoring only, not a safety system: it never replaces interlocks, BMS cut-offs or gas detection.\n");
+    loop {
+        tokio::select! {
+            _ = redraw.tick() => {}
+            _ = &mut ctrl_c => { stats.stop.store(true, Ordering::Relaxed); break; }
+        }
+        let mut table = String::new();
+        table.push_str(&format!(
+            "{:<13} {:<16} {:>9} {:>8} {:>7} {:>7} {:>11} {:<12}\n",
+            "channel", "chemistry", "volts", "amps", "°C", "SOC %", "ΔG kJ/mol", "state"
+        ));
+        for id in &ids {
+            let Ok(state) = history.get_channel_state(pb::GetChannelStateRequest { channel_id: id.clone() }).await else { continue };
+            let state = state.into_inner();
+            let chem = state.channel.as_ref().map(|c| c.chemistry_id.clone()).unwrap_or_default();
+            match state.latest {
+                Some(r) => {
+                    let d = r.derived.unwrap_or_default();
+                    table.push_str(&format!(
+                        "{:<13} {:<16} {:>9.4} {:>8.3} {:>7.2} {:>7} {:>11.3} {:<12}\n",
+                        id,
+                        chem,
+                        r.volts,
+                        r.amps.unwrap_or(0.0),
+                        r.temp_c.unwrap_or(f64::NAN),
+                        d.soc_fused.map(|s| format!("{:.1}", s * 100.0)).unwrap_or_else(|| "-".into()),
+                        d.delta_g_kj_per_mol,
+                        state_name(d.state)
+                    ));
+                }
+                None => table.push_str(&format!("{id:<13} {chem:<16} (no readings yet)\n")),
+            }
+        }
+        let recent: Vec<String> = {
+            let l = alert_lines.lock().expect("poisoned");
+            l.iter().rev().take(10).rev().cloned().collect()
+        };
+        let total_alerts = alert_lines.lock().expect("poisoned").len();
+        let elapsed = started.elapsed().as_secs_f64();
+        let mut out = String::new();
+        if tty {
+            out.push_str("\x1b[H\x1b[J");
+        }
+        out.push_str(&format!(
+            "gibbsline demo — {:.0}/{:.0} s, {} readings stored, {} alert events (Ctrl-C to stop)\n\n",
+            elapsed,
+            args.duration.as_secs_f64(),
+            stats.acked.load(Ordering::Relaxed),
+            total_alerts
+        ));
+        out.push_str(&table);
+        out.push_str("\nalerts (newest last):\n");
+        for l in recent {
+            out.push_str(&l);
+            out.push('\n');
+        }
+        print!("{out}");
+        let _ = std::io::stdout().flush();
+        if rig_task.is_finished() {
+            break;
+        }
+    }
+    stats.stop.store(true, Ordering::Relaxed);
+    let _ = rig_task.await;
+    tokio::time::sleep(Duration::from_millis(200)).await;
+    watcher.abort();
+    let _ = stop_tx.send(());
+    server.await??;
+    let stored = stats.acked.load(Ordering::Relaxed);
+    let total_alerts = alert_lines.lock().expect("poisoned").len();
+    println!("\ndemo finished: {stored} readings stored, {total_alerts} alert events.");
+    println!("database: {}", args.db.display());
+    println!("\nlook at it again:");
+    println!("  gibbsline serve --db {} &", args.db.display());
+    println!("  gibbsline state --connect 127.0.0.1:50051");
+    println!("  gibbsline readings --connect 127.0.0.1:50051 --channel hl-vrb-1 --bucket 1m");
+    println!("  gibbsline readings --connect 127.0.0.1:50051 --channel hl-pem-stack --format csv > stack.csv");
+    println!("  gibbsline alerts list --connect 127.0.0.1:50051");
+    println!("  gibbsline cycles --connect 127.0.0.1:50051 --channel hl-vrb-1");
+    Ok(())
+}

@@ -1,0 +1,309 @@
+//! A simulated rig: the demo scenario's cells streamed to a server over
+//! real gRPC, resuming from the server's last stored seq after any
+//! disconnect, so a restart loses nothing and doubles nothing.
+
+use super::client;
+use gibbsline::electrochem::{Chemistry, Registry};
+use gibbsline::pb;
+use gibbsline::pb::channel_service_client::ChannelServiceClient;
+use gibbsline::pb::ingest_service_client::IngestServiceClient;
+use gibbsline::sim::{CycleSchedule, SimCell, SimCellParams};
+use std::collections::{HashMap, VecDeque};
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::time::Duration;
+use tokio_stream::StreamExt;
+
+/// How a simulated channel is driven.
+#[derive(Debug, Clone)]
+pub enum Drive {
+    Cycling(CycleSchedule),
+    /// Constant charge-positive current (an electrolyser held at load).
+    Constant(f64),
+}
+
+pub struct SimChannel {
+    pub def: pb::Channel,
+    pub chemistry: Arc<Chemistry>,
+    pub cell: SimCell,
+    pub drive: Drive,
+    /// Instrument convention: multiply charge-positive amps by this.
+    pub sign: f64,
+    pub next_seq: u64,
+    pub pending: VecDeque<pb::Reading>,
+}
+
+/// The Harbour Lane bench: an invented teaching-and-test bench with three
+/// flow and battery cells and a two-cell electrolyser stack.
+pub fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
+    let registry = Registry::builtin();
+    let base = |cells, capacity_ah, r, rp, temp_c: f64, swing, period| SimCellParams {
+        cells_in_series: cells,
+        capacity_ah,
+        resistance_ohm: r,
+        polarisation_ohm: rp,
+        polarisation_tau_s: 30.0,
+        noise_volts: 0.0004 * f64::from(cells),
+        temp_k: temp_c + 273.15,
+        temp_swing_k: swing,
+        temp_period_s: period,
+    };
+    let specs: Vec<(&str, &str, SimCellParams, f64, Drive, i32, &str)> = vec![
+        (
+            "hl-vrb-1",
+            "vanadium-redox",
+            base(1, 2.0, 0.05, 0.02, 30.0, 1.0, 3600.0),
+            0.80,
+            Drive::Cycling(CycleSchedule::new(2.0, 2.0, 0.04, 0.965, 600.0)),
+            pb::CurrentSign::ChargePositive as i32,
+            "vanadium flow cell, 25 cm² felt electrodes",
+        ),
+        (
+            "hl-fecr-2",
+            "iron-chromium",
+            base(1, 3.0, 0.03, 0.01, 45.0, 1.5, 2400.0),
+            0.30,
+            Drive::Cycling(CycleSchedule::new(2.5, 2.5, 0.04, 0.9, 600.0)),
+            pb::CurrentSign::DischargePositive as i32,
+            "iron–chromium flow cell; this instrument signs discharge positive",
+        ),
+        (
+            "hl-lfp-3",
+            "ocv-table-demo",
+            base(4, 5.0, 0.02, 0.01, 25.0, 0.5, 3600.0),
+            0.60,
+            Drive::Cycling(CycleSchedule::new(5.0, 5.0, 0.04, 0.965, 600.0)),
+            pb::CurrentSign::ChargePositive as i32,
+            "four-cell module with the illustrative OCV table",
+        ),
+        (
+            "hl-pem-stack",
+            "hydrogen-oxygen",
+            base(2, 0.0, 0.004, 0.003, 65.0, 7.0, 3600.0),
+            0.5,
+            Drive::Constant(20.0),
+            pb::CurrentSign::ChargePositive as i32,
+            "two-cell water electrolyser stack held at 20 A",
+        ),
+    ];
+    specs
+        .into_iter()
+        .cycle()
+        .take(count)
+        .enumerate()
+        .map(|(i, (id, chem_id, params, soc, drive, sign, description))| {
+            let chemistry = registry.get(chem_id).expect("scenario uses built-ins");
+            let channel_id = if i < 4 { id.to_string() } else { format!("{id}-{}", i / 4) };
+            SimChannel {
+                def: pb::Channel {
+                    channel_id,
+                    chemistry_id: chem_id.into(),
+                    cells_in_series: params.cells_in_series,
+                    capacity_ah: params.capacity_ah,
+                    current_sign: sign,
+                    default_temp_c: params.temp_k - 273.15,
+                    description: description.into(),
+                    ..Default::default()
+                },
+                chemistry,
+                cell: SimCell::new(params, soc, seed + i as u64),
+                drive,
+                sign: if sign == pb::CurrentSign::DischargePositive as i32 { -1.0 } else { 1.0 },
+                next_seq: 1,
+                pending: VecDeque::new(),
+            }
+        })
+        .collect()
+}
+
+/// Unacknowledged readings kept per channel at most; past it the simulated
+/// clock of that channel pauses, so a long outage makes no gap.
+const MAX_PENDING: usize = 200_000;
+
+pub struct RigOptions {
+    pub speed: f64,
+    pub readings_per_sim_s: f64,
+    /// Stop after this much wall time.
+    pub duration: Option<Duration>,
+    pub quiet: bool,
+}
+
+/// Counters the caller can watch.
+#[derive(Default)]
+pub struct RigStats {
+    pub sent: AtomicU64,
+    pub acked: AtomicU64,
+    pub reconnects: AtomicU64,
+    pub stop: AtomicBool,
+}
+
+pub async fn define_channels(addr: &str, channels: &[SimChannel]) -> anyhow::Result<()> {
+    let mut client = ChannelServiceClient::new(client::connect(addr).await?);
+    for ch in channels {
+        client.put_channel(pb::PutChannelRequest { channel: Some(ch.def.clone()) }).await?;
+    }
+    Ok(())
+}
+
+/// Streams until the duration passes or `stats.stop` is set.
+pub async fn run(addr: String, mut channels: Vec<SimChannel>, opts: RigOptions, stats: Arc<RigStats>) -> anyhow::Result<()> {
+    let start_wall = tokio::time::Instant::now();
+    let dt_sim_s = 1.0 / opts.readings_per_sim_s;
+    let tick = Duration::from_millis(250);
+    let per_tick = ((opts.speed * opts.readings_per_sim_s) * tick.as_secs_f64()).max(1.0) as usize;
+    // Simulated time ends near "now" for a bounded run; open-ended runs start
+    // a day back so their clock stays behind the server's future limit longer.
+    let span_ns = match opts.duration {
+        Some(d) => (d.as_secs_f64() * opts.speed * 1e9) as i64,
+        None => 86_400 * 1_000_000_000,
+    };
+    let mut sim_ns = client::now_ns() - span_ns;
+    let mut first_connect = true;
+    'outer: loop {
+        if stats.stop.load(Ordering::Relaxed) || opts.duration.is_some_and(|d| start_wall.elapsed() >= d) {
+            break;
+        }
+        let channel = match client::connect(&addr).await {
+            Ok(c) => c,
+            Err(e) => {
+                if !opts.quiet {
+                    eprintln!("rig: {e}; retrying in 1 s");
+                }
+                tokio::time::sleep(Duration::from_secs(1)).await;
+                continue;
+            }
+        };
+        if !first_connect {
+            stats.reconnects.fetch_add(1, Ordering::Relaxed);
+        }
+        // Resume: drop what the server already has, resend the rest.
+        let mut ingest = IngestServiceClient::new(channel.clone());
+        let mut history = pb::history_service_client::HistoryServiceClient::new(channel.clone());
+        let mut resumed = true;
+        for ch in channels.iter_mut() {
+            let point = match ingest.get_resume_point(pb::GetResumePointRequest { channel_id: ch.def.channel_id.clone() }).await {
+                Ok(p) => p.into_inner(),
+                Err(_) => {
+                    resumed = false;
+                    break;
+                }
+            };
+            if point.any_stored {
+                ch.pending.retain(|r| r.seq > point.last_stored_seq);
+                ch.next_seq = ch.next_seq.max(point.last_stored_seq + 1);
+                if first_connect
+                    && let Ok(state) = history.get_channel_state(pb::GetChannelStateRequest { channel_id: ch.def.channel_id.clone() }).await
+                {
+                    sim_ns = sim_ns.max(state.into_inner().last_seen_unix_ns + 1_000_000_000);
+                }
+            }
+        }
+        if !resumed {
+            tokio::time::sleep(Duration::from_secs(1)).await;
+            continue;
+        }
+        first_connect = false;
+        let (tx, rx) = tokio::sync::mpsc::channel::<pb::StreamReadingsRequest>(8);
+        let response = ingest.stream_readings(tokio_stream::wrappers::ReceiverStream::new(rx)).await;
+        let Ok(response) = response else {
+            tokio::time::sleep(Duration::from_secs(1)).await;
+            continue;
+        };
+        let mut acks = response.into_inner();
+        let mut batch_id = 0u64;
+        let mut in_flight: HashMap<u64, (usize, u64)> = HashMap::new();
+        let mut interval = tokio::time::interval(tick);
+        loop {
+            if stats.stop.load(Ordering::Relaxed) || opts.duration.is_some_and(|d| start_wall.elapsed() >= d) {
+                // Wait briefly for outstanding acks, then finish.
+                let deadline = tokio::time::Instant::now() + Duration::from_secs(5);
+                while !in_flight.is_empty() {
+                    match tokio::time::timeout_at(deadline, acks.next()).await {
+                        Ok(Some(Ok(m))) => {
+                            if let Some(ack) = m.ack {
+                                settle(&mut channels, &mut in_flight, &ack, &stats);
+                            }
+                        }
+                        _ => break,
+                    }
+                }
+                break 'outer;
+            }
+            tokio::select! {
+                _ = interval.tick() => {
+                    for _ in 0..per_tick {
+                        sim_ns += (dt_sim_s * 1e9) as i64;
+                        for ch in channels.iter_mut() {
+                            if ch.pending.len() >= MAX_PENDING {
+                                continue;
+                            }
+                            let amps = match &mut ch.drive {
+                                Drive::Cycling(s) => s.amps(ch.cell.soc, dt_sim_s),
+                                Drive::Constant(a) => *a,
+                            };
+                            let sample = ch.cell.step(&ch.chemistry, amps, dt_sim_s);
+                            ch.pending.push_back(pb::Reading {
+                                seq: ch.next_seq,
+                                time_unix_ns: sim_ns,
+                                volts: sample.stack_volts,
+                                amps: Some(sample.amps * ch.sign),
+                                temp_c: Some(sample.temp_k - 273.15),
+                            });
+                            ch.next_seq += 1;
+                        }
+                    }
+                    let mut failed = false;
+                    for (index, ch) in channels.iter().enumerate() {
+                        let sent_hi = in_flight.values().filter(|(i, _)| *i == index).map(|(_, hi)| *hi).max().unwrap_or(0);
+                        let readings: Vec<_> = ch.pending.iter().filter(|r| r.seq > sent_hi).take(10_000).cloned().collect();
+                        let Some(last) = readings.last() else { continue };
+                        in_flight.insert(batch_id, (index, last.seq));
+                        stats.sent.fetch_add(readings.len() as u64, Ordering::Relaxed);
+                        let msg = pb::StreamReadingsRequest { batch: Some(pb::ReadingBatch { channel_id: ch.def.channel_id.clone(), batch_id, readings }) };
+                        batch_id += 1;
+                        if tx.send(msg).await.is_err() {
+                            failed = true;
+                            break;
+                        }
+                    }
+                    if failed {
+                        break;
+                    }
+                }
+                m = acks.next() => match m {
+                    Some(Ok(m)) => {
+                        if let Some(ack) = m.ack {
+                            settle(&mut channels, &mut in_flight, &ack, &stats);
+                        }
+                    }
+                    other => {
+                        if !opts.quiet {
+                            let why = match other {
+                                Some(Err(s)) => s.message().to_string(),
+                                _ => "stream closed".into(),
+                            };
+                            eprintln!("rig: stream ended ({why}); reconnecting");
+                        }
+                        break;
+                    }
+                },
+            }
+        }
+        tokio::time::sleep(Duration::from_millis(500)).await;
+    }
+    Ok(())
+}
+
+fn settle(channels: &mut [SimChannel], in_flight: &mut HashMap<u64, (usize, u64)>, ack: &pb::BatchAck, stats: &RigStats) {
+    if !ack.rejected.is_empty() {
+        tracing::warn!(channel_id = %ack.channel_id, rejected = ack.rejected.len(), first = %ack.rejected[0].reason, "readings rejected");
+    }
+    if let Some((index, hi)) = in_flight.remove(&ack.batch_id) {
+        let ch = &mut channels[index];
+        // The ack comes after the whole batch was committed: every reading
+        // in it is stored (or rejected, and would be rejected again).
+        let before = ch.pending.len();
+        ch.pending.retain(|r| r.seq > hi);
+        stats.acked.fetch_add((before - ch.pending.len()) as u64, Ordering::Relaxed);
+    }
+}
