@@ -3,7 +3,7 @@
 //! the simulated rig as its own process.
 
 use super::demo::{kind_name, severity_name, state_name};
-use super::{client, rig, UsageError};
+use super::{UsageError, client, rig};
 use gibbsline::pb;
 use gibbsline::pb::alert_service_client::AlertServiceClient;
 use gibbsline::pb::channel_service_client::ChannelServiceClient;
@@ -53,7 +53,11 @@ pub fn parse_time(flag: &str, text: &str, now_ns: i64) -> Result<i64, UsageError
     }
     super::parse_duration(text)
         .map(|age| now_ns - age.as_nanos() as i64)
-        .map_err(|e| UsageError(format!("{flag} {text}: {e}; give unix seconds or an age like 90m")))
+        .map_err(|e| {
+            UsageError(format!(
+                "{flag} {text}: {e}; give unix seconds or an age like 90m"
+            ))
+        })
 }
 
 #[derive(Serialize)]
@@ -86,16 +90,35 @@ pub const CSV_HEADER: &str = "seq,time_unix_ns,volts_v,amps_a,temp_c,cell_volts_
 
 pub async fn readings(args: &ReadingsArgs) -> anyhow::Result<()> {
     let now = client::now_ns();
-    let start = args.since.as_deref().map(|s| parse_time("--since", s, now)).transpose()?.unwrap_or(0);
-    let end = args.until.as_deref().map(|s| parse_time("--until", s, now)).transpose()?.unwrap_or(0);
-    let mut history = HistoryServiceClient::new(client::connect(&args.connect).await?).max_decoding_message_size(gibbsline::app::MAX_MESSAGE_BYTES);
+    let start = args
+        .since
+        .as_deref()
+        .map(|s| parse_time("--since", s, now))
+        .transpose()?
+        .unwrap_or(0);
+    let end = args
+        .until
+        .as_deref()
+        .map(|s| parse_time("--until", s, now))
+        .transpose()?
+        .unwrap_or(0);
+    let mut history = HistoryServiceClient::new(client::connect(&args.connect).await?)
+        .max_decoding_message_size(gibbsline::app::MAX_MESSAGE_BYTES);
     if let Some(width) = args.bucket {
-        let start = if start == 0 && end == 0 { now - 86_400_000_000_000 } else { start };
+        let start = if start == 0 && end == 0 {
+            now - 86_400_000_000_000
+        } else {
+            start
+        };
         let r = history
             .query_buckets(pb::QueryBucketsRequest {
                 channel_id: args.channel.clone(),
                 start_unix_ns: start,
-                end_unix_ns: if end == 0 { now + 86_400_000_000_000 } else { end },
+                end_unix_ns: if end == 0 {
+                    now + 86_400_000_000_000
+                } else {
+                    end
+                },
                 bucket_width_ns: width.as_nanos() as i64,
             })
             .await?
@@ -103,7 +126,12 @@ pub async fn readings(args: &ReadingsArgs) -> anyhow::Result<()> {
         return print_buckets(&r.buckets, args.format);
     }
     let mut stream = history
-        .query_readings(pb::QueryReadingsRequest { channel_id: args.channel.clone(), start_unix_ns: start, end_unix_ns: end, limit: args.limit })
+        .query_readings(pb::QueryReadingsRequest {
+            channel_id: args.channel.clone(),
+            start_unix_ns: start,
+            end_unix_ns: end,
+            limit: args.limit,
+        })
         .await?
         .into_inner();
     let mut rows = Vec::new();
@@ -161,7 +189,18 @@ pub async fn readings(args: &ReadingsArgs) -> anyhow::Result<()> {
             }
         }
         Format::Table => {
-            println!("{:>8} {:>19} {:>9} {:>8} {:>7} {:>7} {:>11} {:>9} {:<11}", "seq", "time_unix_ns", "volts", "amps", "°C", "SOC %", "ΔG kJ/mol", "log10 Q", "state");
+            println!(
+                "{:>8} {:>19} {:>9} {:>8} {:>7} {:>7} {:>11} {:>9} {:<11}",
+                "seq",
+                "time_unix_ns",
+                "volts",
+                "amps",
+                "°C",
+                "SOC %",
+                "ΔG kJ/mol",
+                "log10 Q",
+                "state"
+            );
             for r in &rows {
                 println!(
                     "{:>8} {:>19} {:>9.4} {:>8.3} {:>7.2} {:>7} {:>11.3} {:>9.3} {:<11}",
@@ -170,7 +209,9 @@ pub async fn readings(args: &ReadingsArgs) -> anyhow::Result<()> {
                     r.volts,
                     r.amps.unwrap_or(f64::NAN),
                     r.temp_c.unwrap_or(f64::NAN),
-                    r.soc_fused.map(|s| format!("{:.2}", s * 100.0)).unwrap_or_else(|| "-".into()),
+                    r.soc_fused
+                        .map(|s| format!("{:.2}", s * 100.0))
+                        .unwrap_or_else(|| "-".into()),
                     r.delta_g_kj_per_mol,
                     r.log10_q,
                     r.state
@@ -215,16 +256,29 @@ fn print_buckets(buckets: &[pb::Bucket], format: Format) -> anyhow::Result<()> {
     match format {
         Format::Json => println!("{}", serde_json::to_string(&rows)?),
         Format::Csv => {
-            println!("start_unix_ns,count,volts_min_v,volts_max_v,volts_mean_v,volts_last_v,soc_mean,soc_last,delta_g_mean_kj_per_mol");
+            println!(
+                "start_unix_ns,count,volts_min_v,volts_max_v,volts_mean_v,volts_last_v,soc_mean,soc_last,delta_g_mean_kj_per_mol"
+            );
             for b in &rows {
                 println!(
                     "{},{},{},{},{},{},{},{},{}",
-                    b.start_unix_ns, b.count, b.volts_min, b.volts_max, b.volts_mean, b.volts_last, opt(b.soc_mean), opt(b.soc_last), b.delta_g_mean_kj_per_mol
+                    b.start_unix_ns,
+                    b.count,
+                    b.volts_min,
+                    b.volts_max,
+                    b.volts_mean,
+                    b.volts_last,
+                    opt(b.soc_mean),
+                    opt(b.soc_last),
+                    b.delta_g_mean_kj_per_mol
                 );
             }
         }
         Format::Table => {
-            println!("{:>19} {:>6} {:>9} {:>9} {:>9} {:>7} {:>11}", "start_unix_ns", "count", "V min", "V mean", "V max", "SOC %", "ΔG kJ/mol");
+            println!(
+                "{:>19} {:>6} {:>9} {:>9} {:>9} {:>7} {:>11}",
+                "start_unix_ns", "count", "V min", "V mean", "V max", "SOC %", "ΔG kJ/mol"
+            );
             for b in &rows {
                 println!(
                     "{:>19} {:>6} {:>9.4} {:>9.4} {:>9.4} {:>7} {:>11.3}",
@@ -233,7 +287,9 @@ fn print_buckets(buckets: &[pb::Bucket], format: Format) -> anyhow::Result<()> {
                     b.volts_min,
                     b.volts_mean,
                     b.volts_max,
-                    b.soc_mean.map(|s| format!("{:.1}", s * 100.0)).unwrap_or_else(|| "-".into()),
+                    b.soc_mean
+                        .map(|s| format!("{:.1}", s * 100.0))
+                        .unwrap_or_else(|| "-".into()),
                     b.delta_g_mean_kj_per_mol
                 );
             }
@@ -269,7 +325,12 @@ pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
     let mut history = HistoryServiceClient::new(channel);
     let mut out = Vec::new();
     for id in ids {
-        let s = history.get_channel_state(pb::GetChannelStateRequest { channel_id: id.clone() }).await?.into_inner();
+        let s = history
+            .get_channel_state(pb::GetChannelStateRequest {
+                channel_id: id.clone(),
+            })
+            .await?
+            .into_inner();
         out.push((id, s));
     }
     if args.format == Format::Json {
@@ -304,7 +365,11 @@ pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
         return Ok(());
     }
     for (id, s) in out {
-        let chem = s.channel.as_ref().map(|c| c.chemistry_id.as_str()).unwrap_or("?");
+        let chem = s
+            .channel
+            .as_ref()
+            .map(|c| c.chemistry_id.as_str())
+            .unwrap_or("?");
         let Some(r) = s.latest else {
             println!("{id} ({chem}): no readings yet");
             continue;
@@ -314,23 +379,37 @@ pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
             "{id} ({chem}) seq {}: {:.4} V, {} A, {} °C; SOC {}; ΔG {:.3} kJ/mol; log10 Q {:.3} vs log10 K {:.3}; {}",
             r.seq,
             r.volts,
-            r.amps.map(|a| format!("{a:.3}")).unwrap_or_else(|| "-".into()),
-            r.temp_c.map(|t| format!("{t:.2}")).unwrap_or_else(|| "-".into()),
-            d.soc_fused.map(|x| format!("{:.1} %", x * 100.0)).unwrap_or_else(|| "-".into()),
+            r.amps
+                .map(|a| format!("{a:.3}"))
+                .unwrap_or_else(|| "-".into()),
+            r.temp_c
+                .map(|t| format!("{t:.2}"))
+                .unwrap_or_else(|| "-".into()),
+            d.soc_fused
+                .map(|x| format!("{:.1} %", x * 100.0))
+                .unwrap_or_else(|| "-".into()),
             d.delta_g_kj_per_mol,
             d.log10_q,
             d.log10_k,
             state_name(d.state)
         );
         if let Some(e) = s.estimator {
-            let r_text = e.resistance_ohm.map(|r| format!("{:.4} Ω ({})", r, e.resistance_source)).unwrap_or_else(|| "unknown".into());
-            println!("    charge {:.4} Ah, energy {:.4} Wh, R {r_text}, gaps {}", d.charge_ah, d.energy_wh, e.gaps);
+            let r_text = e
+                .resistance_ohm
+                .map(|r| format!("{:.4} Ω ({})", r, e.resistance_source))
+                .unwrap_or_else(|| "unknown".into());
+            println!(
+                "    charge {:.4} Ah, energy {:.4} Wh, R {r_text}, gaps {}",
+                d.charge_ah, d.energy_wh, e.gaps
+            );
             if let (Some(mol), Some(l)) = (e.hydrogen_mol, e.hydrogen_normal_litres) {
                 println!(
                     "    hydrogen {:.5} mol ({:.3} NL){}",
                     mol,
                     l,
-                    e.specific_energy_kwh_per_kg_h2.map(|k| format!(", {k:.1} kWh/kg")).unwrap_or_default()
+                    e.specific_energy_kwh_per_kg_h2
+                        .map(|k| format!(", {k:.1} kWh/kg"))
+                        .unwrap_or_default()
                 );
             }
         }
@@ -393,8 +472,15 @@ fn alert_line(a: &pb::Alert) -> String {
         kind_name(a.kind),
         a.raised_seq,
         a.message,
-        if a.cleared_unix_ns.is_some() { " [cleared]" } else { "" },
-        a.acknowledged_by.as_ref().map(|b| format!(" [ack: {b}]")).unwrap_or_default()
+        if a.cleared_unix_ns.is_some() {
+            " [cleared]"
+        } else {
+            ""
+        },
+        a.acknowledged_by
+            .as_ref()
+            .map(|b| format!(" [ack: {b}]"))
+            .unwrap_or_default()
     )
 }
 
@@ -410,10 +496,19 @@ fn alert_json(a: &pb::Alert) -> serde_json::Value {
 
 pub async fn alerts(cmd: &AlertsCommand) -> anyhow::Result<()> {
     match cmd {
-        AlertsCommand::Ack { id, by, note, connect } => {
+        AlertsCommand::Ack {
+            id,
+            by,
+            note,
+            connect,
+        } => {
             let mut c = AlertServiceClient::new(client::connect(connect).await?);
             let a = c
-                .acknowledge_alert(pb::AcknowledgeAlertRequest { alert_id: *id, acknowledged_by: by.clone(), note: note.clone() })
+                .acknowledge_alert(pb::AcknowledgeAlertRequest {
+                    alert_id: *id,
+                    acknowledged_by: by.clone(),
+                    note: note.clone(),
+                })
                 .await
                 .map_err(|s| UsageError(format!("alert {id}: {}", s.message())))?
                 .into_inner()
@@ -422,7 +517,12 @@ pub async fn alerts(cmd: &AlertsCommand) -> anyhow::Result<()> {
             println!("{}", alert_line(&a));
             Ok(())
         }
-        AlertsCommand::List { connect, channel, active, format } => {
+        AlertsCommand::List {
+            connect,
+            channel,
+            active,
+            format,
+        } => {
             let mut c = AlertServiceClient::new(client::connect(connect).await?);
             let mut after = 0;
             loop {
@@ -448,7 +548,13 @@ pub async fn alerts(cmd: &AlertsCommand) -> anyhow::Result<()> {
                 after = page.next_after_id;
             }
         }
-        AlertsCommand::Watch { connect, after, channel, min_severity, format } => {
+        AlertsCommand::Watch {
+            connect,
+            after,
+            channel,
+            min_severity,
+            format,
+        } => {
             let mut last = *after;
             let severity = match min_severity {
                 MinSeverity::Info => pb::Severity::Info,
@@ -466,11 +572,17 @@ pub async fn alerts(cmd: &AlertsCommand) -> anyhow::Result<()> {
                 };
                 let mut c = AlertServiceClient::new(channel_conn);
                 let stream = c
-                    .watch_alerts(pb::WatchAlertsRequest { after_id: last, channel_id: channel.clone().unwrap_or_default(), min_severity: severity })
+                    .watch_alerts(pb::WatchAlertsRequest {
+                        after_id: last,
+                        channel_id: channel.clone().unwrap_or_default(),
+                        min_severity: severity,
+                    })
                     .await;
                 let mut stream = match stream {
                     Ok(s) => s.into_inner(),
-                    Err(s) if s.code() == tonic::Code::NotFound => return Err(UsageError(s.message().to_string()).into()),
+                    Err(s) if s.code() == tonic::Code::NotFound => {
+                        return Err(UsageError(s.message().to_string()).into());
+                    }
                     Err(s) => {
                         eprintln!("watch: {}; retrying in 2 s", s.message());
                         tokio::time::sleep(Duration::from_secs(2)).await;
@@ -554,7 +666,9 @@ fn channel_to_pb(def: &gibbsline::channel::ChannelDef) -> pb::Channel {
         capacity_ah: def.capacity_ah,
         current_sign: match def.current_sign {
             gibbsline::estimator::CurrentSign::ChargePositive => pb::CurrentSign::ChargePositive,
-            gibbsline::estimator::CurrentSign::DischargePositive => pb::CurrentSign::DischargePositive,
+            gibbsline::estimator::CurrentSign::DischargePositive => {
+                pb::CurrentSign::DischargePositive
+            }
         } as i32,
         default_temp_c: def.default_temp_c,
         min_volts: def.min_volts,
@@ -572,28 +686,63 @@ fn channel_to_pb(def: &gibbsline::channel::ChannelDef) -> pb::Channel {
 fn print_channel(c: &pb::Channel) {
     println!(
         "{:<16} {:<16} cells {:<3} {:>6.2} Ah  window {:.3}–{:.3} V/cell  run {}  {}",
-        c.channel_id, c.chemistry_id, c.cells_in_series, c.capacity_ah, c.min_volts, c.max_volts, c.run_id, c.description
+        c.channel_id,
+        c.chemistry_id,
+        c.cells_in_series,
+        c.capacity_ah,
+        c.min_volts,
+        c.max_volts,
+        c.run_id,
+        c.description
     );
 }
 
 pub async fn channels(cmd: &ChannelsCommand) -> anyhow::Result<()> {
     match cmd {
         ChannelsCommand::Put { file, connect } => {
-            let text = std::fs::read_to_string(file).map_err(|e| UsageError(format!("{}: {e}", file.display())))?;
-            let parsed: ChannelsFile = toml::from_str(&text).map_err(|e| UsageError(format!("{}: {}", file.display(), e.to_string().replace('\n', " "))))?;
+            let text = std::fs::read_to_string(file)
+                .map_err(|e| UsageError(format!("{}: {e}", file.display())))?;
+            let parsed: ChannelsFile = toml::from_str(&text).map_err(|e| {
+                UsageError(format!(
+                    "{}: {}",
+                    file.display(),
+                    e.to_string().replace('\n', " ")
+                ))
+            })?;
             let conn = client::connect(connect).await?;
             let mut c = ChannelServiceClient::new(conn.clone());
             let mut alerts = AlertServiceClient::new(conn);
             for entry in parsed.channel {
                 let r = c
-                    .put_channel(pb::PutChannelRequest { channel: Some(channel_to_pb(&entry.def)) })
+                    .put_channel(pb::PutChannelRequest {
+                        channel: Some(channel_to_pb(&entry.def)),
+                    })
                     .await
-                    .map_err(|s| UsageError(format!("{}: channel {:?}: {}", file.display(), entry.def.channel_id, s.message())))?
+                    .map_err(|s| {
+                        UsageError(format!(
+                            "{}: channel {:?}: {}",
+                            file.display(),
+                            entry.def.channel_id,
+                            s.message()
+                        ))
+                    })?
                     .into_inner();
                 if let Some(rules) = entry.rules {
-                    let current = alerts.get_alert_rules(pb::GetAlertRulesRequest { channel_id: entry.def.channel_id.clone() }).await?.into_inner();
+                    let current = alerts
+                        .get_alert_rules(pb::GetAlertRulesRequest {
+                            channel_id: entry.def.channel_id.clone(),
+                        })
+                        .await?
+                        .into_inner();
                     let _ = current;
-                    let t = |t: gibbsline::alerts::Threshold| Some(pb::Threshold { enabled: t.enabled, raise_at: t.raise_at, clear_at: t.clear_at, hold_s: t.hold_s });
+                    let t = |t: gibbsline::alerts::Threshold| {
+                        Some(pb::Threshold {
+                            enabled: t.enabled,
+                            raise_at: t.raise_at,
+                            clear_at: t.clear_at,
+                            hold_s: t.hold_s,
+                        })
+                    };
                     let pb_rules = pb::AlertRules {
                         equilibrium_delta_g_kj_per_mol: t(rules.equilibrium_delta_g_kj_per_mol),
                         end_of_charge_soc: t(rules.end_of_charge_soc),
@@ -611,20 +760,40 @@ pub async fn channels(cmd: &ChannelsCommand) -> anyhow::Result<()> {
                         silent_min_s: rules.silent_min_s,
                     };
                     alerts
-                        .put_alert_rules(pb::PutAlertRulesRequest { channel_id: entry.def.channel_id.clone(), rules: Some(pb_rules) })
+                        .put_alert_rules(pb::PutAlertRulesRequest {
+                            channel_id: entry.def.channel_id.clone(),
+                            rules: Some(pb_rules),
+                        })
                         .await
-                        .map_err(|s| UsageError(format!("{}: rules of {:?}: {}", file.display(), entry.def.channel_id, s.message())))?;
+                        .map_err(|s| {
+                            UsageError(format!(
+                                "{}: rules of {:?}: {}",
+                                file.display(),
+                                entry.def.channel_id,
+                                s.message()
+                            ))
+                        })?;
                 }
                 let ch = r.channel.unwrap_or_default();
-                println!("{} {}", if r.new_run { "new run " } else { "updated " }, ch.channel_id);
+                println!(
+                    "{} {}",
+                    if r.new_run { "new run " } else { "updated " },
+                    ch.channel_id
+                );
             }
             Ok(())
         }
         ChannelsCommand::List { connect, format } => {
-            let list = ChannelServiceClient::new(client::connect(connect).await?).list_channels(pb::ListChannelsRequest {}).await?.into_inner();
+            let list = ChannelServiceClient::new(client::connect(connect).await?)
+                .list_channels(pb::ListChannelsRequest {})
+                .await?
+                .into_inner();
             for c in &list.channels {
                 match format {
-                    Format::Json => println!("{}", serde_json::json!({"channel_id": c.channel_id, "chemistry_id": c.chemistry_id, "cells_in_series": c.cells_in_series, "capacity_ah": c.capacity_ah, "run_id": c.run_id})),
+                    Format::Json => println!(
+                        "{}",
+                        serde_json::json!({"channel_id": c.channel_id, "chemistry_id": c.chemistry_id, "cells_in_series": c.cells_in_series, "capacity_ah": c.capacity_ah, "run_id": c.run_id})
+                    ),
                     _ => print_channel(c),
                 }
             }
@@ -632,7 +801,9 @@ pub async fn channels(cmd: &ChannelsCommand) -> anyhow::Result<()> {
         }
         ChannelsCommand::Get { id, connect } => {
             let c = ChannelServiceClient::new(client::connect(connect).await?)
-                .get_channel(pb::GetChannelRequest { channel_id: id.clone() })
+                .get_channel(pb::GetChannelRequest {
+                    channel_id: id.clone(),
+                })
                 .await
                 .map_err(|s| UsageError(s.message().to_string()))?
                 .into_inner()
@@ -656,19 +827,34 @@ pub struct CyclesArgs {
 
 pub async fn cycles(args: &CyclesArgs) -> anyhow::Result<()> {
     let r = HistoryServiceClient::new(client::connect(&args.connect).await?)
-        .list_cycles(pb::ListCyclesRequest { channel_id: args.channel.clone() })
+        .list_cycles(pb::ListCyclesRequest {
+            channel_id: args.channel.clone(),
+        })
         .await
         .map_err(|s| UsageError(s.message().to_string()))?
         .into_inner();
-    let pct = |v: Option<f64>| v.map(|x| format!("{:.1}", x * 100.0)).unwrap_or_else(|| "-".into());
+    let pct = |v: Option<f64>| {
+        v.map(|x| format!("{:.1}", x * 100.0))
+            .unwrap_or_else(|| "-".into())
+    };
     if args.format == Format::Table {
-        println!("{:>5} {:>9} {:>9} {:>9} {:>9} {:>6} {:>6} {:>6}", "cycle", "Ah in", "Ah out", "Wh in", "Wh out", "CE %", "EE %", "VE %");
+        println!(
+            "{:>5} {:>9} {:>9} {:>9} {:>9} {:>6} {:>6} {:>6}",
+            "cycle", "Ah in", "Ah out", "Wh in", "Wh out", "CE %", "EE %", "VE %"
+        );
     }
     for c in &r.cycles {
         match args.format {
             Format::Table => println!(
                 "{:>5} {:>9.4} {:>9.4} {:>9.4} {:>9.4} {:>6} {:>6} {:>6}",
-                c.index, c.charge_in_ah, c.charge_out_ah, c.energy_in_wh, c.energy_out_wh, pct(c.coulombic_efficiency), pct(c.energy_efficiency), pct(c.voltage_efficiency)
+                c.index,
+                c.charge_in_ah,
+                c.charge_out_ah,
+                c.energy_in_wh,
+                c.energy_out_wh,
+                pct(c.coulombic_efficiency),
+                pct(c.energy_efficiency),
+                pct(c.voltage_efficiency)
             ),
             _ => println!(
                 "{}",
@@ -697,12 +883,20 @@ pub enum RigCommand {
 }
 
 pub async fn rig_cmd(cmd: &RigCommand) -> anyhow::Result<()> {
-    let RigCommand::Simulate { connect, channels, speed, duration } = cmd;
+    let RigCommand::Simulate {
+        connect,
+        channels,
+        speed,
+        duration,
+    } = cmd;
     if *channels == 0 || *channels > 10_000 {
         return Err(UsageError(format!("--channels {channels}: must be from 1 to 10000")).into());
     }
     if !(speed.is_finite() && *speed > 0.0 && *speed <= 10_000.0) {
-        return Err(UsageError(format!("--speed {speed}: must be above 0 and at most 10000")).into());
+        return Err(UsageError(format!(
+            "--speed {speed}: must be above 0 and at most 10000"
+        ))
+        .into());
     }
     let sim = rig::harbour_lane(*channels, 11);
     rig::define_channels(connect, &sim).await?;
@@ -712,7 +906,12 @@ pub async fn rig_cmd(cmd: &RigCommand) -> anyhow::Result<()> {
         let _ = tokio::signal::ctrl_c().await;
         stop.stop.store(true, std::sync::atomic::Ordering::Relaxed);
     });
-    let opts = rig::RigOptions { speed: *speed, readings_per_sim_s: 1.0, duration: *duration, quiet: false };
+    let opts = rig::RigOptions {
+        speed: *speed,
+        readings_per_sim_s: 1.0,
+        duration: *duration,
+        quiet: false,
+    };
     rig::run(connect.clone(), sim, opts, stats.clone()).await?;
     use std::sync::atomic::Ordering::Relaxed;
     println!(

@@ -64,11 +64,20 @@ pub fn state_name(code: i32) -> &'static str {
 
 pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
     if !(args.speed.is_finite() && args.speed > 0.0 && args.speed <= 10_000.0) {
-        return Err(super::UsageError(format!("--speed {}: must be above 0 and at most 10000", args.speed)).into());
+        return Err(super::UsageError(format!(
+            "--speed {}: must be above 0 and at most 10000",
+            args.speed
+        ))
+        .into());
     }
     let listener = tokio::net::TcpListener::bind(&args.listen)
         .await
-        .map_err(|e| super::UsageError(format!("--listen {}: {e} (another server running? pick another address)", args.listen)))?;
+        .map_err(|e| {
+            super::UsageError(format!(
+                "--listen {}: {e} (another server running? pick another address)",
+                args.listen
+            ))
+        })?;
     let addr = listener.local_addr()?.to_string();
     let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
     let config = gibbsline::app::Config::new(args.db.clone(), gibbsline::store::Durability::Normal);
@@ -83,7 +92,12 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
     let rig_task = tokio::spawn(rig::run(
         addr.clone(),
         channels,
-        RigOptions { speed: args.speed, readings_per_sim_s: 1.0, duration: Some(args.duration), quiet: true },
+        RigOptions {
+            speed: args.speed,
+            readings_per_sim_s: 1.0,
+            duration: Some(args.duration),
+            quiet: true,
+        },
         stats.clone(),
     ));
 
@@ -91,7 +105,13 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
     let alert_lines: Arc<Mutex<Vec<String>>> = Arc::default();
     let lines = alert_lines.clone();
     let mut alerts = AlertServiceClient::new(channel.clone());
-    let mut watch = alerts.watch_alerts(pb::WatchAlertsRequest { after_id: u64::MAX >> 1, ..Default::default() }).await?.into_inner();
+    let mut watch = alerts
+        .watch_alerts(pb::WatchAlertsRequest {
+            after_id: u64::MAX >> 1,
+            ..Default::default()
+        })
+        .await?
+        .into_inner();
     let watcher = tokio::spawn(async move {
         while let Some(Ok(m)) = watch.next().await {
             let Some(a) = m.alert else { continue };
@@ -116,9 +136,19 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
     let tty = std::io::stdout().is_terminal();
     let started = tokio::time::Instant::now();
     let mut ctrl_c = Box::pin(tokio::signal::ctrl_c());
-    let mut redraw = tokio::time::interval(if tty { Duration::from_millis(500) } else { Duration::from_secs(10) });
-    println!("gibbsline demo: Harbour Lane bench (invented), {}× speed, database {}", args.speed, args.db.display());
-    println!("monitoring only, not a safety system: it never replaces interlocks, BMS cut-offs or gas detection.\n");
+    let mut redraw = tokio::time::interval(if tty {
+        Duration::from_millis(500)
+    } else {
+        Duration::from_secs(10)
+    });
+    println!(
+        "gibbsline demo: Harbour Lane bench (invented), {}× speed, database {}",
+        args.speed,
+        args.db.display()
+    );
+    println!(
+        "monitoring only, not a safety system: it never replaces interlocks, BMS cut-offs or gas detection.\n"
+    );
     loop {
         tokio::select! {
             _ = redraw.tick() => {}
@@ -130,9 +160,20 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
             "channel", "chemistry", "volts", "amps", "°C", "SOC %", "ΔG kJ/mol", "state"
         ));
         for id in &ids {
-            let Ok(state) = history.get_channel_state(pb::GetChannelStateRequest { channel_id: id.clone() }).await else { continue };
+            let Ok(state) = history
+                .get_channel_state(pb::GetChannelStateRequest {
+                    channel_id: id.clone(),
+                })
+                .await
+            else {
+                continue;
+            };
             let state = state.into_inner();
-            let chem = state.channel.as_ref().map(|c| c.chemistry_id.clone()).unwrap_or_default();
+            let chem = state
+                .channel
+                .as_ref()
+                .map(|c| c.chemistry_id.clone())
+                .unwrap_or_default();
             match state.latest {
                 Some(r) => {
                     let d = r.derived.unwrap_or_default();
@@ -143,7 +184,9 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
                         r.volts,
                         r.amps.unwrap_or(0.0),
                         r.temp_c.unwrap_or(f64::NAN),
-                        d.soc_fused.map(|s| format!("{:.1}", s * 100.0)).unwrap_or_else(|| "-".into()),
+                        d.soc_fused
+                            .map(|s| format!("{:.1}", s * 100.0))
+                            .unwrap_or_else(|| "-".into()),
                         d.delta_g_kj_per_mol,
                         state_name(d.state)
                     ));
@@ -194,7 +237,9 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
     println!("  gibbsline serve --db {} &", args.db.display());
     println!("  gibbsline state --connect 127.0.0.1:50051");
     println!("  gibbsline readings --connect 127.0.0.1:50051 --channel hl-vrb-1 --bucket 1m");
-    println!("  gibbsline readings --connect 127.0.0.1:50051 --channel hl-pem-stack --format csv > stack.csv");
+    println!(
+        "  gibbsline readings --connect 127.0.0.1:50051 --channel hl-pem-stack --format csv > stack.csv"
+    );
     println!("  gibbsline alerts list --connect 127.0.0.1:50051");
     println!("  gibbsline cycles --connect 127.0.0.1:50051 --channel hl-vrb-1");
     Ok(())

@@ -155,7 +155,9 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Cycles(args) => block_on(commands::cycles(&args)),
         Command::Config(ConfigCommand::Check { file }) => {
             let config = load_config(Some(&file), &std::collections::BTreeMap::new())?;
-            config.check_exposure().map_err(UsageError)?;
+            config
+                .check_exposure()
+                .map_err(|e| UsageError(format!("{}: {e}", file.display())))?;
             println!(
                 "{}: ok ({} channels, {} chemistries)",
                 file.display(),
@@ -290,17 +292,23 @@ pub fn parse_duration(text: &str) -> Result<std::time::Duration, String> {
     let t = text.trim();
     let split = t.find(|c: char| c.is_ascii_alphabetic()).unwrap_or(t.len());
     let (num, unit) = t.split_at(split);
-    let value: f64 = num.parse().map_err(|_| format!("{text:?} is not a duration like 90s, 5m or 2h"))?;
+    let value: f64 = num
+        .parse()
+        .map_err(|_| format!("{text:?} is not a duration like 90s, 5m or 2h"))?;
     let scale = match unit {
         "" | "s" => 1.0,
         "ms" => 1e-3,
         "m" | "min" => 60.0,
         "h" => 3600.0,
         "d" => 86_400.0,
-        other => return Err(format!("unknown unit {other:?} in {text:?} (use ms, s, m, h or d)")),
+        other => {
+            return Err(format!(
+                "unknown unit {other:?} in {text:?} (use ms, s, m, h or d)"
+            ));
+        }
     };
     let secs = value * scale;
-    if !(secs.is_finite() && secs >= 0.0 && secs < 1e9) {
+    if !(secs.is_finite() && (0.0..1e9).contains(&secs)) {
         return Err(format!("{text:?} is out of range"));
     }
     Ok(std::time::Duration::from_secs_f64(secs))

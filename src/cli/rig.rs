@@ -91,28 +91,38 @@ pub fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
         .cycle()
         .take(count)
         .enumerate()
-        .map(|(i, (id, chem_id, params, soc, drive, sign, description))| {
-            let chemistry = registry.get(chem_id).expect("scenario uses built-ins");
-            let channel_id = if i < 4 { id.to_string() } else { format!("{id}-{}", i / 4) };
-            SimChannel {
-                def: pb::Channel {
-                    channel_id,
-                    chemistry_id: chem_id.into(),
-                    cells_in_series: params.cells_in_series,
-                    capacity_ah: params.capacity_ah,
-                    current_sign: sign,
-                    default_temp_c: params.temp_k - 273.15,
-                    description: description.into(),
-                    ..Default::default()
-                },
-                chemistry,
-                cell: SimCell::new(params, soc, seed + i as u64),
-                drive,
-                sign: if sign == pb::CurrentSign::DischargePositive as i32 { -1.0 } else { 1.0 },
-                next_seq: 1,
-                pending: VecDeque::new(),
-            }
-        })
+        .map(
+            |(i, (id, chem_id, params, soc, drive, sign, description))| {
+                let chemistry = registry.get(chem_id).expect("scenario uses built-ins");
+                let channel_id = if i < 4 {
+                    id.to_string()
+                } else {
+                    format!("{id}-{}", i / 4)
+                };
+                SimChannel {
+                    def: pb::Channel {
+                        channel_id,
+                        chemistry_id: chem_id.into(),
+                        cells_in_series: params.cells_in_series,
+                        capacity_ah: params.capacity_ah,
+                        current_sign: sign,
+                        default_temp_c: params.temp_k - 273.15,
+                        description: description.into(),
+                        ..Default::default()
+                    },
+                    chemistry,
+                    cell: SimCell::new(params, soc, seed + i as u64),
+                    drive,
+                    sign: if sign == pb::CurrentSign::DischargePositive as i32 {
+                        -1.0
+                    } else {
+                        1.0
+                    },
+                    next_seq: 1,
+                    pending: VecDeque::new(),
+                }
+            },
+        )
         .collect()
 }
 
@@ -140,13 +150,22 @@ pub struct RigStats {
 pub async fn define_channels(addr: &str, channels: &[SimChannel]) -> anyhow::Result<()> {
     let mut client = ChannelServiceClient::new(client::connect(addr).await?);
     for ch in channels {
-        client.put_channel(pb::PutChannelRequest { channel: Some(ch.def.clone()) }).await?;
+        client
+            .put_channel(pb::PutChannelRequest {
+                channel: Some(ch.def.clone()),
+            })
+            .await?;
     }
     Ok(())
 }
 
 /// Streams until the duration passes or `stats.stop` is set.
-pub async fn run(addr: String, mut channels: Vec<SimChannel>, opts: RigOptions, stats: Arc<RigStats>) -> anyhow::Result<()> {
+pub async fn run(
+    addr: String,
+    mut channels: Vec<SimChannel>,
+    opts: RigOptions,
+    stats: Arc<RigStats>,
+) -> anyhow::Result<()> {
     let start_wall = tokio::time::Instant::now();
     let dt_sim_s = 1.0 / opts.readings_per_sim_s;
     let tick = Duration::from_millis(250);
@@ -160,7 +179,9 @@ pub async fn run(addr: String, mut channels: Vec<SimChannel>, opts: RigOptions, 
     let mut sim_ns = client::now_ns() - span_ns;
     let mut first_connect = true;
     'outer: loop {
-        if stats.stop.load(Ordering::Relaxed) || opts.duration.is_some_and(|d| start_wall.elapsed() >= d) {
+        if stats.stop.load(Ordering::Relaxed)
+            || opts.duration.is_some_and(|d| start_wall.elapsed() >= d)
+        {
             break;
         }
         let channel = match client::connect(&addr).await {
@@ -181,7 +202,12 @@ pub async fn run(addr: String, mut channels: Vec<SimChannel>, opts: RigOptions, 
         let mut history = pb::history_service_client::HistoryServiceClient::new(channel.clone());
         let mut resumed = true;
         for ch in channels.iter_mut() {
-            let point = match ingest.get_resume_point(pb::GetResumePointRequest { channel_id: ch.def.channel_id.clone() }).await {
+            let point = match ingest
+                .get_resume_point(pb::GetResumePointRequest {
+                    channel_id: ch.def.channel_id.clone(),
+                })
+                .await
+            {
                 Ok(p) => p.into_inner(),
                 Err(_) => {
                     resumed = false;
@@ -192,7 +218,11 @@ pub async fn run(addr: String, mut channels: Vec<SimChannel>, opts: RigOptions, 
                 ch.pending.retain(|r| r.seq > point.last_stored_seq);
                 ch.next_seq = ch.next_seq.max(point.last_stored_seq + 1);
                 if first_connect
-                    && let Ok(state) = history.get_channel_state(pb::GetChannelStateRequest { channel_id: ch.def.channel_id.clone() }).await
+                    && let Ok(state) = history
+                        .get_channel_state(pb::GetChannelStateRequest {
+                            channel_id: ch.def.channel_id.clone(),
+                        })
+                        .await
                 {
                     sim_ns = sim_ns.max(state.into_inner().last_seen_unix_ns + 1_000_000_000);
                 }
@@ -204,7 +234,9 @@ pub async fn run(addr: String, mut channels: Vec<SimChannel>, opts: RigOptions, 
         }
         first_connect = false;
         let (tx, rx) = tokio::sync::mpsc::channel::<pb::StreamReadingsRequest>(8);
-        let response = ingest.stream_readings(tokio_stream::wrappers::ReceiverStream::new(rx)).await;
+        let response = ingest
+            .stream_readings(tokio_stream::wrappers::ReceiverStream::new(rx))
+            .await;
         let Ok(response) = response else {
             tokio::time::sleep(Duration::from_secs(1)).await;
             continue;
@@ -214,7 +246,9 @@ pub async fn run(addr: String, mut channels: Vec<SimChannel>, opts: RigOptions, 
         let mut in_flight: HashMap<u64, (usize, u64)> = HashMap::new();
         let mut interval = tokio::time::interval(tick);
         loop {
-            if stats.stop.load(Ordering::Relaxed) || opts.duration.is_some_and(|d| start_wall.elapsed() >= d) {
+            if stats.stop.load(Ordering::Relaxed)
+                || opts.duration.is_some_and(|d| start_wall.elapsed() >= d)
+            {
                 // Wait briefly for outstanding acks, then finish.
                 let deadline = tokio::time::Instant::now() + Duration::from_secs(5);
                 while !in_flight.is_empty() {
@@ -294,7 +328,12 @@ pub async fn run(addr: String, mut channels: Vec<SimChannel>, opts: RigOptions, 
     Ok(())
 }
 
-fn settle(channels: &mut [SimChannel], in_flight: &mut HashMap<u64, (usize, u64)>, ack: &pb::BatchAck, stats: &RigStats) {
+fn settle(
+    channels: &mut [SimChannel],
+    in_flight: &mut HashMap<u64, (usize, u64)>,
+    ack: &pb::BatchAck,
+    stats: &RigStats,
+) {
     if !ack.rejected.is_empty() {
         tracing::warn!(channel_id = %ack.channel_id, rejected = ack.rejected.len(), first = %ack.rejected[0].reason, "readings rejected");
     }
@@ -304,6 +343,8 @@ fn settle(channels: &mut [SimChannel], in_flight: &mut HashMap<u64, (usize, u64)
         // in it is stored (or rejected, and would be rejected again).
         let before = ch.pending.len();
         ch.pending.retain(|r| r.seq > hi);
-        stats.acked.fetch_add((before - ch.pending.len()) as u64, Ordering::Relaxed);
+        stats
+            .acked
+            .fetch_add((before - ch.pending.len()) as u64, Ordering::Relaxed);
     }
 }

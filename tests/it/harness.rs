@@ -12,7 +12,11 @@ pub struct Server {
 
 impl Server {
     pub async fn start(db: &Path) -> Server {
-        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        Server::start_on(db, "127.0.0.1:0").await
+    }
+
+    pub async fn start_on(db: &Path, addr: &str) -> Server {
+        let listener = tokio::net::TcpListener::bind(addr).await.unwrap();
         let addr = listener.local_addr().unwrap();
         let (tx, rx) = oneshot::channel::<()>();
         let config = app::Config::new(db.to_path_buf(), gibbsline::store::Durability::Normal);

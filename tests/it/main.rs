@@ -2,5 +2,6 @@
 //! file, spoken to by a real tonic client.
 
 mod alerts;
+mod cli;
 mod harness;
 mod service;

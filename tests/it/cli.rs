@@ -1,0 +1,345 @@
+//! The real binary against a real server on loopback.
+
+use crate::harness::*;
+use gibbsline::pb;
+use gibbsline::pb::alert_service_client::AlertServiceClient;
+use gibbsline::pb::channel_service_client::ChannelServiceClient;
+use gibbsline::pb::history_service_client::HistoryServiceClient;
+use std::process::{Command, Stdio};
+use tokio_stream::StreamExt;
+
+fn bin() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_gibbsline"))
+}
+
+async fn stored(
+    history: &mut HistoryServiceClient<tonic::transport::Channel>,
+    channel: &str,
+) -> Vec<pb::StoredReading> {
+    let mut s = history
+        .query_readings(pb::QueryReadingsRequest {
+            channel_id: channel.into(),
+            ..Default::default()
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    let mut out = Vec::new();
+    while let Some(p) = s.next().await {
+        out.extend(p.unwrap().readings);
+    }
+    out
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn demo_stores_readings_and_raises_the_scenario_alerts() {
+    let (dir, db) = temp_db();
+    let out = tokio::task::spawn_blocking({
+        let db = db.clone();
+        move || {
+            bin()
+                .args([
+                    "demo",
+                    "--duration",
+                    "25s",
+                    "--speed",
+                    "240",
+                    "--listen",
+                    "127.0.0.1:0",
+                    "--db",
+                ])
+                .arg(&db)
+                .stdin(Stdio::null())
+                .output()
+                .unwrap()
+        }
+    })
+    .await
+    .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(stdout.contains("demo finished") && stdout.contains(&db.display().to_string()));
+
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    let mut history = HistoryServiceClient::new(ch.clone());
+    for id in ["hl-vrb-1", "hl-fecr-2", "hl-lfp-3", "hl-pem-stack"] {
+        assert!(stored(&mut history, id).await.len() > 1000, "{id}");
+    }
+    let alerts = AlertServiceClient::new(ch)
+        .list_alerts(pb::ListAlertsRequest {
+            limit: 10_000,
+            ..Default::default()
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    let kinds: std::collections::BTreeSet<i32> = alerts.alerts.iter().map(|a| a.kind).collect();
+    // 25 s at 240× is 100 simulated minutes: the vanadium cell (SOC 0.80,
+    // 1C) reaches end of charge, rests, and discharges to its floor.
+    for want in [
+        pb::AlertKind::EndOfCharge,
+        pb::AlertKind::RestSettled,
+        pb::AlertKind::EndOfDischarge,
+    ] {
+        assert!(
+            kinds.contains(&(want as i32)),
+            "missing {want:?} in {kinds:?}"
+        );
+    }
+    server.stop().await;
+    drop(dir);
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn csv_parses_back_to_stored_values() {
+    let (_dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    ChannelServiceClient::new(ch.clone())
+        .put_channel(pb::PutChannelRequest {
+            channel: Some(channel_def("csv-1", "vanadium-redox")),
+        })
+        .await
+        .unwrap();
+    let t0 = now_ns() - 100_000_000_000;
+    let readings: Vec<_> = (1..=50)
+        .map(|s| {
+            reading(
+                s,
+                t0 + s as i64 * 1_000_000_000,
+                1.30 + 0.001 * s as f64,
+                Some(if s < 25 { 0.5 } else { 0.0 }),
+            )
+        })
+        .collect();
+    let mut ingest = pb::ingest_service_client::IngestServiceClient::new(ch.clone());
+    let mut acks = ingest
+        .stream_readings(tokio_stream::iter(vec![pb::StreamReadingsRequest {
+            batch: Some(pb::ReadingBatch {
+                channel_id: "csv-1".into(),
+                batch_id: 1,
+                readings,
+            }),
+        }]))
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(
+        acks.next().await.unwrap().unwrap().ack.unwrap().accepted,
+        50
+    );
+    let addr = server.addr.to_string();
+    let out = tokio::task::spawn_blocking(move || {
+        bin()
+            .args([
+                "readings",
+                "--connect",
+                &addr,
+                "--channel",
+                "csv-1",
+                "--format",
+                "csv",
+            ])
+            .output()
+            .unwrap()
+    })
+    .await
+    .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let text = String::from_utf8(out.stdout).unwrap();
+    let mut lines = text.lines();
+    let header: Vec<_> = lines.next().unwrap().split(',').collect();
+    assert!(header.contains(&"volts_v") && header.contains(&"delta_g_kj_per_mol"));
+    let col = |name: &str| header.iter().position(|h| *h == name).unwrap();
+    let rows: Vec<Vec<String>> = lines
+        .map(|l| l.split(',').map(String::from).collect())
+        .collect();
+    let stored = stored(&mut HistoryServiceClient::new(ch), "csv-1").await;
+    assert_eq!(rows.len(), stored.len());
+    for (row, s) in rows.iter().zip(&stored) {
+        assert_eq!(row[col("seq")].parse::<u64>().unwrap(), s.seq);
+        assert_eq!(row[col("volts_v")].parse::<f64>().unwrap(), s.volts);
+        assert_eq!(
+            row[col("delta_g_kj_per_mol")].parse::<f64>().unwrap(),
+            s.derived.as_ref().unwrap().delta_g_kj_per_mol
+        );
+        assert_eq!(row[col("amps_a")].parse::<f64>().ok(), s.amps);
+    }
+    server.stop().await;
+}
+
+#[test]
+fn config_check_names_each_error() {
+    let dir = tempfile::tempdir().unwrap();
+    let good = r#"
+listen = "127.0.0.1:50999"
+[[channel]]
+channel_id = "hl-vrb-1"
+chemistry_id = "vanadium-redox"
+cells_in_series = 1
+current_sign = "charge_positive"
+min_volts = 0.5
+max_volts = 2.0
+"#;
+    let check = |text: &str| {
+        let path = dir.path().join("c.toml");
+        std::fs::write(&path, text).unwrap();
+        let out = bin().args(["config", "check"]).arg(&path).output().unwrap();
+        (
+            out.status.code(),
+            String::from_utf8_lossy(&out.stdout).to_string()
+                + &String::from_utf8_lossy(&out.stderr),
+        )
+    };
+    assert_eq!(check(good).0, Some(0));
+    let cases = [
+        (
+            "cells_in_series = 1",
+            "cells_in_series = 0",
+            "cells_in_series = 0",
+        ),
+        (
+            "chemistry_id = \"vanadium-redox\"",
+            "chemistry_id = \"marmite\"",
+            "chemistry_id",
+        ),
+        ("min_volts = 0.5", "min_volts = 0.5\nflavour = 1", "flavour"),
+        (
+            "current_sign = \"charge_positive\"",
+            "current_sign = \"upside_down\"",
+            "upside_down",
+        ),
+        (
+            "listen = \"127.0.0.1:50999\"",
+            "listen = \"0.0.0.0:50999\"",
+            "--allow-insecure",
+        ),
+        ("max_volts = 2.0", "max_volts = 0.2", "max_volts = 0.2"),
+        (
+            "listen = \"127.0.0.1:50999\"",
+            "listen = \"127.0.0.1:50999\"\ndurability = \"maybe\"",
+            "maybe",
+        ),
+    ];
+    for (from, to, expected) in cases {
+        let (code, text) = check(&good.replace(from, to));
+        assert_eq!(code, Some(2), "{to}: {text}");
+        assert!(
+            text.contains(expected),
+            "{to}: expected {expected:?} in {text}"
+        );
+        assert!(text.contains("c.toml"), "{text}");
+    }
+}
+
+#[test]
+fn unreachable_server_exits_3_and_bad_flags_exit_2() {
+    let out = bin()
+        .args(["state", "--connect", "127.0.0.1:9"])
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(3),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let out = bin()
+        .args(["eval", "--chemistry", "daniell", "--volts", "inf"])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("--volts inf"));
+    let out = bin()
+        .args(["eval", "--chemistry", "nope", "--volts", "1"])
+        .output()
+        .unwrap();
+    assert!(String::from_utf8_lossy(&out.stderr).contains("--chemistry \"nope\""));
+    let out = bin()
+        .args(["eval", "--chemistry", "daniell", "--volts", "1.1", "--json"])
+        .output()
+        .unwrap();
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    for field in [
+        "chemistry_id",
+        "n_electrons",
+        "temp_k",
+        "cell_volts",
+        "e_standard_v",
+        "delta_g_kj_per_mol",
+        "delta_g_standard_kj_per_mol",
+        "ln_q",
+        "log10_q",
+        "log10_k",
+        "affinity_ln_k_over_q",
+        "state",
+        "soc",
+        "soc_model",
+        "soc_clamped",
+    ] {
+        assert!(v.get(field).is_some(), "missing {field}");
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn rig_simulate_resumes_after_restart_without_gaps_or_duplicates() {
+    let (_dir, db) = temp_db();
+    let probe = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
+    let addr = probe.local_addr().unwrap().to_string();
+    drop(probe);
+    let server = Server::start_on(&db, &addr).await;
+    let _ = server.channel().await;
+    let rig = bin()
+        .args([
+            "rig",
+            "simulate",
+            "--connect",
+            &addr,
+            "--channels",
+            "2",
+            "--speed",
+            "200",
+            "--duration",
+            "12s",
+        ])
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    tokio::time::sleep(std::time::Duration::from_secs(4)).await;
+    server.stop().await;
+    tokio::time::sleep(std::time::Duration::from_secs(2)).await;
+    let server = Server::start_on(&db, &addr).await;
+    let out = tokio::task::spawn_blocking(move || rig.wait_with_output().unwrap())
+        .await
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout).to_string();
+    assert!(out.status.success(), "{stdout}");
+    assert!(
+        !stdout.contains(" 0 reconnects"),
+        "the rig never reconnected: {stdout}"
+    );
+    let mut history = HistoryServiceClient::new(server.channel().await);
+    for id in ["hl-vrb-1", "hl-fecr-2"] {
+        let rows = stored(&mut history, id).await;
+        assert!(rows.len() > 500, "{id}: {}", rows.len());
+        let mut seqs: Vec<u64> = rows.iter().map(|r| r.seq).collect();
+        seqs.sort_unstable();
+        let expected: Vec<u64> = (1..=seqs.len() as u64).collect();
+        assert_eq!(seqs, expected, "{id}: gaps or duplicates");
+        assert!(
+            rows.iter()
+                .all(|r| !r.derived.as_ref().unwrap().out_of_order)
+        );
+    }
+    server.stop().await;
+}
