@@ -3,5 +3,6 @@
 
 mod alerts;
 mod cli;
+mod crash;
 mod harness;
 mod service;
