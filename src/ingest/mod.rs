@@ -21,6 +21,9 @@ pub use writer::{Job, ReadingsJob, WriteOutcome};
 pub const MAX_BATCH_READINGS: usize = 10_000;
 /// A reading may be at most this far in the future (clock skew allowance).
 pub const MAX_FUTURE_NS: i64 = 86_400 * 1_000_000_000;
+/// Readings stamped before 2000-01-01T00:00:00Z come from a rig whose clock
+/// was never set; storing them would misplace them in every query.
+pub const MIN_TIME_NS: i64 = 946_684_800 * 1_000_000_000;
 
 #[derive(Debug, thiserror::Error)]
 pub enum IngestError {
@@ -80,7 +83,7 @@ pub struct Ack {
 }
 
 /// Live state of one channel.
-#[derive(Debug)]
+#[derive(Debug, Clone)]
 pub struct ChannelRuntime {
     pub key: i64,
     pub def: ChannelDef,
@@ -100,6 +103,32 @@ pub struct ChannelRuntime {
     /// replayed or accelerated; the server's clock is what "silent" means).
     pub last_arrival_wall_ns: i64,
     pub usual_arrival_interval_s: f64,
+}
+
+impl ChannelRuntime {
+    /// A channel with no history (tests, fuzzing, first definition).
+    pub fn fresh(
+        key: i64,
+        def: ChannelDef,
+        chemistry: Arc<Chemistry>,
+        run_id: i64,
+    ) -> ChannelRuntime {
+        ChannelRuntime {
+            key,
+            est_config: def.estimator_config(),
+            rules: AlertRules::defaults_for(chemistry.min_cell_volts, chemistry.max_cell_volts),
+            def,
+            chemistry,
+            run_id,
+            est: EstimatorState::default(),
+            rule_state: ChannelRuleState::default(),
+            max_seq: None,
+            last_time_ns: 0,
+            usual_interval_s: 0.0,
+            last_arrival_wall_ns: 0,
+            usual_arrival_interval_s: 0.0,
+        }
+    }
 }
 
 /// Shared state of the service.
@@ -302,6 +331,15 @@ pub struct DerivedBatch {
     pub estimator: Option<writer::EstimatorSnapshot>,
 }
 
+/// Shows a value readably in an error, however large.
+fn shown(v: f64) -> String {
+    if v.is_finite() && v.abs() >= 1e6 {
+        format!("{v:.3e}")
+    } else {
+        format!("{v}")
+    }
+}
+
 fn check_reading(
     rt: &ChannelRuntime,
     r: &RawReading,
@@ -318,8 +356,11 @@ fn check_reading(
         return Err((
             "volts",
             format!(
-                "volts = {}: {cell:.4} V per cell is outside the channel's plausibility window {}–{} V",
-                r.volts, rt.def.min_volts, rt.def.max_volts
+                "volts = {}: {} V per cell is outside the channel's plausibility window {}–{} V",
+                shown(r.volts),
+                shown((cell * 1e4).round() / 1e4),
+                rt.def.min_volts,
+                rt.def.max_volts
             ),
         ));
     }
@@ -333,14 +374,14 @@ fn check_reading(
     {
         return Err((
             "temp_c",
-            format!("temp_c = {t}: must be from -100 to 200 °C"),
+            format!("temp_c = {}: must be from -100 to 200 °C", shown(t)),
         ));
     }
-    if r.time_unix_ns <= 0 {
+    if r.time_unix_ns < MIN_TIME_NS {
         return Err((
             "time_unix_ns",
             format!(
-                "time_unix_ns = {}: must be after 1970-01-01",
+                "time_unix_ns = {}: before 2000-01-01; is the rig's clock set?",
                 r.time_unix_ns
             ),
         ));

@@ -5,4 +5,5 @@ mod alerts;
 mod cli;
 mod crash;
 mod harness;
+mod hostile;
 mod service;

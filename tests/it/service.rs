@@ -174,7 +174,7 @@ async fn bad_input_is_answered_and_costs_no_good_reading() {
             temp_c: Some(250.0),
             ..reading(4, t + 3_000_000_000, 1.08, None)
         },
-        reading(5, -5, 1.08, None), // time before 1970
+        reading(5, -5, 1.08, None), // time before 2000
         reading(6, now_ns() + 3 * 86_400_000_000_000, 1.08, None), // far future
         pb::Reading {
             amps: Some(f64::INFINITY),
