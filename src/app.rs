@@ -26,6 +26,17 @@ pub struct Config {
     pub channels: Vec<crate::config::ChannelEntry>,
     /// Prometheus text endpoint.
     pub metrics_listener: Option<TcpListener>,
+    /// Bearer tokens; none means an open server (loopback use).
+    pub tokens: Vec<crate::auth::TokenSpec>,
+    /// PEM certificate, key and optional client CA.
+    pub tls: Option<TlsPem>,
+}
+
+#[derive(Debug, Clone)]
+pub struct TlsPem {
+    pub cert: Vec<u8>,
+    pub key: Vec<u8>,
+    pub client_ca: Option<Vec<u8>>,
 }
 
 impl Config {
@@ -36,6 +47,8 @@ impl Config {
             extra_chemistries: vec![],
             channels: vec![],
             metrics_listener: None,
+            tokens: vec![],
+            tls: None,
         }
     }
 }
@@ -57,6 +70,8 @@ pub enum AppError {
     Transport(#[from] tonic::transport::Error),
     #[error("reflection: {0}")]
     Reflection(String),
+    #[error("config: {0}")]
+    Config(String),
 }
 
 pub async fn run(
@@ -95,6 +110,7 @@ pub async fn run(
         events: events.clone(),
         shutdown: shutdown_rx,
         metrics: Arc::new(crate::metrics::Metrics::default()),
+        auth: crate::auth::TokenTable::new(&config.tokens).map_err(AppError::Config)?,
     });
     for entry in config.channels {
         let id = entry.def.channel_id.clone();
@@ -149,7 +165,16 @@ pub async fn run(
     tracing::info!(?addr, db = %config.db_path.display(), "serving");
     let incoming = tokio_stream::wrappers::TcpListenerStream::new(listener);
     let reporter = health_reporter.clone();
-    let serve = tonic::transport::Server::builder()
+    let mut builder = tonic::transport::Server::builder();
+    if let Some(tls) = &config.tls {
+        let mut tls_config = tonic::transport::ServerTlsConfig::new()
+            .identity(tonic::transport::Identity::from_pem(&tls.cert, &tls.key));
+        if let Some(ca) = &tls.client_ca {
+            tls_config = tls_config.client_ca_root(tonic::transport::Certificate::from_pem(ca));
+        }
+        builder = builder.tls_config(tls_config)?;
+    }
+    let serve = builder
         .add_service(health_service)
         .add_service(reflection_v1)
         .add_service(reflection_v1alpha)

@@ -20,10 +20,23 @@ pub struct ConfigFile {
     pub metrics_listen: Option<String>,
     #[serde(default)]
     pub allow_insecure: bool,
+    pub tls: Option<TlsSpec>,
+    #[serde(default)]
+    pub token: Vec<crate::auth::TokenSpec>,
     #[serde(default)]
     pub chemistry: Vec<ChemistrySpec>,
     #[serde(default)]
     pub channel: Vec<ChannelEntry>,
+}
+
+/// Certificate and key (PEM files); `client_ca` turns on client
+/// certificates (mTLS): only clients signed by it may connect.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TlsSpec {
+    pub cert: String,
+    pub key: String,
+    pub client_ca: Option<String>,
 }
 
 /// A channel with optional rules.
@@ -43,6 +56,8 @@ pub struct ServerConfig {
     pub durability: Durability,
     pub metrics_listen: Option<String>,
     pub allow_insecure: bool,
+    pub tls: Option<TlsSpec>,
+    pub token: Vec<crate::auth::TokenSpec>,
     pub chemistry: Vec<ChemistrySpec>,
     pub channel: Vec<ChannelEntry>,
 }
@@ -135,6 +150,8 @@ pub fn resolve(
         .cloned()
         .or(file.db)
         .unwrap_or_else(|| DEFAULT_DB.into());
+    crate::auth::TokenTable::new(&file.token)
+        .map_err(|e| fail(table_line(text, "[[token]]", 0), e))?;
     let mut registry = Registry::builtin();
     for (i, spec) in file.chemistry.iter().enumerate() {
         let line = table_line(text, "[[chemistry]]", i);
@@ -171,6 +188,8 @@ pub fn resolve(
         durability,
         metrics_listen,
         allow_insecure,
+        tls: file.tls,
+        token: file.token,
         chemistry: file.chemistry,
         channel: file.channel,
     })
@@ -183,10 +202,10 @@ impl ServerConfig {
             .listen
             .parse()
             .map_err(|_| format!("listen = {:?}", self.listen))?;
-        if !addr.ip().is_loopback() && !self.allow_insecure {
+        if !addr.ip().is_loopback() && self.tls.is_none() && !self.allow_insecure {
             return Err(format!(
-                "listen = {}: not a loopback address, and this build serves plain-text gRPC only; \
-                 put it behind a TLS-terminating proxy and pass --allow-insecure (or allow_insecure = true) to confirm",
+                "listen = {}: not a loopback address and no [tls] is configured; \
+                 set [tls] cert and key, or pass --allow-insecure (allow_insecure = true) if a proxy or mesh provides TLS",
                 self.listen
             ));
         }

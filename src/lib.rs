@@ -6,6 +6,7 @@
 
 pub mod alerts;
 pub mod app;
+pub mod auth;
 pub mod channel;
 pub mod config;
 pub mod electrochem;

@@ -1,6 +1,10 @@
-//! Connecting to a server from the client commands.
+//! Connecting to a server from the client commands. `https://` addresses
+//! use TLS (`GIBBSLINE_CA_FILE` for a private CA; `GIBBSLINE_CLIENT_CERT`
+//! and `GIBBSLINE_CLIENT_KEY` for client certificates); `GIBBSLINE_TOKEN`
+//! is sent as a bearer token on every call.
 
-use tonic::transport::{Channel, Endpoint};
+use tonic::service::interceptor::InterceptedService;
+use tonic::transport::{Certificate, Channel, ClientTlsConfig, Endpoint, Identity};
 
 /// The server could not be reached: exit code 3.
 #[derive(Debug, thiserror::Error)]
@@ -10,22 +14,71 @@ pub struct Unreachable {
     pub reason: String,
 }
 
-pub async fn connect(addr: &str) -> anyhow::Result<Channel> {
+/// Adds the bearer token, if any, to each request.
+#[derive(Clone)]
+pub struct Token(Option<tonic::metadata::MetadataValue<tonic::metadata::Ascii>>);
+
+impl tonic::service::Interceptor for Token {
+    fn call(
+        &mut self,
+        mut request: tonic::Request<()>,
+    ) -> Result<tonic::Request<()>, tonic::Status> {
+        if let Some(v) = &self.0 {
+            request.metadata_mut().insert("authorization", v.clone());
+        }
+        Ok(request)
+    }
+}
+
+pub type Conn = InterceptedService<Channel, Token>;
+
+fn read_env_file(var: &str) -> anyhow::Result<Option<Vec<u8>>> {
+    match std::env::var(var) {
+        Ok(path) => {
+            Ok(Some(std::fs::read(&path).map_err(|e| {
+                super::UsageError(format!("{var}={path}: {e}"))
+            })?))
+        }
+        Err(_) => Ok(None),
+    }
+}
+
+pub async fn connect(addr: &str) -> anyhow::Result<Conn> {
     let url = if addr.starts_with("http://") || addr.starts_with("https://") {
         addr.to_string()
     } else {
         format!("http://{addr}")
     };
-    let endpoint = Endpoint::from_shared(url.clone())
+    let mut endpoint = Endpoint::from_shared(url.clone())
         .map_err(|e| super::UsageError(format!("--connect {addr}: {e}")))?
         .connect_timeout(std::time::Duration::from_secs(5));
-    endpoint.connect().await.map_err(|e| {
-        Unreachable {
-            addr: addr.to_string(),
-            reason: e.to_string(),
+    if url.starts_with("https://") {
+        let mut tls = ClientTlsConfig::new();
+        if let Some(ca) = read_env_file("GIBBSLINE_CA_FILE")? {
+            tls = tls.ca_certificate(Certificate::from_pem(ca));
         }
-        .into()
-    })
+        if let (Some(cert), Some(key)) = (
+            read_env_file("GIBBSLINE_CLIENT_CERT")?,
+            read_env_file("GIBBSLINE_CLIENT_KEY")?,
+        ) {
+            tls = tls.identity(Identity::from_pem(cert, key));
+        }
+        endpoint = endpoint
+            .tls_config(tls)
+            .map_err(|e| super::UsageError(format!("--connect {addr}: {e}")))?;
+    }
+    let token =
+        match std::env::var("GIBBSLINE_TOKEN") {
+            Ok(t) => Some(format!("Bearer {t}").parse().map_err(|_| {
+                super::UsageError("GIBBSLINE_TOKEN: not a valid header value".into())
+            })?),
+            Err(_) => None,
+        };
+    let channel = endpoint.connect().await.map_err(|e| Unreachable {
+        addr: addr.to_string(),
+        reason: e.to_string(),
+    })?;
+    Ok(InterceptedService::new(channel, Token(token)))
 }
 
 pub fn now_ns() -> i64 {

@@ -251,6 +251,25 @@ fn serve(args: &ServeArgs) -> anyhow::Result<()> {
             extra_chemistries: extra,
             channels: config.channel.clone(),
             metrics_listener,
+            tokens: config.token.clone(),
+            tls: match &config.tls {
+                Some(t) => {
+                    let read = |what: &str, path: &str| {
+                        std::fs::read(path)
+                            .map_err(|e| UsageError(format!("tls.{what} = {path:?}: {e}")))
+                    };
+                    Some(app::TlsPem {
+                        cert: read("cert", &t.cert)?,
+                        key: read("key", &t.key)?,
+                        client_ca: t
+                            .client_ca
+                            .as_deref()
+                            .map(|p| read("client_ca", p))
+                            .transpose()?,
+                    })
+                }
+                None => None,
+            },
         };
         app::run(app_config, listener, shutdown_signal()).await?;
         Ok(())

@@ -5,6 +5,7 @@
 pub mod status;
 
 use crate::alerts::{AlertKind, AlertRules, Severity, Threshold};
+use crate::auth::{self, AuthError, Permission, Principal};
 use crate::channel::ChannelDef;
 use crate::electrochem::{self, EvalRequest};
 use crate::estimator::{self, CurrentSign};
@@ -31,6 +32,23 @@ pub struct Api {
 const STREAM_RESPONSE_BUFFER: usize = 16;
 /// Per-subscriber backlog for WatchAlerts; past it the subscriber is told to resume.
 pub const SUBSCRIBER_BUFFER: usize = 1024;
+
+fn deny(e: AuthError, rpc: &'static str) -> Status {
+    match &e {
+        AuthError::Missing | AuthError::Unknown => {
+            tracing::warn!(rpc, reason = %e, "request denied: not authenticated");
+            Status::unauthenticated(e.to_string())
+        }
+        AuthError::Forbidden { role, .. } => {
+            tracing::warn!(rpc, role, "request denied: role lacks permission");
+            Status::permission_denied(e.to_string())
+        }
+        AuthError::ChannelNotGranted { .. } => {
+            tracing::warn!(rpc, role = "rig", reason = %e, "request denied: channel not granted");
+            Status::permission_denied(e.to_string())
+        }
+    }
+}
 
 fn sign_from_pb(code: i32) -> Result<CurrentSign, Status> {
     match pb::CurrentSign::try_from(code) {
@@ -249,6 +267,23 @@ fn rules_from_pb(r: pb::AlertRules) -> Result<AlertRules, Status> {
 }
 
 impl Api {
+    /// Checks the caller's token; denials are logged with role and RPC only.
+    fn authorize<T>(
+        &self,
+        request: &Request<T>,
+        permission: Permission,
+        rpc: &'static str,
+    ) -> Result<Option<Principal>, Status> {
+        let header = request
+            .metadata()
+            .get("authorization")
+            .and_then(|v| v.to_str().ok());
+        self.hub
+            .auth
+            .check(header, permission, rpc)
+            .map_err(|e| deny(e, rpc))
+    }
+
     async fn runs_of(&self, channel_key: i64) -> Result<HashMap<i64, RunRow>, Status> {
         Ok(store::get_runs(&self.hub.store.reader, channel_key)
             .await?
@@ -273,6 +308,7 @@ impl pb::channel_service_server::ChannelService for Api {
         &self,
         request: Request<pb::PutChannelRequest>,
     ) -> Result<Response<pb::PutChannelResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Administer, "PutChannel")?;
         let c = request
             .into_inner()
             .channel
@@ -324,6 +360,7 @@ impl pb::channel_service_server::ChannelService for Api {
         &self,
         request: Request<pb::GetChannelRequest>,
     ) -> Result<Response<pb::GetChannelResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Read, "GetChannel")?;
         let rt = self.hub.channel(&request.into_inner().channel_id)?;
         let g = rt.lock().expect("channel state poisoned");
         Ok(Response::new(pb::GetChannelResponse {
@@ -333,8 +370,9 @@ impl pb::channel_service_server::ChannelService for Api {
 
     async fn list_channels(
         &self,
-        _: Request<pb::ListChannelsRequest>,
+        request: Request<pb::ListChannelsRequest>,
     ) -> Result<Response<pb::ListChannelsResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Read, "ListChannels")?;
         let map = self.hub.channels.read().expect("channel map poisoned");
         let mut channels: Vec<_> = map
             .values()
@@ -356,6 +394,7 @@ impl pb::ingest_service_server::IngestService for Api {
         &self,
         request: Request<Streaming<pb::StreamReadingsRequest>>,
     ) -> Result<Response<Self::StreamReadingsStream>, Status> {
+        let principal = self.authorize(&request, Permission::Ingest, "StreamReadings")?;
         let mut inbound = request.into_inner();
         let shutdown = self.hub.shutdown.clone();
         if *shutdown.borrow() {
@@ -394,6 +433,10 @@ impl pb::ingest_service_server::IngestService for Api {
                         .await;
                     continue;
                 };
+                if let Err(e) = auth::check_channel(principal.as_ref(), &batch.channel_id) {
+                    let _ = tx.send(Err(deny(e, "StreamReadings"))).await;
+                    break;
+                }
                 let readings: Vec<RawReading> = batch
                     .readings
                     .iter()
@@ -466,7 +509,11 @@ impl pb::ingest_service_server::IngestService for Api {
         &self,
         request: Request<pb::GetResumePointRequest>,
     ) -> Result<Response<pb::GetResumePointResponse>, Status> {
-        let rt = self.hub.channel(&request.into_inner().channel_id)?;
+        let principal = self.authorize(&request, Permission::Ingest, "GetResumePoint")?;
+        let channel_id = request.into_inner().channel_id;
+        auth::check_channel(principal.as_ref(), &channel_id)
+            .map_err(|e| deny(e, "GetResumePoint"))?;
+        let rt = self.hub.channel(&channel_id)?;
         let max = rt.lock().expect("channel state poisoned").max_seq;
         Ok(Response::new(pb::GetResumePointResponse {
             last_stored_seq: max.unwrap_or(0),
@@ -487,6 +534,7 @@ impl pb::history_service_server::HistoryService for Api {
         &self,
         request: Request<pb::QueryReadingsRequest>,
     ) -> Result<Response<Self::QueryReadingsStream>, Status> {
+        let _principal = self.authorize(&request, Permission::Read, "QueryReadings")?;
         let q = request.into_inner();
         let (_, key) = self.key_of(&q.channel_id)?;
         let end = if q.end_unix_ns == 0 {
@@ -532,6 +580,7 @@ impl pb::history_service_server::HistoryService for Api {
         &self,
         request: Request<pb::QueryBucketsRequest>,
     ) -> Result<Response<pb::QueryBucketsResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Read, "QueryBuckets")?;
         let q = request.into_inner();
         let (_, key) = self.key_of(&q.channel_id)?;
         if q.bucket_width_ns <= 0 {
@@ -605,6 +654,7 @@ impl pb::history_service_server::HistoryService for Api {
         &self,
         request: Request<pb::GetChannelStateRequest>,
     ) -> Result<Response<pb::GetChannelStateResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Read, "GetChannelState")?;
         let q = request.into_inner();
         let (rt, key) = self.key_of(&q.channel_id)?;
         let latest = store::latest_reading(&self.hub.store.reader, key).await?;
@@ -673,6 +723,7 @@ impl pb::history_service_server::HistoryService for Api {
         &self,
         request: Request<pb::ListCyclesRequest>,
     ) -> Result<Response<pb::ListCyclesResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Read, "ListCycles")?;
         let (_, key) = self.key_of(&request.into_inner().channel_id)?;
         let rows = store::list_cycles(&self.hub.store.reader, key).await?;
         let mut cycles = Vec::with_capacity(rows.len());
@@ -705,8 +756,9 @@ impl pb::history_service_server::HistoryService for Api {
 impl pb::chemistry_service_server::ChemistryService for Api {
     async fn list_chemistries(
         &self,
-        _: Request<pb::ListChemistriesRequest>,
+        request: Request<pb::ListChemistriesRequest>,
     ) -> Result<Response<pb::ListChemistriesResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Read, "ListChemistries")?;
         let registry = self.hub.registry.read().expect("registry poisoned").clone();
         let chemistries = registry
             .iter()
@@ -734,6 +786,7 @@ impl pb::chemistry_service_server::ChemistryService for Api {
         &self,
         request: Request<pb::EvaluateRequest>,
     ) -> Result<Response<pb::EvaluateResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Read, "Evaluate")?;
         let q = request.into_inner();
         let registry = self.hub.registry.read().expect("registry poisoned").clone();
         let chem = registry
@@ -809,6 +862,7 @@ impl pb::alert_service_server::AlertService for Api {
         &self,
         request: Request<pb::WatchAlertsRequest>,
     ) -> Result<Response<Self::WatchAlertsStream>, Status> {
+        let _principal = self.authorize(&request, Permission::Read, "WatchAlerts")?;
         let q = request.into_inner();
         if !q.channel_id.is_empty() {
             self.hub.channel(&q.channel_id)?;
@@ -925,6 +979,7 @@ impl pb::alert_service_server::AlertService for Api {
         &self,
         request: Request<pb::ListAlertsRequest>,
     ) -> Result<Response<pb::ListAlertsResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Read, "ListAlerts")?;
         let q = request.into_inner();
         let key = if q.channel_id.is_empty() {
             None
@@ -960,6 +1015,7 @@ impl pb::alert_service_server::AlertService for Api {
         &self,
         request: Request<pb::AcknowledgeAlertRequest>,
     ) -> Result<Response<pb::AcknowledgeAlertResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Operate, "AcknowledgeAlert")?;
         let q = request.into_inner();
         if q.acknowledged_by.trim().is_empty() || q.acknowledged_by.len() > 200 {
             return Err(invalid(
@@ -996,6 +1052,7 @@ impl pb::alert_service_server::AlertService for Api {
         &self,
         request: Request<pb::GetAlertRulesRequest>,
     ) -> Result<Response<pb::GetAlertRulesResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Read, "GetAlertRules")?;
         let rt = self.hub.channel(&request.into_inner().channel_id)?;
         let rules = rt.lock().expect("channel state poisoned").rules;
         Ok(Response::new(pb::GetAlertRulesResponse {
@@ -1007,6 +1064,7 @@ impl pb::alert_service_server::AlertService for Api {
         &self,
         request: Request<pb::PutAlertRulesRequest>,
     ) -> Result<Response<pb::PutAlertRulesResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Operate, "PutAlertRules")?;
         let q = request.into_inner();
         let (rt, key) = self.key_of(&q.channel_id)?;
         let rules = rules_from_pb(

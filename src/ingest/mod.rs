@@ -142,6 +142,7 @@ pub struct Hub {
     /// the batch in hand and end with UNAVAILABLE.
     pub shutdown: tokio::sync::watch::Receiver<bool>,
     pub metrics: Arc<crate::metrics::Metrics>,
+    pub auth: crate::auth::TokenTable,
 }
 
 /// Resolves once `stop` turns true (never, if its sender is gone without it).

@@ -6,4 +6,5 @@ mod cli;
 mod crash;
 mod harness;
 mod hostile;
+mod security;
 mod service;

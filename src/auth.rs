@@ -1,0 +1,316 @@
+//! Bearer tokens with roles. Pure: the table is built from the config and
+//! asked one question per call: may this token do this, on this channel?
+//!
+//! Tokens are stored as SHA-256 digests (hex) and compared in constant
+//! time, so neither the config file nor a timing side channel gives one
+//! away. Callers log denials with the role and the RPC, never the token.
+
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Role {
+    /// Streams readings for the channels it is granted.
+    Rig,
+    /// History, state, chemistries, alerts (read).
+    Viewer,
+    /// Viewer, plus acknowledging alerts and editing rules.
+    Operator,
+    /// Everything, including channel definitions.
+    Admin,
+}
+
+impl Role {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Role::Rig => "rig",
+            Role::Viewer => "viewer",
+            Role::Operator => "operator",
+            Role::Admin => "admin",
+        }
+    }
+}
+
+/// What a call needs.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Permission {
+    Ingest,
+    Read,
+    Operate,
+    Administer,
+}
+
+impl Permission {
+    fn allowed(self, role: Role) -> bool {
+        match (self, role) {
+            (_, Role::Admin) => true,
+            (Permission::Ingest, Role::Rig) => true,
+            (Permission::Read, Role::Viewer | Role::Operator) => true,
+            (Permission::Operate, Role::Operator) => true,
+            _ => false,
+        }
+    }
+}
+
+/// One token as written in the config.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TokenSpec {
+    /// Who holds it (logged on denial).
+    pub name: String,
+    pub role: Role,
+    /// Hex SHA-256 of the token (`gibbsline token hash` prints it).
+    pub sha256: String,
+    /// For rigs: the channels it may stream; empty means all.
+    #[serde(default)]
+    pub channels: Vec<String>,
+}
+
+#[derive(Debug, Clone)]
+struct Entry {
+    digest: [u8; 32],
+    name: String,
+    role: Role,
+    channels: Vec<String>,
+}
+
+#[derive(Debug, Clone, Default)]
+pub struct TokenTable {
+    entries: Vec<Entry>,
+}
+
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Principal {
+    pub name: String,
+    pub role: Role,
+    pub channels: Vec<String>,
+}
+
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum AuthError {
+    #[error("a bearer token is required (metadata `authorization: Bearer …`)")]
+    Missing,
+    #[error("the bearer token is not recognised")]
+    Unknown,
+    #[error("role {role} may not call {rpc}")]
+    Forbidden {
+        role: &'static str,
+        rpc: &'static str,
+    },
+    #[error("role rig ({name}) is not granted channel {channel:?}")]
+    ChannelNotGranted { name: String, channel: String },
+}
+
+pub fn sha256_hex(token: &str) -> String {
+    Sha256::digest(token.as_bytes())
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect()
+}
+
+fn parse_hex32(text: &str) -> Option<[u8; 32]> {
+    if text.len() != 64 {
+        return None;
+    }
+    let mut out = [0u8; 32];
+    for (i, byte) in out.iter_mut().enumerate() {
+        *byte = u8::from_str_radix(text.get(2 * i..2 * i + 2)?, 16).ok()?;
+    }
+    Some(out)
+}
+
+/// Equal in time independent of where the inputs differ.
+fn ct_eq(a: &[u8; 32], b: &[u8; 32]) -> bool {
+    let mut diff = 0u8;
+    for (x, y) in a.iter().zip(b) {
+        diff |= x ^ y;
+    }
+    std::hint::black_box(diff) == 0
+}
+
+impl TokenTable {
+    pub fn new(specs: &[TokenSpec]) -> Result<TokenTable, String> {
+        let entries = specs
+            .iter()
+            .enumerate()
+            .map(|(i, s)| {
+                let digest = parse_hex32(&s.sha256.to_ascii_lowercase()).ok_or_else(|| {
+                    format!(
+                        "token[{i}] ({:?}).sha256: must be 64 hex digits (a SHA-256 digest)",
+                        s.name
+                    )
+                })?;
+                Ok(Entry {
+                    digest,
+                    name: s.name.clone(),
+                    role: s.role,
+                    channels: s.channels.clone(),
+                })
+            })
+            .collect::<Result<Vec<_>, String>>()?;
+        Ok(TokenTable { entries })
+    }
+
+    /// No tokens configured: the server is open (loopback use).
+    pub fn is_open(&self) -> bool {
+        self.entries.is_empty()
+    }
+
+    /// Who presents `authorization` (the raw metadata value), if anyone.
+    pub fn identify(&self, authorization: Option<&str>) -> Result<Principal, AuthError> {
+        let token = authorization
+            .and_then(|v| {
+                v.strip_prefix("Bearer ")
+                    .or_else(|| v.strip_prefix("bearer "))
+            })
+            .map(str::trim)
+            .filter(|t| !t.is_empty())
+            .ok_or(AuthError::Missing)?;
+        let digest: [u8; 32] = Sha256::digest(token.as_bytes()).into();
+        // Compare against every entry so the time taken does not say which matched.
+        let mut found = None;
+        for e in &self.entries {
+            if ct_eq(&digest, &e.digest) {
+                found = Some(e);
+            }
+        }
+        let e = found.ok_or(AuthError::Unknown)?;
+        Ok(Principal {
+            name: e.name.clone(),
+            role: e.role,
+            channels: e.channels.clone(),
+        })
+    }
+
+    /// May the bearer of `authorization` call `rpc` needing `permission`?
+    pub fn check(
+        &self,
+        authorization: Option<&str>,
+        permission: Permission,
+        rpc: &'static str,
+    ) -> Result<Option<Principal>, AuthError> {
+        if self.is_open() {
+            return Ok(None);
+        }
+        let p = self.identify(authorization)?;
+        if !permission.allowed(p.role) {
+            return Err(AuthError::Forbidden {
+                role: p.role.as_str(),
+                rpc,
+            });
+        }
+        Ok(Some(p))
+    }
+}
+
+/// A rig may stream only its granted channels (admins any).
+pub fn check_channel(principal: Option<&Principal>, channel_id: &str) -> Result<(), AuthError> {
+    match principal {
+        Some(p)
+            if p.role == Role::Rig
+                && !p.channels.is_empty()
+                && !p.channels.iter().any(|c| c == channel_id) =>
+        {
+            Err(AuthError::ChannelNotGranted {
+                name: p.name.clone(),
+                channel: channel_id.chars().take(80).collect(),
+            })
+        }
+        _ => Ok(()),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn table() -> TokenTable {
+        let spec = |name: &str, role, token: &str, channels: &[&str]| TokenSpec {
+            name: name.into(),
+            role,
+            sha256: sha256_hex(token),
+            channels: channels.iter().map(|c| c.to_string()).collect(),
+        };
+        TokenTable::new(&[
+            spec("rig-a", Role::Rig, "r1", &["hl-vrb-1"]),
+            spec("screen", Role::Viewer, "v1", &[]),
+            spec("shift", Role::Operator, "o1", &[]),
+            spec("lead", Role::Admin, "a1", &[]),
+        ])
+        .unwrap()
+    }
+
+    #[test]
+    fn sha256_matches_the_standard_test_vector() {
+        // FIPS 180-2, appendix B.1: SHA-256("abc").
+        assert_eq!(
+            sha256_hex("abc"),
+            "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+        );
+    }
+
+    #[test]
+    fn every_role_against_every_permission() {
+        let t = table();
+        let expect = [
+            ("r1", [true, false, false, false]),
+            ("v1", [false, true, false, false]),
+            ("o1", [false, true, true, false]),
+            ("a1", [true, true, true, true]),
+        ];
+        let perms = [
+            Permission::Ingest,
+            Permission::Read,
+            Permission::Operate,
+            Permission::Administer,
+        ];
+        for (token, allowed) in expect {
+            for (perm, ok) in perms.iter().zip(allowed) {
+                let header = format!("Bearer {token}");
+                assert_eq!(
+                    t.check(Some(&header), *perm, "X").is_ok(),
+                    ok,
+                    "{token} {perm:?}"
+                );
+            }
+        }
+        assert_eq!(
+            t.check(None, Permission::Read, "X"),
+            Err(AuthError::Missing)
+        );
+        assert_eq!(
+            t.check(Some("Bearer nope"), Permission::Read, "X"),
+            Err(AuthError::Unknown)
+        );
+    }
+
+    #[test]
+    fn rigs_are_held_to_their_channels() {
+        let t = table();
+        let p = t
+            .check(Some("Bearer r1"), Permission::Ingest, "StreamReadings")
+            .unwrap();
+        assert!(check_channel(p.as_ref(), "hl-vrb-1").is_ok());
+        assert!(matches!(
+            check_channel(p.as_ref(), "hl-pem-stack"),
+            Err(AuthError::ChannelNotGranted { .. })
+        ));
+        let admin = t
+            .check(Some("Bearer a1"), Permission::Ingest, "StreamReadings")
+            .unwrap();
+        assert!(check_channel(admin.as_ref(), "anything").is_ok());
+    }
+
+    #[test]
+    fn bad_digest_names_the_token() {
+        let e = TokenTable::new(&[TokenSpec {
+            name: "x".into(),
+            role: Role::Rig,
+            sha256: "abc".into(),
+            channels: vec![],
+        }])
+        .unwrap_err();
+        assert!(e.contains("token[0]") && e.contains("sha256"));
+    }
+}
