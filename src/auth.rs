@@ -43,13 +43,13 @@ pub enum Permission {
 
 impl Permission {
     fn allowed(self, role: Role) -> bool {
-        match (self, role) {
-            (_, Role::Admin) => true,
-            (Permission::Ingest, Role::Rig) => true,
-            (Permission::Read, Role::Viewer | Role::Operator) => true,
-            (Permission::Operate, Role::Operator) => true,
-            _ => false,
-        }
+        matches!(
+            (self, role),
+            (_, Role::Admin)
+                | (Permission::Ingest, Role::Rig)
+                | (Permission::Read, Role::Viewer | Role::Operator)
+                | (Permission::Operate, Role::Operator)
+        )
     }
 }
 
