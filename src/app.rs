@@ -53,9 +53,14 @@ impl Config {
     }
 }
 
-/// Largest gRPC message accepted or sent: 16 MiB, room for the 10,000
-/// reading batch limit with a wide margin.
+/// Largest gRPC message sent, and accepted outside ingest: 16 MiB.
 pub const MAX_MESSAGE_BYTES: usize = 16 * 1024 * 1024;
+/// Largest ingest message accepted: 1 MiB. A full batch of 10,000 readings
+/// encodes to about 400 kB; the tighter bound keeps what a flood of
+/// streams can make the server decode at once small (see README, Operations).
+pub const MAX_INGEST_MESSAGE_BYTES: usize = 1024 * 1024;
+/// HTTP/2 streams one connection may have open at once.
+const MAX_STREAMS_PER_CONNECTION: u32 = 64;
 /// Alert events buffered for subscribers; a subscriber more than this far
 /// behind is told to resume from its last id.
 const EVENT_BUFFER: usize = 4096;
@@ -165,7 +170,15 @@ pub async fn run(
     tracing::info!(?addr, db = %config.db_path.display(), "serving");
     let incoming = tokio_stream::wrappers::TcpListenerStream::new(listener);
     let reporter = health_reporter.clone();
-    let mut builder = tonic::transport::Server::builder();
+    let mut builder = tonic::transport::Server::builder()
+        .max_concurrent_streams(Some(MAX_STREAMS_PER_CONNECTION))
+        // Small flow-control windows: a client that sends faster than the
+        // writer commits is held back by HTTP/2 itself, instead of the server
+        // buffering megabytes per stream.
+        .initial_stream_window_size(Some(256 * 1024))
+        .initial_connection_window_size(Some(1024 * 1024))
+        .http2_keepalive_interval(Some(Duration::from_secs(30)))
+        .http2_keepalive_timeout(Some(Duration::from_secs(20)));
     if let Some(tls) = &config.tls {
         let mut tls_config = tonic::transport::ServerTlsConfig::new()
             .identity(tonic::transport::Identity::from_pem(&tls.cert, &tls.key));
@@ -181,9 +194,11 @@ pub async fn run(
         .add_service(limited!(
             pb::channel_service_server::ChannelServiceServer<Api>
         ))
-        .add_service(limited!(
-            pb::ingest_service_server::IngestServiceServer<Api>
-        ))
+        .add_service(
+            pb::ingest_service_server::IngestServiceServer::new(api.clone())
+                .max_decoding_message_size(MAX_INGEST_MESSAGE_BYTES)
+                .max_encoding_message_size(MAX_MESSAGE_BYTES),
+        )
         .add_service(limited!(
             pb::history_service_server::HistoryServiceServer<Api>
         ))

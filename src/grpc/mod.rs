@@ -28,6 +28,42 @@ pub struct Api {
     pub hub: Arc<Hub>,
 }
 
+/// Ingest streams open at once, server-wide. Each holds at most one batch
+/// (≤ 1 MiB encoded, ≈ 1.2 MB derived) while it waits for its commit, so
+/// this bounds ingest memory to roughly 128 × 2.2 MB ≈ 280 MB in the very
+/// worst case; excess streams are refused with RESOURCE_EXHAUSTED.
+pub const MAX_INGEST_STREAMS: u64 = 128;
+/// Alert subscribers open at once, server-wide.
+pub const MAX_SUBSCRIBERS: u64 = 256;
+
+/// Decrements a gauge when a stream ends, however it ends.
+struct Gauge(
+    Arc<crate::metrics::Metrics>,
+    fn(&crate::metrics::Metrics) -> &std::sync::atomic::AtomicU64,
+);
+impl Drop for Gauge {
+    fn drop(&mut self) {
+        (self.1)(&self.0).fetch_sub(1, std::sync::atomic::Ordering::Relaxed);
+    }
+}
+
+/// Takes a slot of a bounded gauge, or says why not.
+fn take_slot(
+    metrics: &Arc<crate::metrics::Metrics>,
+    field: fn(&crate::metrics::Metrics) -> &std::sync::atomic::AtomicU64,
+    limit: u64,
+    what: &str,
+) -> Result<Gauge, Status> {
+    let previous = field(metrics).fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+    let gauge = Gauge(metrics.clone(), field);
+    if previous >= limit {
+        return Err(Status::resource_exhausted(format!(
+            "{limit} {what} are open already; retry later or share one stream between channels"
+        )));
+    }
+    Ok(gauge)
+}
+
 /// Acks a stream may have in flight to its client (one response channel slot each).
 const STREAM_RESPONSE_BUFFER: usize = 16;
 /// Per-subscriber backlog for WatchAlerts; past it the subscriber is told to resume.
@@ -402,9 +438,16 @@ impl pb::ingest_service_server::IngestService for Api {
                 "the server is shutting down; reconnect to another or retry shortly",
             ));
         }
+        let slot = take_slot(
+            &self.hub.metrics,
+            |m| &m.ingest_streams,
+            MAX_INGEST_STREAMS,
+            "ingest streams",
+        )?;
         let (tx, rx) = mpsc::channel(STREAM_RESPONSE_BUFFER);
         let hub = self.hub.clone();
         tokio::spawn(async move {
+            let _slot = slot;
             loop {
                 let message = tokio::select! {
                     m = inbound.next() => m,
@@ -475,6 +518,9 @@ impl pb::ingest_service_server::IngestService for Api {
                     // Batch-level problems are answered in-band and the stream
                     // stays open; the rest end the stream with their status.
                     Err(e @ (IngestError::UnknownChannel(_) | IngestError::Invalid { .. })) => {
+                        hub.metrics
+                            .batches_refused
+                            .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
                         let message = e.to_string();
                         let field = match &e {
                             IngestError::UnknownChannel(_) => "channel_id",
@@ -494,7 +540,12 @@ impl pb::ingest_service_server::IngestService for Api {
                             }),
                         })
                     }
-                    Err(e) => Err(Status::from(e)),
+                    Err(e) => {
+                        hub.metrics
+                            .batches_refused
+                            .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                        Err(Status::from(e))
+                    }
                 };
                 let fatal = reply.is_err();
                 if tx.send(reply).await.is_err() || fatal {
@@ -873,8 +924,15 @@ impl pb::alert_service_server::AlertService for Api {
         let mut live = self.hub.events.subscribe();
         let shutdown = self.hub.shutdown.clone();
         let reader = self.hub.store.reader.clone();
+        let slot = take_slot(
+            &self.hub.metrics,
+            |m| &m.subscribers,
+            MAX_SUBSCRIBERS,
+            "alert subscriptions",
+        )?;
         let (tx, rx) = mpsc::channel(SUBSCRIBER_BUFFER);
         tokio::spawn(async move {
+            let _slot = slot;
             // An after_id beyond the newest event means "from now on".
             let newest = match store::next_ids(&reader).await {
                 Ok((_, next_event)) => next_event - 1,

@@ -8,10 +8,10 @@ use crate::estimator::CycleRecord;
 use crate::store::{self, AlertEvent, ReadingRow, Store, StoreError};
 use tokio::sync::{broadcast, mpsc, oneshot};
 
-/// Jobs queued to the writer at most. With batches of up to 10,000
-/// readings this bounds queued readings (and so memory) to ~2.5 M rows in
-/// the worst case, ~250 MB; senders wait when it is full.
-pub const WRITER_QUEUE_JOBS: usize = 256;
+/// Jobs queued to the writer at most; senders wait when it is full. Each
+/// ingest stream has at most one job in flight, so the open-stream limit
+/// (`MAX_INGEST_STREAMS`) bounds the queue in practice; this is the backstop.
+pub const WRITER_QUEUE_JOBS: usize = 128;
 /// Rows per transaction at most: bigger commits amortise the fsync, but
 /// delay every ack in them.
 const MAX_ROWS_PER_COMMIT: usize = 50_000;

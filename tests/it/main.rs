@@ -4,6 +4,7 @@
 mod alerts;
 mod cli;
 mod crash;
+mod flood;
 mod harness;
 mod hostile;
 mod security;
