@@ -78,7 +78,8 @@ async fn flood_keeps_memory_bounded() {
             .connect()
             .await
             .unwrap();
-        for id in ids[rig * 20..rig * 20 + 20].iter().cloned() {
+        for id in &ids[rig * 20..rig * 20 + 20] {
+            let id = id.clone();
             let conn = conn.clone();
             let acked = acked.clone();
             tasks.push(tokio::spawn(async move {
