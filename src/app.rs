@@ -60,7 +60,7 @@ pub const MAX_MESSAGE_BYTES: usize = 16 * 1024 * 1024;
 /// streams can make the server decode at once small (see README, Operations).
 pub const MAX_INGEST_MESSAGE_BYTES: usize = 1024 * 1024;
 /// HTTP/2 streams one connection may have open at once.
-const MAX_STREAMS_PER_CONNECTION: u32 = 64;
+const MAX_STREAMS_PER_CONNECTION: u32 = 128;
 /// Alert events buffered for subscribers; a subscriber more than this far
 /// behind is told to resume from its last id.
 const EVENT_BUFFER: usize = 4096;
@@ -175,8 +175,8 @@ pub async fn run(
         // Small flow-control windows: a client that sends faster than the
         // writer commits is held back by HTTP/2 itself, instead of the server
         // buffering megabytes per stream.
-        .initial_stream_window_size(Some(256 * 1024))
-        .initial_connection_window_size(Some(1024 * 1024))
+        .initial_stream_window_size(Some(512 * 1024))
+        .initial_connection_window_size(Some(8 * 1024 * 1024))
         .http2_keepalive_interval(Some(Duration::from_secs(30)))
         .http2_keepalive_timeout(Some(Duration::from_secs(20)));
     if let Some(tls) = &config.tls {

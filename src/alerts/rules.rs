@@ -306,7 +306,9 @@ struct Check {
     trigger_value: f64,
     threshold: f64,
     unit: &'static str,
-    message: String,
+    /// Built only when the alert is raised: formatting on every reading
+    /// would be most of the rules' cost.
+    message: Box<dyn Fn() -> String>,
     seconds_to_target: Option<f64>,
 }
 
@@ -323,6 +325,8 @@ pub fn evaluate(
     state: &mut ChannelRuleState,
     input: &RuleInput,
 ) -> Vec<AlertChange> {
+    // A copy the message closures can own (the struct is small and Copy).
+    let rules = *rules;
     let mut checks: Vec<Check> = Vec::with_capacity(8);
     let t = &rules.equilibrium_delta_g_kj_per_mol;
     if t.enabled {
@@ -336,7 +340,7 @@ pub fn evaluate(
             trigger_value: value,
             threshold: t.raise_at,
             unit: "kJ/mol",
-            message: format!("|ΔG| {value:.3} kJ/mol: the cell reaction is near equilibrium (driving force nearly spent)"),
+            message: Box::new(move || format!("|ΔG| {value:.3} kJ/mol: the cell reaction is near equilibrium (driving force nearly spent)")),
             seconds_to_target: None,
         });
     }
@@ -393,10 +397,10 @@ pub fn evaluate(
             trigger_value: eoc_value,
             threshold: eoc_threshold,
             unit: eoc_unit,
-            message: match eta {
+            message: Box::new(move || match eta {
                 Some(e) if eoc_unit == "SOC" && e > 0.0 => format!("end of charge in about {e:.0} s (SOC {eoc_value:.3}, target {eoc_threshold:.3})"),
                 _ => format!("end of charge: {eoc_unit} {eoc_value:.4} reached {eoc_threshold:.4}"),
-            },
+            }),
             seconds_to_target: eta,
         });
     }
@@ -439,9 +443,9 @@ pub fn evaluate(
             trigger_value: eod_value,
             threshold: eod_threshold,
             unit: eod_unit,
-            message: format!(
-                "end of discharge: {eod_unit} {eod_value:.4} reached {eod_threshold:.4}"
-            ),
+            message: Box::new(move || {
+                format!("end of discharge: {eod_unit} {eod_value:.4} reached {eod_threshold:.4}")
+            }),
             seconds_to_target: None,
         });
     }
@@ -461,10 +465,12 @@ pub fn evaluate(
             trigger_value: rate.unwrap_or(f64::NAN),
             threshold: t.raise_at,
             unit: "mV/min",
-            message: format!(
-                "rest settled: |dV/dt| {:.3} mV/min; the open-circuit SOC is now trustworthy",
-                rate.unwrap_or(0.0)
-            ),
+            message: Box::new(move || {
+                format!(
+                    "rest settled: |dV/dt| {:.3} mV/min; the open-circuit SOC is now trustworthy",
+                    rate.unwrap_or(0.0)
+                )
+            }),
             seconds_to_target: None,
         });
     }
@@ -486,10 +492,12 @@ pub fn evaluate(
             rules.max_cell_volts
         },
         unit: "V",
-        message: format!(
-            "cell voltage {v:.4} V outside the safe window {:.3}–{:.3} V",
-            rules.min_cell_volts, rules.max_cell_volts
-        ),
+        message: Box::new(move || {
+            format!(
+                "cell voltage {v:.4} V outside the safe window {:.3}–{:.3} V",
+                rules.min_cell_volts, rules.max_cell_volts
+            )
+        }),
         seconds_to_target: None,
     });
     if rules.max_abs_amps > 0.0
@@ -503,10 +511,12 @@ pub fn evaluate(
             trigger_value: i,
             threshold: rules.max_abs_amps,
             unit: "A",
-            message: format!(
-                "current {i:.3} A beyond the limit ±{:.3} A",
-                rules.max_abs_amps
-            ),
+            message: Box::new(move || {
+                format!(
+                    "current {i:.3} A beyond the limit ±{:.3} A",
+                    rules.max_abs_amps
+                )
+            }),
             seconds_to_target: None,
         });
     }
@@ -523,10 +533,12 @@ pub fn evaluate(
                 rules.max_temp_c
             },
             unit: "°C",
-            message: format!(
-                "temperature {temp:.2} °C outside {:.1}–{:.1} °C",
-                rules.min_temp_c, rules.max_temp_c
-            ),
+            message: Box::new(move || {
+                format!(
+                    "temperature {temp:.2} °C outside {:.1}–{:.1} °C",
+                    rules.min_temp_c, rules.max_temp_c
+                )
+            }),
             seconds_to_target: None,
         });
     }
@@ -582,7 +594,7 @@ fn apply(state: &mut ChannelRuleState, check: Check, input: &RuleInput) -> Optio
         trigger_value: check.trigger_value,
         threshold: check.threshold,
         unit: check.unit,
-        message: check.message,
+        message: (check.message)(),
         seconds_to_target: check.seconds_to_target,
     }))
 }

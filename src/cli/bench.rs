@@ -350,3 +350,116 @@ fn tempfile_dir() -> anyhow::Result<std::path::PathBuf> {
     std::fs::create_dir_all(&dir)?;
     Ok(dir)
 }
+
+#[derive(Debug, clap::Args)]
+pub struct BenchDeriveArgs {
+    /// Readings to derive.
+    #[arg(long, default_value_t = 1_000_000)]
+    pub readings: u64,
+    #[arg(long, default_value = "vanadium-redox")]
+    pub chemistry: String,
+    #[arg(long)]
+    pub json: bool,
+}
+
+#[derive(Debug, Serialize)]
+pub struct DeriveReport {
+    pub readings: u64,
+    pub thermo_only_ns_per_reading: f64,
+    pub full_path_ns_per_reading: f64,
+    pub estimator_and_rules_ns_per_reading: f64,
+}
+
+/// The ingest path's pure work per reading, measured two ways in one run:
+/// thermodynamics and SOC alone (what ingest did before the estimator),
+/// and the full path (estimator, rules, row building) as ingest runs it.
+pub fn derive(args: &BenchDeriveArgs) -> anyhow::Result<()> {
+    use gibbsline::channel::ChannelDef;
+    use gibbsline::electrochem::{self, EvalRequest, Registry};
+    use gibbsline::ingest::{ChannelRuntime, RawReading, derive_batch};
+    let registry = Registry::builtin();
+    let chem = registry
+        .get(&args.chemistry)
+        .map_err(|_| super::UsageError(format!("--chemistry {:?}: unknown id", args.chemistry)))?;
+    let (min_volts, max_volts) = ChannelDef::default_window(&chem);
+    let def = ChannelDef {
+        channel_id: "bench".into(),
+        chemistry_id: chem.id.clone(),
+        cells_in_series: 1,
+        capacity_ah: 2.0,
+        current_sign: gibbsline::estimator::CurrentSign::ChargePositive,
+        default_temp_c: 25.0,
+        min_volts,
+        max_volts,
+        e_standard_override_v: None,
+        resistance_ohm: None,
+        equilibrium_tolerance_mv: 1.0,
+        coulombic_efficiency: 1.0,
+        faradaic_efficiency: 1.0,
+        description: String::new(),
+    };
+    let mid = 0.5 * (chem.min_cell_volts + chem.max_cell_volts);
+    let t0 = client::now_ns() - (args.readings as i64 + 10) * 1_000_000_000;
+    // Current steps every 600 readings and rests between, so every branch
+    // of the estimator is exercised.
+    let readings: Vec<RawReading> = (1..=args.readings)
+        .map(|s| {
+            let phase = (s / 600) % 3;
+            let amps = [1.0, 0.0, -1.0][phase as usize];
+            RawReading {
+                seq: s,
+                time_unix_ns: t0 + s as i64 * 1_000_000_000,
+                volts: mid + 0.05 * amps + 1e-4 * ((s % 13) as f64),
+                amps: Some(amps),
+                temp_c: Some(25.0 + 0.001 * (s % 100) as f64),
+            }
+        })
+        .collect();
+    let started = Instant::now();
+    let mut sink = 0.0;
+    for r in &readings {
+        let ev = electrochem::evaluate(
+            &chem,
+            EvalRequest {
+                stack_volts: r.volts,
+                cells_in_series: 1,
+                temp_k: r.temp_c.unwrap_or(25.0) + 273.15,
+                equilibrium_tolerance_volts: 1e-3,
+            },
+        )?;
+        sink += ev.thermo.delta_g_kj_per_mol + ev.soc.unwrap_or(0.0);
+    }
+    let thermo_ns = started.elapsed().as_nanos() as f64 / args.readings as f64;
+    let mut rt = ChannelRuntime::fresh(1, def, chem.clone(), 1);
+    let started = Instant::now();
+    for chunk in readings.chunks(1000) {
+        let (batch, _) = derive_batch(&mut rt, chunk, client::now_ns());
+        sink += batch.rows.len() as f64;
+    }
+    let full_ns = started.elapsed().as_nanos() as f64 / args.readings as f64;
+    std::hint::black_box(sink);
+    let report = DeriveReport {
+        readings: args.readings,
+        thermo_only_ns_per_reading: thermo_ns,
+        full_path_ns_per_reading: full_ns,
+        estimator_and_rules_ns_per_reading: full_ns - thermo_ns,
+    };
+    if args.json {
+        println!("{}", serde_json::to_string(&report)?);
+    } else {
+        println!("readings            {}", report.readings);
+        println!(
+            "thermo + SOC only   {:.0} ns/reading",
+            report.thermo_only_ns_per_reading
+        );
+        println!(
+            "full ingest derive  {:.0} ns/reading (estimator, rules, row)",
+            report.full_path_ns_per_reading
+        );
+        println!(
+            "estimator + rules   {:.0} ns/reading extra",
+            report.estimator_and_rules_ns_per_reading
+        );
+    }
+    Ok(())
+}

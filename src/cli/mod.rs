@@ -63,6 +63,8 @@ pub enum Command {
 pub enum BenchCommand {
     /// Sustained ingest rate, ack latency and alert latency.
     Ingest(bench::BenchIngestArgs),
+    /// Per-reading cost of the pure ingest work, with and without the estimator.
+    Derive(bench::BenchDeriveArgs),
 }
 
 #[derive(Debug, Args)]
@@ -146,6 +148,7 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Chemistries(args) => eval::run_chemistries(&args),
         Command::Serve(args) => serve(&args),
         Command::Bench(BenchCommand::Ingest(args)) => block_on(bench::run(&args)),
+        Command::Bench(BenchCommand::Derive(args)) => bench::derive(&args),
         Command::Demo(args) => block_on(demo::run(&args)),
         Command::Rig(cmd) => block_on(commands::rig_cmd(&cmd)),
         Command::Readings(args) => block_on(commands::readings(&args)),

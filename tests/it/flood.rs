@@ -123,7 +123,7 @@ async fn flood_keeps_memory_bounded() {
     // Meanwhile, a greedy client tries to open 150 more streams: past the
     // server-wide limit they are refused, not queued.
     tokio::time::sleep(Duration::from_secs(1)).await;
-    // Fifty per connection: below the 64 streams one HTTP/2 connection may
+    // Fifty per connection: below the 128 streams one HTTP/2 connection may
     // carry, so the refusals come from the server-wide limit.
     let mut greedy_connections = Vec::new();
     for _ in 0..3 {
