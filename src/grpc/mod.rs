@@ -462,7 +462,9 @@ impl pb::ingest_service_server::IngestService for Api {
                 let message = match message {
                     Ok(m) => m,
                     Err(status) => {
-                        tracing::debug!(%status, "ingest stream ended by client error");
+                        // Undecodable or oversized message: tell the client why.
+                        tracing::debug!(%status, "ingest stream ended by a bad message");
+                        let _ = tx.send(Err(status)).await;
                         break;
                     }
                 };
