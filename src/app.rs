@@ -175,8 +175,8 @@ pub async fn run(
         // Small flow-control windows: a client that sends faster than the
         // writer commits is held back by HTTP/2 itself, instead of the server
         // buffering megabytes per stream.
-        .initial_stream_window_size(Some(512 * 1024))
-        .initial_connection_window_size(Some(8 * 1024 * 1024))
+        .initial_stream_window_size(Some(256 * 1024))
+        .initial_connection_window_size(Some(1024 * 1024))
         .http2_keepalive_interval(Some(Duration::from_secs(30)))
         .http2_keepalive_timeout(Some(Duration::from_secs(20)));
     if let Some(tls) = &config.tls {
