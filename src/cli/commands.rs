@@ -658,31 +658,6 @@ struct ChannelsFile {
     channel: Vec<gibbsline::config::ChannelEntry>,
 }
 
-fn channel_to_pb(def: &gibbsline::channel::ChannelDef) -> pb::Channel {
-    pb::Channel {
-        channel_id: def.channel_id.clone(),
-        chemistry_id: def.chemistry_id.clone(),
-        cells_in_series: def.cells_in_series,
-        capacity_ah: def.capacity_ah,
-        current_sign: match def.current_sign {
-            gibbsline::estimator::CurrentSign::ChargePositive => pb::CurrentSign::ChargePositive,
-            gibbsline::estimator::CurrentSign::DischargePositive => {
-                pb::CurrentSign::DischargePositive
-            }
-        } as i32,
-        default_temp_c: def.default_temp_c,
-        min_volts: def.min_volts,
-        max_volts: def.max_volts,
-        e_standard_override_v: def.e_standard_override_v,
-        resistance_ohm: def.resistance_ohm,
-        equilibrium_tolerance_mv: def.equilibrium_tolerance_mv,
-        coulombic_efficiency: def.coulombic_efficiency,
-        faradaic_efficiency: def.faradaic_efficiency,
-        description: def.description.clone(),
-        run_id: 0,
-    }
-}
-
 fn print_channel(c: &pb::Channel) {
     println!(
         "{:<16} {:<16} cells {:<3} {:>6.2} Ah  window {:.3}–{:.3} V/cell  run {}  {}",
@@ -715,7 +690,7 @@ pub async fn channels(cmd: &ChannelsCommand) -> anyhow::Result<()> {
             for entry in parsed.channel {
                 let r = c
                     .put_channel(pb::PutChannelRequest {
-                        channel: Some(channel_to_pb(&entry.def)),
+                        channel: Some(gibbsline::grpc::convert::channel_to_pb(&entry.def, 0)),
                     })
                     .await
                     .map_err(|s| {

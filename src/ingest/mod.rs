@@ -258,16 +258,7 @@ impl Hub {
         batch_id: u64,
         readings: &[RawReading],
     ) -> Result<Ack, IngestError> {
-        if readings.is_empty() {
-            return Err(invalid(
-                "readings",
-                "[]",
-                "an empty batch carries nothing to store",
-            ));
-        }
-        if readings.len() > MAX_BATCH_READINGS {
-            return Err(IngestError::BatchTooLarge(readings.len()));
-        }
+        check_batch_size(readings)?;
         let runtime = self.channel(channel_id)?;
         let wall_now = now_ns();
         let (job_rows, rejected) = {
@@ -402,6 +393,21 @@ fn check_reading(
     Ok(())
 }
 
+/// Batch-level checks, before any reading is looked at.
+pub fn check_batch_size(readings: &[RawReading]) -> Result<(), IngestError> {
+    if readings.is_empty() {
+        return Err(invalid(
+            "readings",
+            "[]",
+            "an empty batch carries nothing to store",
+        ));
+    }
+    if readings.len() > MAX_BATCH_READINGS {
+        return Err(IngestError::BatchTooLarge(readings.len()));
+    }
+    Ok(())
+}
+
 /// The pure part of ingest for one batch, under the channel's lock.
 pub fn derive_batch(
     rt: &mut ChannelRuntime,
@@ -439,7 +445,20 @@ pub fn derive_batch(
                     equilibrium_tolerance_volts: rt.est_config.equilibrium_tolerance_volts,
                 },
             );
-            let Ok(ev) = ev else { continue };
+            // Every reading must end stored, duplicate or rejected: one the
+            // core cannot evaluate is rejected with the core's reason.
+            let ev = match ev {
+                Ok(ev) => ev,
+                Err(e) => {
+                    rejected.push(Rejection {
+                        index: index as u32,
+                        seq: r.seq,
+                        field: "volts",
+                        reason: e.to_string(),
+                    });
+                    continue;
+                }
+            };
             maybe_dup.push(ReadingRow {
                 channel_key: rt.key,
                 seq: r.seq,

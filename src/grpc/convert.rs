@@ -1,0 +1,240 @@
+//! Conversions between generated protobuf types and the crate's own, at
+//! the edge of the gRPC shell. Conversions that can fail name the field.
+
+use super::status::invalid;
+use crate::alerts::{AlertKind, AlertRules, Threshold};
+use crate::channel::ChannelDef;
+use crate::electrochem;
+use crate::estimator::CurrentSign;
+use crate::ingest::RawReading;
+use crate::pb;
+use crate::store::{AlertEvent, AlertRow, EventKind, ReadingRow, RunRow, flags};
+use tonic::Status;
+
+impl From<&pb::Reading> for RawReading {
+    fn from(r: &pb::Reading) -> RawReading {
+        RawReading {
+            seq: r.seq,
+            time_unix_ns: r.time_unix_ns,
+            volts: r.volts,
+            amps: r.amps,
+            temp_c: r.temp_c,
+        }
+    }
+}
+
+pub fn sign_from_pb(code: i32) -> Result<CurrentSign, Status> {
+    match pb::CurrentSign::try_from(code) {
+        Ok(pb::CurrentSign::ChargePositive) => Ok(CurrentSign::ChargePositive),
+        Ok(pb::CurrentSign::DischargePositive) => Ok(CurrentSign::DischargePositive),
+        _ => Err(invalid(
+            "channel.current_sign",
+            code,
+            "must be CHARGE_POSITIVE or DISCHARGE_POSITIVE",
+        )),
+    }
+}
+
+pub fn channel_to_pb(def: &ChannelDef, run_id: i64) -> pb::Channel {
+    pb::Channel {
+        channel_id: def.channel_id.clone(),
+        chemistry_id: def.chemistry_id.clone(),
+        cells_in_series: def.cells_in_series,
+        capacity_ah: def.capacity_ah,
+        current_sign: match def.current_sign {
+            CurrentSign::ChargePositive => pb::CurrentSign::ChargePositive as i32,
+            CurrentSign::DischargePositive => pb::CurrentSign::DischargePositive as i32,
+        },
+        default_temp_c: def.default_temp_c,
+        min_volts: def.min_volts,
+        max_volts: def.max_volts,
+        e_standard_override_v: def.e_standard_override_v,
+        resistance_ohm: def.resistance_ohm,
+        equilibrium_tolerance_mv: def.equilibrium_tolerance_mv,
+        coulombic_efficiency: def.coulombic_efficiency,
+        faradaic_efficiency: def.faradaic_efficiency,
+        description: def.description.clone(),
+        run_id: run_id as u64,
+    }
+}
+
+pub fn state_to_pb(s: electrochem::ReactionState) -> i32 {
+    match s {
+        electrochem::ReactionState::Spontaneous => pb::ReactionState::Spontaneous as i32,
+        electrochem::ReactionState::Driven => pb::ReactionState::Driven as i32,
+        electrochem::ReactionState::Equilibrium => pb::ReactionState::Equilibrium as i32,
+    }
+}
+
+/// Recomputes the cheap derived values from a stored row and its run.
+pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading {
+    let derived = run.map(|run| {
+        let temp_k = row.temp_c.unwrap_or(run.default_temp_c) + 273.15;
+        let t = electrochem::thermo::thermo_state(
+            run.n_electrons,
+            electrochem::thermo::StandardPotential {
+                e_standard_298_volts: run.e_standard_298_v,
+                de_dt_volts_per_k: run.de_dt_v_per_k,
+            },
+            row.cell_volts_used,
+            temp_k,
+            run.equilibrium_tolerance_v,
+        );
+        pb::DerivedState {
+            cell_volts: row.cell_volts_used,
+            ohmic_compensated: row.flags & (flags::OCV_OHMIC | flags::OCV_COUNTED) != 0,
+            temp_k,
+            e_standard_v: t.e_standard_volts,
+            delta_g_kj_per_mol: t.delta_g_kj_per_mol,
+            delta_g_standard_kj_per_mol: t.delta_g_standard_kj_per_mol,
+            ln_q: t.ln_q,
+            log10_q: t.log10_q(),
+            log10_k: t.log10_k(),
+            affinity_ln_k_over_q: t.affinity_ln_k_over_q,
+            state: state_to_pb(t.state),
+            soc_model: row.soc_model,
+            soc_clamped: row.flags & flags::SOC_CLAMPED != 0,
+            soc_fused: row.soc_fused,
+            charge_ah: row.charge_ah,
+            energy_wh: row.energy_wh,
+            resting: row.flags & flags::RESTING != 0,
+            rest_settled: row.flags & flags::REST_SETTLED != 0,
+            out_of_order: row.flags & flags::OUT_OF_ORDER != 0,
+            soc_model_name: run.soc_model.clone(),
+        }
+    });
+    pb::StoredReading {
+        seq: row.seq,
+        time_unix_ns: row.time_ns,
+        volts: row.volts,
+        amps: row.amps,
+        temp_c: row.temp_c,
+        run_id: row.run_id as u64,
+        derived,
+    }
+}
+
+fn kind_to_pb(k: AlertKind) -> i32 {
+    (match k {
+        AlertKind::EquilibriumApproach => pb::AlertKind::EquilibriumApproach,
+        AlertKind::EndOfCharge => pb::AlertKind::EndOfCharge,
+        AlertKind::EndOfDischarge => pb::AlertKind::EndOfDischarge,
+        AlertKind::RestSettled => pb::AlertKind::RestSettled,
+        AlertKind::VoltageLimit => pb::AlertKind::VoltageLimit,
+        AlertKind::CurrentLimit => pb::AlertKind::CurrentLimit,
+        AlertKind::TemperatureLimit => pb::AlertKind::TemperatureLimit,
+        AlertKind::SilentRig => pb::AlertKind::SilentRig,
+    }) as i32
+}
+
+pub fn alert_to_pb(a: &AlertRow) -> pb::Alert {
+    pb::Alert {
+        alert_id: a.alert_id,
+        channel_id: a.channel_id.clone(),
+        run_id: a.run_id as u64,
+        kind: kind_to_pb(a.kind),
+        severity: a.severity.code() as i32,
+        raised_unix_ns: a.raised_ns,
+        raised_seq: a.raised_seq,
+        trigger_value: a.trigger_value,
+        threshold: a.threshold,
+        unit: a.unit.clone(),
+        message: a.message.clone(),
+        seconds_to_target: a.seconds_to_target,
+        cleared_unix_ns: a.cleared_ns,
+        acknowledged_by: a.ack_by.clone(),
+        acknowledged_unix_ns: a.ack_ns,
+        acknowledge_note: a.ack_note.clone(),
+    }
+}
+
+pub fn event_to_pb(e: &AlertEvent) -> pb::WatchAlertsResponse {
+    pb::WatchAlertsResponse {
+        event: match e.kind {
+            EventKind::Raised => pb::AlertEventKind::Raised,
+            EventKind::Cleared => pb::AlertEventKind::Cleared,
+            EventKind::Acknowledged => pb::AlertEventKind::Acknowledged,
+        } as i32,
+        alert: Some(alert_to_pb(&e.alert)),
+        resume_after_id: e.event_id,
+    }
+}
+
+fn threshold_to_pb(t: &Threshold) -> pb::Threshold {
+    pb::Threshold {
+        enabled: t.enabled,
+        raise_at: t.raise_at,
+        clear_at: t.clear_at,
+        hold_s: t.hold_s,
+    }
+}
+
+fn threshold_from_pb(name: &str, t: Option<pb::Threshold>) -> Result<Threshold, Status> {
+    let t = t.ok_or_else(|| {
+        invalid(
+            &format!("rules.{name}"),
+            "unset",
+            "every threshold must be given (enabled = false to switch it off)",
+        )
+    })?;
+    Ok(Threshold {
+        enabled: t.enabled,
+        raise_at: t.raise_at,
+        clear_at: t.clear_at,
+        hold_s: t.hold_s,
+    })
+}
+
+pub fn rules_to_pb(r: &AlertRules) -> pb::AlertRules {
+    pb::AlertRules {
+        equilibrium_delta_g_kj_per_mol: Some(threshold_to_pb(&r.equilibrium_delta_g_kj_per_mol)),
+        end_of_charge_soc: Some(threshold_to_pb(&r.end_of_charge_soc)),
+        end_of_charge_cell_volts: Some(threshold_to_pb(&r.end_of_charge_cell_volts)),
+        end_of_charge_lead_s: r.end_of_charge_lead_s,
+        end_of_discharge_soc: Some(threshold_to_pb(&r.end_of_discharge_soc)),
+        end_of_discharge_cell_volts: Some(threshold_to_pb(&r.end_of_discharge_cell_volts)),
+        rest_settled_mv_per_min: Some(threshold_to_pb(&r.rest_settled_mv_per_min)),
+        min_cell_volts: r.min_cell_volts,
+        max_cell_volts: r.max_cell_volts,
+        max_abs_amps: r.max_abs_amps,
+        min_temp_c: r.min_temp_c,
+        max_temp_c: r.max_temp_c,
+        silent_interval_multiple: r.silent_interval_multiple,
+        silent_min_s: r.silent_min_s,
+    }
+}
+
+pub fn rules_from_pb(r: pb::AlertRules) -> Result<AlertRules, Status> {
+    let rules = AlertRules {
+        equilibrium_delta_g_kj_per_mol: threshold_from_pb(
+            "equilibrium_delta_g_kj_per_mol",
+            r.equilibrium_delta_g_kj_per_mol,
+        )?,
+        end_of_charge_soc: threshold_from_pb("end_of_charge_soc", r.end_of_charge_soc)?,
+        end_of_charge_cell_volts: threshold_from_pb(
+            "end_of_charge_cell_volts",
+            r.end_of_charge_cell_volts,
+        )?,
+        end_of_charge_lead_s: r.end_of_charge_lead_s,
+        end_of_discharge_soc: threshold_from_pb("end_of_discharge_soc", r.end_of_discharge_soc)?,
+        end_of_discharge_cell_volts: threshold_from_pb(
+            "end_of_discharge_cell_volts",
+            r.end_of_discharge_cell_volts,
+        )?,
+        rest_settled_mv_per_min: threshold_from_pb(
+            "rest_settled_mv_per_min",
+            r.rest_settled_mv_per_min,
+        )?,
+        min_cell_volts: r.min_cell_volts,
+        max_cell_volts: r.max_cell_volts,
+        max_abs_amps: r.max_abs_amps,
+        min_temp_c: r.min_temp_c,
+        max_temp_c: r.max_temp_c,
+        silent_interval_multiple: r.silent_interval_multiple,
+        silent_min_s: r.silent_min_s,
+    };
+    rules
+        .validate()
+        .map_err(|m| Status::invalid_argument(format!("rules.{m}")))?;
+    Ok(rules)
+}
