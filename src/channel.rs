@@ -48,6 +48,13 @@ fn one() -> f64 {
 /// Readings outside [−100 °C, 200 °C] are broken sensors, not cells.
 pub const MIN_READING_TEMP_C: f64 = -100.0;
 pub const MAX_READING_TEMP_C: f64 = 200.0;
+/// A current beyond ±1 MA is a broken shunt or a garbled value, not a cell:
+/// the largest electrolyser stacks run at tens of kA. Letting one through
+/// would overflow the coulomb count to infinity for the rest of the run.
+pub const MAX_READING_ABS_AMPS: f64 = 1e6;
+/// Per-cell plausibility windows beyond ±1000 V describe no cell; the bound
+/// keeps V·I·t finite in the energy count.
+pub const MAX_WINDOW_ABS_CELL_VOLTS: f64 = 1000.0;
 
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 #[error("{field} = {value}: {reason}")]
@@ -55,6 +62,16 @@ pub struct ChannelError {
     pub field: String,
     pub value: String,
     pub reason: String,
+}
+
+/// Shows a value readably in an error, however large (f64's `Display`
+/// writes 1e300 as 301 digits).
+pub fn shown(v: f64) -> String {
+    if v.is_finite() && v.abs() >= 1e6 {
+        format!("{v:.3e}")
+    } else {
+        format!("{v}")
+    }
 }
 
 fn err(field: &str, value: impl std::fmt::Display, reason: impl Into<String>) -> ChannelError {
@@ -110,13 +127,20 @@ impl ChannelDef {
                 "must be from -100 to 200 °C",
             ));
         }
-        if !(self.min_volts.is_finite() && self.max_volts.is_finite())
-            || self.min_volts >= self.max_volts
-        {
+        for (name, v) in [("min_volts", self.min_volts), ("max_volts", self.max_volts)] {
+            if !(v.is_finite() && v.abs() <= MAX_WINDOW_ABS_CELL_VOLTS) {
+                return Err(err(
+                    name,
+                    shown(v),
+                    "must be a per-cell voltage from -1000 to 1000 V",
+                ));
+            }
+        }
+        if self.min_volts >= self.max_volts {
             return Err(err(
                 "max_volts",
                 self.max_volts,
-                format!("must be finite and above min_volts ({})", self.min_volts),
+                format!("must be above min_volts ({})", self.min_volts),
             ));
         }
         for (name, v) in [

@@ -11,6 +11,7 @@ pub mod channel;
 pub mod config;
 pub mod electrochem;
 pub mod estimator;
+pub mod fuzzing;
 pub mod grpc;
 pub mod ingest;
 pub mod metrics;

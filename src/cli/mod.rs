@@ -57,6 +57,27 @@ pub enum Command {
     Channels(commands::ChannelsCommand),
     /// Charge/discharge cycles of a channel with efficiencies.
     Cycles(commands::CyclesArgs),
+    /// Bearer tokens for the config's [[token]] table.
+    #[command(subcommand)]
+    Token(TokenCommand),
+}
+
+#[derive(Debug, Subcommand)]
+pub enum TokenCommand {
+    /// Make a new random token; prints it once, with the [[token]] entry to paste into the config.
+    New {
+        /// Who will hold it (logged on denial), e.g. "bench-3 rig PC".
+        #[arg(long)]
+        name: String,
+        /// rig, viewer, operator or admin.
+        #[arg(long)]
+        role: String,
+        /// For rigs: a channel it may stream (repeat; none = every channel).
+        #[arg(long)]
+        channel: Vec<String>,
+    },
+    /// Print the SHA-256 (hex) of a token read from standard input, for the config's `sha256`.
+    Hash,
 }
 
 #[derive(Debug, Subcommand)]
@@ -156,6 +177,7 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Alerts(cmd) => block_on(commands::alerts(&cmd)),
         Command::Channels(cmd) => block_on(commands::channels(&cmd)),
         Command::Cycles(args) => block_on(commands::cycles(&args)),
+        Command::Token(cmd) => token(&cmd),
         Command::Config(ConfigCommand::Check { file }) => {
             let config = load_config(Some(&file), &std::collections::BTreeMap::new())?;
             config
@@ -167,6 +189,61 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
                 config.channel.len(),
                 config.chemistry.len()
             );
+            Ok(())
+        }
+    }
+}
+
+fn token(cmd: &TokenCommand) -> anyhow::Result<()> {
+    use gibbsline::auth::{Role, TokenSpec, sha256_hex};
+    match cmd {
+        TokenCommand::New {
+            name,
+            role,
+            channel,
+        } => {
+            let role: Role = serde_json::from_value(serde_json::Value::String(role.clone()))
+                .map_err(|_| {
+                    UsageError(format!(
+                        "--role {role:?}: must be rig, viewer, operator or admin"
+                    ))
+                })?;
+            if role != Role::Rig && !channel.is_empty() {
+                return Err(
+                    UsageError("--channel: only a rig token is held to channels".into()).into(),
+                );
+            }
+            // 32 bytes from the kernel's CSPRNG: 256 bits, beyond guessing.
+            let mut secret = [0u8; 32];
+            std::io::Read::read_exact(&mut std::fs::File::open("/dev/urandom")?, &mut secret)?;
+            let token: String = std::iter::once("gl_".to_string())
+                .chain(secret.iter().map(|b| format!("{b:02x}")))
+                .collect();
+            let spec = TokenSpec {
+                name: name.clone(),
+                role,
+                sha256: sha256_hex(&token),
+                channels: channel.clone(),
+            };
+            #[derive(serde::Serialize)]
+            struct Entry<'a> {
+                token: [&'a TokenSpec; 1],
+            }
+            println!(
+                "# Give this token to {name:?}; it is shown only now (the config keeps its SHA-256):"
+            );
+            println!("#   GIBBSLINE_TOKEN={token}");
+            print!("{}", toml::to_string(&Entry { token: [&spec] })?);
+            Ok(())
+        }
+        TokenCommand::Hash => {
+            let mut line = String::new();
+            std::io::stdin().read_line(&mut line)?;
+            let token = line.trim();
+            if token.is_empty() {
+                return Err(UsageError("standard input: no token given".into()).into());
+            }
+            println!("{}", sha256_hex(token));
             Ok(())
         }
     }

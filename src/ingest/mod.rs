@@ -7,7 +7,9 @@
 pub mod writer;
 
 use crate::alerts::{self, AlertChange, AlertRules, ChannelRuleState};
-use crate::channel::{ChannelDef, MAX_READING_TEMP_C, MIN_READING_TEMP_C};
+use crate::channel::{
+    ChannelDef, MAX_READING_ABS_AMPS, MAX_READING_TEMP_C, MIN_READING_TEMP_C, shown,
+};
 use crate::electrochem::{Chemistry, Registry};
 use crate::estimator::{self, EstimatorConfig, EstimatorInput, EstimatorState, OcvSource};
 use crate::store::{self, AlertEvent, ReadingRow, Store, StoreError, flags};
@@ -323,15 +325,6 @@ pub struct DerivedBatch {
     pub estimator: Option<writer::EstimatorSnapshot>,
 }
 
-/// Shows a value readably in an error, however large.
-fn shown(v: f64) -> String {
-    if v.is_finite() && v.abs() >= 1e6 {
-        format!("{v:.3e}")
-    } else {
-        format!("{v}")
-    }
-}
-
 fn check_reading(
     rt: &ChannelRuntime,
     r: &RawReading,
@@ -356,10 +349,19 @@ fn check_reading(
             ),
         ));
     }
-    if let Some(a) = r.amps
-        && !a.is_finite()
-    {
-        return Err(("amps", format!("amps = {a}: must be a finite number")));
+    if let Some(a) = r.amps {
+        if !a.is_finite() {
+            return Err(("amps", format!("amps = {a}: must be a finite number")));
+        }
+        if a.abs() > MAX_READING_ABS_AMPS {
+            return Err((
+                "amps",
+                format!(
+                    "amps = {}: beyond ±1e6 A, not a cell current (a broken shunt or a garbled value)",
+                    shown(a)
+                ),
+            ));
+        }
     }
     if let Some(t) = r.temp_c
         && !(t.is_finite() && (MIN_READING_TEMP_C..=MAX_READING_TEMP_C).contains(&t))

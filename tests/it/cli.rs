@@ -12,25 +12,6 @@ fn bin() -> Command {
     Command::new(env!("CARGO_BIN_EXE_gibbsline"))
 }
 
-async fn stored(
-    history: &mut HistoryServiceClient<tonic::transport::Channel>,
-    channel: &str,
-) -> Vec<pb::StoredReading> {
-    let mut s = history
-        .query_readings(pb::QueryReadingsRequest {
-            channel_id: channel.into(),
-            ..Default::default()
-        })
-        .await
-        .unwrap()
-        .into_inner();
-    let mut out = Vec::new();
-    while let Some(p) = s.next().await {
-        out.extend(p.unwrap().readings);
-    }
-    out
-}
-
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn demo_stores_readings_and_raises_the_scenario_alerts() {
     let (dir, db) = temp_db();
@@ -68,7 +49,7 @@ async fn demo_stores_readings_and_raises_the_scenario_alerts() {
     let ch = server.channel().await;
     let mut history = HistoryServiceClient::new(ch.clone());
     for id in ["hl-vrb-1", "hl-fecr-2", "hl-lfp-3", "hl-pem-stack"] {
-        assert!(stored(&mut history, id).await.len() > 1000, "{id}");
+        assert!(stored_readings(&mut history, id).await.len() > 1000, "{id}");
     }
     let alerts = AlertServiceClient::new(ch)
         .list_alerts(pb::ListAlertsRequest {
@@ -163,7 +144,7 @@ async fn csv_parses_back_to_stored_values() {
     let rows: Vec<Vec<String>> = lines
         .map(|l| l.split(',').map(String::from).collect())
         .collect();
-    let stored = stored(&mut HistoryServiceClient::new(ch), "csv-1").await;
+    let stored = stored_readings(&mut HistoryServiceClient::new(ch), "csv-1").await;
     assert_eq!(rows.len(), stored.len());
     for (row, s) in rows.iter().zip(&stored) {
         assert_eq!(row[col("seq")].parse::<u64>().unwrap(), s.seq);
@@ -239,6 +220,68 @@ max_volts = 2.0
         );
         assert!(text.contains("c.toml"), "{text}");
     }
+}
+
+/// `token new` prints a token once and the entry that admits it; `token
+/// hash` gives the same digest; the config loads and the table knows the
+/// token's holder, role and channels.
+#[test]
+fn token_new_makes_an_entry_that_admits_its_token() {
+    let out = bin()
+        .args(["token", "new", "--name", "bench-9 rig", "--role", "rig"])
+        .args(["--channel", "hl-vrb-1"])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(0));
+    let stdout = String::from_utf8(out.stdout).unwrap();
+    let token = stdout
+        .lines()
+        .find_map(|l| {
+            l.trim_start_matches(['#', ' '])
+                .strip_prefix("GIBBSLINE_TOKEN=")
+        })
+        .unwrap_or_else(|| panic!("no token shown: {stdout}"))
+        .to_string();
+    assert_eq!(token.len(), 3 + 64, "{token}");
+    let config = gibbsline::config::load("new.toml", &stdout, &Default::default()).unwrap();
+    let table = gibbsline::auth::TokenTable::new(&config.token).unwrap();
+    let holder = table.identify(Some(&format!("Bearer {token}"))).unwrap();
+    assert_eq!(
+        (holder.name.as_str(), holder.role, holder.channels.clone()),
+        (
+            "bench-9 rig",
+            gibbsline::auth::Role::Rig,
+            vec!["hl-vrb-1".to_string()]
+        )
+    );
+    assert!(
+        !stdout
+            .lines()
+            .filter(|l| !l.starts_with('#'))
+            .any(|l| l.contains(&token)),
+        "the token itself must not go into the entry"
+    );
+
+    let mut hash = bin()
+        .args(["token", "hash"])
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .spawn()
+        .unwrap();
+    use std::io::Write;
+    writeln!(hash.stdin.take().unwrap(), "{token}").unwrap();
+    let hashed = hash.wait_with_output().unwrap();
+    assert_eq!(
+        String::from_utf8(hashed.stdout).unwrap().trim(),
+        config.token[0].sha256
+    );
+
+    let bad = bin()
+        .args(["token", "new", "--name", "x", "--role", "janitor"])
+        .output()
+        .unwrap();
+    assert_eq!(bad.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&bad.stderr).contains("--role \"janitor\""));
 }
 
 #[test]
@@ -330,7 +373,7 @@ async fn rig_simulate_resumes_after_restart_without_gaps_or_duplicates() {
     );
     let mut history = HistoryServiceClient::new(server.channel().await);
     for id in ["hl-vrb-1", "hl-fecr-2"] {
-        let rows = stored(&mut history, id).await;
+        let rows = stored_readings(&mut history, id).await;
         assert!(rows.len() > 500, "{id}: {}", rows.len());
         let mut seqs: Vec<u64> = rows.iter().map(|r| r.seq).collect();
         seqs.sort_unstable();

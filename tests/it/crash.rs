@@ -177,19 +177,11 @@ async fn sigkill_at_random_moments_loses_and_doubles_nothing() {
     let mut history = HistoryServiceClient::new(ch.clone());
     let mut readings_by_channel = HashMap::new();
     for id in CHANNELS {
-        let mut s = history
-            .query_readings(pb::QueryReadingsRequest {
-                channel_id: id.into(),
-                limit: 10_000_000,
-                ..Default::default()
-            })
+        let mut seqs: Vec<u64> = stored_readings(&mut history, id)
             .await
-            .unwrap()
-            .into_inner();
-        let mut seqs = Vec::new();
-        while let Some(p) = s.next().await {
-            seqs.extend(p.unwrap().readings.into_iter().map(|r| r.seq));
-        }
+            .into_iter()
+            .map(|r| r.seq)
+            .collect();
         let n = seqs.len() as u64;
         assert!(
             n >= acked[id] && acked[id] > 0,
@@ -311,18 +303,7 @@ async fn sigterm_ends_streams_with_resume_points_and_exits_zero() {
     // Everything acknowledged is there after a restart.
     let server = Server::start(&db).await;
     let mut history = HistoryServiceClient::new(server.channel().await);
-    let mut s = history
-        .query_readings(pb::QueryReadingsRequest {
-            channel_id: "term-1".into(),
-            ..Default::default()
-        })
-        .await
-        .unwrap()
-        .into_inner();
-    let mut n = 0;
-    while let Some(p) = s.next().await {
-        n += p.unwrap().readings.len();
-    }
+    let n = stored_readings(&mut history, "term-1").await.len();
     assert_eq!(n, 100);
     server.stop().await;
 }

@@ -84,3 +84,25 @@ pub fn reading(seq: u64, time_unix_ns: i64, volts: f64, amps: Option<f64>) -> pb
         temp_c: Some(25.0),
     }
 }
+
+/// Every stored reading of a channel (up to ten million), all pages, in seq order.
+pub async fn stored_readings(
+    history: &mut pb::history_service_client::HistoryServiceClient<Channel>,
+    channel: &str,
+) -> Vec<pb::StoredReading> {
+    use tokio_stream::StreamExt;
+    let mut pages = history
+        .query_readings(pb::QueryReadingsRequest {
+            channel_id: channel.into(),
+            limit: 10_000_000,
+            ..Default::default()
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    let mut out = Vec::new();
+    while let Some(page) = pages.next().await {
+        out.extend(page.unwrap().readings);
+    }
+    out
+}

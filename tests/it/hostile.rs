@@ -191,6 +191,12 @@ async fn hostile_corpus_gets_specific_answers() {
             amps: Some(f64::NAN),
             ..reading(28, t + 58_000_000_000, 1.08, None)
         },
+        // Finite but absurd: found by the ingest_batch fuzz target, where
+        // it turned the coulomb count infinite for the rest of the run.
+        pb::Reading {
+            amps: Some(-1e300),
+            ..reading(29, t + 59_000_000_000, 1.08, None)
+        },
     ];
     let n = extremes.len();
     let ack = send(extremes).await.unwrap();
@@ -210,6 +216,7 @@ async fn hostile_corpus_gets_specific_answers() {
             "volts",
             "temp_c",
             "temp_c",
+            "amps",
             "amps"
         ]
     );
@@ -268,6 +275,13 @@ async fn hostile_corpus_gets_specific_answers() {
                 c.max_volts = 1.0;
             }),
             "max_volts",
+        ),
+        (
+            Box::new(|c: &mut pb::Channel| {
+                c.min_volts = 0.0;
+                c.max_volts = 1e300;
+            }),
+            "max_volts = 1.000e300",
         ),
     ] {
         let mut c = channel_def("good-2", "daniell");

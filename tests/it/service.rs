@@ -23,25 +23,6 @@ async fn send(
     acks
 }
 
-async fn readings_of(
-    history: &mut HistoryServiceClient<tonic::transport::Channel>,
-    channel: &str,
-) -> Vec<pb::StoredReading> {
-    let mut s = history
-        .query_readings(pb::QueryReadingsRequest {
-            channel_id: channel.into(),
-            ..Default::default()
-        })
-        .await
-        .unwrap()
-        .into_inner();
-    let mut out = Vec::new();
-    while let Some(page) = s.next().await {
-        out.extend(page.unwrap().readings);
-    }
-    out
-}
-
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn stream_store_query_restart_resend() {
     let (_dir, db) = temp_db();
@@ -87,7 +68,7 @@ async fn stream_store_query_restart_resend() {
     assert_eq!(acks[1].accepted, 50);
 
     // Derived values agree with the core.
-    let stored = readings_of(&mut history, "bench-b").await;
+    let stored = stored_readings(&mut history, "bench-b").await;
     assert_eq!(stored.len(), 50);
     let first = &stored[0];
     let d = first.derived.as_ref().unwrap();
@@ -133,7 +114,7 @@ async fn stream_store_query_restart_resend() {
     let ch = server.channel().await;
     let mut ingest = IngestServiceClient::new(ch.clone());
     let mut history = HistoryServiceClient::new(ch.clone());
-    assert_eq!(readings_of(&mut history, "bench-a").await.len(), 100);
+    assert_eq!(stored_readings(&mut history, "bench-a").await.len(), 100);
     let acks = send(&mut ingest, vec![batch("bench-a", 91, 20, 1.35)]).await;
     assert_eq!(
         (
@@ -143,7 +124,7 @@ async fn stream_store_query_restart_resend() {
         ),
         (10, 10, 110)
     );
-    let all = readings_of(&mut history, "bench-a").await;
+    let all = stored_readings(&mut history, "bench-a").await;
     assert_eq!(all.len(), 110);
     let mut seqs: Vec<_> = all.iter().map(|r| r.seq).collect();
     seqs.dedup();
@@ -300,7 +281,7 @@ async fn bad_input_is_answered_and_costs_no_good_reading() {
     assert!(s.message().contains("chemistry_id"), "{}", s.message());
 
     // Good data survived all of it.
-    assert_eq!(readings_of(&mut history, "cell-1").await.len(), 4);
+    assert_eq!(stored_readings(&mut history, "cell-1").await.len(), 4);
     server.stop().await;
 }
 

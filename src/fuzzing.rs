@@ -1,0 +1,325 @@
+//! Fuzz-target bodies. Each takes arbitrary bytes, feeds them to one of the
+//! parsers or validators that face untrusted input, and panics when a
+//! property that must hold for *every* input is broken: no panic inside the
+//! code under test, an error that names where the problem is, and on the
+//! ingest path every reading accounted for exactly once.
+//!
+//! The cargo-fuzz targets in `tests/fuzz/` call these (nightly, libFuzzer);
+//! the unit tests below replay the committed seeds and random mutations of
+//! them on stable, so `cargo test` keeps the properties true between fuzz
+//! runs. Pure: no I/O, no clock (the batch target runs at a fixed "now").
+
+use crate::channel::ChannelDef;
+use crate::electrochem::chemistry::parse_chemistry_file;
+use crate::electrochem::{self, EvalRequest, Registry};
+use crate::estimator::{CurrentSign, EstimatorState};
+use crate::ingest::{self, ChannelRuntime, RawReading};
+use crate::pb;
+use prost::Message;
+use std::collections::{BTreeMap, HashSet};
+
+/// The fuzz targets, by the names `cargo fuzz run` takes.
+pub const TARGETS: [&str; 3] = ["chemistry_file", "config_file", "ingest_batch"];
+
+/// The server's clock for the batch target: 2026-06-01T00:00:00Z.
+pub const FUZZ_NOW_NS: i64 = 1_780_272_000 * 1_000_000_000;
+
+/// Runs the body of target `name` on `data`.
+pub fn run(name: &str, data: &[u8]) {
+    match name {
+        "chemistry_file" => chemistry_file(data),
+        "config_file" => config_file(data),
+        "ingest_batch" => ingest_batch(data),
+        other => panic!("no fuzz target named {other:?}"),
+    }
+}
+
+/// A chemistry file (TOML) as a user would pass with `--chemistry-file`.
+/// Every chemistry that validates must evaluate to finite thermodynamics
+/// across its own voltage window, with SOC in [0, 1] and an OCV that does
+/// not fall as SOC rises.
+pub fn chemistry_file(data: &[u8]) {
+    let Ok(text) = std::str::from_utf8(data) else {
+        return;
+    };
+    match parse_chemistry_file("fuzz.toml", text) {
+        Err(e) => {
+            let message = e.to_string();
+            assert!(
+                message.starts_with("fuzz.toml"),
+                "error does not name the file: {message}"
+            );
+        }
+        Ok(chemistries) => {
+            for chemistry in &chemistries {
+                check_chemistry(chemistry);
+            }
+        }
+    }
+}
+
+fn check_chemistry(chemistry: &electrochem::Chemistry) {
+    let (lo, hi) = (chemistry.min_cell_volts, chemistry.max_cell_volts);
+    for temp_k in [253.15, 298.15, 343.15] {
+        for step in 0..=8 {
+            let cell_volts = lo + (hi - lo) * f64::from(step) / 8.0;
+            let request = EvalRequest {
+                stack_volts: cell_volts,
+                cells_in_series: 1,
+                temp_k,
+                equilibrium_tolerance_volts: 1e-3,
+            };
+            let Ok(ev) = electrochem::evaluate(chemistry, request) else {
+                continue;
+            };
+            let t = &ev.thermo;
+            for (what, v) in [
+                ("delta_g_kj_per_mol", t.delta_g_kj_per_mol),
+                ("ln_q", t.ln_q),
+                ("ln_k", t.ln_k),
+                ("e_standard_volts", t.e_standard_volts),
+            ] {
+                assert!(
+                    v.is_finite(),
+                    "{}: {what} = {v} at {cell_volts} V, {temp_k} K",
+                    chemistry.id
+                );
+            }
+            if let Some(soc) = ev.soc {
+                assert!(
+                    (0.0..=1.0).contains(&soc),
+                    "{}: soc = {soc} at {cell_volts} V",
+                    chemistry.id
+                );
+            }
+        }
+        let ocv_at = |soc: f64| {
+            electrochem::evaluate_at_soc(chemistry, soc, 1, temp_k, 1e-3)
+                .ok()
+                .map(|ev| ev.thermo.cell_volts)
+        };
+        let mut previous: Option<f64> = None;
+        for step in 1..=9 {
+            let soc = f64::from(step) / 10.0;
+            let Some(volts) = ocv_at(soc) else { break };
+            assert!(
+                volts.is_finite(),
+                "{}: OCV at soc {soc} = {volts}",
+                chemistry.id
+            );
+            if let Some(p) = previous {
+                // Tolerance for rounding in the table interpolation only.
+                assert!(
+                    volts >= p - 1e-9 * p.abs().max(1.0),
+                    "{}: OCV falls from {p} V to {volts} V as soc rises to {soc}",
+                    chemistry.id
+                );
+            }
+            previous = Some(volts);
+        }
+    }
+}
+
+/// A server config file (TOML), without environment overrides. An error
+/// names the file and a line inside it; a config that loads prints (as
+/// `--print-config` does) to text that loads back to the same config.
+pub fn config_file(data: &[u8]) {
+    let Ok(text) = std::str::from_utf8(data) else {
+        return;
+    };
+    let no_env = BTreeMap::new();
+    match crate::config::load("fuzz.toml", text, &no_env) {
+        Err(e) => {
+            assert_eq!(e.path, "fuzz.toml");
+            if let Some(line) = e.line {
+                let lines = text.lines().count().max(1);
+                assert!(
+                    (1..=lines + 1).contains(&line),
+                    "line {line} outside a {lines}-line file: {e}"
+                );
+            }
+            assert!(!e.message.is_empty(), "empty config error message");
+        }
+        Ok(config) => {
+            let _ = config.check_exposure();
+            let printed = toml::to_string(&config)
+                .unwrap_or_else(|e| panic!("a loaded config does not print: {e}"));
+            let reloaded = crate::config::load("printed.toml", &printed, &no_env)
+                .unwrap_or_else(|e| panic!("printed config does not load: {e}\n{printed}"));
+            assert!(
+                reloaded == config,
+                "printed config loads differently:\n{printed}"
+            );
+        }
+    }
+}
+
+/// Channels the batch target runs every input against: single cells and
+/// stacks, both sign conventions, Nernst, table and no SOC model, with and
+/// without a capacity and a fixed resistance.
+fn fuzz_channels(registry: &Registry) -> Vec<ChannelRuntime> {
+    let setups: [(&str, u32, CurrentSign, f64, Option<f64>); 4] = [
+        ("vanadium-redox", 1, CurrentSign::ChargePositive, 2.0, None),
+        ("lead-acid", 6, CurrentSign::DischargePositive, 50.0, None),
+        (
+            "hydrogen-oxygen",
+            10,
+            CurrentSign::ChargePositive,
+            0.0,
+            None,
+        ),
+        (
+            "ocv-table-demo",
+            4,
+            CurrentSign::ChargePositive,
+            1.0,
+            Some(0.01),
+        ),
+    ];
+    setups
+        .iter()
+        .enumerate()
+        .map(
+            |(i, &(chemistry_id, cells, sign, capacity_ah, resistance))| {
+                let chemistry = registry
+                    .get(chemistry_id)
+                    .unwrap_or_else(|e| panic!("fuzz channel {chemistry_id}: {e}"));
+                let (min_volts, max_volts) = ChannelDef::default_window(&chemistry);
+                let def = ChannelDef {
+                    channel_id: format!("fuzz-{i}"),
+                    chemistry_id: chemistry_id.into(),
+                    cells_in_series: cells,
+                    capacity_ah,
+                    current_sign: sign,
+                    default_temp_c: 25.0,
+                    min_volts,
+                    max_volts,
+                    e_standard_override_v: None,
+                    resistance_ohm: resistance,
+                    equilibrium_tolerance_mv: 1.0,
+                    coulombic_efficiency: 1.0,
+                    faradaic_efficiency: 1.0,
+                    description: String::new(),
+                };
+                let chemistry = def
+                    .validate(registry)
+                    .unwrap_or_else(|e| panic!("fuzz channel {chemistry_id}: {e}"));
+                ChannelRuntime::fresh(i as i64 + 1, def, chemistry, 1)
+            },
+        )
+        .collect()
+}
+
+/// One `StreamReadingsRequest` as it comes off the wire, through the same
+/// conversion and validation the server runs, then sent a second time as a
+/// rig resending after a lost ack would.
+pub fn ingest_batch(data: &[u8]) {
+    let Ok(request) = pb::StreamReadingsRequest::decode(data) else {
+        return;
+    };
+    let Some(batch) = request.batch else { return };
+    let readings: Vec<RawReading> = batch.readings.iter().map(RawReading::from).collect();
+    if let Err(e) = ingest::check_batch_size(&readings) {
+        assert!(e.to_string().contains("readings"), "{e}");
+        return;
+    }
+    let registry = Registry::builtin();
+    for mut rt in fuzz_channels(&registry) {
+        let first = check_derived(&mut rt, &readings);
+        let again = check_derived(&mut rt, &readings);
+        assert_eq!(
+            again.fresh, 0,
+            "{}: a resent batch advanced the channel again",
+            rt.def.channel_id
+        );
+        assert!(
+            again.rejected >= first.rejected,
+            "{}: a resend was rejected less often than the first send",
+            rt.def.channel_id
+        );
+    }
+}
+
+struct Tally {
+    fresh: usize,
+    rejected: usize,
+}
+
+fn check_derived(rt: &mut ChannelRuntime, readings: &[RawReading]) -> Tally {
+    let id = rt.def.channel_id.clone();
+    let max_seq_before = rt.max_seq;
+    let (derived, rejected) = ingest::derive_batch(rt, readings, FUZZ_NOW_NS);
+    assert_eq!(
+        derived.rows.len() + derived.maybe_dup.len() + rejected.len(),
+        readings.len(),
+        "{id}: every reading must be stored, a possible duplicate or rejected"
+    );
+    let mut indices = HashSet::new();
+    for r in &rejected {
+        let i = r.index as usize;
+        assert!(i < readings.len() && indices.insert(i), "{id}: index {i}");
+        assert_eq!(r.seq, readings[i].seq, "{id}: rejection {i} names seq");
+        assert!(
+            r.reason.contains(r.field),
+            "{id}: rejection of {} does not name its field: {}",
+            r.field,
+            r.reason
+        );
+    }
+    let mut last: Option<(u64, i64)> = max_seq_before.map(|s| (s, i64::MIN));
+    for row in &derived.rows {
+        if let Some((seq, time_ns)) = last {
+            assert!(
+                row.seq > seq && row.time_ns > time_ns,
+                "{id}: fresh rows must rise in seq and time"
+            );
+        }
+        last = Some((row.seq, row.time_ns));
+        assert!(row.seq <= i64::MAX as u64, "{id}: seq {} stored", row.seq);
+        assert!(row.volts.is_finite(), "{id}: volts {} stored", row.volts);
+        for (what, v) in [
+            ("cell_volts_used", row.cell_volts_used),
+            ("charge_ah", row.charge_ah),
+            ("energy_wh", row.energy_wh),
+        ] {
+            assert!(v.is_finite(), "{id}: seq {}: {what} = {v}", row.seq);
+        }
+        for soc in [row.soc_model, row.soc_fused].into_iter().flatten() {
+            assert!(
+                (0.0..=1.0).contains(&soc),
+                "{id}: seq {}: soc {soc}",
+                row.seq
+            );
+        }
+    }
+    let fresh_seqs: HashSet<u64> = derived.rows.iter().map(|r| r.seq).collect();
+    for change in &derived.changes {
+        if let crate::alerts::AlertChange::Raise(a) = change {
+            assert!(
+                fresh_seqs.contains(&a.seq),
+                "{id}: alert {:?} names seq {} that this batch did not store",
+                a.kind,
+                a.seq
+            );
+        }
+    }
+    if let Some(snapshot) = &derived.estimator {
+        // The snapshot is what a restart resumes from: it must read back
+        // as the state the channel holds now.
+        let restored: EstimatorState = serde_json::from_str(&snapshot.state_json)
+            .unwrap_or_else(|e| panic!("{id}: estimator snapshot does not read back: {e}"));
+        assert!(
+            restored == rt.est,
+            "{id}: estimator snapshot reads back differently:\n{:?}\n{:?}",
+            restored,
+            rt.est
+        );
+    }
+    Tally {
+        fresh: derived.rows.len(),
+        rejected: rejected.len(),
+    }
+}
+
+#[cfg(test)]
+mod tests;
