@@ -281,17 +281,33 @@ async fn silent_watch(hub: Arc<Hub>) {
     }
 }
 
+/// Metrics connections served at once.
+const METRICS_CONNECTIONS: usize = 16;
+
 /// A minimal HTTP/1.1 responder: every request gets the metrics page.
 /// Requests are read only up to the end of their headers and bounded, so a
 /// slow or hostile client cannot hold memory.
 async fn serve_metrics(listener: TcpListener, hub: Arc<Hub>) {
     use tokio::io::{AsyncReadExt, AsyncWriteExt};
+    // Scrapers come a few at a time; beyond this many open connections a
+    // new one is closed at once rather than given a task and a buffer.
+    let open = Arc::new(tokio::sync::Semaphore::new(METRICS_CONNECTIONS));
     loop {
-        let Ok((mut socket, _)) = listener.accept().await else {
+        let mut socket = match listener.accept().await {
+            Ok((socket, _)) => socket,
+            Err(e) => {
+                // Out of file descriptors, typically: back off, don't spin.
+                tracing::warn!(error = %e, "metrics accept failed");
+                tokio::time::sleep(Duration::from_millis(100)).await;
+                continue;
+            }
+        };
+        let Ok(permit) = open.clone().try_acquire_owned() else {
             continue;
         };
         let hub = hub.clone();
         tokio::spawn(async move {
+            let _permit = permit;
             let mut buf = vec![0u8; 4096];
             let mut used = 0;
             let read = tokio::time::timeout(Duration::from_secs(5), async {

@@ -18,8 +18,8 @@ use std::sync::{Arc, Mutex, RwLock};
 use tokio::sync::{broadcast, mpsc, oneshot};
 pub use writer::{Job, ReadingsJob, WriteOutcome};
 
-/// Readings per batch at most. 10,000 readings ≈ 450 kB of protobuf, well
-/// inside the 16 MiB message limit the server sets.
+/// Readings per batch at most. 10,000 readings ≈ 400 kB of protobuf,
+/// inside the 1 MiB ingest message limit the server sets.
 pub const MAX_BATCH_READINGS: usize = 10_000;
 /// A reading may be at most this far in the future (clock skew allowance).
 pub const MAX_FUTURE_NS: i64 = 86_400 * 1_000_000_000;

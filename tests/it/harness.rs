@@ -16,10 +16,14 @@ impl Server {
     }
 
     pub async fn start_on(db: &Path, addr: &str) -> Server {
+        let config = app::Config::new(db.to_path_buf(), gibbsline::store::Durability::Normal);
+        Server::start_with(config, addr).await
+    }
+
+    pub async fn start_with(config: app::Config, addr: &str) -> Server {
         let listener = tokio::net::TcpListener::bind(addr).await.unwrap();
         let addr = listener.local_addr().unwrap();
         let (tx, rx) = oneshot::channel::<()>();
-        let config = app::Config::new(db.to_path_buf(), gibbsline::store::Durability::Normal);
         let task = tokio::spawn(app::run(config, listener, async move {
             let _ = rx.await;
         }));
@@ -105,4 +109,24 @@ pub async fn stored_readings(
         out.extend(page.unwrap().readings);
     }
     out
+}
+
+/// Sends batches on one stream and returns their acks, in order.
+pub async fn send_batches(
+    client: &mut pb::ingest_service_client::IngestServiceClient<Channel>,
+    batches: Vec<pb::ReadingBatch>,
+) -> Vec<pb::BatchAck> {
+    let n = batches.len();
+    let outbound = tokio_stream::iter(
+        batches
+            .into_iter()
+            .map(|b| pb::StreamReadingsRequest { batch: Some(b) }),
+    );
+    use tokio_stream::StreamExt;
+    let mut inbound = client.stream_readings(outbound).await.unwrap().into_inner();
+    let mut acks = Vec::new();
+    while acks.len() < n {
+        acks.push(inbound.next().await.unwrap().unwrap().ack.unwrap());
+    }
+    acks
 }

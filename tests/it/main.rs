@@ -7,5 +7,6 @@ mod crash;
 mod flood;
 mod harness;
 mod hostile;
+mod metrics;
 mod security;
 mod service;

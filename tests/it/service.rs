@@ -5,24 +5,6 @@ use gibbsline::pb::history_service_client::HistoryServiceClient;
 use gibbsline::pb::ingest_service_client::IngestServiceClient;
 use tokio_stream::StreamExt;
 
-async fn send(
-    client: &mut IngestServiceClient<tonic::transport::Channel>,
-    batches: Vec<pb::ReadingBatch>,
-) -> Vec<pb::BatchAck> {
-    let n = batches.len();
-    let outbound = tokio_stream::iter(
-        batches
-            .into_iter()
-            .map(|b| pb::StreamReadingsRequest { batch: Some(b) }),
-    );
-    let mut inbound = client.stream_readings(outbound).await.unwrap().into_inner();
-    let mut acks = Vec::new();
-    while acks.len() < n {
-        acks.push(inbound.next().await.unwrap().unwrap().ack.unwrap());
-    }
-    acks
-}
-
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn stream_store_query_restart_resend() {
     let (_dir, db) = temp_db();
@@ -49,7 +31,7 @@ async fn stream_store_query_restart_resend() {
             .map(|s| reading(s, t0 + s as i64 * 1_000_000_000, volts, Some(0.5)))
             .collect(),
     };
-    let acks = send(
+    let acks = send_batches(
         &mut ingest,
         vec![
             batch("bench-a", 1, 100, 1.35),
@@ -115,7 +97,7 @@ async fn stream_store_query_restart_resend() {
     let mut ingest = IngestServiceClient::new(ch.clone());
     let mut history = HistoryServiceClient::new(ch.clone());
     assert_eq!(stored_readings(&mut history, "bench-a").await.len(), 100);
-    let acks = send(&mut ingest, vec![batch("bench-a", 91, 20, 1.35)]).await;
+    let acks = send_batches(&mut ingest, vec![batch("bench-a", 91, 20, 1.35)]).await;
     assert_eq!(
         (
             acks[0].accepted,
@@ -163,7 +145,7 @@ async fn bad_input_is_answered_and_costs_no_good_reading() {
         },
         reading(8, t + 7_000_000_000, 1.09, Some(0.0)), // good
     ];
-    let acks = send(
+    let acks = send_batches(
         &mut ingest,
         vec![pb::ReadingBatch {
             channel_id: "cell-1".into(),
@@ -199,7 +181,7 @@ async fn bad_input_is_answered_and_costs_no_good_reading() {
 
     // A late reading (seq below the stored maximum, not a duplicate) is kept and flagged.
     readings = vec![reading(7, t + 6_500_000_000, 1.085, Some(0.0))];
-    let acks = send(
+    let acks = send_batches(
         &mut ingest,
         vec![pb::ReadingBatch {
             channel_id: "cell-1".into(),
@@ -211,7 +193,7 @@ async fn bad_input_is_answered_and_costs_no_good_reading() {
     assert_eq!((acks[0].accepted, acks[0].out_of_order), (1, 1));
 
     // Unknown channel and empty batch: in-band rejections, stream stays open.
-    let acks = send(
+    let acks = send_batches(
         &mut ingest,
         vec![
             pb::ReadingBatch {
