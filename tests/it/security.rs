@@ -257,3 +257,86 @@ async fn tls_mtls_and_roles() {
     let _ = stop.send(());
     task.await.unwrap().unwrap();
 }
+
+/// The client commands over TLS with client certificates and tokens, as an
+/// operator's laptop or a rig PC on the lab network would run them.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn cli_speaks_tls_with_certificates_and_tokens() {
+    let (dir, db) = temp_db();
+    let pki = pki();
+    let (addr, stop, task) = start_secure(&db, &pki).await;
+    let file = |name: &str, pem: &str| {
+        let path = dir.path().join(name);
+        std::fs::write(&path, pem).unwrap();
+        path
+    };
+    let ca = file("ca.pem", &pki.ca_pem);
+    let cert = file("client.pem", &pki.client.0);
+    let key = file("client.key", &pki.client.1);
+    let url = format!("https://localhost:{}", addr.port());
+    let cli = move |token: Option<&str>, args: &[&str]| {
+        let mut cmd = std::process::Command::new(env!("CARGO_BIN_EXE_gibbsline"));
+        cmd.args(args)
+            .args(["--connect", url.as_str()])
+            .env("GIBBSLINE_CA_FILE", &ca)
+            .env("GIBBSLINE_CLIENT_CERT", &cert)
+            .env("GIBBSLINE_CLIENT_KEY", &key)
+            .env_remove("GIBBSLINE_TOKEN")
+            .stdin(std::process::Stdio::null());
+        if let Some(t) = token {
+            cmd.env("GIBBSLINE_TOKEN", t);
+        }
+        let out = cmd.output().unwrap();
+        (
+            out.status.code(),
+            String::from_utf8_lossy(&out.stdout).to_string(),
+            String::from_utf8_lossy(&out.stderr).to_string(),
+        )
+    };
+    let run = |token: Option<&'static str>, args: &'static [&'static str]| {
+        let cli = cli.clone();
+        tokio::task::spawn_blocking(move || cli(token, args))
+    };
+
+    // The simulator defines its channels, so it needs an admin token.
+    let (code, stdout, stderr) = run(
+        Some("admin-secret"),
+        &[
+            "rig",
+            "simulate",
+            "--channels",
+            "1",
+            "--speed",
+            "600",
+            "--duration",
+            "3s",
+        ],
+    )
+    .await
+    .unwrap();
+    assert_eq!(code, Some(0), "{stdout}{stderr}");
+    let acknowledged: u64 = stdout
+        .split(" acknowledged")
+        .next()
+        .and_then(|s| s.rsplit(' ').next())
+        .and_then(|n| n.parse().ok())
+        .unwrap_or_else(|| panic!("no acknowledged count in {stdout}"));
+    assert!(acknowledged > 0, "{stdout}");
+
+    let (code, stdout, stderr) = run(Some("viewer-secret"), &["state"]).await.unwrap();
+    assert_eq!(code, Some(0), "{stdout}{stderr}");
+    assert!(stdout.contains("hl-"), "{stdout}");
+
+    // Without a token, and with one whose role does not reach the RPC,
+    // the command fails and says why; the token never appears in output.
+    let (code, _, stderr) = run(None, &["state"]).await.unwrap();
+    assert_eq!(code, Some(1), "{stderr}");
+    assert!(stderr.to_lowercase().contains("token"), "{stderr}");
+    let (code, stdout, stderr) = run(Some("rig-secret"), &["state"]).await.unwrap();
+    assert_eq!(code, Some(1), "{stdout}{stderr}");
+    assert!(stderr.contains("rig"), "{stderr}");
+    assert!(!stderr.contains("rig-secret") && !stdout.contains("rig-secret"));
+
+    let _ = stop.send(());
+    task.await.unwrap().unwrap();
+}
