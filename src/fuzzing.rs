@@ -9,17 +9,24 @@
 //! them on stable, so `cargo test` keeps the properties true between fuzz
 //! runs. Pure: no I/O, no clock (the batch target runs at a fixed "now").
 
+use crate::alerts::AlertChange;
 use crate::channel::ChannelDef;
 use crate::electrochem::chemistry::parse_chemistry_file;
 use crate::electrochem::{self, EvalRequest, Registry};
 use crate::estimator::{CurrentSign, EstimatorState};
 use crate::ingest::{self, ChannelRuntime, RawReading};
 use crate::pb;
+use crate::store::{ReadingRow, ResumeState};
 use prost::Message;
 use std::collections::{BTreeMap, HashSet};
 
 /// The fuzz targets, by the names `cargo fuzz run` takes.
-pub const TARGETS: [&str; 3] = ["chemistry_file", "config_file", "ingest_batch"];
+pub const TARGETS: [&str; 4] = [
+    "chemistry_file",
+    "config_file",
+    "ingest_batch",
+    "ingest_restart",
+];
 
 /// The server's clock for the batch target: 2026-06-01T00:00:00Z.
 pub const FUZZ_NOW_NS: i64 = 1_780_272_000 * 1_000_000_000;
@@ -30,6 +37,7 @@ pub fn run(name: &str, data: &[u8]) {
         "chemistry_file" => chemistry_file(data),
         "config_file" => config_file(data),
         "ingest_batch" => ingest_batch(data),
+        "ingest_restart" => ingest_restart(data),
         other => panic!("no fuzz target named {other:?}"),
     }
 }
@@ -225,27 +233,177 @@ pub fn ingest_batch(data: &[u8]) {
     }
     let registry = Registry::builtin();
     for mut rt in fuzz_channels(&registry) {
-        let first = check_derived(&mut rt, &readings);
-        let again = check_derived(&mut rt, &readings);
-        assert_eq!(
-            again.fresh, 0,
+        let (_, first_rejected) = check_derived(&mut rt, &readings);
+        let (again, again_rejected) = check_derived(&mut rt, &readings);
+        assert!(
+            again.rows.is_empty(),
             "{}: a resent batch advanced the channel again",
             rt.def.channel_id
         );
         assert!(
-            again.rejected >= first.rejected,
+            again_rejected.len() >= first_rejected.len(),
             "{}: a resend was rejected less often than the first send",
             rt.def.channel_id
         );
     }
 }
 
-struct Tally {
-    fresh: usize,
-    rejected: usize,
+/// Bytes per reading in an `ingest_restart` program.
+const STEP_BYTES: usize = 5;
+
+/// A rig's session as a compact program, so the fuzzer explores long runs
+/// of charge, rest and discharge rather than protobuf framing. Byte 0
+/// picks the channel; then each reading takes five bytes:
+///
+/// | byte | meaning |
+/// |---|---|
+/// | 0 | seconds since the previous reading (0 repeats its timestamp) |
+/// | 1 | current: low 4 bits index a table of amps (or none); bit 7 repeats the previous seq |
+/// | 2–3 | per-cell volts: an i16 offset across 1.2× the channel's window |
+/// | 4 | bit 0 ends the batch; bit 1 also restarts the server after it; bit 2 carries a temperature, bits 3–7 its offset (°C) |
+pub fn restart_program(data: &[u8]) -> Option<(usize, Vec<Vec<RawReading>>, Vec<bool>)> {
+    const AMPS: [Option<f64>; 16] = [
+        None,
+        Some(0.0),
+        Some(0.005),
+        Some(-0.005),
+        Some(0.2),
+        Some(-0.2),
+        Some(1.0),
+        Some(-1.0),
+        Some(2.0),
+        Some(-2.0),
+        Some(5.0),
+        Some(-5.0),
+        Some(40.0),
+        Some(-40.0),
+        Some(0.05),
+        Some(-0.05),
+    ];
+    let (&setup, steps) = data.split_first()?;
+    let (lo, hi) = [(1.0, 1.7), (1.9, 2.2), (0.0, 2.0), (2.5, 3.65)][usize::from(setup % 4)];
+    let mut batches = vec![Vec::new()];
+    let mut restarts = vec![false];
+    let mut seq = 0u64;
+    let mut time_ns = FUZZ_NOW_NS - 30 * 86_400 * 1_000_000_000;
+    for step in steps.chunks_exact(STEP_BYTES) {
+        let [dt_s, amps_code, v_hi, v_lo, control] = [step[0], step[1], step[2], step[3], step[4]];
+        time_ns += i64::from(dt_s) * 1_000_000_000;
+        if amps_code & 0x80 == 0 || seq == 0 {
+            seq += 1;
+        }
+        let offset = f64::from(i16::from_be_bytes([v_hi, v_lo])) / 32768.0;
+        let cell_volts = (lo + hi) / 2.0 + offset * 0.6 * (hi - lo);
+        let temp_c = (control & 0b100 != 0).then(|| 25.0 + f64::from(control >> 3) - 16.0);
+        let batch = batches.last_mut().expect("one batch at least");
+        batch.push(RawReading {
+            seq,
+            time_unix_ns: time_ns,
+            // Scaled to the stack by the caller, which knows the cell count.
+            volts: cell_volts,
+            amps: AMPS[usize::from(amps_code & 0x0f)],
+            temp_c,
+        });
+        if control & 1 != 0 {
+            *restarts.last_mut().expect("one flag per batch") = control & 0b10 != 0;
+            batches.push(Vec::new());
+            restarts.push(false);
+        }
+    }
+    if batches.last().is_some_and(Vec::is_empty) {
+        batches.pop();
+        restarts.pop();
+    }
+    Some((usize::from(setup % 4), batches, restarts))
 }
 
-fn check_derived(rt: &mut ChannelRuntime, readings: &[RawReading]) -> Tally {
+/// A session run twice: once by a server that never stops, once by one
+/// restarted from its store after the marked batches (the estimator
+/// snapshot read back from JSON, the highest stored seq, the active
+/// alerts). Every stored reading must come out the same: a restart may not
+/// change a channel's SOC, charge, energy or flags.
+pub fn ingest_restart(data: &[u8]) {
+    let Some((setup, batches, restarts)) = restart_program(data) else {
+        return;
+    };
+    let registry = Registry::builtin();
+    let mut steady = fuzz_channels(&registry).swap_remove(setup);
+    let mut restarted = steady.clone();
+    let cells = f64::from(steady.def.cells_in_series);
+    // What the restarted server's store holds.
+    let mut stored_max_seq: Option<u64> = None;
+    let mut snapshot: Option<ingest::writer::EstimatorSnapshot> = None;
+    let mut active = std::collections::BTreeSet::new();
+    for (number, (batch, restart_after)) in batches.iter().zip(restarts).enumerate() {
+        let batch: Vec<RawReading> = batch
+            .iter()
+            .map(|r| RawReading {
+                volts: r.volts * cells,
+                ..*r
+            })
+            .collect();
+        let (a, _) = ingest::derive_batch(&mut steady, &batch, FUZZ_NOW_NS);
+        let (b, _) = check_derived(&mut restarted, &batch);
+        let key = |rows: &[ReadingRow]| -> Vec<_> {
+            rows.iter()
+                .map(|r| {
+                    (
+                        r.seq,
+                        r.time_ns,
+                        r.cell_volts_used,
+                        r.soc_model,
+                        r.soc_fused,
+                        r.charge_ah,
+                        r.energy_wh,
+                        r.flags,
+                    )
+                })
+                .collect()
+        };
+        assert_eq!(
+            (key(&a.rows), key(&a.maybe_dup)),
+            (key(&b.rows), key(&b.maybe_dup)),
+            "batch {number}: a restarted server derived other values"
+        );
+        stored_max_seq = stored_max_seq.max(b.rows.iter().chain(&b.maybe_dup).map(|r| r.seq).max());
+        if b.estimator.is_some() {
+            snapshot = b.estimator;
+        }
+        for change in &b.changes {
+            match change {
+                AlertChange::Raise(alert) => active.insert(alert.kind),
+                AlertChange::Clear { kind, .. } => active.remove(kind),
+            };
+        }
+        if restart_after {
+            let run_id = restarted.run_id;
+            restarted = ingest::restore_runtime(
+                restarted.key,
+                restarted.def.clone(),
+                restarted.chemistry.clone(),
+                run_id,
+                restarted.rules.clone(),
+                ResumeState {
+                    max_seq: stored_max_seq,
+                    estimator: snapshot.as_ref().map(|s| {
+                        (
+                            run_id,
+                            s.last_time_ns,
+                            s.usual_interval_s,
+                            s.state_json.clone(),
+                        )
+                    }),
+                    active_kinds: active.iter().copied().collect(),
+                },
+            );
+        }
+    }
+}
+
+fn check_derived(
+    rt: &mut ChannelRuntime,
+    readings: &[RawReading],
+) -> (ingest::DerivedBatch, Vec<ingest::Rejection>) {
     let id = rt.def.channel_id.clone();
     let max_seq_before = rt.max_seq;
     let (derived, rejected) = ingest::derive_batch(rt, readings, FUZZ_NOW_NS);
@@ -315,10 +473,7 @@ fn check_derived(rt: &mut ChannelRuntime, readings: &[RawReading]) -> Tally {
             rt.est
         );
     }
-    Tally {
-        fresh: derived.rows.len(),
-        rejected: rejected.len(),
-    }
+    (derived, rejected)
 }
 
 #[cfg(test)]

@@ -60,6 +60,43 @@ fn batch_seeds_reach_the_estimator() {
     assert!(deep >= 3, "only {deep} batch seeds reach the estimator");
 }
 
+/// The restart seeds must restart, and the stored rows must show the
+/// estimator's deeper states (rests settled, SOC counted) on both sides.
+#[test]
+fn restart_seeds_restart_mid_cycle() {
+    use crate::store::flags;
+    let registry = Registry::builtin();
+    for (path, bytes) in seeds("ingest_restart") {
+        let (setup, batches, restarts) =
+            restart_program(&bytes).unwrap_or_else(|| panic!("{path}: empty"));
+        assert!(restarts.iter().filter(|r| **r).count() >= 3, "{path}");
+        let mut rt = fuzz_channels(&registry).swap_remove(setup);
+        let cells = f64::from(rt.def.cells_in_series);
+        let mut seen = 0;
+        for batch in &batches {
+            let batch: Vec<RawReading> = batch
+                .iter()
+                .map(|r| RawReading {
+                    volts: r.volts * cells,
+                    ..*r
+                })
+                .collect();
+            let (derived, _) = ingest::derive_batch(&mut rt, &batch, FUZZ_NOW_NS);
+            for row in &derived.rows {
+                seen |= row.flags & (flags::REST_SETTLED | flags::OCV_COUNTED | flags::OCV_OHMIC);
+            }
+        }
+        assert_ne!(seen & flags::REST_SETTLED, 0, "{path}: no rest settled");
+        if setup != 2 {
+            assert_ne!(
+                seen & (flags::OCV_COUNTED | flags::OCV_OHMIC),
+                0,
+                "{path}: never compensated"
+            );
+        }
+    }
+}
+
 #[test]
 fn unknown_target_is_refused() {
     assert!(std::panic::catch_unwind(|| run("no-such-target", b"")).is_err());
@@ -136,6 +173,18 @@ proptest! {
     #[test]
     fn mutated_batches_hold_the_ingest_properties(bytes in seed_mutations("ingest_batch")) {
         ingest_batch(&bytes);
+    }
+
+    #[test]
+    fn random_sessions_derive_the_same_across_restarts(
+        program in prop::collection::vec(any::<u8>(), 1..(1 + 200 * STEP_BYTES)),
+    ) {
+        ingest_restart(&program);
+    }
+
+    #[test]
+    fn mutated_sessions_derive_the_same_across_restarts(bytes in seed_mutations("ingest_restart")) {
+        ingest_restart(&bytes);
     }
 
     #[test]

@@ -438,6 +438,10 @@ pub fn derive_batch(
         if !fresh {
             // A resend or a late reading: stored (if new) with its own
             // thermodynamics, but kept out of the running counts and rules.
+            // A late reading can carry a seq above every fresh one (its
+            // clock went back); it then raises the stored maximum, as the
+            // store's MAX(seq) will after a restart, so both agree on what
+            // the next reading is.
             let ev = crate::electrochem::evaluate(
                 &rt.chemistry,
                 crate::electrochem::EvalRequest {
@@ -461,6 +465,9 @@ pub fn derive_batch(
                     continue;
                 }
             };
+            if rt.max_seq.is_some_and(|m| r.seq > m) {
+                rt.max_seq = Some(r.seq);
+            }
             maybe_dup.push(ReadingRow {
                 channel_key: rt.key,
                 seq: r.seq,
@@ -606,21 +613,46 @@ pub async fn load_runtime(
         None => AlertRules::defaults_for(chemistry.min_cell_volts, chemistry.max_cell_volts),
     };
     let resume = store::load_resume_state(&store.writer, row.channel_key).await?;
+    Ok(restore_runtime(
+        row.channel_key,
+        def,
+        chemistry,
+        row.current_run_id,
+        rules,
+        resume,
+    ))
+}
+
+/// A channel's runtime rebuilt from what the store kept: the pure half of
+/// [`load_runtime`], which the restart fuzz target also runs. The estimator
+/// resumes exactly where its last committed batch left it; alert hold
+/// timers start again (only which alerts are active is kept).
+pub fn restore_runtime(
+    key: i64,
+    def: ChannelDef,
+    chemistry: Arc<Chemistry>,
+    run_id: i64,
+    rules: AlertRules,
+    resume: store::ResumeState,
+) -> ChannelRuntime {
     let (est, last_time_ns, usual_interval_s) = match resume.estimator {
-        Some((run_id, last_time_ns, usual, json)) if run_id == row.current_run_id => (
-            serde_json::from_str(&json).unwrap_or_default(),
-            last_time_ns,
-            usual,
-        ),
+        Some((snapshot_run_id, last_time_ns, usual, json)) if snapshot_run_id == run_id => {
+            let est = serde_json::from_str(&json).unwrap_or_else(|e| {
+                // Counting starts again; the readings themselves are intact.
+                tracing::warn!(channel_id = %def.channel_id, error = %e, "estimator snapshot unreadable, starting the count afresh");
+                EstimatorState::default()
+            });
+            (est, last_time_ns, usual)
+        }
         Some((_, last_time_ns, usual, _)) => (EstimatorState::default(), last_time_ns, usual),
         None => (EstimatorState::default(), 0, 0.0),
     };
-    Ok(ChannelRuntime {
-        key: row.channel_key,
+    ChannelRuntime {
+        key,
         est_config: def.estimator_config(),
         def,
         chemistry,
-        run_id: row.current_run_id,
+        run_id,
         rules,
         est,
         rule_state: ChannelRuleState::with_active(resume.active_kinds),
@@ -629,5 +661,5 @@ pub async fn load_runtime(
         usual_interval_s,
         last_arrival_wall_ns: 0,
         usual_arrival_interval_s: 0.0,
-    })
+    }
 }
