@@ -382,7 +382,7 @@ pub fn ingest_restart(data: &[u8]) {
                 restarted.def.clone(),
                 restarted.chemistry.clone(),
                 run_id,
-                restarted.rules.clone(),
+                restarted.rules,
                 ResumeState {
                     max_seq: stored_max_seq,
                     estimator: snapshot.as_ref().map(|s| {
