@@ -386,3 +386,66 @@ async fn rig_simulate_resumes_after_restart_without_gaps_or_duplicates() {
     }
     server.stop().await;
 }
+
+/// The shipped channels file defines every channel it lists, with the
+/// fields it gives, through `channels put`.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn example_channels_file_puts_every_channel() {
+    let (_dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    let example = concat!(env!("CARGO_MANIFEST_DIR"), "/deploy/channels.example.toml");
+    let addr = server.addr.to_string();
+    let out = tokio::task::spawn_blocking(move || {
+        bin()
+            .args(["channels", "put", example, "--connect", &addr])
+            .output()
+            .unwrap()
+    })
+    .await
+    .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    #[derive(serde::Deserialize)]
+    struct File {
+        channel: Vec<gibbsline::config::ChannelEntry>,
+    }
+    let file: File = toml::from_str(&std::fs::read_to_string(example).unwrap()).unwrap();
+    assert!(file.channel.len() >= 4);
+    let listed = ChannelServiceClient::new(ch)
+        .list_channels(pb::ListChannelsRequest {})
+        .await
+        .unwrap()
+        .into_inner()
+        .channels;
+    for entry in &file.channel {
+        let def = &entry.def;
+        let got = listed
+            .iter()
+            .find(|c| c.channel_id == def.channel_id)
+            .unwrap_or_else(|| panic!("{} not defined", def.channel_id));
+        assert_eq!(
+            (
+                got.chemistry_id.as_str(),
+                got.cells_in_series,
+                got.capacity_ah,
+                got.min_volts,
+                got.max_volts
+            ),
+            (
+                def.chemistry_id.as_str(),
+                def.cells_in_series,
+                def.capacity_ah,
+                def.min_volts,
+                def.max_volts
+            ),
+            "{}",
+            def.channel_id
+        );
+    }
+    server.stop().await;
+}
