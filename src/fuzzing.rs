@@ -162,6 +162,13 @@ pub fn config_file(data: &[u8]) {
     }
 }
 
+/// Built once per process: validating the built-in table on every input
+/// would dominate a fuzz run.
+fn builtins() -> &'static Registry {
+    static REGISTRY: std::sync::OnceLock<Registry> = std::sync::OnceLock::new();
+    REGISTRY.get_or_init(Registry::builtin)
+}
+
 /// Channels the batch target runs every input against: single cells and
 /// stacks, both sign conventions, Nernst, table and no SOC model, with and
 /// without a capacity and a fixed resistance.
@@ -231,8 +238,7 @@ pub fn ingest_batch(data: &[u8]) {
         assert!(e.to_string().contains("readings"), "{e}");
         return;
     }
-    let registry = Registry::builtin();
-    for mut rt in fuzz_channels(&registry) {
+    for mut rt in fuzz_channels(builtins()) {
         let (_, first_rejected) = check_derived(&mut rt, &readings);
         let (again, again_rejected) = check_derived(&mut rt, &readings);
         assert!(
@@ -326,8 +332,7 @@ pub fn ingest_restart(data: &[u8]) {
     let Some((setup, batches, restarts)) = restart_program(data) else {
         return;
     };
-    let registry = Registry::builtin();
-    let mut steady = fuzz_channels(&registry).swap_remove(setup);
+    let mut steady = fuzz_channels(builtins()).swap_remove(setup);
     let mut restarted = steady.clone();
     let cells = f64::from(steady.def.cells_in_series);
     // What the restarted server's store holds.
