@@ -77,9 +77,12 @@ fn check_chemistry(chemistry: &electrochem::Chemistry) {
                 temp_k,
                 equilibrium_tolerance_volts: 1e-3,
             };
-            let Ok(ev) = electrochem::evaluate(chemistry, request) else {
-                continue;
-            };
+            let ev = electrochem::evaluate(chemistry, request).unwrap_or_else(|e| {
+                panic!(
+                    "{}: a valid chemistry fails at {cell_volts} V, {temp_k} K: {e}",
+                    chemistry.id
+                )
+            });
             let t = &ev.thermo;
             for (what, v) in [
                 ("delta_g_kj_per_mol", t.delta_g_kj_per_mol),
