@@ -268,9 +268,9 @@ const STEP_BYTES: usize = 5;
 /// |---|---|
 /// | 0 | seconds since the previous reading (0 repeats its timestamp) |
 /// | 1 | current: low 4 bits index a table of amps (or none); bit 7 repeats the previous seq |
-/// | 2–3 | per-cell volts: an i16 offset across 1.2× the channel's window |
+/// | 2–3 | per-cell volts: an i16 offset across 1.2× the chemistry's window |
 /// | 4 | bit 0 ends the batch; bit 1 also restarts the server after it; bit 2 carries a temperature, bits 3–7 its offset (°C) |
-pub fn restart_program(data: &[u8]) -> Option<(usize, Vec<Vec<RawReading>>, Vec<bool>)> {
+pub fn restart_program(data: &[u8]) -> Option<(ChannelRuntime, Vec<Vec<RawReading>>, Vec<bool>)> {
     const AMPS: [Option<f64>; 16] = [
         None,
         Some(0.0),
@@ -290,7 +290,13 @@ pub fn restart_program(data: &[u8]) -> Option<(usize, Vec<Vec<RawReading>>, Vec<
         Some(-0.05),
     ];
     let (&setup, steps) = data.split_first()?;
-    let (lo, hi) = [(1.0, 1.7), (1.9, 2.2), (0.0, 2.0), (2.5, 3.65)][usize::from(setup % 4)];
+    let mut channels = fuzz_channels(builtins());
+    let channel = channels.swap_remove(usize::from(setup) % channels.len());
+    let (lo, hi) = (
+        channel.chemistry.min_cell_volts,
+        channel.chemistry.max_cell_volts,
+    );
+    let cells = f64::from(channel.def.cells_in_series);
     let mut batches = vec![Vec::new()];
     let mut restarts = vec![false];
     let mut seq = 0u64;
@@ -308,8 +314,7 @@ pub fn restart_program(data: &[u8]) -> Option<(usize, Vec<Vec<RawReading>>, Vec<
         batch.push(RawReading {
             seq,
             time_unix_ns: time_ns,
-            // Scaled to the stack by the caller, which knows the cell count.
-            volts: cell_volts,
+            volts: cell_volts * cells,
             amps: AMPS[usize::from(amps_code & 0x0f)],
             temp_c,
         });
@@ -323,7 +328,7 @@ pub fn restart_program(data: &[u8]) -> Option<(usize, Vec<Vec<RawReading>>, Vec<
         batches.pop();
         restarts.pop();
     }
-    Some((usize::from(setup % 4), batches, restarts))
+    Some((channel, batches, restarts))
 }
 
 /// A session run twice: once by a server that never stops, once by one
@@ -332,26 +337,17 @@ pub fn restart_program(data: &[u8]) -> Option<(usize, Vec<Vec<RawReading>>, Vec<
 /// alerts). Every stored reading must come out the same: a restart may not
 /// change a channel's SOC, charge, energy or flags.
 pub fn ingest_restart(data: &[u8]) {
-    let Some((setup, batches, restarts)) = restart_program(data) else {
+    let Some((mut steady, batches, restarts)) = restart_program(data) else {
         return;
     };
-    let mut steady = fuzz_channels(builtins()).swap_remove(setup);
     let mut restarted = steady.clone();
-    let cells = f64::from(steady.def.cells_in_series);
     // What the restarted server's store holds.
     let mut stored_max_seq: Option<u64> = None;
     let mut snapshot: Option<ingest::writer::EstimatorSnapshot> = None;
     let mut active = std::collections::BTreeSet::new();
     for (number, (batch, restart_after)) in batches.iter().zip(restarts).enumerate() {
-        let batch: Vec<RawReading> = batch
-            .iter()
-            .map(|r| RawReading {
-                volts: r.volts * cells,
-                ..*r
-            })
-            .collect();
-        let (a, _) = ingest::derive_batch(&mut steady, &batch, FUZZ_NOW_NS);
-        let (b, _) = check_derived(&mut restarted, &batch);
+        let (a, _) = ingest::derive_batch(&mut steady, batch, FUZZ_NOW_NS);
+        let (b, _) = check_derived(&mut restarted, batch);
         let key = |rows: &[ReadingRow]| -> Vec<_> {
             rows.iter()
                 .map(|r| {

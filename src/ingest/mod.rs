@@ -410,6 +410,17 @@ pub fn check_batch_size(readings: &[RawReading]) -> Result<(), IngestError> {
     Ok(())
 }
 
+/// A reading that passed the checks but that the core could not evaluate
+/// (the voltage it was given is what it could not use).
+fn refused_by_core(index: usize, seq: u64, e: impl std::fmt::Display) -> Rejection {
+    Rejection {
+        index: index as u32,
+        seq,
+        field: "volts",
+        reason: e.to_string(),
+    }
+}
+
 /// The pure part of ingest for one batch, under the channel's lock.
 pub fn derive_batch(
     rt: &mut ChannelRuntime,
@@ -456,12 +467,7 @@ pub fn derive_batch(
             let ev = match ev {
                 Ok(ev) => ev,
                 Err(e) => {
-                    rejected.push(Rejection {
-                        index: index as u32,
-                        seq: r.seq,
-                        field: "volts",
-                        reason: e.to_string(),
-                    });
+                    rejected.push(refused_by_core(index, r.seq, e));
                     continue;
                 }
             };
@@ -499,12 +505,7 @@ pub fn derive_batch(
         let est = match estimator::step(&rt.chemistry, &rt.est_config, &mut rt.est, input) {
             Ok(e) => e,
             Err(e) => {
-                rejected.push(Rejection {
-                    index: index as u32,
-                    seq: r.seq,
-                    field: "volts",
-                    reason: e.to_string(),
-                });
+                rejected.push(refused_by_core(index, r.seq, e));
                 continue;
             }
         };
