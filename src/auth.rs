@@ -32,6 +32,16 @@ impl Role {
     }
 }
 
+impl std::str::FromStr for Role {
+    type Err = String;
+    fn from_str(text: &str) -> Result<Role, String> {
+        [Role::Rig, Role::Viewer, Role::Operator, Role::Admin]
+            .into_iter()
+            .find(|r| r.as_str() == text)
+            .ok_or_else(|| format!("{text:?}: must be rig, viewer, operator or admin"))
+    }
+}
+
 /// What a call needs.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Permission {
@@ -248,6 +258,15 @@ mod tests {
             sha256_hex("abc"),
             "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
         );
+    }
+
+    #[test]
+    fn roles_parse_from_their_config_names() {
+        for role in [Role::Rig, Role::Viewer, Role::Operator, Role::Admin] {
+            assert_eq!(role.as_str().parse::<Role>(), Ok(role));
+        }
+        let e = "janitor".parse::<Role>().unwrap_err();
+        assert!(e.contains("\"janitor\"") && e.contains("operator"), "{e}");
     }
 
     #[test]

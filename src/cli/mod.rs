@@ -202,12 +202,9 @@ fn token(cmd: &TokenCommand) -> anyhow::Result<()> {
             role,
             channel,
         } => {
-            let role: Role = serde_json::from_value(serde_json::Value::String(role.clone()))
-                .map_err(|_| {
-                    UsageError(format!(
-                        "--role {role:?}: must be rig, viewer, operator or admin"
-                    ))
-                })?;
+            let role: Role = role
+                .parse()
+                .map_err(|e| UsageError(format!("--role {e}")))?;
             if role != Role::Rig && !channel.is_empty() {
                 return Err(
                     UsageError("--channel: only a rig token is held to channels".into()).into(),
