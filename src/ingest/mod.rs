@@ -254,13 +254,16 @@ impl Hub {
     }
 
     /// Validates, derives and stores one batch; returns its ack after commit.
+    /// Takes the readings by value and drops them once derived: a stream
+    /// waiting for its commit then holds only the rows to be written, which
+    /// is what bounds memory under a flood.
     pub async fn ingest(
         &self,
         channel_id: &str,
         batch_id: u64,
-        readings: &[RawReading],
+        readings: Vec<RawReading>,
     ) -> Result<Ack, IngestError> {
-        check_batch_size(readings)?;
+        check_batch_size(&readings)?;
         let runtime = self.channel(channel_id)?;
         let wall_now = now_ns();
         let (job_rows, rejected) = {
@@ -274,8 +277,9 @@ impl Hub {
                 };
             }
             rt.last_arrival_wall_ns = wall_now;
-            derive_batch(&mut rt, readings, wall_now)
+            derive_batch(&mut rt, &readings, wall_now)
         };
+        drop(readings);
         let rows = job_rows.rows;
         let maybe_dup = job_rows.maybe_dup;
         let outcome = self
