@@ -453,10 +453,6 @@ pub fn derive_batch(
         if !fresh {
             // A resend or a late reading: stored (if new) with its own
             // thermodynamics, but kept out of the running counts and rules.
-            // A late reading can carry a seq above every fresh one (its
-            // clock went back); it then raises the stored maximum, as the
-            // store's MAX(seq) will after a restart, so both agree on what
-            // the next reading is.
             let ev = crate::electrochem::evaluate(
                 &rt.chemistry,
                 crate::electrochem::EvalRequest {
@@ -475,6 +471,10 @@ pub fn derive_batch(
                     continue;
                 }
             };
+            // A late reading can carry a seq above every fresh one (its
+            // clock went back); it then raises the stored maximum, as the
+            // store's MAX(seq) will after a restart, so both agree on what
+            // the next reading is.
             if rt.max_seq.is_some_and(|m| r.seq > m) {
                 rt.max_seq = Some(r.seq);
             }
