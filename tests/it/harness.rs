@@ -89,7 +89,7 @@ pub fn reading(seq: u64, time_unix_ns: i64, volts: f64, amps: Option<f64>) -> pb
     }
 }
 
-/// Every stored reading of a channel (up to ten million), all pages, in seq order.
+/// Every stored reading of a channel (up to ten million), all pages, in time order.
 pub async fn stored_readings(
     history: &mut pb::history_service_client::HistoryServiceClient<Channel>,
     channel: &str,

@@ -318,3 +318,85 @@ async fn health_and_reflection_answer() {
     }
     server.stop().await;
 }
+
+/// A rig whose clock went back sends a late reading with a new, higher seq:
+/// it is stored out of order and raises the resume point, and a restarted
+/// server agrees with the running one about what comes next.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn late_reading_with_a_high_seq_moves_the_resume_point_across_restarts() {
+    let (_dir, db) = temp_db();
+    let t0 = now_ns() - 600_000_000_000;
+    let at = |s: i64| t0 + s * 1_000_000_000;
+    let batch = |readings: Vec<pb::Reading>| pb::ReadingBatch {
+        channel_id: "clock-1".into(),
+        readings,
+        batch_id: 1,
+    };
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    ChannelServiceClient::new(ch.clone())
+        .put_channel(pb::PutChannelRequest {
+            channel: Some(channel_def("clock-1", "daniell")),
+        })
+        .await
+        .unwrap();
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    let acks = send_batches(
+        &mut ingest,
+        vec![batch(vec![
+            reading(1, at(10), 1.08, Some(0.0)),
+            reading(2, at(20), 1.08, Some(0.0)),
+            // The clock went back 15 s.
+            reading(3, at(5), 1.08, Some(0.0)),
+        ])],
+    )
+    .await;
+    assert_eq!(
+        (
+            acks[0].accepted,
+            acks[0].out_of_order,
+            acks[0].last_stored_seq
+        ),
+        (3, 1, 3)
+    );
+    server.stop().await;
+
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    let resume = ingest
+        .get_resume_point(pb::GetResumePointRequest {
+            channel_id: "clock-1".into(),
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(resume.last_stored_seq, 3);
+    let acks = send_batches(
+        &mut ingest,
+        vec![batch(vec![
+            // Resent: a duplicate whichever server sees it.
+            reading(3, at(5), 1.08, Some(0.0)),
+            reading(4, at(30), 1.08, Some(0.0)),
+        ])],
+    )
+    .await;
+    assert_eq!(
+        (
+            acks[0].accepted,
+            acks[0].duplicates,
+            acks[0].out_of_order,
+            acks[0].last_stored_seq
+        ),
+        (1, 1, 0, 4)
+    );
+    let mut history = HistoryServiceClient::new(ch);
+    let stored = stored_readings(&mut history, "clock-1").await;
+    // History comes in time order: the late reading first.
+    let late: Vec<(u64, bool)> = stored
+        .iter()
+        .map(|r| (r.seq, r.derived.as_ref().unwrap().out_of_order))
+        .collect();
+    assert_eq!(late, [(3, true), (1, false), (2, false), (4, false)]);
+    server.stop().await;
+}
