@@ -275,6 +275,18 @@ async fn sigterm_ends_streams_with_resume_points_and_exits_zero() {
         .into_inner();
     let live = watch.next().await.unwrap().unwrap();
     assert_eq!(live.event, pb::AlertEventKind::Live as i32);
+    use tonic_health::pb::health_check_response::ServingStatus;
+    let mut health = tonic_health::pb::health_client::HealthClient::new(ch.clone())
+        .watch(tonic_health::pb::HealthCheckRequest {
+            service: String::new(),
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(
+        health.next().await.unwrap().unwrap().status,
+        ServingStatus::Serving as i32
+    );
 
     let status = Command::new("kill")
         .args(["-TERM", &server.id().to_string()])
@@ -291,6 +303,33 @@ async fn sigterm_ends_streams_with_resume_points_and_exits_zero() {
     let ended = watch.next().await.unwrap().unwrap_err();
     assert_eq!(ended.code(), tonic::Code::Unavailable);
     assert!(ended.message().contains("after_id"), "{}", ended.message());
+    // Probes see the server going away before it stops answering.
+    assert_eq!(
+        health.next().await.unwrap().unwrap().status,
+        ServingStatus::NotServing as i32
+    );
+    // A new stream is refused: by the handler (UNAVAILABLE, with the
+    // reason) while the connection still takes streams, or by the
+    // connection itself once the server has sent GOAWAY (a transport
+    // error, whose code depends on the moment).
+    let (_late_tx, late_rx) = tokio::sync::mpsc::channel::<pb::StreamReadingsRequest>(1);
+    let refused = match IngestServiceClient::new(ch.clone())
+        .stream_readings(tokio_stream::wrappers::ReceiverStream::new(late_rx))
+        .await
+    {
+        Err(status) => status,
+        Ok(response) => response
+            .into_inner()
+            .next()
+            .await
+            .expect("a refusal, not a silent end")
+            .unwrap_err(),
+    };
+    if std::error::Error::source(&refused).is_none() {
+        assert_eq!(refused.code(), tonic::Code::Unavailable, "{refused:?}");
+        assert!(refused.message().contains("shutting down"), "{refused:?}");
+    }
+    drop(health);
     drop(tx);
     drop(acks);
     drop(watch);
