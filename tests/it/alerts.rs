@@ -55,12 +55,7 @@ async fn raise_watch_acknowledge_restart_replay() {
     let (_dir, db) = temp_db();
     let server = Server::start(&db).await;
     let ch = server.channel().await;
-    ChannelServiceClient::new(ch.clone())
-        .put_channel(pb::PutChannelRequest {
-            channel: Some(channel_def("teach-1", "daniell")),
-        })
-        .await
-        .unwrap();
+    put_channel(&ch, channel_def("teach-1", "daniell")).await;
     let mut ingest = IngestServiceClient::new(ch.clone());
     let mut alerts = AlertServiceClient::new(ch.clone());
     let mut watch = alerts

@@ -81,12 +81,7 @@ async fn csv_parses_back_to_stored_values() {
     let (_dir, db) = temp_db();
     let server = Server::start(&db).await;
     let ch = server.channel().await;
-    ChannelServiceClient::new(ch.clone())
-        .put_channel(pb::PutChannelRequest {
-            channel: Some(channel_def("csv-1", "vanadium-redox")),
-        })
-        .await
-        .unwrap();
+    put_channel(&ch, channel_def("csv-1", "vanadium-redox")).await;
     let t0 = now_ns() - 100_000_000_000;
     let readings: Vec<_> = (1..=50)
         .map(|s| {

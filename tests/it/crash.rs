@@ -240,12 +240,7 @@ async fn sigterm_ends_streams_with_resume_points_and_exits_zero() {
     let addr = free_addr();
     let server = spawn_server(&db, &addr);
     let ch = connect(&addr).await;
-    ChannelServiceClient::new(ch.clone())
-        .put_channel(pb::PutChannelRequest {
-            channel: Some(channel_def("term-1", "daniell")),
-        })
-        .await
-        .unwrap();
+    put_channel(&ch, channel_def("term-1", "daniell")).await;
     let t0 = now_ns() - 1_000_000_000_000;
     let (tx, rx) = tokio::sync::mpsc::channel(4);
     let mut acks = IngestServiceClient::new(ch.clone())

@@ -130,3 +130,11 @@ pub async fn send_batches(
     }
     acks
 }
+
+/// Defines a channel (see [`channel_def`]) through the real API.
+pub async fn put_channel(ch: &Channel, def: pb::Channel) {
+    pb::channel_service_client::ChannelServiceClient::new(ch.clone())
+        .put_channel(pb::PutChannelRequest { channel: Some(def) })
+        .await
+        .unwrap();
+}

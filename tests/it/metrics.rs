@@ -3,7 +3,6 @@
 
 use crate::harness::*;
 use gibbsline::pb;
-use gibbsline::pb::channel_service_client::ChannelServiceClient;
 use gibbsline::pb::ingest_service_client::IngestServiceClient;
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
 
@@ -38,12 +37,7 @@ async fn metrics_count_what_ingest_did() {
     config.metrics_listener = Some(metrics_listener);
     let server = Server::start_with(config, "127.0.0.1:0").await;
     let ch = server.channel().await;
-    ChannelServiceClient::new(ch.clone())
-        .put_channel(pb::PutChannelRequest {
-            channel: Some(channel_def("met-1", "daniell")),
-        })
-        .await
-        .unwrap();
+    put_channel(&ch, channel_def("met-1", "daniell")).await;
     let t0 = now_ns() - 60_000_000_000;
     let at = |s: u64| t0 + s as i64 * 1_000_000_000;
     let batch = |readings: Vec<pb::Reading>| pb::ReadingBatch {

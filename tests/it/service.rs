@@ -334,12 +334,7 @@ async fn late_reading_with_a_high_seq_moves_the_resume_point_across_restarts() {
     };
     let server = Server::start(&db).await;
     let ch = server.channel().await;
-    ChannelServiceClient::new(ch.clone())
-        .put_channel(pb::PutChannelRequest {
-            channel: Some(channel_def("clock-1", "daniell")),
-        })
-        .await
-        .unwrap();
+    put_channel(&ch, channel_def("clock-1", "daniell")).await;
     let mut ingest = IngestServiceClient::new(ch.clone());
     let acks = send_batches(
         &mut ingest,
