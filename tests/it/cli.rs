@@ -12,31 +12,30 @@ fn bin() -> Command {
     Command::new(env!("CARGO_BIN_EXE_gibbsline"))
 }
 
+/// Runs the binary to completion without blocking the runtime that serves it.
+async fn output_of(mut command: Command) -> std::process::Output {
+    tokio::task::spawn_blocking(move || command.output().unwrap())
+        .await
+        .unwrap()
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn demo_stores_readings_and_raises_the_scenario_alerts() {
     let (dir, db) = temp_db();
-    let out = tokio::task::spawn_blocking({
-        let db = db.clone();
-        move || {
-            bin()
-                .args([
-                    "demo",
-                    "--duration",
-                    "25s",
-                    "--speed",
-                    "240",
-                    "--listen",
-                    "127.0.0.1:0",
-                    "--db",
-                ])
-                .arg(&db)
-                .stdin(Stdio::null())
-                .output()
-                .unwrap()
-        }
-    })
-    .await
-    .unwrap();
+    let mut demo = bin();
+    demo.args([
+        "demo",
+        "--duration",
+        "25s",
+        "--speed",
+        "240",
+        "--listen",
+        "127.0.0.1:0",
+        "--db",
+    ])
+    .arg(&db)
+    .stdin(Stdio::null());
+    let out = output_of(demo).await;
     let stdout = String::from_utf8_lossy(&out.stdout);
     assert!(
         out.status.success(),
@@ -110,22 +109,17 @@ async fn csv_parses_back_to_stored_values() {
         50
     );
     let addr = server.addr.to_string();
-    let out = tokio::task::spawn_blocking(move || {
-        bin()
-            .args([
-                "readings",
-                "--connect",
-                &addr,
-                "--channel",
-                "csv-1",
-                "--format",
-                "csv",
-            ])
-            .output()
-            .unwrap()
-    })
-    .await
-    .unwrap();
+    let mut readings = bin();
+    readings.args([
+        "readings",
+        "--connect",
+        &addr,
+        "--channel",
+        "csv-1",
+        "--format",
+        "csv",
+    ]);
+    let out = output_of(readings).await;
     assert!(
         out.status.success(),
         "{}",
@@ -391,14 +385,9 @@ async fn example_channels_file_puts_every_channel() {
     let ch = server.channel().await;
     let example = concat!(env!("CARGO_MANIFEST_DIR"), "/deploy/channels.example.toml");
     let addr = server.addr.to_string();
-    let out = tokio::task::spawn_blocking(move || {
-        bin()
-            .args(["channels", "put", example, "--connect", &addr])
-            .output()
-            .unwrap()
-    })
-    .await
-    .unwrap();
+    let mut put = bin();
+    put.args(["channels", "put", example, "--connect", &addr]);
+    let out = output_of(put).await;
     assert_eq!(
         out.status.code(),
         Some(0),
