@@ -30,6 +30,7 @@ pub struct Config {
     pub tokens: Vec<crate::auth::TokenSpec>,
     /// PEM certificate, key and optional client CA.
     pub tls: Option<TlsPem>,
+    pub limits: crate::config::Limits,
 }
 
 #[derive(Debug, Clone)]
@@ -49,6 +50,7 @@ impl Config {
             metrics_listener: None,
             tokens: vec![],
             tls: None,
+            limits: crate::config::Limits::default(),
         }
     }
 }
@@ -85,6 +87,9 @@ pub async fn run(
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> Result<(), AppError> {
     let store = Store::open(&config.db_path, config.durability).await?;
+    if let Ok(addr) = listener.local_addr() {
+        store.note_holder(&addr.to_string());
+    }
     let mut registry = Registry::builtin();
     for spec_json in store::list_chemistry_specs(&store.writer).await? {
         if let Ok(spec) = serde_json::from_str::<ChemistrySpec>(&spec_json)
@@ -101,7 +106,8 @@ pub async fn run(
     }
     let mut channels = HashMap::new();
     for row in store::list_channels(&store.writer).await? {
-        let rt = ingest::load_runtime(&store, &registry, &row).await?;
+        let mut rt = ingest::load_runtime(&store, &registry, &row).await?;
+        rt.limits = config.limits.ingest();
         channels.insert(row.channel_id.clone(), Arc::new(Mutex::new(rt)));
     }
     let (writer_tx, writer_rx) = mpsc::channel(writer::WRITER_QUEUE_JOBS);
@@ -116,6 +122,7 @@ pub async fn run(
         shutdown: shutdown_rx,
         metrics: Arc::new(crate::metrics::Metrics::default()),
         auth: crate::auth::TokenTable::new(&config.tokens).map_err(AppError::Config)?,
+        limits: config.limits.ingest(),
     });
     for entry in config.channels {
         let id = entry.def.channel_id.clone();
@@ -125,7 +132,7 @@ pub async fn run(
             let key = rt.lock().expect("channel state poisoned").key;
             let json = serde_json::to_string(&rules)
                 .map_err(|e| store::StoreError::Corrupt(e.to_string()))?;
-            store::put_rules(&store.writer, key, &json).await?;
+            store::put_rules(&store, key, &json).await?;
             rt.lock().expect("channel state poisoned").rules = rules;
         }
     }
@@ -147,6 +154,11 @@ pub async fn run(
     health_reporter
         .set_service_status("", tonic_health::ServingStatus::Serving)
         .await;
+    let health_task = tokio::spawn(follow_storage_health(
+        store.clone(),
+        health_reporter.clone(),
+        hub.shutdown.clone(),
+    ));
     let reflection_v1 = tonic_reflection::server::Builder::configure()
         .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
         .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
@@ -219,6 +231,7 @@ pub async fn run(
         });
     let result = serve.await;
     silent_task.abort();
+    health_task.abort();
     if let Some(t) = metrics_task {
         t.abort();
     }
@@ -236,6 +249,44 @@ pub async fn run(
     result.map_err(AppError::from)
 }
 
+/// Health follows the store: NOT_SERVING while writes fail (full,
+/// read-only, deleted, …), SERVING again once a probe write succeeds.
+async fn follow_storage_health(
+    store: Store,
+    reporter: tonic_health::server::HealthReporter,
+    stopping: tokio::sync::watch::Receiver<bool>,
+) {
+    let mut health = store.health();
+    loop {
+        let fault = *health.borrow_and_update();
+        if *stopping.borrow() {
+            return;
+        }
+        let status = match fault {
+            Some(_) => tonic_health::ServingStatus::NotServing,
+            None => tonic_health::ServingStatus::Serving,
+        };
+        reporter.set_service_status("", status).await;
+        reporter
+            .set_service_status(
+                <pb::ingest_service_server::IngestServiceServer<Api> as tonic::server::NamedService>::NAME,
+                status,
+            )
+            .await;
+        if fault.is_some() {
+            tokio::time::sleep(STORAGE_PROBE_INTERVAL).await;
+            if let Err(e) = store.probe_write(ingest::now_ns()).await {
+                tracing::debug!(error = %e, "storage still refuses writes");
+            }
+        } else if health.changed().await.is_err() {
+            return;
+        }
+    }
+}
+
+/// How often a store that refused a write is tried again.
+const STORAGE_PROBE_INTERVAL: Duration = Duration::from_secs(1);
+
 /// Raises silent-rig alerts; the decision itself is the pure rule.
 async fn silent_watch(hub: Arc<Hub>) {
     let mut tick = tokio::time::interval(Duration::from_secs(1));
@@ -250,33 +301,47 @@ async fn silent_watch(hub: Arc<Hub>) {
             .cloned()
             .collect();
         for rt in runtimes {
-            let job = {
-                let mut g = rt.lock().expect("channel state poisoned");
-                if g.last_arrival_wall_ns <= 0
-                    || !alert_rules::is_silent(
-                        g.last_arrival_wall_ns,
-                        now,
-                        g.usual_arrival_interval_s,
-                        &g.rules,
-                    )
-                {
-                    continue;
-                }
-                let seq = g.max_seq.unwrap_or(0);
-                let last = g.last_arrival_wall_ns;
-                alert_rules::raise_silent(&mut g.rule_state, last, now, seq)
-                    .map(|a| (g.key, g.run_id, a))
-            };
-            if let Some((channel_key, run_id, alert)) = job {
-                let _ = hub
-                    .submit(|reply| Job::Alerts {
-                        channel_key,
-                        run_id,
-                        raised: vec![alert],
-                        reply,
-                    })
-                    .await;
-            }
+            raise_if_silent(&hub, &rt, now).await;
+        }
+    }
+}
+
+/// One channel's silent-rig check; under the channel's commit gate, like
+/// a batch, so a refused write is undone by reloading from the store.
+async fn raise_if_silent(hub: &Hub, rt: &Mutex<ingest::ChannelRuntime>, now: i64) {
+    let gate = rt
+        .lock()
+        .expect("channel state poisoned")
+        .commit_gate
+        .clone();
+    let _turn = gate.lock().await;
+    let job = {
+        let mut g = rt.lock().expect("channel state poisoned");
+        if g.last_arrival_wall_ns <= 0
+            || !alert_rules::is_silent(
+                g.last_arrival_wall_ns,
+                now,
+                g.usual_arrival_interval_s,
+                &g.rules,
+            )
+        {
+            return;
+        }
+        let seq = g.max_seq.unwrap_or(0);
+        let last = g.last_arrival_wall_ns;
+        alert_rules::raise_silent(&mut g.rule_state, last, now, seq).map(|a| (g.key, g.run_id, a))
+    };
+    if let Some((channel_key, run_id, alert)) = job {
+        let written = hub
+            .submit(|reply| Job::Alerts {
+                channel_key,
+                run_id,
+                raised: vec![alert],
+                reply,
+            })
+            .await;
+        if written.is_err() {
+            hub.reload_after_failure(rt).await;
         }
     }
 }

@@ -27,6 +27,82 @@ pub struct ConfigFile {
     pub chemistry: Vec<ChemistrySpec>,
     #[serde(default)]
     pub channel: Vec<ChannelEntry>,
+    pub limits: Option<Limits>,
+}
+
+/// What one client, one reading or one request may take of the server.
+/// Every field has a default; see README, "Limits and promises".
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Limits {
+    /// A reading may be this far ahead of the server's clock, s.
+    pub max_future_s: u64,
+    /// A reading's seq may jump this far past the channel's last one.
+    pub max_seq_jump: u64,
+    /// From SIGTERM to exit at most, s: streams end, the writer flushes,
+    /// then every connection still open is closed.
+    pub shutdown_timeout_s: u64,
+    /// An ingest stream with no batch for this long is ended, s.
+    pub stream_idle_timeout_s: u64,
+    /// A connection that has not spoken HTTP/2 for this long is closed, s
+    /// (live connections answer keepalive pings, so only dead or idle
+    /// ones reach it).
+    pub connection_idle_timeout_s: u64,
+    /// Ingest streams one token (or, on an open server, one peer address)
+    /// may hold at once.
+    pub max_streams_per_client: u64,
+    /// Rows one QueryReadings call returns at most.
+    pub max_query_rows: u32,
+}
+
+impl Default for Limits {
+    fn default() -> Limits {
+        Limits {
+            max_future_s: crate::ingest::DEFAULT_MAX_FUTURE_S,
+            max_seq_jump: crate::ingest::DEFAULT_MAX_SEQ_JUMP,
+            shutdown_timeout_s: 10,
+            stream_idle_timeout_s: 300,
+            connection_idle_timeout_s: 120,
+            max_streams_per_client: 64,
+            max_query_rows: 1_000_000,
+        }
+    }
+}
+
+impl Limits {
+    pub fn ingest(&self) -> crate::ingest::IngestLimits {
+        crate::ingest::IngestLimits {
+            max_future_ns: (self.max_future_s.min(86_400 * 365) * 1_000_000_000) as i64,
+            max_seq_jump: self.max_seq_jump,
+        }
+    }
+
+    fn validate(&self) -> Result<(), String> {
+        for (name, value, min) in [
+            ("max_future_s", self.max_future_s, 0),
+            ("max_seq_jump", self.max_seq_jump, 1),
+            ("shutdown_timeout_s", self.shutdown_timeout_s, 1),
+            ("stream_idle_timeout_s", self.stream_idle_timeout_s, 1),
+            (
+                "connection_idle_timeout_s",
+                self.connection_idle_timeout_s,
+                1,
+            ),
+            ("max_streams_per_client", self.max_streams_per_client, 1),
+            ("max_query_rows", u64::from(self.max_query_rows), 1),
+        ] {
+            if value < min {
+                return Err(format!("limits.{name} = {value}: must be at least {min}"));
+            }
+        }
+        if self.max_future_s > 86_400 {
+            return Err(format!(
+                "limits.max_future_s = {}: at most 86400 (a day)",
+                self.max_future_s
+            ));
+        }
+        Ok(())
+    }
 }
 
 /// Certificate and key (PEM files); `client_ca` turns on client
@@ -60,6 +136,7 @@ pub struct ServerConfig {
     pub token: Vec<crate::auth::TokenSpec>,
     pub chemistry: Vec<ChemistrySpec>,
     pub channel: Vec<ChannelEntry>,
+    pub limits: Limits,
 }
 
 pub const DEFAULT_LISTEN: &str = "127.0.0.1:50051";
@@ -182,7 +259,12 @@ pub fn resolve(
                 .map_err(|e| fail(line, format!("channel[{i}] ({id:?}): rules.{e}")))?;
         }
     }
+    let limits = file.limits.unwrap_or_default();
+    limits
+        .validate()
+        .map_err(|e| fail(table_line(text, "[limits]", 0), e))?;
     Ok(ServerConfig {
+        limits,
         listen,
         db,
         durability,
@@ -209,7 +291,42 @@ impl ServerConfig {
                 self.listen
             ));
         }
+        // The metrics page is plain HTTP and unauthenticated: beyond
+        // loopback it needs the same confirmation.
+        if let Some(m) = &self.metrics_listen
+            && let Ok(addr) = m.parse::<std::net::SocketAddr>()
+            && !addr.ip().is_loopback()
+            && !self.allow_insecure
+        {
+            return Err(format!(
+                "metrics_listen = {m}: not a loopback address; the metrics page has no TLS or tokens: \
+                 pass --allow-insecure (allow_insecure = true) if the network in between is trusted"
+            ));
+        }
         Ok(())
+    }
+
+    /// Reads the TLS files the config names, as a start would.
+    pub fn read_tls(&self) -> Result<Option<crate::app::TlsPem>, String> {
+        let Some(t) = &self.tls else { return Ok(None) };
+        let read = |what: &str, path: &str| {
+            std::fs::read(path).map_err(|e| format!("tls.{what} = {path:?}: {e}"))
+        };
+        let pem = crate::app::TlsPem {
+            cert: read("cert", &t.cert)?,
+            key: read("key", &t.key)?,
+            client_ca: t
+                .client_ca
+                .as_deref()
+                .map(|p| read("client_ca", p))
+                .transpose()?,
+        };
+        for (what, path, bytes) in [("cert", &t.cert, &pem.cert), ("key", &t.key, &pem.key)] {
+            if !String::from_utf8_lossy(bytes).contains("-----BEGIN ") {
+                return Err(format!("tls.{what} = {path:?}: not a PEM file"));
+            }
+        }
+        Ok(Some(pem))
     }
 }
 

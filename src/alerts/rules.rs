@@ -19,10 +19,13 @@ pub enum AlertKind {
     CurrentLimit,
     TemperatureLimit,
     SilentRig,
+    /// Readings kept out of the rules: refused as implausible jumps in
+    /// time or seq, or taken as late while their seq was new.
+    Timeline,
 }
 
 impl AlertKind {
-    pub const ALL: [AlertKind; 8] = [
+    pub const ALL: [AlertKind; 9] = [
         AlertKind::EquilibriumApproach,
         AlertKind::EndOfCharge,
         AlertKind::EndOfDischarge,
@@ -31,6 +34,7 @@ impl AlertKind {
         AlertKind::CurrentLimit,
         AlertKind::TemperatureLimit,
         AlertKind::SilentRig,
+        AlertKind::Timeline,
     ];
     pub fn code(self) -> i64 {
         self as i64 + 1
@@ -639,6 +643,56 @@ pub fn raise_silent(
         unit: "s",
         message: format!("no reading for {quiet_s:.0} s"),
         seconds_to_target: None,
+    })
+}
+
+/// Raises the timeline alert: readings that the other rules never see
+/// would otherwise go unnoticed (a garbled timestamp or seq must not take
+/// a channel's alerts away in silence). Names the channel's front seq,
+/// the last reading the rules did see.
+pub fn raise_timeline(
+    state: &mut ChannelRuleState,
+    now_ns: i64,
+    front_seq: u64,
+    kept_out: u32,
+    reason: &str,
+) -> Option<AlertChange> {
+    if state.is_active(AlertKind::Timeline) {
+        return None;
+    }
+    state.rules.insert(
+        AlertKind::Timeline,
+        RuleState {
+            pending_since_ns: None,
+            active: true,
+        },
+    );
+    Some(AlertChange::Raise(RaisedAlert {
+        kind: AlertKind::Timeline,
+        severity: AlertKind::Timeline.severity(),
+        time_ns: now_ns,
+        seq: front_seq,
+        trigger_value: f64::from(kept_out),
+        threshold: 0.0,
+        unit: "readings",
+        message: format!(
+            "{kept_out} reading(s) kept out of the alert rules: {reason}; if the rig's clock or numbering is wrong, fix it or reset the channel's timeline"
+        ),
+        seconds_to_target: None,
+    }))
+}
+
+/// Clears the timeline alert once readings reach the rules again.
+pub fn clear_timeline(state: &mut ChannelRuleState, time_ns: i64) -> Option<AlertChange> {
+    if !state.is_active(AlertKind::Timeline) {
+        return None;
+    }
+    state
+        .rules
+        .insert(AlertKind::Timeline, RuleState::default());
+    Some(AlertChange::Clear {
+        kind: AlertKind::Timeline,
+        time_ns,
     })
 }
 

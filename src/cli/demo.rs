@@ -40,6 +40,7 @@ pub fn kind_name(code: i32) -> &'static str {
         Ok(pb::AlertKind::CurrentLimit) => "current limit",
         Ok(pb::AlertKind::TemperatureLimit) => "temperature limit",
         Ok(pb::AlertKind::SilentRig) => "silent rig",
+        Ok(pb::AlertKind::Timeline) => "timeline",
         _ => "unknown",
     }
 }

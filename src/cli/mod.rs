@@ -118,8 +118,15 @@ pub struct ServeArgs {
 
 #[derive(Debug, Subcommand)]
 pub enum ConfigCommand {
-    /// Validate a configuration file without starting anything.
-    Check { file: PathBuf },
+    /// Validate a configuration file without starting anything; the TLS
+    /// files it names are read too, as a start would.
+    Check {
+        file: PathBuf,
+        /// Check the text only, not the TLS files it names (for a config
+        /// written on another machine).
+        #[arg(long)]
+        no_files: bool,
+    },
 }
 
 #[derive(Debug, Args)]
@@ -178,11 +185,16 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Channels(cmd) => block_on(commands::channels(&cmd)),
         Command::Cycles(args) => block_on(commands::cycles(&args)),
         Command::Token(cmd) => token(&cmd),
-        Command::Config(ConfigCommand::Check { file }) => {
+        Command::Config(ConfigCommand::Check { file, no_files }) => {
             let config = load_config(Some(&file), &std::collections::BTreeMap::new())?;
             config
                 .check_exposure()
                 .map_err(|e| UsageError(format!("{}: {e}", file.display())))?;
+            if !no_files {
+                config
+                    .read_tls()
+                    .map_err(|e| UsageError(format!("{}: {e}", file.display())))?;
+            }
             println!(
                 "{}: ok ({} channels, {} chemistries)",
                 file.display(),
@@ -329,24 +341,8 @@ fn serve(args: &ServeArgs) -> anyhow::Result<()> {
             channels: config.channel.clone(),
             metrics_listener,
             tokens: config.token.clone(),
-            tls: match &config.tls {
-                Some(t) => {
-                    let read = |what: &str, path: &str| {
-                        std::fs::read(path)
-                            .map_err(|e| UsageError(format!("tls.{what} = {path:?}: {e}")))
-                    };
-                    Some(app::TlsPem {
-                        cert: read("cert", &t.cert)?,
-                        key: read("key", &t.key)?,
-                        client_ca: t
-                            .client_ca
-                            .as_deref()
-                            .map(|p| read("client_ca", p))
-                            .transpose()?,
-                    })
-                }
-                None => None,
-            },
+            tls: config.read_tls().map_err(UsageError)?,
+            limits: config.limits,
         };
         app::run(app_config, listener, shutdown_signal()).await?;
         Ok(())

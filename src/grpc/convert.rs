@@ -124,6 +124,7 @@ fn kind_to_pb(k: AlertKind) -> i32 {
         AlertKind::CurrentLimit => pb::AlertKind::CurrentLimit,
         AlertKind::TemperatureLimit => pb::AlertKind::TemperatureLimit,
         AlertKind::SilentRig => pb::AlertKind::SilentRig,
+        AlertKind::Timeline => pb::AlertKind::Timeline,
     }) as i32
 }
 

@@ -260,13 +260,20 @@ impl pb::ingest_service_server::IngestService for Api {
                     }
                 };
                 let Some(batch) = message.batch else {
-                    let _ = tx
-                        .send(Err(invalid(
-                            "batch",
-                            "unset",
-                            "each message must carry a batch",
-                        )))
-                        .await;
+                    // Answered in-band, as the contract says: the stream stays open.
+                    let refusal = pb::StreamReadingsResponse {
+                        ack: Some(pb::BatchAck {
+                            rejected: vec![pb::Rejection {
+                                field: "batch".into(),
+                                reason: "batch = unset: each message must carry a batch".into(),
+                                ..Default::default()
+                            }],
+                            ..Default::default()
+                        }),
+                    };
+                    if tx.send(Ok(refusal)).await.is_err() {
+                        break;
+                    }
                     continue;
                 };
                 if let Err(e) = auth::check_channel(principal.as_ref(), &batch.channel_id) {
@@ -353,7 +360,7 @@ impl pb::ingest_service_server::IngestService for Api {
         auth::check_channel(principal.as_ref(), &channel_id)
             .map_err(|e| deny(e, "GetResumePoint"))?;
         let rt = self.hub.channel(&channel_id)?;
-        let max = rt.lock().expect("channel state poisoned").max_seq;
+        let max = rt.lock().expect("channel state poisoned").committed_seq;
         Ok(Response::new(pb::GetResumePointResponse {
             last_stored_seq: max.unwrap_or(0),
             any_stored: max.is_some(),
@@ -918,7 +925,7 @@ impl pb::alert_service_server::AlertService for Api {
                 .ok_or_else(|| invalid("rules", "unset", "rules are required"))?,
         )?;
         let json = serde_json::to_string(&rules).map_err(|e| Status::internal(e.to_string()))?;
-        store::put_rules(&self.hub.store.writer, key, &json).await?;
+        store::put_rules(&self.hub.store, key, &json).await?;
         rt.lock().expect("channel state poisoned").rules = rules;
         Ok(Response::new(pb::PutAlertRulesResponse {
             rules: Some(rules_to_pb(&rules)),

@@ -21,8 +21,33 @@ pub use writer::{Job, ReadingsJob, WriteOutcome};
 /// Readings per batch at most. 10,000 readings ≈ 400 kB of protobuf,
 /// inside the 1 MiB ingest message limit the server sets.
 pub const MAX_BATCH_READINGS: usize = 10_000;
-/// A reading may be at most this far in the future (clock skew allowance).
-pub const MAX_FUTURE_NS: i64 = 86_400 * 1_000_000_000;
+/// How far a reading's clock may run ahead of the server's, and how far
+/// its seq may jump past the last one: beyond either, the reading is
+/// refused (quarantined: counted, named in the ack, never made the
+/// channel's front), so one garbled value cannot push every later real
+/// reading onto the out-of-order path and out of the alert rules.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct IngestLimits {
+    pub max_future_ns: i64,
+    pub max_seq_jump: u64,
+}
+
+/// Five minutes: a rig PC without time sync drifts by seconds a day; a
+/// reading further ahead carries a broken clock.
+pub const DEFAULT_MAX_FUTURE_S: u64 = 300;
+/// A billion: a counting rig never jumps that far; one that numbers its
+/// readings by its millisecond clock may be offline for 11 days. Raise it
+/// for rigs that number by microseconds.
+pub const DEFAULT_MAX_SEQ_JUMP: u64 = 1_000_000_000;
+
+impl Default for IngestLimits {
+    fn default() -> IngestLimits {
+        IngestLimits {
+            max_future_ns: DEFAULT_MAX_FUTURE_S as i64 * 1_000_000_000,
+            max_seq_jump: DEFAULT_MAX_SEQ_JUMP,
+        }
+    }
+}
 /// Readings stamped before 2000-01-01T00:00:00Z come from a rig whose clock
 /// was never set; storing them would misplace them in every query.
 pub const MIN_TIME_NS: i64 = 946_684_800 * 1_000_000_000;
@@ -95,8 +120,19 @@ pub struct ChannelRuntime {
     pub est_config: EstimatorConfig,
     pub est: EstimatorState,
     pub rule_state: ChannelRuleState,
-    /// Highest seq handed to the writer (committed or queued).
+    /// The channel's front: highest seq taken (derived; committed once the
+    /// batch in flight is).
     pub max_seq: Option<u64>,
+    /// Highest seq in committed state: what acks and GetResumePoint say.
+    pub committed_seq: Option<u64>,
+    /// Held from a batch's derivation until its commit is answered, so no
+    /// batch is derived on top of state the store may still refuse; on a
+    /// refusal the runtime is rebuilt from the store under the same gate.
+    pub commit_gate: Arc<tokio::sync::Mutex<()>>,
+    /// A failed commit left this state ahead of the store and reloading
+    /// it failed too: reload before the next batch.
+    pub needs_reload: bool,
+    pub limits: IngestLimits,
     pub last_time_ns: i64,
     /// Smoothed spacing of readings by their timestamps, s.
     pub usual_interval_s: f64,
@@ -125,11 +161,28 @@ impl ChannelRuntime {
             est: EstimatorState::default(),
             rule_state: ChannelRuleState::default(),
             max_seq: None,
+            committed_seq: None,
+            commit_gate: Arc::default(),
+            needs_reload: false,
+            limits: IngestLimits::default(),
             last_time_ns: 0,
             usual_interval_s: 0.0,
             last_arrival_wall_ns: 0,
             usual_arrival_interval_s: 0.0,
         }
+    }
+
+    /// Notes a batch's arrival by the server's clock (the silent-rig yardstick).
+    fn note_arrival(&mut self, wall_now_ns: i64) {
+        if self.last_arrival_wall_ns > 0 {
+            let gap_s = (wall_now_ns - self.last_arrival_wall_ns) as f64 / 1e9;
+            self.usual_arrival_interval_s = if self.usual_arrival_interval_s > 0.0 {
+                0.9 * self.usual_arrival_interval_s + 0.1 * gap_s
+            } else {
+                gap_s
+            };
+        }
+        self.last_arrival_wall_ns = wall_now_ns;
     }
 }
 
@@ -145,6 +198,7 @@ pub struct Hub {
     pub shutdown: tokio::sync::watch::Receiver<bool>,
     pub metrics: Arc<crate::metrics::Metrics>,
     pub auth: crate::auth::TokenTable,
+    pub limits: IngestLimits,
 }
 
 /// Resolves once `stop` turns true (never, if its sender is gone without it).
@@ -205,7 +259,7 @@ impl Hub {
         });
         let json = serde_json::to_string(&def).map_err(|e| StoreError::Corrupt(e.to_string()))?;
         let (_, run_id) =
-            store::put_channel(&self.store.writer, &def.channel_id, &json, run, now_ns()).await?;
+            store::put_channel(&self.store, &def.channel_id, &json, run, now_ns()).await?;
         match existing {
             Some(rt) => {
                 let mut g = rt.lock().expect("channel state poisoned");
@@ -218,12 +272,11 @@ impl Hub {
                 }
             }
             None => {
-                let rows = store::list_channels(&self.store.writer).await?;
-                let row = rows
-                    .iter()
-                    .find(|r| r.channel_id == def.channel_id)
+                let row = store::get_channel(&self.store.writer, &def.channel_id)
+                    .await?
                     .ok_or_else(|| StoreError::Corrupt("channel vanished after write".into()))?;
-                let runtime = load_runtime(&self.store, &registry, row).await?;
+                let mut runtime = load_runtime(&self.store, &registry, &row).await?;
+                runtime.limits = self.limits;
                 self.channels
                     .write()
                     .expect("channel map poisoned")
@@ -237,7 +290,7 @@ impl Hub {
     /// Sends a job to the writer and waits for its commit.
     pub async fn submit(
         &self,
-        job: impl FnOnce(oneshot::Sender<Result<WriteOutcome, String>>) -> Job,
+        job: impl FnOnce(oneshot::Sender<Result<WriteOutcome, StoreError>>) -> Job,
     ) -> Result<WriteOutcome, IngestError> {
         let (tx, rx) = oneshot::channel();
         // A full queue makes this await: the stream stops reading from its
@@ -248,7 +301,7 @@ impl Hub {
             .map_err(|_| IngestError::ShuttingDown)?;
         match rx.await {
             Ok(Ok(outcome)) => Ok(outcome),
-            Ok(Err(message)) => Err(IngestError::Store(StoreError::Corrupt(message))),
+            Ok(Err(e)) => Err(IngestError::Store(e)),
             Err(_) => Err(IngestError::ShuttingDown),
         }
     }
@@ -265,48 +318,36 @@ impl Hub {
     ) -> Result<Ack, IngestError> {
         check_batch_size(&readings)?;
         let runtime = self.channel(channel_id)?;
+        let gate = runtime
+            .lock()
+            .expect("channel state poisoned")
+            .commit_gate
+            .clone();
+        let _turn = gate.lock().await;
+        self.reload_if_needed(&runtime).await?;
         let wall_now = now_ns();
-        let (job_rows, rejected) = {
+        let (derived, rejected) = {
             let mut rt = runtime.lock().expect("channel state poisoned");
-            if rt.last_arrival_wall_ns > 0 {
-                let gap_s = (wall_now - rt.last_arrival_wall_ns) as f64 / 1e9;
-                rt.usual_arrival_interval_s = if rt.usual_arrival_interval_s > 0.0 {
-                    0.9 * rt.usual_arrival_interval_s + 0.1 * gap_s
-                } else {
-                    gap_s
-                };
-            }
-            rt.last_arrival_wall_ns = wall_now;
+            rt.note_arrival(wall_now);
             derive_batch(&mut rt, &readings, wall_now)
         };
         drop(readings);
-        let rows = job_rows.rows;
-        let maybe_dup = job_rows.maybe_dup;
-        let outcome = self
-            .submit(|reply| {
-                Job::Readings(ReadingsJob {
-                    channel_key: job_rows.channel_key,
-                    run_id: job_rows.run_id,
-                    rows,
-                    maybe_dup,
-                    changes: job_rows.changes,
-                    cycles: job_rows.cycles,
-                    estimator: job_rows.estimator,
-                    reply,
-                })
-            })
-            .await?;
-        let max_seq = runtime.lock().expect("channel state poisoned").max_seq;
-        use std::sync::atomic::Ordering::Relaxed;
-        let m = &self.metrics;
-        m.readings_accepted
-            .fetch_add(outcome.fresh_inserted + outcome.late_inserted, Relaxed);
-        m.readings_duplicate.fetch_add(outcome.duplicates, Relaxed);
-        m.readings_out_of_order
-            .fetch_add(outcome.late_inserted, Relaxed);
-        for r in &rejected {
-            m.reject(r.field);
-        }
+        let outcome = match self
+            .submit(|reply| Job::Readings(derived.into_job(reply)))
+            .await
+        {
+            Ok(outcome) => outcome,
+            Err(e) => {
+                self.reload_after_failure(&runtime).await;
+                return Err(e);
+            }
+        };
+        let committed = {
+            let mut rt = runtime.lock().expect("channel state poisoned");
+            rt.committed_seq = rt.max_seq;
+            rt.committed_seq
+        };
+        self.count(&outcome, &rejected);
         Ok(Ack {
             channel_id: channel_id.to_string(),
             batch_id,
@@ -314,8 +355,60 @@ impl Hub {
             duplicates: outcome.duplicates as u32,
             out_of_order: outcome.late_inserted as u32,
             rejected,
-            last_stored_seq: max_seq.unwrap_or(0),
+            last_stored_seq: committed.unwrap_or(0),
         })
+    }
+
+    fn count(&self, outcome: &WriteOutcome, rejected: &[Rejection]) {
+        use std::sync::atomic::Ordering::Relaxed;
+        let m = &self.metrics;
+        m.readings_accepted
+            .fetch_add(outcome.fresh_inserted + outcome.late_inserted, Relaxed);
+        m.readings_duplicate.fetch_add(outcome.duplicates, Relaxed);
+        m.readings_out_of_order
+            .fetch_add(outcome.late_inserted, Relaxed);
+        for r in rejected {
+            m.reject(r.field);
+        }
+    }
+
+    /// After a refused commit the runtime is ahead of the store (front,
+    /// estimator, alert state): rebuild it from what was committed, so the
+    /// resume point and the next derivation start from stored truth.
+    pub async fn reload_after_failure(&self, runtime: &Mutex<ChannelRuntime>) {
+        if let Err(e) = self.reload(runtime).await {
+            let mut rt = runtime.lock().expect("channel state poisoned");
+            tracing::warn!(channel_id = %rt.def.channel_id, error = %e, "channel state not reloaded after a failed commit; retrying before the next batch");
+            rt.needs_reload = true;
+        }
+    }
+
+    async fn reload_if_needed(&self, runtime: &Mutex<ChannelRuntime>) -> Result<(), IngestError> {
+        if runtime.lock().expect("channel state poisoned").needs_reload {
+            self.reload(runtime).await?;
+        }
+        Ok(())
+    }
+
+    async fn reload(&self, runtime: &Mutex<ChannelRuntime>) -> Result<(), IngestError> {
+        let channel_id = runtime
+            .lock()
+            .expect("channel state poisoned")
+            .def
+            .channel_id
+            .clone();
+        let row = store::get_channel(&self.store.writer, &channel_id)
+            .await?
+            .ok_or_else(|| StoreError::Corrupt(format!("channel {channel_id} vanished")))?;
+        let registry = self.registry.read().expect("registry poisoned").clone();
+        let mut fresh = load_runtime(&self.store, &registry, &row).await?;
+        let mut rt = runtime.lock().expect("channel state poisoned");
+        fresh.commit_gate = rt.commit_gate.clone();
+        fresh.limits = rt.limits;
+        fresh.last_arrival_wall_ns = rt.last_arrival_wall_ns;
+        fresh.usual_arrival_interval_s = rt.usual_arrival_interval_s;
+        *rt = fresh;
+        Ok(())
     }
 }
 
@@ -329,11 +422,22 @@ pub struct DerivedBatch {
     pub estimator: Option<writer::EstimatorSnapshot>,
 }
 
-fn check_reading(
-    rt: &ChannelRuntime,
-    r: &RawReading,
-    wall_now_ns: i64,
-) -> Result<(), (&'static str, String)> {
+impl DerivedBatch {
+    fn into_job(self, reply: oneshot::Sender<Result<WriteOutcome, StoreError>>) -> ReadingsJob {
+        ReadingsJob {
+            channel_key: self.channel_key,
+            run_id: self.run_id,
+            rows: self.rows,
+            maybe_dup: self.maybe_dup,
+            changes: self.changes,
+            cycles: self.cycles,
+            estimator: self.estimator,
+            reply,
+        }
+    }
+}
+
+fn check_reading(rt: &ChannelRuntime, r: &RawReading) -> Result<(), (&'static str, String)> {
     if !r.volts.is_finite() {
         return Err((
             "volts",
@@ -384,19 +488,80 @@ fn check_reading(
             ),
         ));
     }
-    if r.time_unix_ns > wall_now_ns + MAX_FUTURE_NS {
-        return Err((
-            "time_unix_ns",
-            format!(
-                "time_unix_ns = {}: more than a day in the future",
-                r.time_unix_ns
-            ),
-        ));
-    }
     if r.seq > i64::MAX as u64 {
         return Err(("seq", format!("seq = {}: must be below 2^63", r.seq)));
     }
     Ok(())
+}
+
+/// The checks against the channel's front and the server's clock: a
+/// reading failing them is quarantined (refused and counted) rather than
+/// allowed to move the front where real readings cannot follow.
+fn check_timeline(
+    rt: &ChannelRuntime,
+    r: &RawReading,
+    wall_now_ns: i64,
+) -> Result<(), (&'static str, String)> {
+    if r.time_unix_ns > wall_now_ns.saturating_add(rt.limits.max_future_ns) {
+        return Err((
+            "time_unix_ns",
+            format!(
+                "time_unix_ns = {}: {} s ahead of the server's clock (limit {} s); quarantined, not stored: is the rig's clock set?",
+                r.time_unix_ns,
+                (r.time_unix_ns - wall_now_ns) / 1_000_000_000,
+                rt.limits.max_future_ns / 1_000_000_000
+            ),
+        ));
+    }
+    if let Some(front) = rt.max_seq
+        && r.seq > front
+        && r.seq - front > rt.limits.max_seq_jump
+    {
+        return Err((
+            "seq",
+            format!(
+                "seq = {}: jumps {} past the channel's last seq {front} (limit {}); quarantined, not stored: if the rig renumbered, reset the channel's timeline",
+                r.seq,
+                r.seq - front,
+                rt.limits.max_seq_jump
+            ),
+        ));
+    }
+    Ok(())
+}
+
+/// Readings of one batch that the alert rules did not see, and why.
+#[derive(Debug, Default)]
+struct TimelineTally {
+    quarantined: u32,
+    /// New seq but a time not after the front's: the rig's clock went back.
+    clock_back: u32,
+}
+
+/// The timeline alert's raise or clear for one batch.
+fn timeline_change(
+    rt: &mut ChannelRuntime,
+    tally: &TimelineTally,
+    advanced: bool,
+    wall_now_ns: i64,
+) -> Option<AlertChange> {
+    let kept_out = tally.quarantined + tally.clock_back;
+    match rt.max_seq {
+        Some(front) if kept_out > 0 => {
+            let reason = match (tally.quarantined, tally.clock_back) {
+                (0, _) => {
+                    "new seqs with times before the channel's last reading (a clock that went back)"
+                }
+                (_, 0) => "quarantined for a time far ahead of the server's clock or a seq jump",
+                _ => "quarantined jumps, and new seqs with times before the last reading",
+            };
+            alerts::rules::raise_timeline(&mut rt.rule_state, wall_now_ns, front, kept_out, reason)
+        }
+        _ if advanced && kept_out == 0 => {
+            alerts::rules::clear_timeline(&mut rt.rule_state, wall_now_ns)
+        }
+        _ => None,
+    }
 }
 
 /// Batch-level checks, before any reading is looked at.
@@ -437,8 +602,13 @@ pub fn derive_batch(
     let mut cycles = Vec::new();
     let mut rejected = Vec::new();
     let mut advanced = false;
+    let mut front_moved = false;
+    let mut timeline = TimelineTally::default();
     for (index, r) in readings.iter().enumerate() {
-        if let Err((field, reason)) = check_reading(rt, r, wall_now_ns) {
+        let checked = check_reading(rt, r).and_then(|()| {
+            check_timeline(rt, r, wall_now_ns).inspect_err(|_| timeline.quarantined += 1)
+        });
+        if let Err((field, reason)) = checked {
             rejected.push(Rejection {
                 index: index as u32,
                 seq: r.seq,
@@ -449,7 +619,11 @@ pub fn derive_batch(
         }
         let amps = r.amps.map(|a| rt.def.current_sign.to_charge_positive(a));
         let temp_k = r.temp_c.map(|t| t + 273.15);
-        let fresh = rt.max_seq.is_none_or(|m| r.seq > m) && r.time_unix_ns > rt.last_time_ns;
+        let new_seq = rt.max_seq.is_none_or(|m| r.seq > m);
+        let fresh = new_seq && r.time_unix_ns > rt.last_time_ns;
+        if new_seq && !fresh {
+            timeline.clock_back += 1;
+        }
         if !fresh {
             // A resend or a late reading: stored (if new) with its own
             // thermodynamics, but kept out of the running counts and rules.
@@ -477,6 +651,7 @@ pub fn derive_batch(
             // the next reading is.
             if rt.max_seq.is_some_and(|m| r.seq > m) {
                 rt.max_seq = Some(r.seq);
+                front_moved = true;
             }
             maybe_dup.push(ReadingRow {
                 channel_key: rt.key,
@@ -581,7 +756,8 @@ pub fn derive_batch(
             flags: f,
         });
     }
-    let estimator = advanced.then(|| writer::EstimatorSnapshot {
+    changes.extend(timeline_change(rt, &timeline, advanced, wall_now_ns));
+    let estimator = (advanced || front_moved).then(|| writer::EstimatorSnapshot {
         last_seq: rt.max_seq.unwrap_or(0),
         last_time_ns: rt.last_time_ns,
         usual_interval_s: rt.usual_interval_s,
@@ -662,6 +838,10 @@ pub fn restore_runtime(
         est,
         rule_state: ChannelRuleState::with_active(resume.active_kinds),
         max_seq: resume.max_seq,
+        committed_seq: resume.max_seq,
+        commit_gate: Arc::default(),
+        needs_reload: false,
+        limits: IngestLimits::default(),
         last_time_ns,
         usual_interval_s,
         last_arrival_wall_ns: 0,

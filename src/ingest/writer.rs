@@ -31,7 +31,7 @@ pub struct ReadingsJob {
     pub changes: Vec<AlertChange>,
     pub cycles: Vec<CycleRecord>,
     pub estimator: Option<EstimatorSnapshot>,
-    pub reply: oneshot::Sender<Result<WriteOutcome, String>>,
+    pub reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
 }
 
 pub enum Job {
@@ -41,14 +41,14 @@ pub enum Job {
         channel_key: i64,
         run_id: i64,
         raised: Vec<RaisedAlert>,
-        reply: oneshot::Sender<Result<WriteOutcome, String>>,
+        reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
     },
     Acknowledge {
         alert_id: u64,
         by: String,
         note: String,
         time_ns: i64,
-        reply: oneshot::Sender<Result<WriteOutcome, String>>,
+        reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
     },
 }
 
@@ -109,7 +109,7 @@ pub async fn run(
                 ids.next_alert_id = saved.0;
                 ids.next_event_id = saved.1;
                 for job in batch {
-                    let _ = reply_of(job).send(Err(e.to_string()));
+                    let _ = reply_of(job).send(Err(e.replicate()));
                 }
             }
         }
@@ -124,30 +124,40 @@ fn job_rows(job: &Job) -> usize {
     }
 }
 
-fn reply_of(job: Job) -> oneshot::Sender<Result<WriteOutcome, String>> {
+fn reply_of(job: Job) -> oneshot::Sender<Result<WriteOutcome, StoreError>> {
     match job {
         Job::Readings(r) => r.reply,
         Job::Alerts { reply, .. } | Job::Acknowledge { reply, .. } => reply,
     }
 }
 
+/// Writes a group of jobs in one transaction; `Ok` only once committed.
 async fn commit(
     store: &Store,
     ids: &mut Ids,
     batch: &[Job],
 ) -> Result<Vec<WriteOutcome>, StoreError> {
-    let mut tx = store.writer.begin().await?;
+    store
+        .write(async |tx| write_jobs(tx, ids, batch).await)
+        .await
+}
+
+async fn write_jobs(
+    tx: &mut store::Tx<'_>,
+    ids: &mut Ids,
+    batch: &[Job],
+) -> Result<Vec<WriteOutcome>, StoreError> {
     let mut outcomes = Vec::with_capacity(batch.len());
     for job in batch {
         let mut out = WriteOutcome::default();
         match job {
             Job::Readings(r) => {
-                out.fresh_inserted = store::insert_fresh(&mut tx, &r.rows).await?;
+                out.fresh_inserted = store::insert_fresh(tx, &r.rows).await?;
                 // A fresh row can only collide if two streams raced on a
                 // channel; count it as the duplicate it is.
                 out.duplicates += r.rows.len() as u64 - out.fresh_inserted;
                 for row in &r.maybe_dup {
-                    if store::insert_if_new(&mut tx, row).await? {
+                    if store::insert_if_new(tx, row).await? {
                         out.late_inserted += 1;
                     } else {
                         out.duplicates += 1;
@@ -157,7 +167,7 @@ async fn commit(
                     match change {
                         AlertChange::Raise(a) => {
                             let ev = store::raise_alert(
-                                &mut tx,
+                                tx,
                                 ids.next_alert_id,
                                 ids.next_event_id,
                                 r.channel_key,
@@ -171,7 +181,7 @@ async fn commit(
                         }
                         AlertChange::Clear { kind, time_ns } => {
                             if let Some(ev) = store::clear_alert(
-                                &mut tx,
+                                tx,
                                 ids.next_event_id,
                                 r.channel_key,
                                 *kind,
@@ -187,11 +197,11 @@ async fn commit(
                 }
                 for c in &r.cycles {
                     let json = serde_json::to_string(c).unwrap_or_default();
-                    store::insert_cycle(&mut tx, r.channel_key, r.run_id, c.index, &json).await?;
+                    store::insert_cycle(tx, r.channel_key, r.run_id, c.index, &json).await?;
                 }
                 if let Some(s) = &r.estimator {
                     store::save_estimator(
-                        &mut tx,
+                        tx,
                         r.channel_key,
                         r.run_id,
                         s.last_seq,
@@ -210,7 +220,7 @@ async fn commit(
             } => {
                 for a in raised {
                     let ev = store::raise_alert(
-                        &mut tx,
+                        tx,
                         ids.next_alert_id,
                         ids.next_event_id,
                         *channel_key,
@@ -230,15 +240,9 @@ async fn commit(
                 time_ns,
                 ..
             } => {
-                if let Some(ev) = store::acknowledge_alert(
-                    &mut tx,
-                    ids.next_event_id,
-                    *alert_id,
-                    by,
-                    note,
-                    *time_ns,
-                )
-                .await?
+                if let Some(ev) =
+                    store::acknowledge_alert(tx, ids.next_event_id, *alert_id, by, note, *time_ns)
+                        .await?
                 {
                     ids.next_event_id += 1;
                     out.events.push(ev);
@@ -247,6 +251,5 @@ async fn commit(
         }
         outcomes.push(out);
     }
-    tx.commit().await?;
     Ok(outcomes)
 }

@@ -9,12 +9,21 @@
 //! commit, so an acknowledged batch survives a process crash *and* a power
 //! loss. `NORMAL` survives a process crash but may lose the last commits on
 //! power loss (the database stays consistent). `OFF` is for benchmarks only.
+//!
+//! Every write goes through [`Store::write`]: it checks that the database
+//! file is still the one opened, runs one transaction, and after any
+//! failure closes the connection instead of reusing it (see there).
+
+mod fault;
+mod lock;
 
 use crate::alerts::{AlertKind, RaisedAlert, Severity};
+pub use fault::StorageFault;
 use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
-use sqlx::{QueryBuilder, Row, Sqlite, SqlitePool};
-use std::path::Path;
+use sqlx::{Connection, QueryBuilder, Row, Sqlite, SqlitePool};
+use std::path::{Path, PathBuf};
 use std::str::FromStr;
+use std::sync::Arc;
 use std::time::Duration;
 
 #[derive(Debug, thiserror::Error)]
@@ -25,6 +34,52 @@ pub enum StoreError {
     Migrate(#[from] sqlx::migrate::MigrateError),
     #[error("stored data is corrupt: {0}")]
     Corrupt(String),
+    /// A write the database could not take, classified (see [`StorageFault`]).
+    #[error("{}", fault.describe(path, detail))]
+    Unwritable {
+        path: PathBuf,
+        fault: StorageFault,
+        detail: String,
+    },
+    #[error(
+        "database {} is in use by another gibbsline server ({holder}); lock file {}: stop that server or give this one another database",
+        path.display(),
+        lock.display()
+    )]
+    InUse {
+        path: PathBuf,
+        lock: PathBuf,
+        holder: String,
+    },
+    /// A failure that is neither a storage fault nor corruption, as told
+    /// to each job of a failed group commit.
+    #[error("database write failed: {0}")]
+    Failed(String),
+}
+
+impl StoreError {
+    /// The same error for another waiter (a group commit fails every job
+    /// in it; sqlx errors cannot be cloned).
+    pub fn replicate(&self) -> StoreError {
+        match self {
+            StoreError::Unwritable {
+                path,
+                fault,
+                detail,
+            } => StoreError::Unwritable {
+                path: path.clone(),
+                fault: *fault,
+                detail: detail.clone(),
+            },
+            StoreError::InUse { path, lock, holder } => StoreError::InUse {
+                path: path.clone(),
+                lock: lock.clone(),
+                holder: holder.clone(),
+            },
+            StoreError::Corrupt(m) => StoreError::Corrupt(m.clone()),
+            other => StoreError::Failed(other.to_string()),
+        }
+    }
 }
 
 /// How hard each commit is pushed to disk (see the module comment).
@@ -49,10 +104,20 @@ impl FromStr for Durability {
     }
 }
 
+/// The database: a writer pool of one connection, a read pool, and what
+/// keeps them honest (the file's identity, the lock, the write health).
 #[derive(Debug, Clone)]
 pub struct Store {
     pub writer: SqlitePool,
     pub reader: SqlitePool,
+    path: Arc<PathBuf>,
+    /// (device, inode) of the file at open: a deleted or replaced file is
+    /// detected before a write, not written into the void.
+    identity: Option<(u64, u64)>,
+    lock: Arc<lock::DbLock>,
+    /// `None` while writes succeed; the fault of the last failed write until
+    /// one succeeds again (health follows it).
+    health: Arc<tokio::sync::watch::Sender<Option<StorageFault>>>,
 }
 
 /// Rows per multi-row INSERT: 13 parameters each stays far below SQLite's
@@ -60,7 +125,10 @@ pub struct Store {
 const INSERT_CHUNK_ROWS: usize = 500;
 
 impl Store {
+    /// Opens (creating and migrating) the database and takes its lock: a
+    /// second server on the same file is refused, naming the holder.
     pub async fn open(path: &Path, durability: Durability) -> Result<Store, StoreError> {
+        let lock = lock::DbLock::acquire(path)?;
         let sync = match durability {
             Durability::Full => SqliteSynchronous::Full,
             Durability::Normal => SqliteSynchronous::Normal,
@@ -80,12 +148,118 @@ impl Store {
             .max_connections(4)
             .connect_with(base.read_only(true))
             .await?;
-        Ok(Store { writer, reader })
+        Ok(Store {
+            writer,
+            reader,
+            identity: fault::file_identity(path),
+            path: Arc::new(path.to_path_buf()),
+            lock: Arc::new(lock),
+            health: Arc::new(tokio::sync::watch::channel(None).0),
+        })
     }
 
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    /// Records what the server listens on in the lock file, so a second
+    /// server's refusal can name it.
+    pub fn note_holder(&self, listen: &str) {
+        self.lock.note(listen);
+    }
+
+    /// Follows write health: `None` while writes succeed.
+    pub fn health(&self) -> tokio::sync::watch::Receiver<Option<StorageFault>> {
+        self.health.subscribe()
+    }
+
+    /// Runs `work` in one write transaction and commits it; `Ok` means
+    /// committed. After any failure the connection is closed rather than
+    /// returned to the pool: after SQLITE_FULL and its kin SQLite may have
+    /// rolled the transaction back itself, and a reused connection whose
+    /// transaction depth disagrees with SQLite's turns later "commits" into
+    /// savepoint releases that never reach the file (readings acknowledged,
+    /// never stored). The pool opens a fresh connection for the next write.
+    pub async fn write<T>(
+        &self,
+        work: impl AsyncFnOnce(&mut Tx<'_>) -> Result<T, StoreError>,
+    ) -> Result<T, StoreError> {
+        if let Err(fault) = fault::check_identity(&self.path, self.identity) {
+            return Err(self.failed(fault, String::new()));
+        }
+        let mut conn = match self.writer.acquire().await {
+            Ok(conn) => conn,
+            Err(e) => return Err(self.classify(StoreError::Database(e))),
+        };
+        let result = async {
+            let mut tx = conn.begin().await?;
+            let value = work(&mut tx).await?;
+            tx.commit().await?;
+            Ok::<T, StoreError>(value)
+        }
+        .await;
+        match result {
+            Ok(value) => {
+                self.health.send_if_modified(|h| h.take().is_some());
+                Ok(value)
+            }
+            Err(e) => {
+                if let Err(close) = conn.close().await {
+                    tracing::warn!(error = %close, "closing the failed writer connection");
+                }
+                Err(self.classify(e))
+            }
+        }
+    }
+
+    /// A small real write, to learn whether writes succeed again.
+    pub async fn probe_write(&self, now_ns: i64) -> Result<(), StoreError> {
+        self.write(async |tx| {
+            sqlx::query(
+                "INSERT INTO server_meta (key, value) VALUES ('write_probe_ns', ?) \
+                 ON CONFLICT (key) DO UPDATE SET value = excluded.value",
+            )
+            .bind(now_ns.to_string())
+            .execute(&mut **tx)
+            .await?;
+            Ok(())
+        })
+        .await
+    }
+
+    /// Sorts a failed write's error into a fault with the path, and
+    /// records it for health.
+    fn classify(&self, e: StoreError) -> StoreError {
+        match &e {
+            StoreError::Database(db) => match fault::of_sqlx(db) {
+                Some(fault) => self.failed(fault, db.to_string()),
+                None => e,
+            },
+            StoreError::Unwritable { fault, .. } => {
+                let fault = *fault;
+                self.health.send_replace(Some(fault));
+                e
+            }
+            _ => e,
+        }
+    }
+
+    fn failed(&self, fault: StorageFault, detail: String) -> StoreError {
+        tracing::error!(db = %self.path.display(), ?fault, %detail, "database write failed");
+        self.health.send_replace(Some(fault));
+        StoreError::Unwritable {
+            path: self.path.to_path_buf(),
+            fault,
+            detail,
+        }
+    }
+
+    /// Closes both pools and releases the lock, so a server started again
+    /// in the same process may take it.
     pub async fn close(&self) {
         self.reader.close().await;
         self.writer.close().await;
+        self.lock.release();
     }
 }
 
@@ -249,36 +423,69 @@ fn run_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<RunRow, StoreError> {
 
 // ---- channels, runs, chemistries -------------------------------------------------
 
+macro_rules! channel_select {
+    ($rest:literal) => {
+        concat!(
+            "SELECT channel_key, channel_id, definition_json, rules_json, current_run_id FROM channels ",
+            $rest
+        )
+    };
+}
+
+fn channel_from_row(r: &sqlx::sqlite::SqliteRow) -> Result<ChannelRow, StoreError> {
+    Ok(ChannelRow {
+        channel_key: r.try_get("channel_key")?,
+        channel_id: r.try_get("channel_id")?,
+        definition_json: r.try_get("definition_json")?,
+        rules_json: r.try_get("rules_json")?,
+        current_run_id: r.try_get("current_run_id")?,
+    })
+}
+
 pub async fn list_channels(pool: &SqlitePool) -> Result<Vec<ChannelRow>, StoreError> {
-    let rows = sqlx::query("SELECT channel_key, channel_id, definition_json, rules_json, current_run_id FROM channels ORDER BY channel_id")
+    let rows = sqlx::query(channel_select!("ORDER BY channel_id"))
         .fetch_all(pool)
         .await?;
-    rows.iter()
-        .map(|r| {
-            Ok(ChannelRow {
-                channel_key: r.try_get("channel_key")?,
-                channel_id: r.try_get("channel_id")?,
-                definition_json: r.try_get("definition_json")?,
-                rules_json: r.try_get("rules_json")?,
-                current_run_id: r.try_get("current_run_id")?,
-            })
-        })
-        .collect()
+    rows.iter().map(channel_from_row).collect()
+}
+
+/// One channel by id, through the unique index (cost independent of the
+/// number of channels).
+pub async fn get_channel(
+    pool: &SqlitePool,
+    channel_id: &str,
+) -> Result<Option<ChannelRow>, StoreError> {
+    let row = sqlx::query(channel_select!("WHERE channel_id = ?"))
+        .bind(channel_id)
+        .fetch_optional(pool)
+        .await?;
+    row.as_ref().map(channel_from_row).transpose()
 }
 
 /// Inserts or replaces a channel; with `new_run` a run row is added and made current.
 pub async fn put_channel(
-    pool: &SqlitePool,
+    store: &Store,
     channel_id: &str,
     definition_json: &str,
     run: Option<RunRow>,
     now_ns: i64,
 ) -> Result<(i64, i64), StoreError> {
-    let mut tx = pool.begin().await?;
+    store
+        .write(async |tx| put_channel_in(tx, channel_id, definition_json, run, now_ns).await)
+        .await
+}
+
+async fn put_channel_in(
+    tx: &mut Tx<'_>,
+    channel_id: &str,
+    definition_json: &str,
+    run: Option<RunRow>,
+    now_ns: i64,
+) -> Result<(i64, i64), StoreError> {
     let existing =
         sqlx::query("SELECT channel_key, current_run_id FROM channels WHERE channel_id = ?")
             .bind(channel_id)
-            .fetch_optional(&mut *tx)
+            .fetch_optional(&mut **tx)
             .await?;
     let channel_key = match &existing {
         Some(row) => {
@@ -287,7 +494,7 @@ pub async fn put_channel(
                 .bind(definition_json)
                 .bind(now_ns)
                 .bind(key)
-                .execute(&mut *tx)
+                .execute(&mut **tx)
                 .await?;
             key
         }
@@ -295,7 +502,7 @@ pub async fn put_channel(
             .bind(channel_id)
             .bind(definition_json)
             .bind(now_ns)
-            .fetch_one(&mut *tx)
+            .fetch_one(&mut **tx)
             .await?
             .try_get("channel_key")?,
     };
@@ -315,13 +522,13 @@ pub async fn put_channel(
             .bind(run.default_temp_c)
             .bind(run.equilibrium_tolerance_v)
             .bind(&run.soc_model)
-            .fetch_one(&mut *tx)
+            .fetch_one(&mut **tx)
             .await?
             .try_get("run_id")?;
             sqlx::query("UPDATE channels SET current_run_id = ? WHERE channel_key = ?")
                 .bind(run_id)
                 .bind(channel_key)
-                .execute(&mut *tx)
+                .execute(&mut **tx)
                 .await?;
             run_id
         }
@@ -330,21 +537,24 @@ pub async fn put_channel(
             .transpose()?
             .unwrap_or(0),
     };
-    tx.commit().await?;
     Ok((channel_key, run_id))
 }
 
 pub async fn put_rules(
-    pool: &SqlitePool,
+    store: &Store,
     channel_key: i64,
     rules_json: &str,
 ) -> Result<(), StoreError> {
-    sqlx::query("UPDATE channels SET rules_json = ? WHERE channel_key = ?")
-        .bind(rules_json)
-        .bind(channel_key)
-        .execute(pool)
-        .await?;
-    Ok(())
+    store
+        .write(async |tx| {
+            sqlx::query("UPDATE channels SET rules_json = ? WHERE channel_key = ?")
+                .bind(rules_json)
+                .bind(channel_key)
+                .execute(&mut **tx)
+                .await?;
+            Ok(())
+        })
+        .await
 }
 
 pub async fn get_runs(pool: &SqlitePool, channel_key: i64) -> Result<Vec<RunRow>, StoreError> {
@@ -356,19 +566,22 @@ pub async fn get_runs(pool: &SqlitePool, channel_key: i64) -> Result<Vec<RunRow>
 }
 
 pub async fn put_chemistry(
-    pool: &SqlitePool,
+    store: &Store,
     id: &str,
     spec_json: &str,
     now_ns: i64,
 ) -> Result<(), StoreError> {
-    sqlx::query("INSERT INTO chemistries (chemistry_id, spec_json, updated_ns) VALUES (?, ?, ?) \
-                 ON CONFLICT (chemistry_id) DO UPDATE SET spec_json = excluded.spec_json, updated_ns = excluded.updated_ns")
-        .bind(id)
-        .bind(spec_json)
-        .bind(now_ns)
-        .execute(pool)
-        .await?;
-    Ok(())
+    store.write(async |tx| {
+        sqlx::query("INSERT INTO chemistries (chemistry_id, spec_json, updated_ns) VALUES (?, ?, ?) \
+                     ON CONFLICT (chemistry_id) DO UPDATE SET spec_json = excluded.spec_json, updated_ns = excluded.updated_ns")
+            .bind(id)
+            .bind(spec_json)
+            .bind(now_ns)
+            .execute(&mut **tx)
+            .await?;
+        Ok(())
+    })
+    .await
 }
 
 pub async fn list_chemistry_specs(pool: &SqlitePool) -> Result<Vec<String>, StoreError> {
@@ -391,16 +604,21 @@ pub async fn load_resume_state(
     pool: &SqlitePool,
     channel_key: i64,
 ) -> Result<ResumeState, StoreError> {
-    let max_seq: Option<i64> =
-        sqlx::query("SELECT MAX(seq) AS m FROM readings WHERE channel_key = ?")
-            .bind(channel_key)
-            .fetch_one(pool)
-            .await?
-            .try_get("m")?;
-    let est = sqlx::query("SELECT run_id, last_time_ns, usual_interval_s, state_json FROM estimator_state WHERE channel_key = ?")
+    let est = sqlx::query("SELECT run_id, last_seq, last_time_ns, usual_interval_s, state_json FROM estimator_state WHERE channel_key = ?")
         .bind(channel_key)
         .fetch_optional(pool)
         .await?;
+    // The front is what the running server kept in its snapshot (a reset
+    // timeline moves it below readings already stored); a database from
+    // before snapshots falls back to the highest stored seq.
+    let max_seq: Option<i64> = match &est {
+        Some(r) => Some(r.try_get("last_seq")?),
+        None => sqlx::query("SELECT MAX(seq) AS m FROM readings WHERE channel_key = ?")
+            .bind(channel_key)
+            .fetch_one(pool)
+            .await?
+            .try_get("m")?,
+    };
     let estimator = est
         .map(|r| -> Result<_, StoreError> {
             Ok((

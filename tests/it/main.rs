@@ -4,6 +4,7 @@
 mod alerts;
 mod cli;
 mod crash;
+mod faults;
 mod flood;
 mod harness;
 mod hostile;

@@ -1,0 +1,110 @@
+//! Why a write failed, told apart: a full disk, a read-only file, a file
+//! deleted under the server, corruption, an I/O error, a lock held by
+//! another process. Each has its own message (with the path) and status.
+
+use std::path::Path;
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum StorageFault {
+    /// SQLITE_FULL: the disk or the file system quota has no room.
+    Full,
+    /// SQLITE_READONLY: permissions or a read-only mount.
+    ReadOnly,
+    /// The file is gone or was replaced since the server opened it.
+    Missing,
+    /// SQLITE_CORRUPT / SQLITE_NOTADB.
+    Corrupt,
+    /// SQLITE_IOERR and I/O errors below sqlx.
+    Io,
+    /// SQLITE_BUSY / SQLITE_LOCKED: another process holds the database.
+    Busy,
+}
+
+impl StorageFault {
+    /// The message a client and the log see.
+    pub fn describe(self, path: &Path, detail: &str) -> String {
+        let path = path.display();
+        let what = match self {
+            StorageFault::Full => format!(
+                "database {path} is full (no room on its disk or quota): free space; the server takes writes again by itself"
+            ),
+            StorageFault::ReadOnly => format!(
+                "database {path} is read-only (file permissions or a read-only mount): make it writable"
+            ),
+            StorageFault::Missing => format!(
+                "database file {path} was deleted or replaced while the server ran: writes are refused rather than acknowledged into a file that is gone; restart the server"
+            ),
+            StorageFault::Corrupt => format!(
+                "database {path} reports corruption: stop the server and check the file (sqlite3 {path} 'PRAGMA integrity_check')"
+            ),
+            StorageFault::Io => format!("database {path}: disk I/O error"),
+            StorageFault::Busy => {
+                format!("database {path} is locked by another process")
+            }
+        };
+        let detail = if detail.is_empty() {
+            String::new()
+        } else {
+            format!(" ({detail})")
+        };
+        format!("{what}; nothing of this request was stored{detail}")
+    }
+
+    /// A short name for metrics and logs.
+    pub fn name(self) -> &'static str {
+        match self {
+            StorageFault::Full => "full",
+            StorageFault::ReadOnly => "read_only",
+            StorageFault::Missing => "missing",
+            StorageFault::Corrupt => "corrupt",
+            StorageFault::Io => "io",
+            StorageFault::Busy => "busy",
+        }
+    }
+}
+
+/// The fault behind a sqlx error, if it is one of the storage kind (a
+/// constraint or a malformed statement is not: those are bugs or input).
+pub fn of_sqlx(e: &sqlx::Error) -> Option<StorageFault> {
+    match e {
+        sqlx::Error::Database(db) => {
+            let code: i64 = db.code()?.parse().ok()?;
+            // Extended result codes keep the primary code in the low byte
+            // (https://www.sqlite.org/rescode.html).
+            match code & 0xff {
+                13 => Some(StorageFault::Full),
+                8 => Some(StorageFault::ReadOnly),
+                11 | 26 => Some(StorageFault::Corrupt),
+                10 => Some(StorageFault::Io),
+                14 => Some(StorageFault::Missing),
+                5 | 6 => Some(StorageFault::Busy),
+                _ => None,
+            }
+        }
+        sqlx::Error::Io(_) => Some(StorageFault::Io),
+        _ => None,
+    }
+}
+
+/// (device, inode) of a file, where the platform has them.
+pub fn file_identity(path: &Path) -> Option<(u64, u64)> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::MetadataExt;
+        std::fs::metadata(path).ok().map(|m| (m.dev(), m.ino()))
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = path;
+        None
+    }
+}
+
+/// Fails with `Missing` when the file at `path` is not the one opened.
+pub fn check_identity(path: &Path, opened: Option<(u64, u64)>) -> Result<(), StorageFault> {
+    match (opened, file_identity(path)) {
+        (Some(was), Some(now)) if was != now => Err(StorageFault::Missing),
+        (Some(_), None) => Err(StorageFault::Missing),
+        _ => Ok(()),
+    }
+}

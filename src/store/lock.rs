@@ -1,0 +1,80 @@
+//! One server per database file: an exclusive lock on `<db>.lock`, held
+//! for the life of the store. SQLite would let a second process write the
+//! same file, but each server keeps live state (alert ids, resume points,
+//! estimators) that only it can keep in step with the file.
+
+use super::StoreError;
+use std::fs::File;
+use std::io::{Read, Seek, Write};
+use std::path::{Path, PathBuf};
+use std::sync::Mutex;
+
+#[derive(Debug)]
+pub struct DbLock {
+    path: PathBuf,
+    file: Mutex<Option<File>>,
+}
+
+fn lock_path(db: &Path) -> PathBuf {
+    let mut name = db.as_os_str().to_owned();
+    name.push(".lock");
+    PathBuf::from(name)
+}
+
+impl DbLock {
+    pub fn acquire(db: &Path) -> Result<DbLock, StoreError> {
+        let path = lock_path(db);
+        let mut file = File::options()
+            .read(true)
+            .write(true)
+            .create(true)
+            .truncate(false)
+            .open(&path)
+            .map_err(|e| StoreError::Database(sqlx::Error::Io(e)))?;
+        if let Err(e) = file.try_lock() {
+            let mut holder = String::new();
+            let _ = file.read_to_string(&mut holder);
+            let holder = match e {
+                std::fs::TryLockError::WouldBlock => holder.trim().replace('\n', ", "),
+                std::fs::TryLockError::Error(e) => format!("lock failed: {e}"),
+            };
+            return Err(StoreError::InUse {
+                path: db.to_path_buf(),
+                lock: path,
+                holder: if holder.is_empty() {
+                    "holder unknown".into()
+                } else {
+                    holder
+                },
+            });
+        }
+        let lock = DbLock {
+            path,
+            file: Mutex::new(Some(file)),
+        };
+        lock.note("");
+        Ok(lock)
+    }
+
+    /// Rewrites the holder line: pid, and the address once known.
+    pub fn note(&self, listen: &str) {
+        let mut guard = self.file.lock().expect("lock file mutex poisoned");
+        let Some(file) = guard.as_mut() else { return };
+        let mut text = format!("pid {}", std::process::id());
+        if !listen.is_empty() {
+            text.push_str(&format!("\nlistening on {listen}"));
+        }
+        let written = file
+            .set_len(0)
+            .and_then(|_| file.rewind())
+            .and_then(|_| file.write_all(text.as_bytes()));
+        if let Err(e) = written {
+            tracing::warn!(lock = %self.path.display(), error = %e, "could not note the holder in the lock file");
+        }
+    }
+
+    /// Drops the lock (closing the file releases it).
+    pub fn release(&self) {
+        self.file.lock().expect("lock file mutex poisoned").take();
+    }
+}
