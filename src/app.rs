@@ -139,11 +139,13 @@ pub async fn run(
     let metrics_task = config
         .metrics_listener
         .map(|l| tokio::spawn(serve_metrics(l, hub.clone())));
+    let (writer_stop_tx, writer_stop_rx) = tokio::sync::watch::channel(false);
     let writer_task = tokio::spawn(writer::run(
         store.clone(),
         writer_rx,
         events,
         hub.metrics.clone(),
+        writer_stop_rx,
     ));
     let silent_task = tokio::spawn(silent_watch(hub.clone()));
 
@@ -170,7 +172,7 @@ pub async fn run(
         .build_v1alpha()
         .map_err(|e| AppError::Reflection(e.to_string()))?;
 
-    let api = Api { hub: hub.clone() };
+    let api = Api::new(hub.clone(), config.limits);
     macro_rules! limited {
         ($server:ty) => {
             <$server>::new(api.clone())
@@ -180,7 +182,10 @@ pub async fn run(
     }
     let addr = listener.local_addr().ok();
     tracing::info!(?addr, db = %config.db_path.display(), "serving");
-    let incoming = tokio_stream::wrappers::TcpListenerStream::new(listener);
+    let incoming = crate::listen::incoming(
+        listener,
+        Duration::from_secs(config.limits.connection_idle_timeout_s),
+    );
     let reporter = health_reporter.clone();
     let mut builder = tonic::transport::Server::builder()
         .max_concurrent_streams(Some(MAX_STREAMS_PER_CONNECTION))
@@ -229,24 +234,55 @@ pub async fn run(
                 .set_not_serving::<pb::ingest_service_server::IngestServiceServer<Api>>()
                 .await;
         });
-    let result = serve.await;
+    let shutdown_budget = Duration::from_secs(config.limits.shutdown_timeout_s);
+    let result = serve_until_deadline(serve, hub.shutdown.clone(), shutdown_budget / 2).await;
     silent_task.abort();
     health_task.abort();
     if let Some(t) = metrics_task {
         t.abort();
     }
-    // Dropping the last sender lets the writer drain what it was given and stop.
+    // Connections cut at the deadline may leave tasks holding the hub (and
+    // so the writer's queue): the writer is told to stop, not left waiting
+    // for every sender to go.
+    let _ = writer_stop_tx.send(true);
     drop(api);
-    let writer_sender_holder = hub;
-    drop(writer_sender_holder);
-    match tokio::time::timeout(Duration::from_secs(30), writer_task).await {
+    drop(hub);
+    match tokio::time::timeout(shutdown_budget / 2, writer_task).await {
         Ok(Ok(Ok(()))) => tracing::info!("writer flushed"),
         Ok(Ok(Err(e))) => tracing::error!(error = %e, "writer failed"),
         Ok(Err(e)) => tracing::error!(error = %e, "writer task panicked"),
-        Err(_) => tracing::error!("writer did not flush within 30 s"),
+        Err(_) => tracing::error!(
+            budget_s = shutdown_budget.as_secs() / 2,
+            "writer did not flush in time"
+        ),
     }
-    store.close().await;
+    if tokio::time::timeout(Duration::from_secs(1), store.close())
+        .await
+        .is_err()
+    {
+        tracing::warn!("database connections still busy at exit");
+    }
     result.map_err(AppError::from)
+}
+
+/// Serves until the server's own graceful end, or until `grace` after
+/// shutdown began: an idle connection or an unread response cannot hold
+/// the process (what is left is dropped with this future).
+async fn serve_until_deadline(
+    serve: impl Future<Output = Result<(), tonic::transport::Error>>,
+    stopping: tokio::sync::watch::Receiver<bool>,
+    grace: Duration,
+) -> Result<(), tonic::transport::Error> {
+    tokio::select! {
+        result = serve => result,
+        () = async {
+            ingest::stopped(stopping).await;
+            tokio::time::sleep(grace).await;
+        } => {
+            tracing::warn!(grace_s = grace.as_secs_f64(), "connections still open at the shutdown deadline: closing them");
+            Ok(())
+        }
+    }
 }
 
 /// Health follows the store: NOT_SERVING while writes fail (full,

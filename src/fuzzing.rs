@@ -468,8 +468,7 @@ fn check_derived(
             assert!(
                 named,
                 "{id}: alert {:?} names seq {} that this batch did not store",
-                a.kind,
-                a.seq
+                a.kind, a.seq
             );
         }
     }

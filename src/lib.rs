@@ -14,6 +14,7 @@ pub mod estimator;
 pub mod fuzzing;
 pub mod grpc;
 pub mod ingest;
+pub mod listen;
 pub mod metrics;
 pub mod pb;
 pub mod sim;

@@ -31,6 +31,64 @@ type BoxStream<T> = Pin<Box<dyn Stream<Item = Result<T, Status>> + Send>>;
 #[derive(Clone)]
 pub struct Api {
     pub hub: Arc<Hub>,
+    pub limits: crate::config::Limits,
+    /// Ingest streams open per client (token name, or peer address on an
+    /// open server): one client cannot take every slot.
+    pub streams_by_client: Arc<Mutex<HashMap<String, u64>>>,
+    /// QueryReadings responses being produced at once, server-wide: with
+    /// each holding at most a few pages, this bounds query memory.
+    pub queries: Arc<tokio::sync::Semaphore>,
+}
+
+impl Api {
+    pub fn new(hub: Arc<Hub>, limits: crate::config::Limits) -> Api {
+        Api {
+            hub,
+            limits,
+            streams_by_client: Arc::default(),
+            queries: Arc::new(tokio::sync::Semaphore::new(MAX_CONCURRENT_QUERIES)),
+        }
+    }
+}
+
+/// QueryReadings calls producing pages at once; more wait their turn.
+pub const MAX_CONCURRENT_QUERIES: usize = 32;
+
+/// A client's ingest-stream slot, given back when the stream ends.
+struct ClientSlot {
+    map: Arc<Mutex<HashMap<String, u64>>>,
+    client: String,
+}
+
+impl Drop for ClientSlot {
+    fn drop(&mut self) {
+        let mut map = self.map.lock().expect("client map poisoned");
+        if let Some(n) = map.get_mut(&self.client) {
+            *n -= 1;
+            if *n == 0 {
+                map.remove(&self.client);
+            }
+        }
+    }
+}
+
+fn take_client_slot(
+    map: &Arc<Mutex<HashMap<String, u64>>>,
+    client: String,
+    limit: u64,
+) -> Result<ClientSlot, Status> {
+    let mut guard = map.lock().expect("client map poisoned");
+    let open = guard.entry(client.clone()).or_insert(0);
+    if *open >= limit {
+        return Err(Status::resource_exhausted(format!(
+            "client {client}: {limit} ingest streams open already (limits.max_streams_per_client); share one stream between channels"
+        )));
+    }
+    *open += 1;
+    Ok(ClientSlot {
+        map: map.clone(),
+        client,
+    })
 }
 
 /// Ingest streams open at once, server-wide. Each holds at most one batch:
@@ -222,6 +280,19 @@ impl pb::ingest_service_server::IngestService for Api {
         request: Request<Streaming<pb::StreamReadingsRequest>>,
     ) -> Result<Response<Self::StreamReadingsStream>, Status> {
         let principal = self.authorize(&request, Permission::Ingest, "StreamReadings")?;
+        let client = match &principal {
+            Some(p) => format!("token {:?}", p.name),
+            None => request
+                .remote_addr()
+                .map(|a| a.ip().to_string())
+                .unwrap_or_else(|| "unknown".into()),
+        };
+        let client_slot = take_client_slot(
+            &self.streams_by_client,
+            client,
+            self.limits.max_streams_per_client,
+        )?;
+        let idle = std::time::Duration::from_secs(self.limits.stream_idle_timeout_s);
         let mut inbound = request.into_inner();
         let shutdown = self.hub.shutdown.clone();
         if *shutdown.borrow() {
@@ -239,9 +310,19 @@ impl pb::ingest_service_server::IngestService for Api {
         let hub = self.hub.clone();
         tokio::spawn(async move {
             let _slot = slot;
+            let _client_slot = client_slot;
             loop {
                 let message = tokio::select! {
-                    m = inbound.next() => m,
+                    m = tokio::time::timeout(idle, inbound.next()) => match m {
+                        Ok(m) => m,
+                        Err(_) => {
+                            let _ = tx.send(Err(Status::deadline_exceeded(format!(
+                                "no batch for {} s (limits.stream_idle_timeout_s): stream closed to free its slot; reconnect and resend after last_stored_seq",
+                                idle.as_secs()
+                            )))).await;
+                            break;
+                        }
+                    },
                     _ = ingest::stopped(shutdown.clone()) => {
                         let _ = tx.send(Err(Status::unavailable(
                             "the server is shutting down; every acknowledged batch is stored: reconnect and resend after last_stored_seq",
@@ -369,7 +450,76 @@ impl pb::ingest_service_server::IngestService for Api {
 }
 
 /// Rows per QueryReadings response message.
-const QUERY_PAGE_ROWS: usize = 2_000;
+const QUERY_PAGE_ROWS: u32 = 2_000;
+/// How long a query waits for a free slot before it is refused.
+const QUERY_WAIT: std::time::Duration = std::time::Duration::from_secs(10);
+/// How long a client may leave a page unread before its query is ended
+/// (freeing its slot and memory).
+const QUERY_SEND_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(30);
+
+/// The range one QueryReadings call reads, page by page.
+struct QueryPage {
+    reader: sqlx::SqlitePool,
+    channel_key: i64,
+    start_ns: i64,
+    end_ns: i64,
+}
+
+impl QueryPage {
+    async fn stream_to(
+        self,
+        tx: mpsc::Sender<Result<pb::QueryReadingsResponse, Status>>,
+        limit: u32,
+        runs: &HashMap<i64, RunRow>,
+    ) {
+        let mut after = (self.start_ns, -1i64);
+        let mut left = limit;
+        while left > 0 {
+            let want = left.min(QUERY_PAGE_ROWS);
+            let rows = match store::query_readings_page(
+                &self.reader,
+                self.channel_key,
+                self.start_ns,
+                self.end_ns,
+                after,
+                want,
+            )
+            .await
+            {
+                Ok(rows) => rows,
+                Err(e) => {
+                    let _ = tx.send(Err(Status::from(e))).await;
+                    return;
+                }
+            };
+            let Some(last) = rows.last() else { return };
+            after = (last.time_ns, last.seq as i64);
+            left -= rows.len() as u32;
+            let full = rows.len() as u32 == want;
+            let readings = rows
+                .iter()
+                .map(|r| stored_to_pb(r, runs.get(&r.run_id)))
+                .collect();
+            drop(rows);
+            let sent = tokio::time::timeout(
+                QUERY_SEND_TIMEOUT,
+                tx.send(Ok(pb::QueryReadingsResponse { readings })),
+            )
+            .await;
+            match sent {
+                Ok(Ok(())) if full => {}
+                Ok(Ok(())) | Ok(Err(_)) => return,
+                Err(_) => {
+                    let _ = tx.try_send(Err(Status::deadline_exceeded(format!(
+                        "the client read nothing for {} s; query ended to free its memory",
+                        QUERY_SEND_TIMEOUT.as_secs()
+                    ))));
+                    return;
+                }
+            }
+        }
+    }
+}
 const DEFAULT_QUERY_LIMIT: u32 = 100_000;
 
 #[tonic::async_trait]
@@ -399,25 +549,29 @@ impl pb::history_service_server::HistoryService for Api {
             DEFAULT_QUERY_LIMIT
         } else {
             q.limit
-        };
-        let rows =
-            store::query_readings(&self.hub.store.reader, key, q.start_unix_ns, end, limit).await?;
+        }
+        .min(self.limits.max_query_rows);
+        let permit = tokio::time::timeout(QUERY_WAIT, self.queries.clone().acquire_owned())
+            .await
+            .map_err(|_| {
+                Status::resource_exhausted(format!(
+                    "{MAX_CONCURRENT_QUERIES} history queries are running; retry shortly"
+                ))
+            })?
+            .map_err(|_| Status::unavailable("the server is shutting down"))?;
         let runs = self.runs_of(key).await?;
-        let (tx, rx) = mpsc::channel(4);
+        let page = QueryPage {
+            reader: self.hub.store.reader.clone(),
+            channel_key: key,
+            start_ns: q.start_unix_ns,
+            end_ns: end,
+        };
+        // One page in the channel and one being built at most: a client
+        // that does not read holds ≈ 2 pages, and only for QUERY_SEND_TIMEOUT.
+        let (tx, rx) = mpsc::channel(1);
         tokio::spawn(async move {
-            for page in rows.chunks(QUERY_PAGE_ROWS) {
-                let readings = page
-                    .iter()
-                    .map(|r| stored_to_pb(r, runs.get(&r.run_id)))
-                    .collect();
-                if tx
-                    .send(Ok(pb::QueryReadingsResponse { readings }))
-                    .await
-                    .is_err()
-                {
-                    break;
-                }
-            }
+            let _permit = permit;
+            page.stream_to(tx, limit, &runs).await;
         });
         Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
     }

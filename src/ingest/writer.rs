@@ -65,56 +65,85 @@ struct Ids {
     next_event_id: u64,
 }
 
+/// Commits jobs until the queue closes or `stop` turns true; on stop, the
+/// jobs already queued are committed and answered, later ones are refused
+/// (their senders see the queue closed: not acknowledged, so resent).
 pub async fn run(
     store: Store,
     mut jobs: mpsc::Receiver<Job>,
     events: broadcast::Sender<AlertEvent>,
     metrics: std::sync::Arc<crate::metrics::Metrics>,
+    stop: tokio::sync::watch::Receiver<bool>,
 ) -> Result<(), StoreError> {
     let (next_alert_id, next_event_id) = store::next_ids(&store.writer).await?;
     let mut ids = Ids {
         next_alert_id,
         next_event_id,
     };
-    while let Some(first) = jobs.recv().await {
-        let mut batch = vec![first];
-        let mut rows = job_rows(&batch[0]);
-        while rows < MAX_ROWS_PER_COMMIT {
-            match jobs.try_recv() {
-                Ok(job) => {
-                    rows += job_rows(&job);
-                    batch.push(job);
+    loop {
+        let first = tokio::select! {
+            job = jobs.recv() => job,
+            () = super::stopped(stop.clone()) => {
+                jobs.close();
+                jobs.recv().await
+            }
+        };
+        let Some(first) = first else { break };
+        let batch = gather(first, &mut jobs);
+        commit_and_answer(&store, &mut ids, batch, &events, &metrics).await;
+    }
+    Ok(())
+}
+
+/// The first job and whatever else is queued, up to the commit size.
+fn gather(first: Job, jobs: &mut mpsc::Receiver<Job>) -> Vec<Job> {
+    let mut rows = job_rows(&first);
+    let mut batch = vec![first];
+    while rows < MAX_ROWS_PER_COMMIT {
+        match jobs.try_recv() {
+            Ok(job) => {
+                rows += job_rows(&job);
+                batch.push(job);
+            }
+            Err(_) => break,
+        }
+    }
+    batch
+}
+
+/// One group commit; each job is answered after it, events published.
+async fn commit_and_answer(
+    store: &Store,
+    ids: &mut Ids,
+    batch: Vec<Job>,
+    events: &broadcast::Sender<AlertEvent>,
+    metrics: &crate::metrics::Metrics,
+) {
+    let saved = (ids.next_alert_id, ids.next_event_id);
+    let started = std::time::Instant::now();
+    match commit(store, ids, &batch).await {
+        Ok(outcomes) => {
+            metrics.observe_commit(started.elapsed().as_secs_f64());
+            for (job, outcome) in batch.into_iter().zip(outcomes) {
+                for event in &outcome.events {
+                    if event.kind == store::EventKind::Raised {
+                        metrics.alert_raised(event.alert.kind.code());
+                    }
+                    // No subscriber is fine; a lagging one is told by the channel.
+                    let _ = events.send(event.clone());
                 }
-                Err(_) => break,
+                let _ = reply_of(job).send(Ok(outcome));
             }
         }
-        let saved = (ids.next_alert_id, ids.next_event_id);
-        let started = std::time::Instant::now();
-        match commit(&store, &mut ids, &batch).await {
-            Ok(outcomes) => {
-                metrics.observe_commit(started.elapsed().as_secs_f64());
-                for (job, outcome) in batch.into_iter().zip(outcomes) {
-                    for event in &outcome.events {
-                        if event.kind == store::EventKind::Raised {
-                            metrics.alert_raised(event.alert.kind.code());
-                        }
-                        // No subscriber is fine; a lagging one is told by the channel.
-                        let _ = events.send(event.clone());
-                    }
-                    let _ = reply_of(job).send(Ok(outcome));
-                }
-            }
-            Err(e) => {
-                tracing::error!(error = %e, jobs = batch.len(), "commit failed");
-                ids.next_alert_id = saved.0;
-                ids.next_event_id = saved.1;
-                for job in batch {
-                    let _ = reply_of(job).send(Err(e.replicate()));
-                }
+        Err(e) => {
+            tracing::error!(error = %e, jobs = batch.len(), "commit failed");
+            ids.next_alert_id = saved.0;
+            ids.next_event_id = saved.1;
+            for job in batch {
+                let _ = reply_of(job).send(Err(e.replicate()));
             }
         }
     }
-    Ok(())
 }
 
 fn job_rows(job: &Job) -> usize {

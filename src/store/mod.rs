@@ -904,6 +904,31 @@ pub async fn query_readings(
     rows.iter().map(reading_from_row).collect()
 }
 
+/// One page of readings in (time, seq) order, after the row `after`
+/// (a keyset: each page costs the same however deep into the range).
+pub async fn query_readings_page(
+    pool: &SqlitePool,
+    channel_key: i64,
+    start_ns: i64,
+    end_ns: i64,
+    after: (i64, i64),
+    limit: u32,
+) -> Result<Vec<ReadingRow>, StoreError> {
+    let rows = sqlx::query(
+        "SELECT * FROM readings WHERE channel_key = ? AND time_ns >= ? AND time_ns < ? \
+         AND (time_ns, seq) > (?, ?) ORDER BY time_ns, seq LIMIT ?",
+    )
+    .bind(channel_key)
+    .bind(start_ns)
+    .bind(end_ns)
+    .bind(after.0)
+    .bind(after.1)
+    .bind(i64::from(limit))
+    .fetch_all(pool)
+    .await?;
+    rows.iter().map(reading_from_row).collect()
+}
+
 pub async fn latest_reading(
     pool: &SqlitePool,
     channel_key: i64,
