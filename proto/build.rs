@@ -23,6 +23,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         prost::Message::encode_to_vec(&fds),
     )?;
     tonic_prost_build::configure()
+        .codec_path("crate::grpc::codec::StrictCodec")
         .build_server(true)
         .build_client(true)
         .compile_fds(fds)?;

@@ -82,9 +82,21 @@ fn err(field: &str, value: impl std::fmt::Display, reason: impl Into<String>) ->
     }
 }
 
+/// Free text (a channel's description, an acknowledgement's note) at most,
+/// in bytes: enough for a paragraph, small enough that listing 1,000
+/// channels stays a few MB.
+pub const MAX_TEXT_BYTES: usize = 4096;
+
 impl ChannelDef {
     /// Checks the definition and resolves its chemistry (with the E° override).
     pub fn validate(&self, registry: &Registry) -> Result<Arc<Chemistry>, ChannelError> {
+        if self.description.len() > MAX_TEXT_BYTES {
+            return Err(err(
+                "description",
+                format!("({} bytes)", self.description.len()),
+                "at most 4096 bytes",
+            ));
+        }
         validate_id("channel_id", &self.channel_id).map_err(|e| {
             err(
                 "channel_id",

@@ -309,15 +309,33 @@ pub struct StateArgs {
     pub format: Format,
 }
 
+/// Every channel, following ListChannels pages.
+async fn all_channels(channel: &client::Conn) -> anyhow::Result<Vec<pb::Channel>> {
+    let mut client = ChannelServiceClient::new(channel.clone());
+    let mut out = Vec::new();
+    let mut page_token = String::new();
+    loop {
+        let page = client
+            .list_channels(pb::ListChannelsRequest {
+                page_size: 0,
+                page_token,
+            })
+            .await?
+            .into_inner();
+        out.extend(page.channels);
+        if page.next_page_token.is_empty() {
+            return Ok(out);
+        }
+        page_token = page.next_page_token;
+    }
+}
+
 pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
     let channel = client::connect(&args.connect).await?;
     let ids = match &args.channel {
         Some(id) => vec![id.clone()],
-        None => ChannelServiceClient::new(channel.clone())
-            .list_channels(pb::ListChannelsRequest {})
+        None => all_channels(&channel)
             .await?
-            .into_inner()
-            .channels
             .into_iter()
             .map(|c| c.channel_id)
             .collect(),
@@ -759,11 +777,8 @@ pub async fn channels(cmd: &ChannelsCommand) -> anyhow::Result<()> {
             Ok(())
         }
         ChannelsCommand::List { connect, format } => {
-            let list = ChannelServiceClient::new(client::connect(connect).await?)
-                .list_channels(pb::ListChannelsRequest {})
-                .await?
-                .into_inner();
-            for c in &list.channels {
+            let channels = all_channels(&client::connect(connect).await?).await?;
+            for c in &channels {
                 match format {
                     Format::Json => println!(
                         "{}",

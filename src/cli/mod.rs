@@ -319,6 +319,13 @@ fn serve(args: &ServeArgs) -> anyhow::Result<()> {
         .filter(|c| !c.builtin)
         .map(|c| (**c).clone())
         .collect();
+    // Each connection is a descriptor; the common soft limit of 1024 would
+    // make a few hundred idle clients lock the rest out. Raised to the hard
+    // limit (the accept loop still backs off if even that runs out).
+    match rlimit::increase_nofile_limit(u64::MAX) {
+        Ok(n) => tracing::info!(nofile = n, "open-file limit"),
+        Err(e) => tracing::warn!(error = %e, "could not raise the open-file limit"),
+    }
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()?;

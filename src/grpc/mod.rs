@@ -2,6 +2,7 @@
 //! the store and the core. Only this module (and the client commands) see
 //! generated protobuf types.
 
+pub mod codec;
 pub mod convert;
 pub mod status;
 
@@ -258,18 +259,37 @@ impl pb::channel_service_server::ChannelService for Api {
         request: Request<pb::ListChannelsRequest>,
     ) -> Result<Response<pb::ListChannelsResponse>, Status> {
         let _principal = self.authorize(&request, Permission::Read, "ListChannels")?;
+        let q = request.into_inner();
+        let page_size = match q.page_size {
+            0 => MAX_CHANNELS_PER_PAGE,
+            n => (n as usize).min(MAX_CHANNELS_PER_PAGE),
+        };
         let map = self.hub.channels.read().expect("channel map poisoned");
-        let mut channels: Vec<_> = map
-            .values()
-            .map(|rt| {
-                let g = rt.lock().expect("channel state poisoned");
+        let mut ids: Vec<&String> = map.keys().filter(|id| **id > q.page_token).collect();
+        ids.sort();
+        let more = ids.len() > page_size;
+        ids.truncate(page_size);
+        let channels: Vec<_> = ids
+            .iter()
+            .map(|id| {
+                let g = map[*id].lock().expect("channel state poisoned");
                 channel_to_pb(&g.def, g.run_id)
             })
             .collect();
-        channels.sort_by(|a, b| a.channel_id.cmp(&b.channel_id));
-        Ok(Response::new(pb::ListChannelsResponse { channels }))
+        let next_page_token = match (more, channels.last()) {
+            (true, Some(last)) => last.channel_id.clone(),
+            _ => String::new(),
+        };
+        Ok(Response::new(pb::ListChannelsResponse {
+            channels,
+            next_page_token,
+        }))
     }
 }
+
+/// Channels per ListChannels page at most: 1,000 × a 4 KiB description
+/// stays well inside the 16 MiB message limit.
+const MAX_CHANNELS_PER_PAGE: usize = 1000;
 
 #[tonic::async_trait]
 impl pb::ingest_service_server::IngestService for Api {
@@ -1032,6 +1052,13 @@ impl pb::alert_service_server::AlertService for Api {
                     q.acknowledged_by.chars().take(40).collect::<String>()
                 ),
                 "a name of 1–200 characters is required",
+            ));
+        }
+        if q.note.len() > crate::channel::MAX_TEXT_BYTES {
+            return Err(invalid(
+                "note",
+                format!("({} bytes)", q.note.len()),
+                "at most 4096 bytes",
             ));
         }
         let alert_id = q.alert_id;

@@ -401,7 +401,7 @@ async fn example_channels_file_puts_every_channel() {
     let file: File = toml::from_str(&std::fs::read_to_string(example).unwrap()).unwrap();
     assert!(file.channel.len() >= 4);
     let listed = ChannelServiceClient::new(ch)
-        .list_channels(pb::ListChannelsRequest {})
+        .list_channels(pb::ListChannelsRequest::default())
         .await
         .unwrap()
         .into_inner()

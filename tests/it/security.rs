@@ -114,7 +114,10 @@ async fn tls_mtls_and_roles() {
     // mTLS: without a client certificate no RPC gets through.
     if let Ok(c) = tls_channel(addr, &pki, false).await {
         let r = pb::channel_service_client::ChannelServiceClient::new(c)
-            .list_channels(with_token(pb::ListChannelsRequest {}, Some("admin-secret")))
+            .list_channels(with_token(
+                pb::ListChannelsRequest::default(),
+                Some("admin-secret"),
+            ))
             .await;
         assert!(r.is_err(), "a client without a certificate was served");
     }
