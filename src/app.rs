@@ -182,10 +182,9 @@ pub async fn run(
     }
     let addr = listener.local_addr().ok();
     tracing::info!(?addr, db = %config.db_path.display(), "serving");
-    let incoming = crate::listen::incoming(
-        listener,
-        Duration::from_secs(config.limits.connection_idle_timeout_s),
-    );
+    let connection_idle = Duration::from_secs(config.limits.connection_idle_timeout_s);
+    let keepalive = connection_idle / 3;
+    let incoming = crate::listen::incoming(listener, connection_idle);
     let reporter = health_reporter.clone();
     let mut builder = tonic::transport::Server::builder()
         .max_concurrent_streams(Some(MAX_STREAMS_PER_CONNECTION))
@@ -194,8 +193,10 @@ pub async fn run(
         // buffering megabytes per stream.
         .initial_stream_window_size(Some(256 * 1024))
         .initial_connection_window_size(Some(1024 * 1024))
-        .http2_keepalive_interval(Some(Duration::from_secs(30)))
-        .http2_keepalive_timeout(Some(Duration::from_secs(20)));
+        // Pings keep live connections inside the idle limit (listen.rs):
+        // at least three per idle period.
+        .http2_keepalive_interval(Some(keepalive.min(Duration::from_secs(30))))
+        .http2_keepalive_timeout(Some(keepalive.min(Duration::from_secs(20))));
     if let Some(tls) = &config.tls {
         let mut tls_config = tonic::transport::ServerTlsConfig::new()
             .identity(tonic::transport::Identity::from_pem(&tls.cert, &tls.key));

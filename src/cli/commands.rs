@@ -668,6 +668,17 @@ pub enum ChannelsCommand {
         #[arg(long, default_value = DEFAULT_ADDR)]
         connect: String,
     },
+    /// Move a channel's front back to a stored reading after a garbled
+    /// time or seq (operator role); nothing stored is deleted.
+    ResetTimeline {
+        id: String,
+        /// Resume after this stored seq (default: the latest reading that
+        /// was taken out of order).
+        #[arg(long)]
+        after_seq: Option<u64>,
+        #[arg(long, default_value = DEFAULT_ADDR)]
+        connect: String,
+    },
 }
 
 #[derive(serde::Deserialize)]
@@ -800,6 +811,25 @@ pub async fn channels(cmd: &ChannelsCommand) -> anyhow::Result<()> {
                 .channel
                 .unwrap_or_default();
             print_channel(&c);
+            Ok(())
+        }
+        ChannelsCommand::ResetTimeline {
+            id,
+            after_seq,
+            connect,
+        } => {
+            let r = ChannelServiceClient::new(client::connect(connect).await?)
+                .reset_timeline(pb::ResetTimelineRequest {
+                    channel_id: id.clone(),
+                    after_seq: *after_seq,
+                })
+                .await
+                .map_err(|s| UsageError(s.message().to_string()))?
+                .into_inner();
+            println!(
+                "{id}: readings after seq {} (time_unix_ns {}) count as fresh again",
+                r.last_stored_seq, r.time_unix_ns
+            );
             Ok(())
         }
     }

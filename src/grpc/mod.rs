@@ -285,6 +285,19 @@ impl pb::channel_service_server::ChannelService for Api {
             next_page_token,
         }))
     }
+
+    async fn reset_timeline(
+        &self,
+        request: Request<pb::ResetTimelineRequest>,
+    ) -> Result<Response<pb::ResetTimelineResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Operate, "ResetTimeline")?;
+        let q = request.into_inner();
+        let (seq, time_ns) = self.hub.reset_timeline(&q.channel_id, q.after_seq).await?;
+        Ok(Response::new(pb::ResetTimelineResponse {
+            last_stored_seq: seq,
+            time_unix_ns: time_ns,
+        }))
+    }
 }
 
 /// Channels per ListChannels page at most: 1,000 × a 4 KiB description

@@ -359,6 +359,72 @@ impl Hub {
         })
     }
 
+    /// Moves the channel's front back to a stored reading (see the
+    /// ResetTimeline RPC): the readings behind a garbled front count as
+    /// fresh again. The new front is committed with the estimator snapshot
+    /// (so a restart keeps it), and the timeline alert is cleared.
+    pub async fn reset_timeline(
+        &self,
+        channel_id: &str,
+        after_seq: Option<u64>,
+    ) -> Result<(u64, i64), IngestError> {
+        let runtime = self.channel(channel_id)?;
+        let gate = runtime
+            .lock()
+            .expect("channel state poisoned")
+            .commit_gate
+            .clone();
+        let _turn = gate.lock().await;
+        self.reload_if_needed(&runtime).await?;
+        let key = runtime.lock().expect("channel state poisoned").key;
+        let Some((seq, time_ns)) =
+            store::timeline_anchor(&self.store.writer, key, after_seq).await?
+        else {
+            return Err(match after_seq {
+                Some(seq) => invalid(
+                    "after_seq",
+                    seq,
+                    "no stored reading of this channel has that seq",
+                ),
+                None => invalid(
+                    "after_seq",
+                    "unset",
+                    "no reading of this channel was taken out of order: its timeline is in step",
+                ),
+            });
+        };
+        let job = {
+            let mut rt = runtime.lock().expect("channel state poisoned");
+            rt.max_seq = Some(seq);
+            rt.last_time_ns = time_ns;
+            let changes = alerts::rules::clear_timeline(&mut rt.rule_state, now_ns())
+                .into_iter()
+                .collect();
+            DerivedBatch {
+                channel_key: rt.key,
+                run_id: rt.run_id,
+                rows: vec![],
+                maybe_dup: vec![],
+                changes,
+                cycles: vec![],
+                estimator: Some(snapshot_of(&rt)),
+            }
+        };
+        if let Err(e) = self
+            .submit(|reply| Job::Readings(job.into_job(reply)))
+            .await
+        {
+            self.reload_after_failure(&runtime).await;
+            return Err(e);
+        }
+        runtime
+            .lock()
+            .expect("channel state poisoned")
+            .committed_seq = Some(seq);
+        tracing::info!(channel_id, seq, time_ns, "timeline reset");
+        Ok((seq, time_ns))
+    }
+
     fn count(&self, outcome: &WriteOutcome, rejected: &[Rejection]) {
         use std::sync::atomic::Ordering::Relaxed;
         let m = &self.metrics;
@@ -536,6 +602,8 @@ struct TimelineTally {
     quarantined: u32,
     /// New seq but a time not after the front's: the rig's clock went back.
     clock_back: u32,
+    /// A later time but a seq at or below the front's.
+    seq_behind: u32,
 }
 
 /// The timeline alert's raise or clear for one batch.
@@ -545,15 +613,15 @@ fn timeline_change(
     advanced: bool,
     wall_now_ns: i64,
 ) -> Option<AlertChange> {
-    let kept_out = tally.quarantined + tally.clock_back;
+    let kept_out = tally.quarantined + tally.clock_back + tally.seq_behind;
     match rt.max_seq {
         Some(front) if kept_out > 0 => {
-            let reason = match (tally.quarantined, tally.clock_back) {
-                (0, _) => {
-                    "new seqs with times before the channel's last reading (a clock that went back)"
-                }
-                (_, 0) => "quarantined for a time far ahead of the server's clock or a seq jump",
-                _ => "quarantined jumps, and new seqs with times before the last reading",
+            let reason = if tally.quarantined > 0 {
+                "quarantined for a time far ahead of the server's clock or a seq jump"
+            } else if tally.clock_back > 0 {
+                "new seqs with times before the channel's last reading (a clock that went back)"
+            } else {
+                "later times with seqs behind the channel's front (a seq that jumped ahead)"
             };
             alerts::rules::raise_timeline(&mut rt.rule_state, wall_now_ns, front, kept_out, reason)
         }
@@ -623,6 +691,10 @@ pub fn derive_batch(
         let fresh = new_seq && r.time_unix_ns > rt.last_time_ns;
         if new_seq && !fresh {
             timeline.clock_back += 1;
+        } else if !new_seq && r.time_unix_ns > rt.last_time_ns {
+            // Time moved on but the seq is behind the front: the front
+            // came from a seq that jumped ahead of the rig's numbering.
+            timeline.seq_behind += 1;
         }
         if !fresh {
             // A resend or a late reading: stored (if new) with its own
@@ -757,12 +829,7 @@ pub fn derive_batch(
         });
     }
     changes.extend(timeline_change(rt, &timeline, advanced, wall_now_ns));
-    let estimator = (advanced || front_moved).then(|| writer::EstimatorSnapshot {
-        last_seq: rt.max_seq.unwrap_or(0),
-        last_time_ns: rt.last_time_ns,
-        usual_interval_s: rt.usual_interval_s,
-        state_json: serde_json::to_string(&rt.est).unwrap_or_default(),
-    });
+    let estimator = (advanced || front_moved).then(|| snapshot_of(rt));
     (
         DerivedBatch {
             channel_key: rt.key,
@@ -775,6 +842,16 @@ pub fn derive_batch(
         },
         rejected,
     )
+}
+
+/// What a restart resumes from: the front and the estimator.
+fn snapshot_of(rt: &ChannelRuntime) -> writer::EstimatorSnapshot {
+    writer::EstimatorSnapshot {
+        last_seq: rt.max_seq.unwrap_or(0),
+        last_time_ns: rt.last_time_ns,
+        usual_interval_s: rt.usual_interval_s,
+        state_json: serde_json::to_string(&rt.est).unwrap_or_default(),
+    }
 }
 
 /// Builds a channel's runtime from its stored row (at start or on PutChannel).

@@ -108,3 +108,94 @@ pub fn check_identity(path: &Path, opened: Option<(u64, u64)>) -> Result<(), Sto
         _ => Ok(()),
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use sqlx::sqlite::SqliteConnectOptions;
+    use sqlx::{ConnectOptions, Connection};
+
+    async fn insert_error(options: SqliteConnectOptions, setup: &[&'static str]) -> sqlx::Error {
+        let mut conn = options.connect().await.unwrap();
+        for statement in setup {
+            sqlx::query(*statement).execute(&mut conn).await.unwrap();
+        }
+        for i in 0..100_000 {
+            if let Err(e) = sqlx::query("INSERT INTO t (v) VALUES (?)")
+                .bind(format!("{i:0>200}"))
+                .execute(&mut conn)
+                .await
+            {
+                let _ = conn.close().await;
+                return e;
+            }
+        }
+        panic!("no insert failed");
+    }
+
+    #[tokio::test]
+    async fn sqlite_errors_sort_into_their_faults() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("f.db");
+        let create = SqliteConnectOptions::new()
+            .filename(&path)
+            .create_if_missing(true);
+        // SQLite's own quota stands in for a full disk (max_page_count).
+        let full = insert_error(
+            create.clone(),
+            &["CREATE TABLE t (v TEXT)", "PRAGMA max_page_count = 8"],
+        )
+        .await;
+        assert_eq!(of_sqlx(&full), Some(StorageFault::Full), "{full}");
+        let read_only = insert_error(create.read_only(true), &[]).await;
+        assert_eq!(
+            of_sqlx(&read_only),
+            Some(StorageFault::ReadOnly),
+            "{read_only}"
+        );
+        // A constraint is the caller's problem, not the storage's.
+        let mut conn = SqliteConnectOptions::new()
+            .filename(&path)
+            .connect()
+            .await
+            .unwrap();
+        sqlx::query("CREATE TABLE u (k INTEGER PRIMARY KEY)")
+            .execute(&mut conn)
+            .await
+            .unwrap();
+        sqlx::query("INSERT INTO u VALUES (1)")
+            .execute(&mut conn)
+            .await
+            .unwrap();
+        let dup = sqlx::query("INSERT INTO u VALUES (1)")
+            .execute(&mut conn)
+            .await
+            .unwrap_err();
+        assert_eq!(of_sqlx(&dup), None, "{dup}");
+    }
+
+    #[test]
+    fn a_replaced_file_is_missing() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("f.db");
+        std::fs::write(&path, b"x").unwrap();
+        // Held open, as SQLite holds the database: its inode cannot be
+        // handed to a new file.
+        let _held = std::fs::File::open(&path).unwrap();
+        let opened = file_identity(&path);
+        assert_eq!(check_identity(&path, opened), Ok(()));
+        std::fs::remove_file(&path).unwrap();
+        assert_eq!(check_identity(&path, opened), Err(StorageFault::Missing));
+        std::fs::write(&path, b"y").unwrap();
+        assert_eq!(check_identity(&path, opened), Err(StorageFault::Missing));
+    }
+
+    #[test]
+    fn messages_name_the_path() {
+        let m = StorageFault::Full.describe(Path::new("/data/lab.db"), "code 13");
+        assert!(
+            m.contains("/data/lab.db") && m.contains("full") && m.contains("code 13"),
+            "{m}"
+        );
+    }
+}

@@ -929,6 +929,36 @@ pub async fn query_readings_page(
     rows.iter().map(reading_from_row).collect()
 }
 
+/// The reading a reset timeline resumes after: `after_seq` if stored,
+/// else the highest-seq reading stored out of order. (seq, time_ns).
+pub async fn timeline_anchor(
+    pool: &SqlitePool,
+    channel_key: i64,
+    after_seq: Option<u64>,
+) -> Result<Option<(u64, i64)>, StoreError> {
+    let row = match after_seq {
+        Some(seq) => {
+            sqlx::query("SELECT seq, time_ns FROM readings WHERE channel_key = ? AND seq = ?")
+                .bind(channel_key)
+                .bind(seq as i64)
+                .fetch_optional(pool)
+                .await?
+        }
+        None => {
+            sqlx::query(
+                "SELECT seq, time_ns FROM readings WHERE channel_key = ? AND (flags & ?) != 0 \
+                 ORDER BY seq DESC LIMIT 1",
+            )
+            .bind(channel_key)
+            .bind(flags::OUT_OF_ORDER)
+            .fetch_optional(pool)
+            .await?
+        }
+    };
+    row.map(|r| Ok((r.try_get::<i64, _>("seq")? as u64, r.try_get("time_ns")?)))
+        .transpose()
+}
+
 pub async fn latest_reading(
     pool: &SqlitePool,
     channel_key: i64,

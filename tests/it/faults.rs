@@ -345,3 +345,270 @@ async fn one_garbled_reading_does_not_silence_alerts() {
     }
     server.stop().await;
 }
+
+/// A seq jump inside the bound still moves the front; the real readings
+/// behind it raise the timeline alert, and an operator's reset brings them
+/// back to the rules, across a restart too.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_reset_timeline_brings_real_readings_back_to_the_rules() {
+    let (_dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    put_channel(&ch, channel_def("reset-1", "daniell")).await;
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    let t0 = now_ns() - 600_000_000_000;
+    let at = |seq: u64, i: i64, temp_c: f64| pb::Reading {
+        seq,
+        time_unix_ns: t0 + i * 100_000_000,
+        volts: 1.10,
+        amps: Some(0.0),
+        temp_c: Some(temp_c),
+    };
+    let send = |readings: Vec<pb::Reading>| pb::ReadingBatch {
+        channel_id: "reset-1".into(),
+        batch_id: 0,
+        readings,
+    };
+    let ack = try_batch(
+        &mut ingest,
+        send(vec![at(1, 1, 25.0), at(500_001, 2, 25.0)]),
+    )
+    .await
+    .unwrap();
+    assert_eq!((ack.accepted, ack.last_stored_seq), (2, 500_001));
+    let ack = try_batch(
+        &mut ingest,
+        send((2..22).map(|s| at(s, s as i64 + 2, 150.0)).collect()),
+    )
+    .await
+    .unwrap();
+    assert_eq!(ack.out_of_order, 20, "{ack:?}");
+    let kinds = alert_kinds(&ch, "reset-1").await;
+    assert!(
+        kinds.contains(&(pb::AlertKind::Timeline as i32)),
+        "{kinds:?}"
+    );
+    assert!(
+        !kinds.contains(&(pb::AlertKind::TemperatureLimit as i32)),
+        "{kinds:?}"
+    );
+
+    let reset = ChannelServiceClient::new(ch.clone())
+        .reset_timeline(pb::ResetTimelineRequest {
+            channel_id: "reset-1".into(),
+            after_seq: None,
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(reset.last_stored_seq, 21);
+    assert_eq!(resume_point(&ch, "reset-1").await, 21);
+    server.stop().await;
+
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    assert_eq!(
+        resume_point(&ch, "reset-1").await,
+        21,
+        "a restart lost the reset"
+    );
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    let ack = try_batch(
+        &mut ingest,
+        send((22..42).map(|s| at(s, s as i64 + 2, 150.0)).collect()),
+    )
+    .await
+    .unwrap();
+    assert_eq!((ack.accepted, ack.out_of_order), (20, 0), "{ack:?}");
+    let kinds = alert_kinds(&ch, "reset-1").await;
+    assert!(
+        kinds.contains(&(pb::AlertKind::TemperatureLimit as i32)),
+        "{kinds:?}"
+    );
+    // Nothing to reset on a channel in step: the refusal names the field.
+    let refused = ChannelServiceClient::new(ch.clone())
+        .reset_timeline(pb::ResetTimelineRequest {
+            channel_id: "reset-1".into(),
+            after_seq: Some(999),
+        })
+        .await
+        .unwrap_err();
+    assert_eq!(refused.code(), tonic::Code::InvalidArgument);
+    assert!(refused.message().contains("after_seq = 999"), "{refused:?}");
+    server.stop().await;
+}
+
+fn tight_limits(db: &Path) -> gibbsline::app::Config {
+    let mut config =
+        gibbsline::app::Config::new(db.to_path_buf(), gibbsline::store::Durability::Normal);
+    config.limits.stream_idle_timeout_s = 1;
+    config.limits.connection_idle_timeout_s = 1;
+    config.limits.max_streams_per_client = 2;
+    config
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn idle_streams_and_connections_are_closed_and_one_client_cannot_take_every_slot() {
+    use tokio::io::AsyncReadExt;
+    let (_dir, db) = temp_db();
+    let server = Server::start_with(tight_limits(&db), "127.0.0.1:0").await;
+    let ch = server.channel().await;
+
+    // A connection that never speaks is closed.
+    let mut mute = tokio::net::TcpStream::connect(server.addr).await.unwrap();
+    let mut buf = [0u8; 64];
+    let closed = tokio::time::timeout(Duration::from_secs(10), async {
+        loop {
+            match mute.read(&mut buf).await {
+                Ok(0) | Err(_) => return,
+                Ok(_) => {}
+            }
+        }
+    })
+    .await;
+    assert!(closed.is_ok(), "a mute connection was never closed");
+
+    // Two idle streams take this client's two slots; a third is refused.
+    let mut idle = Vec::new();
+    for _ in 0..2 {
+        let (tx, rx) = tokio::sync::mpsc::channel::<pb::StreamReadingsRequest>(1);
+        let acks = IngestServiceClient::new(ch.clone())
+            .stream_readings(tokio_stream::wrappers::ReceiverStream::new(rx))
+            .await
+            .unwrap()
+            .into_inner();
+        idle.push((tx, acks));
+    }
+    let (_tx3, rx3) = tokio::sync::mpsc::channel::<pb::StreamReadingsRequest>(1);
+    let third = IngestServiceClient::new(ch.clone())
+        .stream_readings(tokio_stream::wrappers::ReceiverStream::new(rx3))
+        .await
+        .unwrap_err();
+    assert_eq!(third.code(), tonic::Code::ResourceExhausted, "{third:?}");
+    assert!(
+        third.message().contains("max_streams_per_client"),
+        "{third:?}"
+    );
+    // An idle stream is ended, naming the limit; its slot comes back.
+    for (_tx, acks) in &mut idle {
+        let ended = tokio::time::timeout(Duration::from_secs(10), acks.next())
+            .await
+            .expect("an idle stream was never ended")
+            .unwrap()
+            .unwrap_err();
+        assert_eq!(ended.code(), tonic::Code::DeadlineExceeded, "{ended:?}");
+        assert!(
+            ended.message().contains("stream_idle_timeout_s"),
+            "{ended:?}"
+        );
+    }
+    drop(idle);
+    tokio::time::sleep(Duration::from_millis(200)).await;
+    put_channel(&ch, channel_def("idle-1", "daniell")).await;
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    let ack = try_batch(
+        &mut ingest,
+        batch("idle-1", 1..11, now_ns() - 60_000_000_000),
+    )
+    .await
+    .unwrap();
+    assert_eq!(ack.accepted, 10);
+    server.stop().await;
+}
+
+/// Fills a channel of a server process with `n` readings.
+async fn fill(ch: &Channel, channel: &str, n: u64) {
+    put_channel(ch, channel_def(channel, "daniell")).await;
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    let t0 = now_ns() - 3_600_000_000_000;
+    let batches: Vec<_> = (0..n / 10_000)
+        .map(|b| batch(channel, b * 10_000 + 1..(b + 1) * 10_000 + 1, t0))
+        .collect();
+    let acks = send_batches(&mut ingest, batches).await;
+    assert!(acks.iter().all(|a| a.accepted == 10_000));
+}
+
+/// Opens a QueryReadings asking for everything, reads one page, then stops reading.
+async fn unread_query(ch: &Channel, channel: &str) -> tonic::Streaming<pb::QueryReadingsResponse> {
+    let mut pages = HistoryServiceClient::new(ch.clone())
+        .query_readings(pb::QueryReadingsRequest {
+            channel_id: channel.into(),
+            limit: u32::MAX,
+            ..Default::default()
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    assert!(!pages.next().await.unwrap().unwrap().readings.is_empty());
+    pages
+}
+
+fn rss_mib(pid: u32) -> f64 {
+    let status = std::fs::read_to_string(format!("/proc/{pid}/status")).unwrap();
+    let kib: f64 = status
+        .lines()
+        .find(|l| l.starts_with("VmRSS:"))
+        .and_then(|l| l.split_whitespace().nth(1))
+        .and_then(|v| v.parse().ok())
+        .unwrap();
+    kib / 1024.0
+}
+
+/// Bound on the server's resident memory with 8 unread full-range queries
+/// (README, "Limits and promises"); before paging, 8 reached 2 GiB.
+const UNREAD_QUERIES_RSS_BOUND_MIB: f64 = 150.0;
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn unread_queries_hold_bounded_memory_and_sigterm_still_exits_in_time() {
+    let (_dir, db) = temp_db();
+    let addr = crate::crash::free_addr();
+    let mut server = crate::crash::spawn_server(&db, &addr);
+    let ch = crate::crash::connect(&addr).await;
+    fill(&ch, "mem-1", 200_000).await;
+    // Eight viewers, each on its own connection (unread data on one
+    // connection would exhaust that connection's HTTP/2 window first).
+    let mut open = Vec::new();
+    for _ in 0..8 {
+        let viewer = crate::crash::connect(&addr).await;
+        open.push(unread_query(&viewer, "mem-1").await);
+    }
+    tokio::time::sleep(Duration::from_secs(1)).await;
+    let rss = rss_mib(server.id());
+    let peak = crate::flood::peak_rss_mib(server.id());
+    eprintln!(
+        "8 unread queries over 200,000 readings: server RSS {rss:.0} MiB, peak {peak:.0} MiB"
+    );
+    assert!(rss < UNREAD_QUERIES_RSS_BOUND_MIB, "RSS {rss:.0} MiB");
+
+    // An idle TCP connection and the unread queries stay open; SIGTERM
+    // must still end the process within the shutdown budget (10 s).
+    let _mute = tokio::net::TcpStream::connect(&addr).await.unwrap();
+    let started = Instant::now();
+    let status = Command::new("kill")
+        .args(["-TERM", &server.id().to_string()])
+        .status()
+        .unwrap();
+    assert!(status.success());
+    let exit = tokio::task::spawn_blocking(move || {
+        let deadline = Instant::now() + Duration::from_secs(30);
+        loop {
+            if let Some(status) = server.try_wait().unwrap() {
+                return Some(status);
+            }
+            if Instant::now() > deadline {
+                let _ = server.kill();
+                return None;
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    })
+    .await
+    .unwrap();
+    let took = started.elapsed();
+    eprintln!("exit after SIGTERM with clients attached: {took:?}");
+    let exit = exit.expect("the server was still running 30 s after SIGTERM");
+    assert_eq!(exit.code(), Some(0));
+    // 10 s budget plus a margin for a loaded CI machine.
+    assert!(took < Duration::from_secs(15), "exit took {took:?}");
+    drop(open);
+}
