@@ -20,8 +20,27 @@ fn main() -> ExitCode {
                 eprintln!("error: {unreachable}");
                 return ExitCode::from(3);
             }
+            if let Some(status) = err.downcast_ref::<tonic::Status>() {
+                return report_status(status);
+            }
             eprintln!("error: {err:#}");
             ExitCode::from(1)
         }
     }
+}
+
+/// One line for a failed call. A status that comes from the transport (the
+/// connection broke before the server answered: plaintext against TLS,
+/// say) counts as unreachable.
+fn report_status(status: &tonic::Status) -> ExitCode {
+    let message = status.message().lines().next().unwrap_or("");
+    if std::error::Error::source(status).is_some() {
+        eprintln!(
+            "error: the connection failed before the server answered ({message}); \
+             if the server uses TLS, connect with https://HOST:PORT (GIBBSLINE_CA_FILE for its CA)"
+        );
+        return ExitCode::from(3);
+    }
+    eprintln!("error: {:?}: {message}", status.code());
+    ExitCode::from(1)
 }

@@ -340,6 +340,23 @@ async fn cli_speaks_tls_with_certificates_and_tokens() {
     assert!(stderr.contains("rig"), "{stderr}");
     assert!(!stderr.contains("rig-secret") && !stdout.contains("rig-secret"));
 
+    // Plaintext against the TLS port: one line saying what to do, exit 3.
+    let plain_addr = format!("127.0.0.1:{}", addr.port());
+    let plain = tokio::task::spawn_blocking(move || {
+        std::process::Command::new(env!("CARGO_BIN_EXE_gibbsline"))
+            .args(["state", "--connect", &plain_addr])
+            .env_remove("GIBBSLINE_TOKEN")
+            .stdin(std::process::Stdio::null())
+            .output()
+            .unwrap()
+    })
+    .await
+    .unwrap();
+    let stderr = String::from_utf8_lossy(&plain.stderr);
+    assert_eq!(plain.status.code(), Some(3), "{stderr}");
+    assert_eq!(stderr.trim().lines().count(), 1, "{stderr}");
+    assert!(stderr.contains("https://"), "{stderr}");
+
     let _ = stop.send(());
     task.await.unwrap().unwrap();
 }
