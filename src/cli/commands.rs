@@ -668,6 +668,19 @@ pub enum ChannelsCommand {
         #[arg(long, default_value = DEFAULT_ADDR)]
         connect: String,
     },
+    /// Anchor a channel's coulomb count at an SOC you know (operator role).
+    SetSoc {
+        id: String,
+        /// 0–1.
+        #[arg(long)]
+        soc: f64,
+        #[arg(long)]
+        by: String,
+        #[arg(long, default_value = "")]
+        note: String,
+        #[arg(long, default_value = DEFAULT_ADDR)]
+        connect: String,
+    },
     /// Move a channel's front back to a stored reading after a garbled
     /// time or seq (operator role); nothing stored is deleted.
     ResetTimeline {
@@ -811,6 +824,29 @@ pub async fn channels(cmd: &ChannelsCommand) -> anyhow::Result<()> {
                 .channel
                 .unwrap_or_default();
             print_channel(&c);
+            Ok(())
+        }
+        ChannelsCommand::SetSoc {
+            id,
+            soc,
+            by,
+            note,
+            connect,
+        } => {
+            let r = ChannelServiceClient::new(client::connect(connect).await?)
+                .set_channel_soc(pb::SetChannelSocRequest {
+                    channel_id: id.clone(),
+                    soc: *soc,
+                    set_by: by.clone(),
+                    note: note.clone(),
+                })
+                .await
+                .map_err(|s| UsageError(s.message().to_string()))?
+                .into_inner();
+            println!(
+                "{id}: SOC {} from time_unix_ns {} on, counted from there",
+                r.soc, r.time_unix_ns
+            );
             Ok(())
         }
         ChannelsCommand::ResetTimeline {

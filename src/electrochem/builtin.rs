@@ -37,6 +37,10 @@ fn strings(items: &[&str]) -> Vec<String> {
     items.iter().map(|s| s.to_string()).collect()
 }
 
+/// The water cell (fuel cell / electrolyser): current into it splits water,
+/// so its modes are named electrolysis / fuel cell / open circuit.
+pub const WATER_CELL_ID: &str = "hydrogen-oxygen";
+
 /// Ids of the built-ins, in listing order.
 pub const BUILTIN_IDS: [&str; 7] = [
     "daniell",

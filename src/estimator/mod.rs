@@ -155,6 +155,52 @@ pub struct EstimatorInput {
     pub temp_k: Option<f64>,
 }
 
+/// What a cell is doing, from its current: the trade's words for a
+/// battery, and for a hydrogen–oxygen cell (current in splits water).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum OperatingMode {
+    Charge,
+    Discharge,
+    Rest,
+    Electrolysis,
+    FuelCell,
+    OpenCircuit,
+}
+
+impl OperatingMode {
+    /// `None` when the reading carries no current.
+    pub fn of(
+        charging: bool,
+        discharging: bool,
+        has_current: bool,
+        water_cell: bool,
+    ) -> Option<OperatingMode> {
+        if !has_current {
+            return None;
+        }
+        Some(match (charging, discharging, water_cell) {
+            (true, _, false) => OperatingMode::Charge,
+            (_, true, false) => OperatingMode::Discharge,
+            (false, false, false) => OperatingMode::Rest,
+            (true, _, true) => OperatingMode::Electrolysis,
+            (_, true, true) => OperatingMode::FuelCell,
+            (false, false, true) => OperatingMode::OpenCircuit,
+        })
+    }
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            OperatingMode::Charge => "charge",
+            OperatingMode::Discharge => "discharge",
+            OperatingMode::Rest => "rest",
+            OperatingMode::Electrolysis => "electrolysis",
+            OperatingMode::FuelCell => "fuel_cell",
+            OperatingMode::OpenCircuit => "open_circuit",
+        }
+    }
+}
+
 /// Which voltage the thermodynamics of a reading used.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
@@ -197,6 +243,9 @@ impl OcvSource {
 pub enum SocMethod {
     /// No SOC model.
     None,
+    /// Counting, but no trustworthy anchor yet (no settled rest, no known
+    /// resistance, no operator entry): SOC is unknown, not guessed.
+    Unanchored,
     /// The model SOC of this reading (no capacity or no current known).
     Model,
     /// Model SOC at a settled rest (or the first reading), anchoring the count.
@@ -209,6 +258,7 @@ impl SocMethod {
     pub fn as_str(self) -> &'static str {
         match self {
             SocMethod::None => "none",
+            SocMethod::Unanchored => "unanchored",
             SocMethod::Model => "model",
             SocMethod::Anchored => "anchored",
             SocMethod::Counted => "counted",
@@ -226,6 +276,9 @@ pub struct Estimate {
     pub ocv_source: OcvSource,
     pub resistance_ohm: Option<f64>,
     pub soc_counted: Option<f64>,
+    /// The count before clamping to [0, 1]: past 1 the capacity, the
+    /// efficiency or the anchor is off, and the operator should see it.
+    pub soc_counted_unclamped: Option<f64>,
     pub soc_fused: Option<f64>,
     pub soc_method: SocMethod,
     pub resting: bool,
@@ -384,31 +437,15 @@ pub fn step(
         .is_some_and(|since| (input.time_ns - since) as f64 / NS_PER_S >= config.settle_hold_s);
 
     // Fused SOC.
-    let model_soc = evaluation.soc;
-    let counting = config.capacity_ah > 0.0 && input.amps.is_some();
-    let (soc_counted, soc_fused, soc_method) = match model_soc {
-        None => (None, None, SocMethod::None),
-        Some(model) if !counting => (None, Some(model), SocMethod::Model),
-        Some(model) => {
-            if rest_settled || state.anchor.is_none() {
-                state.anchor = Some(SocAnchor {
-                    soc: model,
-                    stored_charge_ah: state.stored_charge_ah,
-                    time_ns: input.time_ns,
-                });
-            }
-            let anchor = state.anchor.expect("anchor set above");
-            let counted = anchor.soc
-                + (state.stored_charge_ah - anchor.stored_charge_ah) / config.capacity_ah;
-            let counted = counted.clamp(0.0, 1.0);
-            let method = if anchor.time_ns == input.time_ns {
-                SocMethod::Anchored
-            } else {
-                SocMethod::Counted
-            };
-            (Some(counted), Some(counted), method)
-        }
-    };
+    let fused = fuse_soc(
+        config,
+        state,
+        evaluation.soc,
+        input,
+        rest_settled,
+        compensated,
+    );
+    let (soc_counted, soc_fused, soc_method) = (fused.counted, fused.fused, fused.method);
     // Under current the terminal voltage also carries polarisation, which
     // V − I·R cannot remove; between rests the counted SOC is the better
     // witness of the equilibrium potential (common practice), so the
@@ -473,6 +510,7 @@ pub fn step(
         ocv_source,
         resistance_ohm,
         soc_counted,
+        soc_counted_unclamped: fused.counted_unclamped,
         soc_fused,
         soc_method,
         resting,
@@ -485,6 +523,88 @@ pub fn step(
         cycle_closed,
         evaluation,
     })
+}
+
+/// The SOC of one reading, with how it was found.
+struct FusedSoc {
+    counted: Option<f64>,
+    counted_unclamped: Option<f64>,
+    fused: Option<f64>,
+    method: SocMethod,
+}
+
+/// Counted SOC between anchors. The model SOC of a reading anchors the
+/// count only where it reads an open-circuit voltage: at a settled rest,
+/// or from V − I·R with a resistance the operator configured (an online
+/// estimate is not trusted for this). Under load without either, the
+/// terminal voltage carries polarisation that would be read as charge
+/// (17–34 SOC points in the demo), so SOC stays unknown until a rest or
+/// an operator's entry ([`anchor_at`]).
+fn fuse_soc(
+    config: &EstimatorConfig,
+    state: &mut EstimatorState,
+    model_soc: Option<f64>,
+    input: EstimatorInput,
+    rest_settled: bool,
+    compensated: bool,
+) -> FusedSoc {
+    let counting = config.capacity_ah > 0.0 && input.amps.is_some();
+    let Some(model) = model_soc else {
+        return FusedSoc {
+            counted: None,
+            counted_unclamped: None,
+            fused: None,
+            method: SocMethod::None,
+        };
+    };
+    if !counting {
+        return FusedSoc {
+            counted: None,
+            counted_unclamped: None,
+            fused: Some(model),
+            method: SocMethod::Model,
+        };
+    }
+    let open_circuit_known =
+        rest_settled || (state.anchor.is_none() && compensated && config.resistance_ohm.is_some());
+    if open_circuit_known {
+        state.anchor = Some(SocAnchor {
+            soc: model,
+            stored_charge_ah: state.stored_charge_ah,
+            time_ns: input.time_ns,
+        });
+    }
+    let Some(anchor) = state.anchor else {
+        return FusedSoc {
+            counted: None,
+            counted_unclamped: None,
+            fused: None,
+            method: SocMethod::Unanchored,
+        };
+    };
+    let unclamped =
+        anchor.soc + (state.stored_charge_ah - anchor.stored_charge_ah) / config.capacity_ah;
+    let counted = unclamped.clamp(0.0, 1.0);
+    FusedSoc {
+        counted: Some(counted),
+        counted_unclamped: Some(unclamped),
+        fused: Some(counted),
+        method: if anchor.time_ns == input.time_ns {
+            SocMethod::Anchored
+        } else {
+            SocMethod::Counted
+        },
+    }
+}
+
+/// Anchors the count at an SOC the operator entered (from a titration, a
+/// full charge to the manufacturer's end condition, a reference cell).
+pub fn anchor_at(state: &mut EstimatorState, soc: f64, time_ns: i64) {
+    state.anchor = Some(SocAnchor {
+        soc,
+        stored_charge_ah: state.stored_charge_ah,
+        time_ns,
+    });
 }
 
 /// Least-squares slope of the rest window, mV/min, once it spans at least

@@ -229,7 +229,9 @@ fn first_reading_step_zero_capacity_and_missing_current() {
     .unwrap();
     assert_eq!(first.resistance_ohm, None);
     assert_eq!(first.ocv_source, OcvSource::Terminal);
-    assert_eq!(first.soc_method, SocMethod::Anchored);
+    // Under 5 A with no known resistance the voltage is no OCV: unknown.
+    assert_eq!(first.soc_method, SocMethod::Unanchored);
+    assert_eq!(first.soc_fused, None);
     // Zero capacity: counting still runs, but no counted SOC.
     let cfg0 = EstimatorConfig::for_channel(1, 0.0, 298.15);
     let (_, out) = feed(&c, &cfg0, &constant(Some(1.0), 1.05, 60, 1));
@@ -346,4 +348,91 @@ fn rest_window_stays_bounded() {
         .unwrap();
     }
     assert!(state.rest_window.len() <= REST_WINDOW_MAX_POINTS + 1);
+}
+
+/// A known truth: vanadium at SOC 0.30 (OCV from its own Nernst model),
+/// charged at 1 A with 50 mV of overpotential, then rested at the OCV.
+#[test]
+fn soc_is_unknown_under_load_until_a_settled_rest_anchors_it() {
+    let c = chem("vanadium-redox");
+    let cfg = EstimatorConfig::for_channel(1, 2.0, 298.15);
+    let ctx = electrochem::NernstContext {
+        n_electrons: c.n_electrons,
+        e_standard_volts: c.standard_potential().e_standard_298_volts,
+        temp_k: 298.15,
+    };
+    let ocv = c.soc_model.ocv_volts(0.30, ctx).unwrap();
+    let mut inputs = constant(Some(1.0), ocv + 0.05, 30, 1);
+    // 1 A for 30 s into 2 Ah: +0.4167 SOC points during the load.
+    let ocv_after = c
+        .soc_model
+        .ocv_volts(0.30 + 30.0 / 3600.0 / 2.0, ctx)
+        .unwrap();
+    inputs.extend(
+        constant(Some(0.0), ocv_after, 120, 1)
+            .into_iter()
+            .map(|mut i| {
+                i.time_ns += 31 * S;
+                i
+            }),
+    );
+    let (_, out) = feed(&c, &cfg, &inputs);
+    for e in &out[..31] {
+        assert_eq!((e.soc_fused, e.soc_method), (None, SocMethod::Unanchored));
+    }
+    let first_settled = out
+        .iter()
+        .position(|e| e.rest_settled)
+        .expect("the rest settles");
+    let anchored = &out[first_settled];
+    let truth = 0.30 + 30.0 / 3600.0 / 2.0;
+    assert!(
+        (anchored.soc_fused.unwrap() - truth).abs() < 0.01,
+        "{anchored:?}"
+    );
+}
+
+#[test]
+fn a_known_resistance_or_an_operator_anchors_under_load_and_the_count_shows_its_overrun() {
+    let c = chem("vanadium-redox");
+    let mut cfg = EstimatorConfig::for_channel(1, 1.0, 298.15);
+    cfg.resistance_ohm = Some(0.05);
+    // With R configured, V − I·R anchors at once.
+    let (_, out) = feed(&c, &cfg, &constant(Some(1.0), 1.45, 10, 1));
+    assert_eq!(out[0].soc_method, SocMethod::Anchored);
+    // An operator's 0.99, then an hour at 1 A into 1 Ah: the count runs past 1.
+    cfg.resistance_ohm = None;
+    let mut state = EstimatorState::default();
+    anchor_at(&mut state, 0.99, 0);
+    let mut last = None;
+    for input in constant(Some(1.0), 1.5, 3600, 10) {
+        last = Some(step(&c, &cfg, &mut state, input).unwrap());
+    }
+    let last = last.unwrap();
+    assert_eq!(last.soc_fused, Some(1.0));
+    // 0.99 + 1 Ah / 1 Ah = 1.99 (coulombic efficiency 1).
+    assert!(
+        (last.soc_counted_unclamped.unwrap() - 1.99).abs() < 1e-6,
+        "{last:?}"
+    );
+}
+
+#[test]
+fn operating_mode_follows_current_and_chemistry() {
+    use OperatingMode as M;
+    let cases = [
+        ((true, false, true, false), Some(M::Charge)),
+        ((false, true, true, false), Some(M::Discharge)),
+        ((false, false, true, false), Some(M::Rest)),
+        ((true, false, true, true), Some(M::Electrolysis)),
+        ((false, true, true, true), Some(M::FuelCell)),
+        ((false, false, true, true), Some(M::OpenCircuit)),
+        ((false, false, false, true), None),
+    ];
+    for ((charging, discharging, has_current, water), want) in cases {
+        assert_eq!(
+            OperatingMode::of(charging, discharging, has_current, water),
+            want
+        );
+    }
 }

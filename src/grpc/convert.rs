@@ -66,6 +66,26 @@ pub fn state_to_pb(s: electrochem::ReactionState) -> i32 {
     }
 }
 
+/// The operating mode stored with a reading, named for its chemistry.
+fn mode_to_pb(row: &ReadingRow, run: &RunRow) -> i32 {
+    use crate::estimator::OperatingMode as M;
+    let mode = M::of(
+        row.flags & flags::CHARGING != 0,
+        row.flags & flags::DISCHARGING != 0,
+        row.amps.is_some(),
+        run.chemistry_id == crate::electrochem::builtin::WATER_CELL_ID,
+    );
+    (match mode {
+        None => pb::OperatingMode::Unspecified,
+        Some(M::Charge) => pb::OperatingMode::Charge,
+        Some(M::Discharge) => pb::OperatingMode::Discharge,
+        Some(M::Rest) => pb::OperatingMode::Rest,
+        Some(M::Electrolysis) => pb::OperatingMode::Electrolysis,
+        Some(M::FuelCell) => pb::OperatingMode::FuelCell,
+        Some(M::OpenCircuit) => pb::OperatingMode::OpenCircuit,
+    }) as i32
+}
+
 /// Recomputes the cheap derived values from a stored row and its run.
 pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading {
     let derived = run.map(|run| {
@@ -97,6 +117,9 @@ pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading
             soc_fused: row.soc_fused,
             charge_ah: row.charge_ah,
             energy_wh: row.energy_wh,
+            operating_mode: mode_to_pb(row, run),
+            soc_counted_unclamped: row.soc_counted_unclamped,
+            soc_count_clamped: row.flags & flags::COUNT_CLAMPED != 0,
             resting: row.flags & flags::RESTING != 0,
             rest_settled: row.flags & flags::REST_SETTLED != 0,
             out_of_order: row.flags & flags::OUT_OF_ORDER != 0,

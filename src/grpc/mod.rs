@@ -298,6 +298,36 @@ impl pb::channel_service_server::ChannelService for Api {
             time_unix_ns: time_ns,
         }))
     }
+
+    async fn set_channel_soc(
+        &self,
+        request: Request<pb::SetChannelSocRequest>,
+    ) -> Result<Response<pb::SetChannelSocResponse>, Status> {
+        let _principal = self.authorize(&request, Permission::Operate, "SetChannelSoc")?;
+        let q = request.into_inner();
+        if q.set_by.trim().is_empty() || q.set_by.len() > 200 {
+            return Err(invalid(
+                "set_by",
+                format!("{:?}", q.set_by.chars().take(40).collect::<String>()),
+                "a name of 1–200 characters is required",
+            ));
+        }
+        if q.note.len() > crate::channel::MAX_TEXT_BYTES {
+            return Err(invalid(
+                "note",
+                format!("({} bytes)", q.note.len()),
+                "at most 4096 bytes",
+            ));
+        }
+        let time_ns = self
+            .hub
+            .set_soc(&q.channel_id, q.soc, &q.set_by, &q.note)
+            .await?;
+        Ok(Response::new(pb::SetChannelSocResponse {
+            soc: q.soc,
+            time_unix_ns: time_ns,
+        }))
+    }
 }
 
 /// Channels per ListChannels page at most: 1,000 × a 4 KiB description
@@ -709,7 +739,7 @@ impl pb::history_service_server::HistoryService for Api {
             .as_ref()
             .and_then(|r| r.soc_fused)
             .filter(|_| g.def.capacity_ah > 0.0);
-        let is_h2 = g.chemistry.id == "hydrogen-oxygen";
+        let is_h2 = g.chemistry.id == crate::electrochem::builtin::WATER_CELL_ID;
         let h2 = is_h2.then(|| estimator::hydrogen_account(&g.est, &g.est_config));
         let voltage_efficiency = match (is_h2, latest.as_ref(), g.chemistry.thermoneutral_volts()) {
             (true, Some(r), Some(tn)) if r.amps.is_some_and(|i| i > 0.0) => {

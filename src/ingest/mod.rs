@@ -425,6 +425,55 @@ impl Hub {
         Ok((seq, time_ns))
     }
 
+    /// Anchors the channel's count at an SOC an operator entered, from its
+    /// last reading on; stored as an operator event with the snapshot.
+    pub async fn set_soc(
+        &self,
+        channel_id: &str,
+        soc: f64,
+        by: &str,
+        note: &str,
+    ) -> Result<i64, IngestError> {
+        if !(0.0..=1.0).contains(&soc) {
+            return Err(invalid("soc", soc, "must be from 0 to 1"));
+        }
+        let runtime = self.channel(channel_id)?;
+        let gate = runtime
+            .lock()
+            .expect("channel state poisoned")
+            .commit_gate
+            .clone();
+        let _turn = gate.lock().await;
+        self.reload_if_needed(&runtime).await?;
+        let (change, time_ns) = {
+            let mut rt = runtime.lock().expect("channel state poisoned");
+            let time_ns = if rt.last_time_ns > 0 {
+                rt.last_time_ns
+            } else {
+                now_ns()
+            };
+            estimator::anchor_at(&mut rt.est, soc, time_ns);
+            let change = writer::OperatorChange {
+                channel_key: rt.key,
+                run_id: rt.run_id,
+                time_ns: now_ns(),
+                kind: "set_soc",
+                by: by.to_string(),
+                detail_json:
+                    serde_json::json!({"soc": soc, "applies_from_ns": time_ns, "note": note})
+                        .to_string(),
+                estimator: snapshot_of(&rt),
+            };
+            (change, time_ns)
+        };
+        if let Err(e) = self.submit(|reply| Job::Operator { change, reply }).await {
+            self.reload_after_failure(&runtime).await;
+            return Err(e);
+        }
+        tracing::info!(channel_id, soc, by, "soc entered by an operator");
+        Ok(time_ns)
+    }
+
     fn count(&self, outcome: &WriteOutcome, rejected: &[Rejection]) {
         use std::sync::atomic::Ordering::Relaxed;
         let m = &self.metrics;
@@ -558,6 +607,16 @@ fn check_reading(rt: &ChannelRuntime, r: &RawReading) -> Result<(), (&'static st
         return Err(("seq", format!("seq = {}: must be below 2^63", r.seq)));
     }
     Ok(())
+}
+
+/// The operating mode from the (charge-positive) current, with the
+/// channel's rest threshold as the deadband.
+fn mode_flags(amps: Option<f64>, deadband_amps: f64) -> i64 {
+    match amps {
+        Some(i) if i >= deadband_amps => flags::CHARGING,
+        Some(i) if i <= -deadband_amps => flags::DISCHARGING,
+        _ => 0,
+    }
 }
 
 /// The checks against the channel's front and the server's clock: a
@@ -739,11 +798,13 @@ pub fn derive_batch(
                 charge_ah: rt.est.charge_ah,
                 energy_wh: rt.est.energy_wh,
                 flags: flags::OUT_OF_ORDER
+                    | mode_flags(amps, rt.est_config.rest_current_amps)
                     | if ev.soc_clamped {
                         flags::SOC_CLAMPED
                     } else {
                         0
                     },
+                soc_counted_unclamped: None,
             });
             continue;
         }
@@ -794,7 +855,13 @@ pub fn derive_batch(
         if let Some(c) = est.cycle_closed.clone() {
             cycles.push(c);
         }
-        let mut f = 0;
+        let mut f = mode_flags(amps, rt.est_config.rest_current_amps);
+        if est
+            .soc_counted_unclamped
+            .is_some_and(|c| !(0.0..=1.0).contains(&c))
+        {
+            f |= flags::COUNT_CLAMPED;
+        }
         if est.evaluation.soc_clamped {
             f |= flags::SOC_CLAMPED;
         }
@@ -826,6 +893,7 @@ pub fn derive_batch(
             charge_ah: est.charge_ah,
             energy_wh: est.energy_wh,
             flags: f,
+            soc_counted_unclamped: est.soc_counted_unclamped,
         });
     }
     changes.extend(timeline_change(rt, &timeline, advanced, wall_now_ns));

@@ -34,7 +34,23 @@ pub struct ReadingsJob {
     pub reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
 }
 
+/// An operator's change to a channel's state and its record, committed
+/// together.
+pub struct OperatorChange {
+    pub channel_key: i64,
+    pub run_id: i64,
+    pub time_ns: i64,
+    pub kind: &'static str,
+    pub by: String,
+    pub detail_json: String,
+    pub estimator: EstimatorSnapshot,
+}
+
 pub enum Job {
+    Operator {
+        change: OperatorChange,
+        reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
+    },
     Readings(ReadingsJob),
     /// Silent-rig alerts from the timer.
     Alerts {
@@ -156,7 +172,9 @@ fn job_rows(job: &Job) -> usize {
 fn reply_of(job: Job) -> oneshot::Sender<Result<WriteOutcome, StoreError>> {
     match job {
         Job::Readings(r) => r.reply,
-        Job::Alerts { reply, .. } | Job::Acknowledge { reply, .. } => reply,
+        Job::Alerts { reply, .. }
+        | Job::Acknowledge { reply, .. }
+        | Job::Operator { reply, .. } => reply,
     }
 }
 
@@ -261,6 +279,29 @@ async fn write_jobs(
                     ids.next_event_id += 1;
                     out.events.push(ev);
                 }
+            }
+            Job::Operator { change: c, .. } => {
+                store::insert_operator_event(
+                    tx,
+                    c.channel_key,
+                    c.run_id,
+                    c.time_ns,
+                    c.kind,
+                    &c.by,
+                    &c.detail_json,
+                )
+                .await?;
+                let s = &c.estimator;
+                store::save_estimator(
+                    tx,
+                    c.channel_key,
+                    c.run_id,
+                    s.last_seq,
+                    s.last_time_ns,
+                    s.usual_interval_s,
+                    &s.state_json,
+                )
+                .await?;
             }
             Job::Acknowledge {
                 alert_id,

@@ -279,6 +279,8 @@ pub struct ReadingRow {
     pub charge_ah: f64,
     pub energy_wh: f64,
     pub flags: i64,
+    /// The coulomb count before clamping; `None` while SOC is unknown.
+    pub soc_counted_unclamped: Option<f64>,
 }
 
 pub mod flags {
@@ -289,6 +291,11 @@ pub mod flags {
     pub const OCV_OHMIC: i64 = 16;
     pub const OCV_COUNTED: i64 = 32;
     pub const GAP_BEFORE: i64 = 64;
+    /// The coulomb count left [0, 1] and was clamped.
+    pub const COUNT_CLAMPED: i64 = 128;
+    /// Operating mode from the current (neither bit: rest, or no current).
+    pub const CHARGING: i64 = 256;
+    pub const DISCHARGING: i64 = 512;
 }
 
 /// The definition a run was computed with.
@@ -403,6 +410,7 @@ fn reading_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<ReadingRow, StoreEr
         charge_ah: row.try_get("charge_ah")?,
         energy_wh: row.try_get("energy_wh")?,
         flags: row.try_get("flags")?,
+        soc_counted_unclamped: row.try_get("soc_counted_unclamped")?,
     })
 }
 
@@ -669,7 +677,7 @@ pub async fn insert_fresh(tx: &mut Tx<'_>, rows: &[ReadingRow]) -> Result<u64, S
     for chunk in rows.chunks(INSERT_CHUNK_ROWS) {
         let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
             "INSERT OR IGNORE INTO readings (channel_key, seq, run_id, time_ns, volts, amps, temp_c, cell_volts_used, \
-             soc_model, soc_fused, charge_ah, energy_wh, flags) ",
+             soc_model, soc_fused, charge_ah, energy_wh, flags, soc_counted_unclamped) ",
         );
         qb.push_values(chunk, |mut b, r| {
             b.push_bind(r.channel_key)
@@ -684,7 +692,8 @@ pub async fn insert_fresh(tx: &mut Tx<'_>, rows: &[ReadingRow]) -> Result<u64, S
                 .push_bind(r.soc_fused)
                 .push_bind(r.charge_ah)
                 .push_bind(r.energy_wh)
-                .push_bind(r.flags);
+                .push_bind(r.flags)
+                .push_bind(r.soc_counted_unclamped);
         });
         inserted += qb.build().execute(&mut **tx).await?.rows_affected();
     }
@@ -695,7 +704,7 @@ pub async fn insert_fresh(tx: &mut Tx<'_>, rows: &[ReadingRow]) -> Result<u64, S
 pub async fn insert_if_new(tx: &mut Tx<'_>, r: &ReadingRow) -> Result<bool, StoreError> {
     let done = sqlx::query(
         "INSERT OR IGNORE INTO readings (channel_key, seq, run_id, time_ns, volts, amps, temp_c, cell_volts_used, \
-         soc_model, soc_fused, charge_ah, energy_wh, flags) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+         soc_model, soc_fused, charge_ah, energy_wh, flags, soc_counted_unclamped) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
     )
     .bind(r.channel_key)
     .bind(r.seq as i64)
@@ -710,6 +719,7 @@ pub async fn insert_if_new(tx: &mut Tx<'_>, r: &ReadingRow) -> Result<bool, Stor
     .bind(r.charge_ah)
     .bind(r.energy_wh)
     .bind(r.flags)
+    .bind(r.soc_counted_unclamped)
     .execute(&mut **tx)
     .await?;
     Ok(done.rows_affected() == 1)
@@ -927,6 +937,32 @@ pub async fn query_readings_page(
     .fetch_all(pool)
     .await?;
     rows.iter().map(reading_from_row).collect()
+}
+
+/// Records what an operator did to a channel (in the transaction that
+/// applies it).
+pub async fn insert_operator_event(
+    tx: &mut Tx<'_>,
+    channel_key: i64,
+    run_id: i64,
+    time_ns: i64,
+    kind: &str,
+    by: &str,
+    detail_json: &str,
+) -> Result<(), StoreError> {
+    sqlx::query(
+        "INSERT INTO operator_events (channel_key, run_id, time_ns, kind, by_name, detail_json) \
+         VALUES (?, ?, ?, ?, ?, ?)",
+    )
+    .bind(channel_key)
+    .bind(run_id)
+    .bind(time_ns)
+    .bind(kind)
+    .bind(by)
+    .bind(detail_json)
+    .execute(&mut **tx)
+    .await?;
+    Ok(())
 }
 
 /// The reading a reset timeline resumes after: `after_seq` if stored,
