@@ -330,6 +330,19 @@ async fn all_channels(channel: &client::Conn) -> anyhow::Result<Vec<pb::Channel>
     }
 }
 
+/// The operating mode's name, as JSON and tables show it.
+pub fn mode_name(code: i32) -> &'static str {
+    match pb::OperatingMode::try_from(code) {
+        Ok(pb::OperatingMode::Charge) => "charge",
+        Ok(pb::OperatingMode::Discharge) => "discharge",
+        Ok(pb::OperatingMode::Rest) => "rest",
+        Ok(pb::OperatingMode::Electrolysis) => "electrolysis",
+        Ok(pb::OperatingMode::FuelCell) => "fuel_cell",
+        Ok(pb::OperatingMode::OpenCircuit) => "open_circuit",
+        _ => "no current",
+    }
+}
+
 pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
     let channel = client::connect(&args.connect).await?;
     let ids = match &args.channel {
@@ -372,6 +385,8 @@ pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
                     "log10_q": d.map(|d| d.log10_q),
                     "log10_k": d.map(|d| d.log10_k),
                     "state": d.map(|d| state_name(d.state)),
+                    "operating_mode": d.map(|d| mode_name(d.operating_mode)),
+                    "soc_counted_unclamped": d.and_then(|d| d.soc_counted_unclamped),
                     "charge_ah": d.map(|d| d.charge_ah),
                     "energy_wh": d.map(|d| d.energy_wh),
                     "resistance_ohm": e.and_then(|e| e.resistance_ohm),
@@ -394,8 +409,9 @@ pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
         };
         let d = r.derived.unwrap_or_default();
         println!(
-            "{id} ({chem}) seq {}: {:.4} V, {} A, {} °C; SOC {}; ΔG {:.3} kJ/mol; log10 Q {:.3} vs log10 K {:.3}; {}",
+            "{id} ({chem}) seq {}: {}; {:.4} V, {} A, {} °C; SOC {}; ΔG {:.3} kJ/mol; log10 Q {:.3} vs log10 K {:.3}; reaction {}",
             r.seq,
+            mode_name(d.operating_mode),
             r.volts,
             r.amps
                 .map(|a| format!("{a:.3}"))
@@ -405,7 +421,7 @@ pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
                 .unwrap_or_else(|| "-".into()),
             d.soc_fused
                 .map(|x| format!("{:.1} %", x * 100.0))
-                .unwrap_or_else(|| "-".into()),
+                .unwrap_or_else(|| "unknown".into()),
             d.delta_g_kj_per_mol,
             d.log10_q,
             d.log10_k,

@@ -612,3 +612,88 @@ async fn unread_queries_hold_bounded_memory_and_sigterm_still_exits_in_time() {
     assert!(took < Duration::from_secs(15), "exit took {took:?}");
     drop(open);
 }
+
+/// Operating mode from the current under both instrument conventions,
+/// SOC unknown under load until an operator's entry anchors it, the
+/// entry surviving a restart.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn modes_follow_the_current_and_an_operator_soc_anchors_the_count() {
+    let (_dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    let mut flipped = channel_def("mode-dis", "vanadium-redox");
+    flipped.current_sign = pb::CurrentSign::DischargePositive as i32;
+    put_channel(&ch, channel_def("mode-chg", "vanadium-redox")).await;
+    put_channel(&ch, flipped).await;
+    put_channel(&ch, channel_def("mode-h2", "hydrogen-oxygen")).await;
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    let t0 = now_ns() - 600_000_000_000;
+    let send =
+        |channel: &str, seqs: std::ops::Range<u64>, volts: f64, amps: f64| pb::ReadingBatch {
+            channel_id: channel.into(),
+            batch_id: seqs.start,
+            readings: seqs
+                .map(|s| reading(s, t0 + s as i64 * 1_000_000_000, volts, Some(amps)))
+                .collect(),
+        };
+    // The instrument says +1 A on both; the flipped channel is discharging.
+    try_batch(&mut ingest, send("mode-chg", 1..11, 1.45, 1.0))
+        .await
+        .unwrap();
+    try_batch(&mut ingest, send("mode-dis", 1..11, 1.30, 1.0))
+        .await
+        .unwrap();
+    try_batch(&mut ingest, send("mode-h2", 1..11, 1.80, 1.0))
+        .await
+        .unwrap();
+    let mut history = HistoryServiceClient::new(ch.clone());
+    let mode_of = |r: &pb::StoredReading| r.derived.as_ref().unwrap().operating_mode;
+    for (channel, want) in [
+        ("mode-chg", pb::OperatingMode::Charge),
+        ("mode-dis", pb::OperatingMode::Discharge),
+        ("mode-h2", pb::OperatingMode::Electrolysis),
+    ] {
+        let rows = stored_readings(&mut history, channel).await;
+        assert!(rows.iter().all(|r| mode_of(r) == want as i32), "{channel}");
+    }
+    // Under load with no known resistance: SOC unknown, not guessed.
+    let rows = stored_readings(&mut history, "mode-chg").await;
+    assert!(
+        rows.iter()
+            .all(|r| r.derived.as_ref().unwrap().soc_fused.is_none())
+    );
+
+    ChannelServiceClient::new(ch.clone())
+        .set_channel_soc(pb::SetChannelSocRequest {
+            channel_id: "mode-chg".into(),
+            soc: 0.40,
+            set_by: "R. Okafor".into(),
+            note: "titrated".into(),
+        })
+        .await
+        .unwrap();
+    server.stop().await;
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    // 100 s more at 1 A into 2 Ah: +0.0139 SOC (trapezoid, charge positive).
+    try_batch(&mut ingest, send("mode-chg", 11..111, 1.45, 1.0))
+        .await
+        .unwrap();
+    let rows = stored_readings(&mut HistoryServiceClient::new(ch.clone()), "mode-chg").await;
+    let last = rows.last().unwrap().derived.clone().unwrap();
+    let want = 0.40 + 100.0 / 3600.0 / 2.0;
+    assert!((last.soc_fused.unwrap() - want).abs() < 1e-6, "{last:?}");
+    assert!((last.soc_counted_unclamped.unwrap() - want).abs() < 1e-6);
+    let refused = ChannelServiceClient::new(ch.clone())
+        .set_channel_soc(pb::SetChannelSocRequest {
+            channel_id: "mode-chg".into(),
+            soc: 1.5,
+            set_by: "R. Okafor".into(),
+            note: String::new(),
+        })
+        .await
+        .unwrap_err();
+    assert!(refused.message().contains("soc = 1.5"), "{refused:?}");
+    server.stop().await;
+}
