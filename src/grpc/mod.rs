@@ -52,6 +52,25 @@ impl Api {
     }
 }
 
+/// An operator action's name (1–200 characters) and note (≤ 4 KiB).
+fn check_person(field: &str, name: &str, note: &str) -> Result<(), Status> {
+    if name.trim().is_empty() || name.len() > 200 {
+        return Err(invalid(
+            field,
+            format!("{:?}", name.chars().take(40).collect::<String>()),
+            "a name of 1–200 characters is required",
+        ));
+    }
+    if note.len() > crate::channel::MAX_TEXT_BYTES {
+        return Err(invalid(
+            "note",
+            format!("({} bytes)", note.len()),
+            "at most 4096 bytes",
+        ));
+    }
+    Ok(())
+}
+
 /// QueryReadings calls producing pages at once; more wait their turn.
 pub const MAX_CONCURRENT_QUERIES: usize = 32;
 
@@ -305,20 +324,7 @@ impl pb::channel_service_server::ChannelService for Api {
     ) -> Result<Response<pb::SetChannelSocResponse>, Status> {
         let _principal = self.authorize(&request, Permission::Operate, "SetChannelSoc")?;
         let q = request.into_inner();
-        if q.set_by.trim().is_empty() || q.set_by.len() > 200 {
-            return Err(invalid(
-                "set_by",
-                format!("{:?}", q.set_by.chars().take(40).collect::<String>()),
-                "a name of 1–200 characters is required",
-            ));
-        }
-        if q.note.len() > crate::channel::MAX_TEXT_BYTES {
-            return Err(invalid(
-                "note",
-                format!("({} bytes)", q.note.len()),
-                "at most 4096 bytes",
-            ));
-        }
+        check_person("set_by", &q.set_by, &q.note)?;
         let time_ns = self
             .hub
             .set_soc(&q.channel_id, q.soc, &q.set_by, &q.note)
@@ -1087,23 +1093,7 @@ impl pb::alert_service_server::AlertService for Api {
     ) -> Result<Response<pb::AcknowledgeAlertResponse>, Status> {
         let _principal = self.authorize(&request, Permission::Operate, "AcknowledgeAlert")?;
         let q = request.into_inner();
-        if q.acknowledged_by.trim().is_empty() || q.acknowledged_by.len() > 200 {
-            return Err(invalid(
-                "acknowledged_by",
-                format!(
-                    "{:?}",
-                    q.acknowledged_by.chars().take(40).collect::<String>()
-                ),
-                "a name of 1–200 characters is required",
-            ));
-        }
-        if q.note.len() > crate::channel::MAX_TEXT_BYTES {
-            return Err(invalid(
-                "note",
-                format!("({} bytes)", q.note.len()),
-                "at most 4096 bytes",
-            ));
-        }
+        check_person("acknowledged_by", &q.acknowledged_by, &q.note)?;
         let alert_id = q.alert_id;
         let outcome = self
             .hub

@@ -317,14 +317,7 @@ impl Hub {
         readings: Vec<RawReading>,
     ) -> Result<Ack, IngestError> {
         check_batch_size(&readings)?;
-        let runtime = self.channel(channel_id)?;
-        let gate = runtime
-            .lock()
-            .expect("channel state poisoned")
-            .commit_gate
-            .clone();
-        let _turn = gate.lock().await;
-        self.reload_if_needed(&runtime).await?;
+        let (runtime, _turn) = self.take_turn(channel_id).await?;
         let wall_now = now_ns();
         let (derived, rejected) = {
             let mut rt = runtime.lock().expect("channel state poisoned");
@@ -368,14 +361,7 @@ impl Hub {
         channel_id: &str,
         after_seq: Option<u64>,
     ) -> Result<(u64, i64), IngestError> {
-        let runtime = self.channel(channel_id)?;
-        let gate = runtime
-            .lock()
-            .expect("channel state poisoned")
-            .commit_gate
-            .clone();
-        let _turn = gate.lock().await;
-        self.reload_if_needed(&runtime).await?;
+        let (runtime, _turn) = self.take_turn(channel_id).await?;
         let key = runtime.lock().expect("channel state poisoned").key;
         let Some((seq, time_ns)) =
             store::timeline_anchor(&self.store.writer, key, after_seq).await?
@@ -437,14 +423,7 @@ impl Hub {
         if !(0.0..=1.0).contains(&soc) {
             return Err(invalid("soc", soc, "must be from 0 to 1"));
         }
-        let runtime = self.channel(channel_id)?;
-        let gate = runtime
-            .lock()
-            .expect("channel state poisoned")
-            .commit_gate
-            .clone();
-        let _turn = gate.lock().await;
-        self.reload_if_needed(&runtime).await?;
+        let (runtime, _turn) = self.take_turn(channel_id).await?;
         let (change, time_ns) = {
             let mut rt = runtime.lock().expect("channel state poisoned");
             let time_ns = if rt.last_time_ns > 0 {
@@ -485,6 +464,23 @@ impl Hub {
         for r in rejected {
             m.reject(r.field);
         }
+    }
+
+    /// The channel and its commit gate, held until the caller's commit is
+    /// answered; a channel left stale by an earlier refusal is reloaded first.
+    async fn take_turn(
+        &self,
+        channel_id: &str,
+    ) -> Result<(Arc<Mutex<ChannelRuntime>>, tokio::sync::OwnedMutexGuard<()>), IngestError> {
+        let runtime = self.channel(channel_id)?;
+        let gate = runtime
+            .lock()
+            .expect("channel state poisoned")
+            .commit_gate
+            .clone();
+        let turn = gate.lock_owned().await;
+        self.reload_if_needed(&runtime).await?;
+        Ok((runtime, turn))
     }
 
     /// After a refused commit the runtime is ahead of the store (front,
