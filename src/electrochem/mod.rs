@@ -9,6 +9,7 @@ pub mod builtin;
 pub mod chemistry;
 pub mod constants;
 pub mod error;
+pub mod hydrogen;
 pub mod report;
 pub mod soc;
 pub mod thermo;
