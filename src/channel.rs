@@ -1,7 +1,9 @@
 //! Channel definitions: one cell or stack on one instrument channel, as the
 //! service stores it. Pure: validation against a chemistry registry only.
 
+use crate::electrochem::builtin::WATER_CELL_ID;
 use crate::electrochem::chemistry::validate_id;
+use crate::electrochem::hydrogen::GasConditions;
 use crate::electrochem::{Chemistry, Registry};
 use crate::estimator::{CurrentSign, EstimatorConfig};
 use serde::{Deserialize, Serialize};
@@ -33,6 +35,13 @@ pub struct ChannelDef {
     pub faradaic_efficiency: f64,
     #[serde(default)]
     pub description: String,
+    /// Hydrogen–oxygen cells: the gases that fix the reversible voltage
+    /// (unset: dry gases at 1 atm).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub gas: Option<GasConditions>,
+    /// Active area of one cell, cm².
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub active_area_cm2: Option<f64>,
 }
 
 fn default_temp_c() -> f64 {
@@ -55,6 +64,16 @@ pub const MAX_READING_ABS_AMPS: f64 = 1e6;
 /// Per-cell plausibility windows beyond ±1000 V describe no cell; the bound
 /// keeps V·I·t finite in the energy count.
 pub const MAX_WINDOW_ABS_CELL_VOLTS: f64 = 1000.0;
+
+/// The fields whose change starts a new run: stored derived values depend
+/// on them.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RunKey {
+    chemistry_id: String,
+    cells_in_series: u32,
+    e_standard_override_bits: Option<u64>,
+    water: Option<[String; 3]>,
+}
 
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 #[error("{field} = {value}: {reason}")]
@@ -168,6 +187,15 @@ impl ChannelDef {
         {
             return Err(err("resistance_ohm", r, "must be finite and not negative"));
         }
+        if let Some(gas) = &self.gas {
+            gas.validate()
+                .map_err(|(field, v, reason)| err(&format!("gas.{field}"), shown(v), reason))?;
+        }
+        if let Some(a) = self.active_area_cm2
+            && !(a.is_finite() && a > 0.0 && a <= 1e7)
+        {
+            return Err(err("active_area_cm2", shown(a), "must be above 0 and at most 1e7 cm²"));
+        }
         match self.e_standard_override_v {
             Some(e) if !e.is_finite() => Err(err("e_standard_override_v", e, "must be finite")),
             Some(e) => Ok(Arc::new(chemistry.with_e_standard_override(e))),
@@ -176,12 +204,29 @@ impl ChannelDef {
     }
 
     /// Fields whose change invalidates stored derived values: a new run.
-    pub fn run_key(&self) -> (String, u32, Option<u64>) {
-        (
-            self.chemistry_id.clone(),
-            self.cells_in_series,
-            self.e_standard_override_v.map(f64::to_bits),
-        )
+    pub fn run_key(&self) -> RunKey {
+        RunKey {
+            chemistry_id: self.chemistry_id.clone(),
+            cells_in_series: self.cells_in_series,
+            e_standard_override_bits: self.e_standard_override_v.map(f64::to_bits),
+            // History recomputes an electrolyser's figures with these.
+            water: self.is_water_cell().then(|| {
+                [
+                    serde_json::to_string(&self.water_gas()).unwrap_or_default(),
+                    format!("{:?}", self.active_area_cm2),
+                    format!("{}", self.faradaic_efficiency),
+                ]
+            }),
+        }
+    }
+
+    pub fn is_water_cell(&self) -> bool {
+        self.chemistry_id == WATER_CELL_ID
+    }
+
+    /// The gases of a hydrogen–oxygen cell, defaults filled in.
+    pub fn water_gas(&self) -> GasConditions {
+        self.gas.unwrap_or_default()
     }
 
     pub fn estimator_config(&self) -> EstimatorConfig {
@@ -194,6 +239,7 @@ impl ChannelDef {
         cfg.coulombic_efficiency = self.coulombic_efficiency;
         cfg.faradaic_efficiency = self.faradaic_efficiency;
         cfg.equilibrium_tolerance_volts = self.equilibrium_tolerance_mv / 1e3;
+        cfg.water_gas = self.is_water_cell().then(|| self.water_gas());
         cfg
     }
 

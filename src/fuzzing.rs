@@ -218,6 +218,8 @@ fn fuzz_channels(registry: &Registry) -> Vec<ChannelRuntime> {
                     coulombic_efficiency: 1.0,
                     faradaic_efficiency: 1.0,
                     description: String::new(),
+                    gas: None,
+                    active_area_cm2: None,
                 };
                 let chemistry = def
                     .validate(registry)

@@ -22,10 +22,15 @@ pub enum AlertKind {
     /// Readings kept out of the rules: refused as implausible jumps in
     /// time or seq, or taken as late while their seq was new.
     Timeline,
+    /// The terminal voltage has come within a few mV of the cell's
+    /// equilibrium voltage while current flows or just after it stopped:
+    /// the driving force is spent (end of a constant-voltage taper, a
+    /// relaxation done, a load the cell can no longer push).
+    DrivingForceSpent,
 }
 
 impl AlertKind {
-    pub const ALL: [AlertKind; 9] = [
+    pub const ALL: [AlertKind; 10] = [
         AlertKind::EquilibriumApproach,
         AlertKind::EndOfCharge,
         AlertKind::EndOfDischarge,
@@ -35,6 +40,7 @@ impl AlertKind {
         AlertKind::TemperatureLimit,
         AlertKind::SilentRig,
         AlertKind::Timeline,
+        AlertKind::DrivingForceSpent,
     ];
     pub fn code(self) -> i64 {
         self as i64 + 1
@@ -113,6 +119,23 @@ pub struct AlertRules {
     pub max_temp_c: f64,
     pub silent_interval_multiple: f64,
     pub silent_min_s: f64,
+    /// |η| per cell, V, at or below raise_at while current flows or for
+    /// `driving_force_after_stop_s` after it stops.
+    #[serde(default = "default_driving_force")]
+    pub driving_force_cell_volts: Threshold,
+    #[serde(default = "default_after_stop_s")]
+    pub driving_force_after_stop_s: f64,
+}
+
+/// 10 mV per cell for 10 s, cleared past 20 mV: the taper of a
+/// constant-voltage charge ends well inside this (our own choice, set per
+/// channel).
+fn default_driving_force() -> Threshold {
+    Threshold::new(0.010, 0.020, 10.0)
+}
+
+fn default_after_stop_s() -> f64 {
+    60.0
 }
 
 impl AlertRules {
@@ -135,12 +158,46 @@ impl AlertRules {
             max_temp_c: 70.0,
             silent_interval_multiple: 10.0,
             silent_min_s: 30.0,
+            driving_force_cell_volts: default_driving_force(),
+            driving_force_after_stop_s: default_after_stop_s(),
         }
+    }
+
+    /// Defaults from a chemistry: end of charge and discharge at its
+    /// cutoffs under current (terminal voltage, as a constant-current /
+    /// constant-voltage charge defines them), the safe window 50 mV beyond
+    /// them, and its operating temperatures. A cell with no state of
+    /// charge (the water cell) has no end of charge or discharge.
+    pub fn for_chemistry(chemistry: &crate::electrochem::Chemistry) -> AlertRules {
+        let mut rules = AlertRules::defaults_for(
+            chemistry.discharge_cutoff_cell_volts,
+            chemistry.charge_cutoff_cell_volts,
+        );
+        rules.min_cell_volts = rules.min_cell_volts.min(chemistry.min_cell_volts);
+        rules.max_cell_volts = rules.max_cell_volts.max(chemistry.max_cell_volts);
+        rules.min_temp_c = chemistry.min_temp_c;
+        rules.max_temp_c = chemistry.max_temp_c;
+        if chemistry.soc_model.name() == "none" {
+            for t in [
+                &mut rules.end_of_charge_soc,
+                &mut rules.end_of_charge_cell_volts,
+                &mut rules.end_of_discharge_soc,
+                &mut rules.end_of_discharge_cell_volts,
+            ] {
+                t.enabled = false;
+            }
+        }
+        rules
     }
 
     /// Rejects rules that cannot work, naming the field and value.
     pub fn validate(&self) -> Result<(), String> {
-        let pairs: [(&str, Threshold, bool); 6] = [
+        let pairs: [(&str, Threshold, bool); 7] = [
+            (
+                "driving_force_cell_volts",
+                self.driving_force_cell_volts,
+                false,
+            ),
             (
                 "equilibrium_delta_g_kj_per_mol",
                 self.equilibrium_delta_g_kj_per_mol,
@@ -201,6 +258,7 @@ impl AlertRules {
             ("max_temp_c", self.max_temp_c),
             ("silent_interval_multiple", self.silent_interval_multiple),
             ("silent_min_s", self.silent_min_s),
+            ("driving_force_after_stop_s", self.driving_force_after_stop_s),
         ] {
             if !v.is_finite() {
                 return Err(format!("{name} = {v}: must be finite"));
@@ -233,6 +291,9 @@ pub struct RuleState {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
 pub struct ChannelRuleState {
     pub rules: std::collections::BTreeMap<AlertKind, RuleState>,
+    /// Last reading with current flowing, for "just after it stopped".
+    #[serde(default)]
+    pub last_flowing_ns: Option<i64>,
 }
 
 impl ChannelRuleState {
@@ -264,7 +325,10 @@ pub struct RuleInput {
     /// Charge-positive amps.
     pub amps: Option<f64>,
     pub temp_c: Option<f64>,
-    pub delta_g_kj_per_mol: f64,
+    /// Absent under current without an open-circuit estimate.
+    pub delta_g_kj_per_mol: Option<f64>,
+    /// η = V_terminal − E_eq per cell, V.
+    pub driving_force_volts: Option<f64>,
     pub soc: Option<f64>,
     pub charging: bool,
     pub discharging: bool,
@@ -329,230 +393,27 @@ pub fn evaluate(
     state: &mut ChannelRuleState,
     input: &RuleInput,
 ) -> Vec<AlertChange> {
-    // A copy the message closures can own (the struct is small and Copy).
-    let rules = *rules;
-    let mut checks: Vec<Check> = Vec::with_capacity(8);
-    let t = &rules.equilibrium_delta_g_kj_per_mol;
-    if t.enabled {
-        let value = input.delta_g_kj_per_mol.abs();
-        let (past_raise, past_clear) = compare(t, Side::AtOrBelow, value);
-        checks.push(Check {
-            kind: AlertKind::EquilibriumApproach,
-            past_raise,
-            past_clear,
-            hold_s: t.hold_s,
-            trigger_value: value,
-            threshold: t.raise_at,
-            unit: "kJ/mol",
-            message: Box::new(move || format!("|ΔG| {value:.3} kJ/mol: the cell reaction is near equilibrium (driving force nearly spent)")),
-            seconds_to_target: None,
-        });
+    if input.charging || input.discharging {
+        state.last_flowing_ns = Some(input.time_ns);
     }
-
-    // End of charge: SOC target (with lead time) or voltage cutoff, while charging.
-    let mut eoc_past = false;
-    let mut eoc_clear = true;
-    let mut eoc_value = input.cell_volts_terminal;
-    let mut eoc_threshold = rules.end_of_charge_cell_volts.raise_at;
-    let mut eoc_unit = "V";
-    let mut eoc_hold = rules.end_of_charge_cell_volts.hold_s;
-    let mut eta = None;
-    if rules.end_of_charge_soc.enabled
-        && let Some(soc) = input.soc
-    {
-        let t = &rules.end_of_charge_soc;
-        let (raise, clear) = compare(t, Side::AtOrAbove, soc);
-        if let Some(rate) = input.soc_rate_per_s.filter(|r| *r > 0.0) {
-            eta = Some(((t.raise_at - soc) / rate).max(0.0));
-        }
-        let early = rules.end_of_charge_lead_s > 0.0
-            && eta.is_some_and(|e| e <= rules.end_of_charge_lead_s);
-        eoc_past |= input.charging && (raise || early);
-        eoc_clear &= clear && !early;
-        if raise || early {
-            eoc_value = soc;
-            eoc_threshold = t.raise_at;
-            eoc_unit = "SOC";
-            eoc_hold = t.hold_s;
-        }
-    }
-    if rules.end_of_charge_cell_volts.enabled {
-        let (raise, clear) = compare(
-            &rules.end_of_charge_cell_volts,
-            Side::AtOrAbove,
-            input.cell_volts_terminal,
-        );
-        if input.charging && raise && !eoc_past {
-            eoc_value = input.cell_volts_terminal;
-            eoc_threshold = rules.end_of_charge_cell_volts.raise_at;
-            eoc_unit = "V";
-        }
-        eoc_past |= input.charging && raise;
-        // At rest the terminal voltage relaxes below the cutoff by itself;
-        // only SOC decides clearing once current has stopped.
-        eoc_clear &= clear || !input.charging;
-    }
-    if rules.end_of_charge_soc.enabled || rules.end_of_charge_cell_volts.enabled {
-        checks.push(Check {
-            kind: AlertKind::EndOfCharge,
-            past_raise: eoc_past,
-            past_clear: eoc_clear && !eoc_past,
-            hold_s: eoc_hold,
-            trigger_value: eoc_value,
-            threshold: eoc_threshold,
-            unit: eoc_unit,
-            message: Box::new(move || match eta {
-                Some(e) if eoc_unit == "SOC" && e > 0.0 => format!("end of charge in about {e:.0} s (SOC {eoc_value:.3}, target {eoc_threshold:.3})"),
-                _ => format!("end of charge: {eoc_unit} {eoc_value:.4} reached {eoc_threshold:.4}"),
-            }),
-            seconds_to_target: eta,
-        });
-    }
-
-    // End of discharge.
-    let mut eod_past = false;
-    let mut eod_clear = true;
-    let mut eod_value = input.cell_volts_terminal;
-    let mut eod_threshold = rules.end_of_discharge_cell_volts.raise_at;
-    let mut eod_unit = "V";
-    let mut eod_hold = rules.end_of_discharge_cell_volts.hold_s;
-    if rules.end_of_discharge_soc.enabled
-        && let Some(soc) = input.soc
-    {
-        let (raise, clear) = compare(&rules.end_of_discharge_soc, Side::AtOrBelow, soc);
-        eod_past |= input.discharging && raise;
-        eod_clear &= clear;
-        if raise {
-            eod_value = soc;
-            eod_threshold = rules.end_of_discharge_soc.raise_at;
-            eod_unit = "SOC";
-            eod_hold = rules.end_of_discharge_soc.hold_s;
-        }
-    }
-    if rules.end_of_discharge_cell_volts.enabled {
-        let (raise, clear) = compare(
-            &rules.end_of_discharge_cell_volts,
-            Side::AtOrBelow,
-            input.cell_volts_terminal,
-        );
-        eod_past |= input.discharging && raise;
-        eod_clear &= clear || !input.discharging;
-    }
-    if rules.end_of_discharge_soc.enabled || rules.end_of_discharge_cell_volts.enabled {
-        checks.push(Check {
-            kind: AlertKind::EndOfDischarge,
-            past_raise: eod_past,
-            past_clear: eod_clear && !eod_past,
-            hold_s: eod_hold,
-            trigger_value: eod_value,
-            threshold: eod_threshold,
-            unit: eod_unit,
-            message: Box::new(move || {
-                format!("end of discharge: {eod_unit} {eod_value:.4} reached {eod_threshold:.4}")
-            }),
-            seconds_to_target: None,
-        });
-    }
-
-    let t = &rules.rest_settled_mv_per_min;
-    if t.enabled {
-        let rate = input.dv_dt_mv_per_min.map(f64::abs);
-        let (raise, clear) = match rate {
-            Some(r) if input.resting => compare(t, Side::AtOrBelow, r),
-            _ => (false, true),
-        };
-        checks.push(Check {
-            kind: AlertKind::RestSettled,
-            past_raise: raise,
-            past_clear: clear || !input.resting,
-            hold_s: t.hold_s,
-            trigger_value: rate.unwrap_or(f64::NAN),
-            threshold: t.raise_at,
-            unit: "mV/min",
-            message: Box::new(move || {
-                format!(
-                    "rest settled: |dV/dt| {:.3} mV/min; the open-circuit SOC is now trustworthy",
-                    rate.unwrap_or(0.0)
-                )
-            }),
-            seconds_to_target: None,
-        });
-    }
-
-    // Limits: raised at once, cleared once back inside by a small margin.
-    let v = input.cell_volts_terminal;
-    let span = rules.max_cell_volts - rules.min_cell_volts;
-    let v_margin = 0.01 * span;
-    let outside_v = v < rules.min_cell_volts || v > rules.max_cell_volts;
-    checks.push(Check {
-        kind: AlertKind::VoltageLimit,
-        past_raise: outside_v,
-        past_clear: v > rules.min_cell_volts + v_margin && v < rules.max_cell_volts - v_margin,
-        hold_s: 0.0,
-        trigger_value: v,
-        threshold: if v < rules.min_cell_volts {
-            rules.min_cell_volts
-        } else {
-            rules.max_cell_volts
-        },
-        unit: "V",
-        message: Box::new(move || {
-            format!(
-                "cell voltage {v:.4} V outside the safe window {:.3}–{:.3} V",
-                rules.min_cell_volts, rules.max_cell_volts
-            )
-        }),
-        seconds_to_target: None,
-    });
-    if rules.max_abs_amps > 0.0
-        && let Some(i) = input.amps
-    {
-        checks.push(Check {
-            kind: AlertKind::CurrentLimit,
-            past_raise: i.abs() > rules.max_abs_amps,
-            past_clear: i.abs() < 0.99 * rules.max_abs_amps,
-            hold_s: 0.0,
-            trigger_value: i,
-            threshold: rules.max_abs_amps,
-            unit: "A",
-            message: Box::new(move || {
-                format!(
-                    "current {i:.3} A beyond the limit ±{:.3} A",
-                    rules.max_abs_amps
-                )
-            }),
-            seconds_to_target: None,
-        });
-    }
-    if let Some(temp) = input.temp_c {
-        checks.push(Check {
-            kind: AlertKind::TemperatureLimit,
-            past_raise: temp < rules.min_temp_c || temp > rules.max_temp_c,
-            past_clear: temp > rules.min_temp_c + 0.5 && temp < rules.max_temp_c - 0.5,
-            hold_s: 0.0,
-            trigger_value: temp,
-            threshold: if temp < rules.min_temp_c {
-                rules.min_temp_c
-            } else {
-                rules.max_temp_c
-            },
-            unit: "°C",
-            message: Box::new(move || {
-                format!(
-                    "temperature {temp:.2} °C outside {:.1}–{:.1} °C",
-                    rules.min_temp_c, rules.max_temp_c
-                )
-            }),
-            seconds_to_target: None,
-        });
-    }
-
-    let mut changes = Vec::new();
-    for check in checks {
-        if let Some(change) = apply(state, check, input) {
-            changes.push(change);
-        }
-    }
+    let since_flow_s = state
+        .last_flowing_ns
+        .map(|t| (input.time_ns - t) as f64 / 1e9);
+    let checks = [
+        equilibrium_check(rules, input),
+        driving_force_check(rules, input, since_flow_s),
+        end_of_charge_check(rules, input),
+        end_of_discharge_check(rules, input),
+        rest_settled_check(rules, input),
+        Some(voltage_limit_check(rules, input)),
+        current_limit_check(rules, input),
+        temperature_limit_check(rules, input),
+    ];
+    let mut changes: Vec<AlertChange> = checks
+        .into_iter()
+        .flatten()
+        .filter_map(|check| apply(state, check, input))
+        .collect();
     // A reading arriving ends a silence.
     if state.is_active(AlertKind::SilentRig) {
         state
@@ -564,6 +425,237 @@ pub fn evaluate(
         });
     }
     changes
+}
+
+/// Reaction equilibrium: |ΔG| of the cell reaction small (a concentration
+/// or teaching cell run down); rarer than a spent driving force.
+fn equilibrium_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+    let t = rules.equilibrium_delta_g_kj_per_mol;
+    let value = input.delta_g_kj_per_mol.filter(|_| t.enabled)?.abs();
+    let (past_raise, past_clear) = compare(&t, Side::AtOrBelow, value);
+    Some(Check {
+        kind: AlertKind::EquilibriumApproach,
+        past_raise,
+        past_clear,
+        hold_s: t.hold_s,
+        trigger_value: value,
+        threshold: t.raise_at,
+        unit: "kJ/mol",
+        message: Box::new(move || {
+            format!("|ΔG| {value:.3} kJ/mol: the cell reaction is near chemical equilibrium")
+        }),
+        seconds_to_target: None,
+    })
+}
+
+/// The voltage approaching equilibrium: |η| small while current flows or
+/// shortly after it stops. With no η (no equilibrium estimate) or long
+/// after the current stopped the rule holds its state.
+fn driving_force_check(
+    rules: &AlertRules,
+    input: &RuleInput,
+    since_flow_s: Option<f64>,
+) -> Option<Check> {
+    let t = rules.driving_force_cell_volts;
+    let recent = since_flow_s.is_some_and(|s| s <= rules.driving_force_after_stop_s);
+    let eta = input.driving_force_volts.filter(|_| t.enabled)?;
+    let value = eta.abs();
+    let (raise, clear) = compare(&t, Side::AtOrBelow, value);
+    Some(Check {
+        kind: AlertKind::DrivingForceSpent,
+        past_raise: raise && recent,
+        past_clear: clear,
+        hold_s: t.hold_s,
+        trigger_value: eta,
+        threshold: t.raise_at,
+        unit: "V",
+        message: Box::new(move || {
+            format!(
+                "driving force spent: terminal voltage within {:.1} mV per cell of equilibrium",
+                value * 1e3
+            )
+        }),
+        seconds_to_target: None,
+    })
+}
+
+/// End of charge: SOC target (with lead time) or the charge cutoff, while
+/// charging. Without an anchored SOC only the cutoff decides.
+fn end_of_charge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+    let (soc_rule, volts_rule) = (rules.end_of_charge_soc, rules.end_of_charge_cell_volts);
+    if !(soc_rule.enabled || volts_rule.enabled) {
+        return None;
+    }
+    let mut past = false;
+    let mut clear = true;
+    let mut value = input.cell_volts_terminal;
+    let mut threshold = volts_rule.raise_at;
+    let mut unit = "V";
+    let mut hold_s = volts_rule.hold_s;
+    let mut eta = None;
+    if let Some(soc) = input.soc.filter(|_| soc_rule.enabled) {
+        let (raise, below_clear) = compare(&soc_rule, Side::AtOrAbove, soc);
+        if let Some(rate) = input.soc_rate_per_s.filter(|r| *r > 0.0) {
+            eta = Some(((soc_rule.raise_at - soc) / rate).max(0.0));
+        }
+        let early = rules.end_of_charge_lead_s > 0.0
+            && eta.is_some_and(|e| e <= rules.end_of_charge_lead_s);
+        past |= input.charging && (raise || early);
+        clear &= below_clear && !early;
+        if raise || early {
+            (value, threshold, unit, hold_s) = (soc, soc_rule.raise_at, "SOC", soc_rule.hold_s);
+        }
+    }
+    if volts_rule.enabled {
+        let (raise, below_clear) =
+            compare(&volts_rule, Side::AtOrAbove, input.cell_volts_terminal);
+        if input.charging && raise && !past {
+            (value, threshold, unit) = (input.cell_volts_terminal, volts_rule.raise_at, "V");
+        }
+        past |= input.charging && raise;
+        // At rest the terminal voltage relaxes below the cutoff by itself;
+        // only SOC decides clearing once current has stopped.
+        clear &= below_clear || !input.charging;
+    }
+    Some(Check {
+        kind: AlertKind::EndOfCharge,
+        past_raise: past,
+        past_clear: clear && !past,
+        hold_s,
+        trigger_value: value,
+        threshold,
+        unit,
+        message: Box::new(move || match eta {
+            Some(e) if unit == "SOC" && e > 0.0 => {
+                format!("end of charge in about {e:.0} s (SOC {value:.3}, target {threshold:.3})")
+            }
+            _ => format!("end of charge: {unit} {value:.4} reached {threshold:.4}"),
+        }),
+        seconds_to_target: eta,
+    })
+}
+
+fn end_of_discharge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+    let (soc_rule, volts_rule) = (
+        rules.end_of_discharge_soc,
+        rules.end_of_discharge_cell_volts,
+    );
+    if !(soc_rule.enabled || volts_rule.enabled) {
+        return None;
+    }
+    let mut past = false;
+    let mut clear = true;
+    let mut value = input.cell_volts_terminal;
+    let mut threshold = volts_rule.raise_at;
+    let mut unit = "V";
+    let mut hold_s = volts_rule.hold_s;
+    if let Some(soc) = input.soc.filter(|_| soc_rule.enabled) {
+        let (raise, above_clear) = compare(&soc_rule, Side::AtOrBelow, soc);
+        past |= input.discharging && raise;
+        clear &= above_clear;
+        if raise {
+            (value, threshold, unit, hold_s) = (soc, soc_rule.raise_at, "SOC", soc_rule.hold_s);
+        }
+    }
+    if volts_rule.enabled {
+        let (raise, above_clear) =
+            compare(&volts_rule, Side::AtOrBelow, input.cell_volts_terminal);
+        past |= input.discharging && raise;
+        clear &= above_clear || !input.discharging;
+    }
+    Some(Check {
+        kind: AlertKind::EndOfDischarge,
+        past_raise: past,
+        past_clear: clear && !past,
+        hold_s,
+        trigger_value: value,
+        threshold,
+        unit,
+        message: Box::new(move || {
+            format!("end of discharge: {unit} {value:.4} reached {threshold:.4}")
+        }),
+        seconds_to_target: None,
+    })
+}
+
+fn rest_settled_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+    let t = rules.rest_settled_mv_per_min;
+    if !t.enabled {
+        return None;
+    }
+    let rate = input.dv_dt_mv_per_min.map(f64::abs);
+    let (raise, clear) = match rate {
+        Some(r) if input.resting => compare(&t, Side::AtOrBelow, r),
+        _ => (false, true),
+    };
+    Some(Check {
+        kind: AlertKind::RestSettled,
+        past_raise: raise,
+        past_clear: clear || !input.resting,
+        hold_s: t.hold_s,
+        trigger_value: rate.unwrap_or(f64::NAN),
+        threshold: t.raise_at,
+        unit: "mV/min",
+        message: Box::new(move || {
+            format!(
+                "rest settled: |dV/dt| {:.3} mV/min; the open-circuit SOC is now trustworthy",
+                rate.unwrap_or(0.0)
+            )
+        }),
+        seconds_to_target: None,
+    })
+}
+
+/// Limits: raised at once, cleared once back inside by a small margin.
+fn voltage_limit_check(rules: &AlertRules, input: &RuleInput) -> Check {
+    let (min, max) = (rules.min_cell_volts, rules.max_cell_volts);
+    let v = input.cell_volts_terminal;
+    let v_margin = 0.01 * (max - min);
+    Check {
+        kind: AlertKind::VoltageLimit,
+        past_raise: v < min || v > max,
+        past_clear: v > min + v_margin && v < max - v_margin,
+        hold_s: 0.0,
+        trigger_value: v,
+        threshold: if v < min { min } else { max },
+        unit: "V",
+        message: Box::new(move || {
+            format!("cell voltage {v:.4} V outside the safe window {min:.3}–{max:.3} V")
+        }),
+        seconds_to_target: None,
+    }
+}
+
+fn current_limit_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+    let limit = rules.max_abs_amps;
+    let i = input.amps.filter(|_| limit > 0.0)?;
+    Some(Check {
+        kind: AlertKind::CurrentLimit,
+        past_raise: i.abs() > limit,
+        past_clear: i.abs() < 0.99 * limit,
+        hold_s: 0.0,
+        trigger_value: i,
+        threshold: limit,
+        unit: "A",
+        message: Box::new(move || format!("current {i:.3} A beyond the limit ±{limit:.3} A")),
+        seconds_to_target: None,
+    })
+}
+
+fn temperature_limit_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+    let temp = input.temp_c?;
+    let (min, max) = (rules.min_temp_c, rules.max_temp_c);
+    Some(Check {
+        kind: AlertKind::TemperatureLimit,
+        past_raise: temp < min || temp > max,
+        past_clear: temp > min + 0.5 && temp < max - 0.5,
+        hold_s: 0.0,
+        trigger_value: temp,
+        threshold: if temp < min { min } else { max },
+        unit: "°C",
+        message: Box::new(move || format!("temperature {temp:.2} °C outside {min:.1}–{max:.1} °C")),
+        seconds_to_target: None,
+    })
 }
 
 fn apply(state: &mut ChannelRuleState, check: Check, input: &RuleInput) -> Option<AlertChange> {

@@ -397,6 +397,8 @@ pub fn derive(args: &BenchDeriveArgs) -> anyhow::Result<()> {
         coulombic_efficiency: 1.0,
         faradaic_efficiency: 1.0,
         description: String::new(),
+        gas: None,
+        active_area_cm2: None,
     };
     let mid = 0.5 * (chem.min_cell_volts + chem.max_cell_volts);
     let t0 = client::now_ns() - (args.readings as i64 + 10) * 1_000_000_000;

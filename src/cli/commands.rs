@@ -70,23 +70,27 @@ struct ReadingOut {
     cell_volts_used: f64,
     soc_model: Option<f64>,
     soc_fused: Option<f64>,
-    delta_g_kj_per_mol: f64,
-    ln_q: f64,
-    log10_q: f64,
+    delta_g_kj_per_mol: Option<f64>,
+    ln_q: Option<f64>,
+    log10_q: Option<f64>,
     log10_k: f64,
-    affinity_ln_k_over_q: f64,
+    affinity_ln_k_over_q: Option<f64>,
     state: &'static str,
     charge_ah: f64,
     energy_wh: f64,
     resting: bool,
     out_of_order: bool,
+    operating_mode: &'static str,
+    ocv_source: &'static str,
+    driving_force_v: Option<f64>,
 }
 
 fn opt(v: Option<f64>) -> String {
     v.map(|x| x.to_string()).unwrap_or_default()
 }
 
-pub const CSV_HEADER: &str = "seq,time_unix_ns,volts_v,amps_a,temp_c,cell_volts_used_v,soc_model,soc_fused,delta_g_kj_per_mol,ln_q,log10_q,log10_k,affinity_ln_k_over_q,state,charge_ah,energy_wh,resting,out_of_order";
+/// Columns are only ever added at the end: scripts index them.
+pub const CSV_HEADER: &str = "seq,time_unix_ns,volts_v,amps_a,temp_c,cell_volts_used_v,soc_model,soc_fused,delta_g_kj_per_mol,ln_q,log10_q,log10_k,affinity_ln_k_over_q,state,charge_ah,energy_wh,resting,out_of_order,operating_mode,ocv_source,driving_force_v";
 
 pub async fn readings(args: &ReadingsArgs) -> anyhow::Result<()> {
     let now = client::now_ns();
@@ -157,6 +161,9 @@ pub async fn readings(args: &ReadingsArgs) -> anyhow::Result<()> {
                 energy_wh: d.energy_wh,
                 resting: d.resting,
                 out_of_order: d.out_of_order,
+                operating_mode: mode_name(d.operating_mode),
+                ocv_source: ocv_source_name(d.ocv_source),
+                driving_force_v: d.driving_force_v,
             });
         }
     }
@@ -166,7 +173,7 @@ pub async fn readings(args: &ReadingsArgs) -> anyhow::Result<()> {
             println!("{CSV_HEADER}");
             for r in &rows {
                 println!(
-                    "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
+                    "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
                     r.seq,
                     r.time_unix_ns,
                     r.volts,
@@ -175,22 +182,25 @@ pub async fn readings(args: &ReadingsArgs) -> anyhow::Result<()> {
                     r.cell_volts_used,
                     opt(r.soc_model),
                     opt(r.soc_fused),
-                    r.delta_g_kj_per_mol,
-                    r.ln_q,
-                    r.log10_q,
+                    opt(r.delta_g_kj_per_mol),
+                    opt(r.ln_q),
+                    opt(r.log10_q),
                     r.log10_k,
-                    r.affinity_ln_k_over_q,
+                    opt(r.affinity_ln_k_over_q),
                     r.state,
                     r.charge_ah,
                     r.energy_wh,
                     r.resting,
-                    r.out_of_order
+                    r.out_of_order,
+                    r.operating_mode,
+                    r.ocv_source,
+                    opt(r.driving_force_v)
                 );
             }
         }
         Format::Table => {
             println!(
-                "{:>8} {:>19} {:>9} {:>8} {:>7} {:>7} {:>11} {:>9} {:<11}",
+                "{:>8} {:>19} {:>9} {:>8} {:>7} {:>7} {:>11} {:>9} {:<11} {:<12} {:>8}",
                 "seq",
                 "time_unix_ns",
                 "volts",
@@ -199,11 +209,17 @@ pub async fn readings(args: &ReadingsArgs) -> anyhow::Result<()> {
                 "SOC %",
                 "ΔG kJ/mol",
                 "log10 Q",
-                "state"
+                "reaction",
+                "mode",
+                "η mV"
             );
+            let shown = |v: Option<f64>, scale: f64| {
+                v.map(|x| format!("{:.3}", x * scale))
+                    .unwrap_or_else(|| "-".into())
+            };
             for r in &rows {
                 println!(
-                    "{:>8} {:>19} {:>9.4} {:>8.3} {:>7.2} {:>7} {:>11.3} {:>9.3} {:<11}",
+                    "{:>8} {:>19} {:>9.4} {:>8.3} {:>7.2} {:>7} {:>11} {:>9} {:<11} {:<12} {:>8}",
                     r.seq,
                     r.time_unix_ns,
                     r.volts,
@@ -212,9 +228,11 @@ pub async fn readings(args: &ReadingsArgs) -> anyhow::Result<()> {
                     r.soc_fused
                         .map(|s| format!("{:.2}", s * 100.0))
                         .unwrap_or_else(|| "-".into()),
-                    r.delta_g_kj_per_mol,
-                    r.log10_q,
-                    r.state
+                    shown(r.delta_g_kj_per_mol, 1.0),
+                    shown(r.log10_q, 1.0),
+                    r.state,
+                    r.operating_mode,
+                    shown(r.driving_force_v, 1e3)
                 );
             }
             eprintln!("{} readings", rows.len());
@@ -343,6 +361,97 @@ pub fn mode_name(code: i32) -> &'static str {
     }
 }
 
+pub fn ocv_source_name(code: i32) -> &'static str {
+    match pb::OcvSource::try_from(code) {
+        Ok(pb::OcvSource::Terminal) => "terminal",
+        Ok(pb::OcvSource::Rest) => "rest",
+        Ok(pb::OcvSource::OhmicCompensated) => "ohmic_compensated",
+        Ok(pb::OcvSource::CountedSoc) => "counted_soc",
+        Ok(pb::OcvSource::Reversible) => "reversible",
+        Ok(pb::OcvSource::None) => "none",
+        _ => "unspecified",
+    }
+}
+
+/// ΔG, Q and the driving force of one reading, or why they are absent.
+fn thermo_text(d: &pb::DerivedState) -> String {
+    let eta = d
+        .driving_force_v
+        .map(|v| format!("; driving force {:+.1} mV/cell", v * 1e3))
+        .unwrap_or_default();
+    match (d.delta_g_kj_per_mol, d.log10_q) {
+        (Some(dg), Some(q)) => format!(
+            "ΔG {dg:.3} kJ/mol at E_eq {:.4} V ({}); log10 Q {q:.3} vs log10 K {:.3}{eta}",
+            d.cell_volts,
+            ocv_source_name(d.ocv_source),
+            d.log10_k
+        ),
+        _ => format!("ΔG and Q unknown under current (no rest, resistance or anchored SOC yet){eta}"),
+    }
+}
+
+fn breach_text(code: i32) -> &'static str {
+    match pb::BoundBreach::try_from(code) {
+        Ok(pb::BoundBreach::Reversible) => {
+            " [IMPOSSIBLE: beyond the reversible voltage; check sign, cell count, voltage]"
+        }
+        Ok(pb::BoundBreach::Thermoneutral) => {
+            " [below thermoneutral: HHV efficiency over 100 %, heat drawn in]"
+        }
+        _ => "",
+    }
+}
+
+fn hydrogen_text(h: &pb::HydrogenFigures) -> String {
+    let pct = |v: Option<f64>| {
+        v.map(|x| format!("{:.1} %", x * 100.0))
+            .unwrap_or_else(|| "-".into())
+    };
+    format!(
+        "E_rev {:.4} V, E_tn {:.4} V (HHV) / {:.4} V (LHV), overpotential {:.3} V{}; efficiency {} HHV, {} LHV; H2 {:.4} NL/min ({:.3e} kg/h){}; heat {:.1} W{}",
+        h.reversible_v,
+        h.thermoneutral_hhv_v,
+        h.thermoneutral_lhv_v,
+        h.overpotential_v,
+        h.overpotential_ir_free_v
+            .map(|v| format!(" ({v:.3} V iR-free)"))
+            .unwrap_or_default(),
+        pct(h.voltage_efficiency_hhv),
+        pct(h.voltage_efficiency_lhv),
+        h.h2_rate_normal_litres_per_min,
+        h.h2_rate_kg_per_h,
+        h.specific_energy_kwh_per_kg
+            .map(|k| format!(", {k:.1} kWh/kg"))
+            .unwrap_or_default(),
+        h.heat_w,
+        breach_text(h.breach)
+    )
+}
+
+fn hydrogen_json(h: &pb::HydrogenFigures) -> serde_json::Value {
+    serde_json::json!({
+        "reversible_v": h.reversible_v,
+        "thermoneutral_hhv_v": h.thermoneutral_hhv_v,
+        "thermoneutral_lhv_v": h.thermoneutral_lhv_v,
+        "overpotential_v": h.overpotential_v,
+        "overpotential_ir_free_v": h.overpotential_ir_free_v,
+        "voltage_efficiency_hhv": h.voltage_efficiency_hhv,
+        "voltage_efficiency_lhv": h.voltage_efficiency_lhv,
+        "heat_w": h.heat_w,
+        "h2_rate_mol_per_s": h.h2_rate_mol_per_s,
+        "h2_rate_normal_litres_per_min": h.h2_rate_normal_litres_per_min,
+        "h2_rate_kg_per_h": h.h2_rate_kg_per_h,
+        "specific_energy_kwh_per_kg": h.specific_energy_kwh_per_kg,
+        "current_density_a_per_cm2": h.current_density_a_per_cm2,
+        "area_specific_resistance_ohm_cm2": h.area_specific_resistance_ohm_cm2,
+        "breach": match pb::BoundBreach::try_from(h.breach) {
+            Ok(pb::BoundBreach::Reversible) => Some("reversible"),
+            Ok(pb::BoundBreach::Thermoneutral) => Some("thermoneutral"),
+            _ => None,
+        },
+    })
+}
+
 pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
     let channel = client::connect(&args.connect).await?;
     let ids = match &args.channel {
@@ -381,8 +490,11 @@ pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
                     "temp_c": latest.and_then(|r| r.temp_c),
                     "soc_fused": d.and_then(|d| d.soc_fused),
                     "soc_model": d.and_then(|d| d.soc_model),
-                    "delta_g_kj_per_mol": d.map(|d| d.delta_g_kj_per_mol),
-                    "log10_q": d.map(|d| d.log10_q),
+                    "delta_g_kj_per_mol": d.and_then(|d| d.delta_g_kj_per_mol),
+                    "log10_q": d.and_then(|d| d.log10_q),
+                    "ocv_source": d.map(|d| ocv_source_name(d.ocv_source)),
+                    "driving_force_v": d.and_then(|d| d.driving_force_v),
+                    "hydrogen": d.and_then(|d| d.hydrogen.as_ref()).map(hydrogen_json),
                     "log10_k": d.map(|d| d.log10_k),
                     "state": d.map(|d| state_name(d.state)),
                     "operating_mode": d.map(|d| mode_name(d.operating_mode)),
@@ -409,7 +521,7 @@ pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
         };
         let d = r.derived.unwrap_or_default();
         println!(
-            "{id} ({chem}) seq {}: {}; {:.4} V, {} A, {} °C; SOC {}; ΔG {:.3} kJ/mol; log10 Q {:.3} vs log10 K {:.3}; reaction {}",
+            "{id} ({chem}) seq {}: {}; {:.4} V, {} A, {} °C; SOC {}; {}; reaction {}",
             r.seq,
             mode_name(d.operating_mode),
             r.volts,
@@ -422,11 +534,12 @@ pub async fn state(args: &StateArgs) -> anyhow::Result<()> {
             d.soc_fused
                 .map(|x| format!("{:.1} %", x * 100.0))
                 .unwrap_or_else(|| "unknown".into()),
-            d.delta_g_kj_per_mol,
-            d.log10_q,
-            d.log10_k,
+            thermo_text(&d),
             state_name(d.state)
         );
+        if let Some(h) = &d.hydrogen {
+            println!("    {}", hydrogen_text(h));
+        }
         if let Some(e) = s.estimator {
             let r_text = e
                 .resistance_ohm
@@ -761,37 +874,7 @@ pub async fn channels(cmd: &ChannelsCommand) -> anyhow::Result<()> {
                     })?
                     .into_inner();
                 if let Some(rules) = entry.rules {
-                    let current = alerts
-                        .get_alert_rules(pb::GetAlertRulesRequest {
-                            channel_id: entry.def.channel_id.clone(),
-                        })
-                        .await?
-                        .into_inner();
-                    let _ = current;
-                    let t = |t: gibbsline::alerts::Threshold| {
-                        Some(pb::Threshold {
-                            enabled: t.enabled,
-                            raise_at: t.raise_at,
-                            clear_at: t.clear_at,
-                            hold_s: t.hold_s,
-                        })
-                    };
-                    let pb_rules = pb::AlertRules {
-                        equilibrium_delta_g_kj_per_mol: t(rules.equilibrium_delta_g_kj_per_mol),
-                        end_of_charge_soc: t(rules.end_of_charge_soc),
-                        end_of_charge_cell_volts: t(rules.end_of_charge_cell_volts),
-                        end_of_charge_lead_s: rules.end_of_charge_lead_s,
-                        end_of_discharge_soc: t(rules.end_of_discharge_soc),
-                        end_of_discharge_cell_volts: t(rules.end_of_discharge_cell_volts),
-                        rest_settled_mv_per_min: t(rules.rest_settled_mv_per_min),
-                        min_cell_volts: rules.min_cell_volts,
-                        max_cell_volts: rules.max_cell_volts,
-                        max_abs_amps: rules.max_abs_amps,
-                        min_temp_c: rules.min_temp_c,
-                        max_temp_c: rules.max_temp_c,
-                        silent_interval_multiple: rules.silent_interval_multiple,
-                        silent_min_s: rules.silent_min_s,
-                    };
+                    let pb_rules = gibbsline::grpc::convert::rules_to_pb(&rules);
                     alerts
                         .put_alert_rules(pb::PutAlertRulesRequest {
                             channel_id: entry.def.channel_id.clone(),

@@ -2,6 +2,7 @@
 //! simulated Harbour Lane rig in one process, talking real gRPC over
 //! loopback, with a live table and the alerts as they arrive.
 
+use crate::cli::commands::mode_name;
 use super::client;
 use super::rig::{self, RigOptions, RigStats};
 use gibbsline::pb;
@@ -157,8 +158,8 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
         }
         let mut table = String::new();
         table.push_str(&format!(
-            "{:<13} {:<16} {:>9} {:>8} {:>7} {:>7} {:>11} {:<12}\n",
-            "channel", "chemistry", "volts", "amps", "°C", "SOC %", "ΔG kJ/mol", "state"
+            "{:<13} {:<16} {:<12} {:>9} {:>8} {:>7} {:>7} {:>11} {:>8}\n",
+            "channel", "chemistry", "mode", "volts", "amps", "°C", "SOC %", "ΔG kJ/mol", "η mV"
         ));
         for id in &ids {
             let Ok(state) = history
@@ -179,17 +180,22 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
                 Some(r) => {
                     let d = r.derived.unwrap_or_default();
                     table.push_str(&format!(
-                        "{:<13} {:<16} {:>9.4} {:>8.3} {:>7.2} {:>7} {:>11.3} {:<12}\n",
+                        "{:<13} {:<16} {:<12} {:>9.4} {:>8.3} {:>7.2} {:>7} {:>11} {:>8}\n",
                         id,
                         chem,
+                        mode_name(d.operating_mode),
                         r.volts,
                         r.amps.unwrap_or(0.0),
                         r.temp_c.unwrap_or(f64::NAN),
                         d.soc_fused
                             .map(|s| format!("{:.1}", s * 100.0))
                             .unwrap_or_else(|| "-".into()),
-                        d.delta_g_kj_per_mol,
-                        state_name(d.state)
+                        d.delta_g_kj_per_mol
+                            .map(|g| format!("{g:.3}"))
+                            .unwrap_or_else(|| "-".into()),
+                        d.driving_force_v
+                            .map(|v| format!("{:+.1}", v * 1e3))
+                            .unwrap_or_else(|| "-".into()),
                     ));
                 }
                 None => table.push_str(&format!("{id:<13} {chem:<16} (no readings yet)\n")),

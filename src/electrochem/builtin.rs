@@ -65,6 +65,10 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
             delta_h_kj_per_mol: Some(-218.66),
             min_cell_volts: 0.9,
             max_cell_volts: 1.25,
+            min_temp_c: Some(0.0),
+            max_temp_c: Some(60.0),
+            charge_cutoff_cell_volts: None,
+            discharge_cutoff_cell_volts: None,
             soc_model: SocModelSpec::Nernst {
                 species: vec![
                     linear("Cu2+", -1.0, 0.98, 0.01),
@@ -74,6 +78,7 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
                 ],
             },
             sources: strings(&[
+                "temperatures 0–60 °C: an aqueous teaching cell, our own choice",
                 "E°: CRC Handbook electrochemical series, Cu2+/Cu +0.3419 V, Zn2+/Zn −0.7618 V",
                 "ΔS°, ΔH°: NBS tables (Wagman 1982), S° Zn2+ −112.1, Cu2+ −99.6, Zn 41.63, Cu 33.15 J/(mol K); ΔfH° Zn2+ −153.89, Cu2+ 64.77 kJ/mol (from memory)",
                 "SOC model: illustrative 1 mol/L total of each ion pair, ideal solution (our own choice)",
@@ -91,6 +96,10 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
             delta_h_kj_per_mol: None,
             min_cell_volts: 1.0,
             max_cell_volts: 1.65,
+            charge_cutoff_cell_volts: None,
+            discharge_cutoff_cell_volts: Some(1.0),
+            min_temp_c: Some(10.0),
+            max_temp_c: Some(40.0),
             soc_model: SocModelSpec::Nernst {
                 species: vec![
                     linear("VO2+ (V5+)", -1.0, 1.6, 0.016),
@@ -102,6 +111,7 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
                 ],
             },
             sources: strings(&[
+                "discharge cutoff 1.0 V and 10–40 °C: common practice (V(V) precipitates above about 40 °C, V(II)/V(III) salts below about 10 °C; from memory)",
                 "E°: CRC Handbook electrochemical series, VO2+/VO2+ +0.991 V, V3+/V2+ −0.255 V",
                 "ΔS°: from NBS S° values (from memory; uncertain: published VRB entropy coefficients differ in size and sign)",
                 "SOC model: 1.6 mol/L vanadium, protons 4.0 mol/L at SOC 0 rising by 1.6 mol/L (typical electrolyte, from memory), ideal solution",
@@ -120,6 +130,10 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
             delta_h_kj_per_mol: None,
             min_cell_volts: 0.7,
             max_cell_volts: 1.3,
+            charge_cutoff_cell_volts: Some(1.40),
+            discharge_cutoff_cell_volts: Some(0.80),
+            min_temp_c: Some(20.0),
+            max_temp_c: Some(75.0),
             soc_model: SocModelSpec::Nernst {
                 species: vec![
                     linear("Fe3+", -1.0, 0.98, 0.01),
@@ -129,6 +143,7 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
                 ],
             },
             sources: strings(&[
+                "cutoffs 1.40 V charge / 0.80 V discharge under current and 20–75 °C: our own choice for this illustrative model (its OCV at 95 % SOC and 65 °C is 1.34 V, plus typical ohmic drop); Fe–Cr cells run warm, about 65 °C (from memory)",
                 "E°: CRC Handbook electrochemical series, Fe3+/Fe2+ +0.771 V, Cr3+/Cr2+ −0.407 V (other tables give −0.41 to −0.42 V)",
                 "dE°/dT: not set (0); the coefficients we could recall disagree, set de_dt_mv_per_k in a user chemistry",
                 "SOC model: illustrative 1 mol/L of each couple, ideal solution (our own choice)",
@@ -146,6 +161,10 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
             delta_h_kj_per_mol: Some(-394.4),
             min_cell_volts: 1.2,
             max_cell_volts: 2.05,
+            min_temp_c: Some(10.0),
+            max_temp_c: Some(50.0),
+            charge_cutoff_cell_volts: None,
+            discharge_cutoff_cell_volts: None,
             soc_model: SocModelSpec::Nernst {
                 species: vec![
                     linear("Br2(aq)", -1.0, 1.0, 0.01),
@@ -155,6 +174,7 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
                 ],
             },
             sources: strings(&[
+                "temperatures 10–50 °C: common practice for aqueous bromine electrolytes (from memory)",
                 "E°: CRC Handbook electrochemical series, Br2(aq)/Br− +1.0873 V, Zn2+/Zn −0.7618 V (with Br2(l), +1.066 V, the cell is 1.828 V)",
                 "ΔS°, ΔH°: NBS tables S° Zn2+ −112.1, Br− 82.4, Br2(aq) 130.5, Zn 41.63 J/(mol K); ΔfH° Zn2+ −153.89, Br− −121.55, Br2(aq) −2.59 kJ/mol (from memory; they imply E° ≈ 1.859 V, 10 mV above the CRC series)",
                 "SOC model: illustrative 2 mol/L ZnBr2 at SOC 0, bromine free (not complexed), ideal solution",
@@ -172,6 +192,10 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
             delta_h_kj_per_mol: None,
             min_cell_volts: 1.75,
             max_cell_volts: 2.4,
+            min_temp_c: Some(-20.0),
+            max_temp_c: Some(50.0),
+            charge_cutoff_cell_volts: None,
+            discharge_cutoff_cell_volts: None,
             soc_model: SocModelSpec::OcvTable {
                 reference_temp_c: 25.0,
                 interpolation: Interpolation::Linear,
@@ -179,6 +203,7 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
                 entropic_mv_per_k: vec![0.2, 0.2],
             },
             sources: strings(&[
+                "temperatures −20–50 °C: common practice for flooded lead–acid (from memory)",
                 "E°: CRC Handbook electrochemical series, PbO2/PbSO4 +1.6913 V, PbSO4/Pb −0.3588 V; written with HSO4− (NBS ΔfG° values) the same cell is ≈1.93 V",
                 "dE°/dT ≈ +0.2 mV/K: from NBS S° values (ΔS° ≈ +40 J/(mol K)), from memory",
                 "SOC table: rule of thumb OCV ≈ 0.84 V + specific gravity, SG 1.10 flat to 1.28 full (common practice)",
@@ -197,8 +222,13 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
             delta_h_kj_per_mol: Some(-285.83),
             min_cell_volts: 0.0,
             max_cell_volts: 2.5,
+            min_temp_c: Some(5.0),
+            max_temp_c: Some(90.0),
+            charge_cutoff_cell_volts: None,
+            discharge_cutoff_cell_volts: None,
             soc_model: SocModelSpec::None,
             sources: strings(&[
+                "5–90 °C: common practice for PEM stacks with liquid water (from memory); no SOC, so no end of charge or discharge",
                 "CODATA Key Values for Thermodynamics (Cox, Wagman, Medvedev 1989): ΔfH°(H2O, l) −285.830 kJ/mol; S° H2O(l) 69.95, H2 130.680, O2 205.152 J/(mol K)",
                 "E° = −ΔG°/2F = 1.229 V; thermoneutral −ΔH°/2F = 1.481 V; dE°/dT = ΔS°/2F ≈ −0.846 mV/K",
             ]),
@@ -215,6 +245,10 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
             delta_h_kj_per_mol: None,
             min_cell_volts: 2.5,
             max_cell_volts: 3.65,
+            min_temp_c: Some(0.0),
+            max_temp_c: Some(45.0),
+            charge_cutoff_cell_volts: None,
+            discharge_cutoff_cell_volts: None,
             soc_model: SocModelSpec::OcvTable {
                 reference_temp_c: 25.0,
                 interpolation: Interpolation::Pchip,
@@ -241,6 +275,7 @@ pub fn builtin_specs() -> Vec<ChemistrySpec> {
                 ],
             },
             sources: strings(&[
+                "0–45 °C: common practice for charging lithium-ion cells (from memory)",
                 "invented for demonstrations: shaped like a lithium-iron-phosphate curve, not any real cell's or product's data",
                 "E° 3.30 V: the curve's mid plateau, illustrative",
             ]),

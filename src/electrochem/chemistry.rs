@@ -20,8 +20,16 @@ pub struct Chemistry {
     pub e_standard_298_volts: f64,
     pub de_dt_volts_per_k: f64,
     pub delta_h_kj_per_mol: Option<f64>,
+    /// The model's per-cell open-circuit window.
     pub min_cell_volts: f64,
     pub max_cell_volts: f64,
+    /// Terminal voltage per cell, under current, that ends a charge or a
+    /// discharge (the constant-current / constant-voltage practice).
+    pub charge_cutoff_cell_volts: f64,
+    pub discharge_cutoff_cell_volts: f64,
+    /// Operating temperatures, °C.
+    pub min_temp_c: f64,
+    pub max_temp_c: f64,
     pub soc_model: SocModel,
     /// Where each parameter comes from.
     pub sources: Vec<String>,
@@ -79,6 +87,18 @@ pub struct ChemistrySpec {
     pub delta_h_kj_per_mol: Option<f64>,
     pub min_cell_volts: f64,
     pub max_cell_volts: f64,
+    /// Per-cell terminal voltage that ends a charge under current; default
+    /// `max_cell_volts`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub charge_cutoff_cell_volts: Option<f64>,
+    /// The same for a discharge; default `min_cell_volts`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub discharge_cutoff_cell_volts: Option<f64>,
+    /// Operating temperature window, °C; default −20 to 60 °C.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub min_temp_c: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub max_temp_c: Option<f64>,
     #[serde(default)]
     pub soc_model: SocModelSpec,
     #[serde(default)]
@@ -124,6 +144,24 @@ pub struct SpeciesSpec {
     pub per_soc: Option<f64>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub at_zero_soc: Option<f64>,
+}
+
+/// Operating window when a chemistry names none, °C (our own choice:
+/// wide enough for most aqueous and lithium cells, set per chemistry).
+const DEFAULT_MIN_TEMP_C: f64 = -20.0;
+const DEFAULT_MAX_TEMP_C: f64 = 60.0;
+
+/// Two finite values, the second above the first.
+fn ordered_pair(low: (&str, f64), high: (&str, f64)) -> Result<(f64, f64), ChemistryError> {
+    let (lo, hi) = (finite(low.0, low.1)?, finite(high.0, high.1)?);
+    if lo >= hi {
+        return Err(ChemistryError::invalid(
+            high.0,
+            hi,
+            format!("must be above {} ({lo})", low.0),
+        ));
+    }
+    Ok((lo, hi))
 }
 
 fn finite(field: &str, value: f64) -> Result<f64, ChemistryError> {
@@ -195,6 +233,14 @@ impl ChemistrySpec {
                 format!("must be above min_cell_volts ({min_v})"),
             ));
         }
+        let (discharge_cutoff, charge_cutoff) = ordered_pair(
+            ("discharge_cutoff_cell_volts", self.discharge_cutoff_cell_volts.unwrap_or(min_v)),
+            ("charge_cutoff_cell_volts", self.charge_cutoff_cell_volts.unwrap_or(max_v)),
+        )?;
+        let (min_temp_c, max_temp_c) = ordered_pair(
+            ("min_temp_c", self.min_temp_c.unwrap_or(DEFAULT_MIN_TEMP_C)),
+            ("max_temp_c", self.max_temp_c.unwrap_or(DEFAULT_MAX_TEMP_C)),
+        )?;
         let soc_model = self.soc_model.validate()?;
         Ok(Chemistry {
             id: self.id.clone(),
@@ -206,6 +252,10 @@ impl ChemistrySpec {
             delta_h_kj_per_mol: delta_h,
             min_cell_volts: min_v,
             max_cell_volts: max_v,
+            charge_cutoff_cell_volts: charge_cutoff,
+            discharge_cutoff_cell_volts: discharge_cutoff,
+            min_temp_c,
+            max_temp_c,
             soc_model,
             sources: self.sources.clone(),
             notes: self.notes.clone(),

@@ -23,9 +23,8 @@ const T0_K: f64 = 298.15;
 /// kJ/mol, ΔfH°(H2O, g) = −241.826 kJ/mol.
 const DELTA_H_LIQUID_298_J: f64 = -285_830.0;
 const DELTA_H_GAS_298_J: f64 = -241_826.0;
-/// Same source: S° H2O(l) 69.95, H2O(g) 188.835, H2 130.680, O2 205.152 J/(mol K).
+/// Same source: S° H2O(l) 69.95, H2 130.680, O2 205.152 J/(mol K).
 const DELTA_S_LIQUID_298_J_PER_K: f64 = 69.95 - 130.680 - 0.5 * 205.152;
-const DELTA_S_GAS_298_J_PER_K: f64 = 188.835 - 130.680 - 0.5 * 205.152;
 /// Cp at 298.15 K (NIST-JANAF, from memory): H2O(l) 75.33, H2O(g) 33.58,
 /// H2 28.84, O2 29.38 J/(mol K).
 const DELTA_CP_LIQUID_J_PER_K: f64 = 75.33 - 28.84 - 0.5 * 29.38;

@@ -1,5 +1,8 @@
 //! Cycle segmentation: a cycle is a charge segment followed by a discharge
-//! segment (rests in between belong to the cycle). Totals come from the
+//! segment (rests in between belong to the cycle). A discharge with no
+//! charge before it (a run that starts charged, a test that ends on a
+//! discharge) is a half cycle of its own; a cycle whose first segment was
+//! already running when the run began is partial, its efficiencies unknown. Totals come from the
 //! estimator's running counters, so a cycle's figures are differences of
 //! integrals, with no second integration to drift from the first.
 
@@ -17,7 +20,8 @@ pub struct Observation {
     pub time_ns: i64,
     pub direction: Direction,
     pub cell_volts: f64,
-    pub delta_g_kj_per_mol: f64,
+    /// Absent under current without an open-circuit estimate.
+    pub delta_g_kj_per_mol: Option<f64>,
     pub soc: Option<f64>,
     pub charge_in_ah: f64,
     pub charge_out_ah: f64,
@@ -31,6 +35,15 @@ pub struct SegmentSums {
     pub readings: u64,
     pub cell_volts_sum: f64,
     pub delta_g_sum: f64,
+    /// Readings that had a ΔG (older snapshots: all of them).
+    #[serde(default)]
+    pub delta_g_readings: Option<u64>,
+}
+
+impl SegmentSums {
+    fn mean_delta_g(&self) -> Option<f64> {
+        mean(self.delta_g_sum, self.delta_g_readings.unwrap_or(self.readings))
+    }
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -45,12 +58,28 @@ pub struct OpenCycle {
     pub discharge: SegmentSums,
     pub last_ns: i64,
     pub last_soc: Option<f64>,
+    /// Its first segment was already under way when the run began.
+    #[serde(default)]
+    pub partial: bool,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
 pub struct CycleTracker {
     pub open: Option<OpenCycle>,
     pub completed: u32,
+    /// False until the run's first reading: a segment running then began
+    /// before the run, so its charge was never counted.
+    #[serde(default)]
+    pub started: bool,
+}
+
+/// Running totals at one reading, for closing or peeking at a cycle.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Counters {
+    pub charge_in_ah: f64,
+    pub charge_out_ah: f64,
+    pub energy_in_wh: f64,
+    pub energy_out_wh: f64,
 }
 
 /// A finished cycle.
@@ -71,6 +100,15 @@ pub struct CycleRecord {
     pub mean_delta_g_discharge_kj_per_mol: Option<f64>,
     pub start_soc: Option<f64>,
     pub end_soc: Option<f64>,
+    /// Still running: the last reading so far, not the cycle's end.
+    #[serde(default)]
+    pub open: bool,
+    /// Began mid-segment at the start of the run: efficiencies unknown.
+    #[serde(default)]
+    pub partial: bool,
+    /// A discharge with no charge before it.
+    #[serde(default)]
+    pub discharge_only: bool,
 }
 
 fn ratio(num: f64, den: f64) -> Option<f64> {
@@ -84,14 +122,15 @@ fn mean(sum: f64, n: u64) -> Option<f64> {
 impl CycleTracker {
     /// Records one reading; returns the cycle it closed, if any.
     pub fn observe(&mut self, o: Observation) -> Option<CycleRecord> {
+        let first = !self.started;
+        self.started = true;
         let mut closed = None;
         if o.direction == Direction::Charge
-            && let Some(open) = &self.open
-            && open.discharge.readings > 0
+            && self.open.as_ref().is_some_and(|c| c.discharge.readings > 0)
         {
-            closed = Some(self.close(&o));
+            closed = Some(self.close(&o.counters()));
         }
-        if self.open.is_none() && o.direction == Direction::Charge {
+        if self.open.is_none() && o.direction != Direction::Rest {
             self.open = Some(OpenCycle {
                 start_ns: o.time_ns,
                 start_soc: o.soc,
@@ -103,6 +142,7 @@ impl CycleTracker {
                 discharge: SegmentSums::default(),
                 last_ns: o.time_ns,
                 last_soc: o.soc,
+                partial: first,
             });
         }
         if let Some(open) = &mut self.open {
@@ -114,7 +154,11 @@ impl CycleTracker {
             if let Some(s) = sums {
                 s.readings += 1;
                 s.cell_volts_sum += o.cell_volts;
-                s.delta_g_sum += o.delta_g_kj_per_mol;
+                let with_delta_g = s.delta_g_readings.get_or_insert(s.readings - 1);
+                if let Some(dg) = o.delta_g_kj_per_mol {
+                    s.delta_g_sum += dg;
+                    *with_delta_g += 1;
+                }
             }
             open.last_ns = o.time_ns;
             open.last_soc = o.soc;
@@ -122,36 +166,63 @@ impl CycleTracker {
         closed
     }
 
-    fn close(&mut self, at: &Observation) -> CycleRecord {
+    /// The cycle still running, as it stands at `now` (marked open).
+    pub fn peek(&self, now: &Counters) -> Option<CycleRecord> {
+        let open = self.open.as_ref()?;
+        let mut record = record_of(open, self.completed + 1, now);
+        record.open = true;
+        Some(record)
+    }
+
+    fn close(&mut self, at: &Counters) -> CycleRecord {
         let open = self.open.take().expect("close called with an open cycle");
         self.completed += 1;
-        let charge_in_ah = at.charge_in_ah - open.charge_in_start_ah;
-        let charge_out_ah = at.charge_out_ah - open.charge_out_start_ah;
-        let energy_in_wh = at.energy_in_wh - open.energy_in_start_wh;
-        let energy_out_wh = at.energy_out_wh - open.energy_out_start_wh;
-        let mean_charge_v = mean(open.charge.cell_volts_sum, open.charge.readings);
-        let mean_discharge_v = mean(open.discharge.cell_volts_sum, open.discharge.readings);
-        CycleRecord {
-            index: self.completed,
-            start_ns: open.start_ns,
-            end_ns: open.last_ns,
-            charge_in_ah,
-            charge_out_ah,
-            energy_in_wh,
-            energy_out_wh,
-            coulombic_efficiency: ratio(charge_out_ah, charge_in_ah),
-            energy_efficiency: ratio(energy_out_wh, energy_in_wh),
-            voltage_efficiency: match (mean_discharge_v, mean_charge_v) {
-                (Some(d), Some(c)) => ratio(d, c),
-                _ => None,
-            },
-            mean_delta_g_charge_kj_per_mol: mean(open.charge.delta_g_sum, open.charge.readings),
-            mean_delta_g_discharge_kj_per_mol: mean(
-                open.discharge.delta_g_sum,
-                open.discharge.readings,
-            ),
-            start_soc: open.start_soc,
-            end_soc: open.last_soc,
+        record_of(&open, self.completed, at)
+    }
+}
+
+impl Observation {
+    fn counters(&self) -> Counters {
+        Counters {
+            charge_in_ah: self.charge_in_ah,
+            charge_out_ah: self.charge_out_ah,
+            energy_in_wh: self.energy_in_wh,
+            energy_out_wh: self.energy_out_wh,
         }
+    }
+}
+
+fn record_of(open: &OpenCycle, index: u32, at: &Counters) -> CycleRecord {
+    let charge_in_ah = at.charge_in_ah - open.charge_in_start_ah;
+    let charge_out_ah = at.charge_out_ah - open.charge_out_start_ah;
+    let energy_in_wh = at.energy_in_wh - open.energy_in_start_wh;
+    let energy_out_wh = at.energy_out_wh - open.energy_out_start_wh;
+    let mean_charge_v = mean(open.charge.cell_volts_sum, open.charge.readings);
+    let mean_discharge_v = mean(open.discharge.cell_volts_sum, open.discharge.readings);
+    let discharge_only = open.charge.readings == 0;
+    // A partial or half cycle's efficiencies compare charge that was never
+    // counted with charge that was (a resumed run read 560 %): unknown.
+    let comparable = !open.partial && !discharge_only;
+    CycleRecord {
+        index,
+        start_ns: open.start_ns,
+        end_ns: open.last_ns,
+        charge_in_ah,
+        charge_out_ah,
+        energy_in_wh,
+        energy_out_wh,
+        coulombic_efficiency: ratio(charge_out_ah, charge_in_ah).filter(|_| comparable),
+        energy_efficiency: ratio(energy_out_wh, energy_in_wh).filter(|_| comparable),
+        voltage_efficiency: match (mean_discharge_v, mean_charge_v) {
+            (Some(d), Some(c)) => ratio(d, c),
+            _ => None,
+        },
+        mean_delta_g_charge_kj_per_mol: open.charge.mean_delta_g(),
+        mean_delta_g_discharge_kj_per_mol: open.discharge.mean_delta_g(),
+        start_soc: open.start_soc,
+        end_soc: open.last_soc,
+        open: false,
+        partial: open.partial,
+        discharge_only,
     }
 }

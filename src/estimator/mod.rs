@@ -12,17 +12,14 @@
 
 mod cycles;
 
-pub use cycles::{CycleRecord, CycleTracker};
+pub use cycles::{Counters, CycleRecord, CycleTracker};
 
 use crate::electrochem::constants::FARADAY_C_PER_MOL;
 use crate::electrochem::{self, Chemistry, EvalRequest, Evaluation};
 use serde::{Deserialize, Serialize};
 use std::collections::VecDeque;
 
-/// Molar mass of H2, g/mol (IUPAC standard atomic weight of H, 1.00794 ×2, rounded).
-pub const H2_MOLAR_MASS_G_PER_MOL: f64 = 2.01588;
-/// Molar volume of an ideal gas at 0 °C and 1 atm, L/mol (CODATA 2018: 22.413 969 54).
-pub const NORMAL_MOLAR_VOLUME_L_PER_MOL: f64 = 22.413_969_54;
+pub use crate::electrochem::hydrogen::{H2_MOLAR_MASS_G_PER_MOL, NORMAL_MOLAR_VOLUME_L_PER_MOL};
 
 /// How an instrument signs its current.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -71,6 +68,8 @@ pub struct EstimatorConfig {
     /// `step_window_s` apart is used to estimate R.
     pub step_min_amps: f64,
     pub step_window_s: f64,
+    /// Hydrogen–oxygen cells: the gases that fix the reversible voltage.
+    pub water_gas: Option<electrochem::hydrogen::GasConditions>,
 }
 
 impl EstimatorConfig {
@@ -98,6 +97,7 @@ impl EstimatorConfig {
             gap_limit_s: 300.0,
             step_min_amps: (c_rate_amps / 10.0).max(0.01),
             step_window_s: 2.0,
+            water_gas: None,
         }
     }
 }
@@ -136,6 +136,17 @@ pub struct EstimatorState {
     pub anchor: Option<SocAnchor>,
     pub gaps: u64,
     pub cycles: CycleTracker,
+}
+
+impl Counters {
+    pub fn of(state: &EstimatorState) -> Counters {
+        Counters {
+            charge_in_ah: state.charge_in_ah,
+            charge_out_ah: state.charge_out_ah,
+            energy_in_wh: state.energy_in_wh,
+            energy_out_wh: state.energy_out_wh,
+        }
+    }
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -201,39 +212,42 @@ impl OperatingMode {
     }
 }
 
-/// Which voltage the thermodynamics of a reading used.
+/// Which open-circuit (equilibrium) voltage a reading's thermodynamics
+/// used. Under current the terminal voltage also carries overpotential, so
+/// composition terms (ΔG, ln Q, SOC from the model) come only from an
+/// open-circuit estimate; without one they are absent, not invented.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum OcvSource {
-    /// The terminal voltage as measured (no current, or no R known).
+    /// The reading carries no current: its voltage is taken as open circuit.
     Terminal,
-    /// V − I·R.
+    /// No current flows (below the deadband): the terminal voltage at rest.
+    Rest,
+    /// V − I·R with a configured or measured resistance.
     OhmicCompensated,
-    /// The SOC model's OCV at the counted SOC (under current, capacity known).
+    /// The SOC model's OCV at the counted SOC (anchored count).
     CountedSoc,
+    /// Hydrogen–oxygen cells: the reversible voltage from the temperature
+    /// and gas conditions.
+    Reversible,
+    /// Under current with no estimate: thermodynamics absent.
+    None,
 }
 
 impl OcvSource {
-    pub fn code(self) -> i64 {
-        match self {
-            OcvSource::Terminal => 0,
-            OcvSource::OhmicCompensated => 1,
-            OcvSource::CountedSoc => 2,
-        }
-    }
-    pub fn from_code(code: i64) -> OcvSource {
-        match code {
-            1 => OcvSource::OhmicCompensated,
-            2 => OcvSource::CountedSoc,
-            _ => OcvSource::Terminal,
-        }
-    }
     pub fn as_str(self) -> &'static str {
         match self {
             OcvSource::Terminal => "terminal",
+            OcvSource::Rest => "rest",
             OcvSource::OhmicCompensated => "ohmic_compensated",
             OcvSource::CountedSoc => "counted_soc",
+            OcvSource::Reversible => "reversible",
+            OcvSource::None => "none",
         }
+    }
+    /// Whether this source gives an equilibrium voltage at all.
+    pub fn known(self) -> bool {
+        self != OcvSource::None
     }
 }
 
@@ -241,7 +255,8 @@ impl OcvSource {
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum SocMethod {
-    /// No SOC model.
+    /// No SOC model, or no open-circuit voltage to read it from (under
+    /// load with neither a capacity to count nor a resistance).
     None,
     /// Counting, but no trustworthy anchor yet (no settled rest, no known
     /// resistance, no operator entry): SOC is unknown, not guessed.
@@ -269,11 +284,21 @@ impl SocMethod {
 /// The estimator's output for one reading.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Estimate {
+    /// The chemistry evaluated at `cell_volts_used`. With no open-circuit
+    /// estimate (`ocv_source` None) it holds the terminal voltage's
+    /// numbers, which must not be shown as the cell's state.
     pub evaluation: Evaluation,
     pub temp_k: f64,
-    /// Per-cell voltage used for the thermodynamics.
+    /// Per-cell equilibrium voltage the thermodynamics used.
     pub cell_volts_used: f64,
     pub ocv_source: OcvSource,
+    /// Driving force η = V_terminal − E_eq per cell, V: what pushes current
+    /// through the cell. Absent without an equilibrium estimate other than
+    /// the terminal voltage itself.
+    pub driving_force_volts: Option<f64>,
+    /// SOC the model reads off an open-circuit voltage (never off a
+    /// voltage under load).
+    pub soc_model: Option<f64>,
     pub resistance_ohm: Option<f64>,
     pub soc_counted: Option<f64>,
     /// The count before clamping to [0, 1]: past 1 the capacity, the
@@ -292,6 +317,16 @@ pub struct Estimate {
     /// True when this reading followed a gap and was not integrated.
     pub gap: bool,
     pub cycle_closed: Option<CycleRecord>,
+}
+
+impl Estimate {
+    /// ΔG of the cell reaction at this reading, when an open-circuit
+    /// estimate gives one.
+    pub fn delta_g_kj_per_mol(&self) -> Option<f64> {
+        self.ocv_source
+            .known()
+            .then_some(self.evaluation.thermo.delta_g_kj_per_mol)
+    }
 }
 
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -319,181 +354,79 @@ pub fn step(
     let dt_s = state
         .last_time_ns
         .map(|last| (input.time_ns - last) as f64 / NS_PER_S);
-    let integrable = matches!(dt_s, Some(dt) if dt > 0.0 && dt <= config.gap_limit_s);
     let gap = matches!(dt_s, Some(dt) if dt > config.gap_limit_s);
     if gap {
         state.gaps += 1;
     }
-
-    // Resistance from a current step (ΔV/ΔI across a short interval).
-    if let (Some(i_now), Some(i_prev), Some(dt)) = (input.amps, state.last_amps, dt_s) {
-        let di = i_now - i_prev;
-        if dt > 0.0 && dt <= config.step_window_s && di.abs() >= config.step_min_amps {
-            let sample = (input.stack_volts - state.last_stack_volts) / di;
-            if sample.is_finite() && sample > 0.0 {
-                let r = state.resistance.get_or_insert(ResistanceEstimate {
-                    ohm: sample,
-                    uncertainty_ohm: 0.0,
-                    samples: 0,
-                    last_sample_ns: input.time_ns,
-                });
-                if r.samples > 0 {
-                    let diff = sample - r.ohm;
-                    r.ohm += RESISTANCE_EWMA_ALPHA * diff;
-                    let var = (1.0 - RESISTANCE_EWMA_ALPHA)
-                        * (r.uncertainty_ohm.powi(2) + RESISTANCE_EWMA_ALPHA * diff * diff);
-                    r.uncertainty_ohm = var.sqrt();
-                }
-                r.samples += 1;
-                r.last_sample_ns = input.time_ns;
-            }
+    if let Some(dt) = dt_s {
+        sample_resistance(config, state, input, dt);
+        if dt > 0.0 && !gap {
+            integrate(config, state, input, dt);
         }
     }
-
-    // Coulomb and energy counting (trapezoid rule).
-    if integrable && let (Some(i_now), Some(i_prev), Some(dt)) = (input.amps, state.last_amps, dt_s)
-    {
-        let dq_ah = 0.5 * (i_now + i_prev) * dt / 3600.0;
-        let de_wh =
-            0.5 * (input.stack_volts * i_now + state.last_stack_volts * i_prev) * dt / 3600.0;
-        state.charge_ah += dq_ah;
-        state.energy_wh += de_wh;
-        let stored_delta_ah = if dq_ah >= 0.0 {
-            state.charge_in_ah += dq_ah;
-            dq_ah * config.coulombic_efficiency
-        } else {
-            state.charge_out_ah -= dq_ah;
-            dq_ah
-        };
-        if de_wh >= 0.0 {
-            state.energy_in_wh += de_wh;
-        } else {
-            state.energy_out_wh -= de_wh;
-        }
-        state.stored_charge_ah += stored_delta_ah;
-    }
-
     let resistance_ohm = config.resistance_ohm.or(state.resistance.map(|r| r.ohm));
-    let (stack_ocv, compensated) = match (resistance_ohm, input.amps) {
-        (Some(r), Some(i)) if i != 0.0 => (input.stack_volts - i * r, true),
-        _ => (input.stack_volts, false),
-    };
-    let evaluation = electrochem::evaluate(
-        chemistry,
-        EvalRequest {
-            stack_volts: stack_ocv,
-            cells_in_series: config.cells_in_series.max(1),
-            temp_k,
-            equilibrium_tolerance_volts: config.equilibrium_tolerance_volts,
-        },
-    )?;
-    let cell_terminal = input.stack_volts / cells;
-    let mut ocv_source = if compensated {
-        OcvSource::OhmicCompensated
-    } else {
-        OcvSource::Terminal
-    };
-
-    // Rest detection and relaxation.
-    let no_current = input
-        .amps
-        .is_some_and(|i| i.abs() < config.rest_current_amps);
-    if no_current {
-        state.rest_since_ns.get_or_insert(input.time_ns);
-        state.rest_window.push_back((input.time_ns, cell_terminal));
-        let window_ns = (config.settle_window_s * NS_PER_S) as i64;
-        while state
-            .rest_window
-            .front()
-            .is_some_and(|(t, _)| input.time_ns - t > window_ns)
-        {
-            state.rest_window.pop_front();
-        }
-        if state.rest_window.len() > REST_WINDOW_MAX_POINTS {
-            // Keep every other point: the slope survives, memory stays bounded.
-            state.rest_window = state.rest_window.iter().copied().step_by(2).collect();
-        }
-    } else {
-        state.rest_since_ns = None;
-        state.settled_since_ns = None;
-        state.rest_window.clear();
-    }
-    let resting = state
-        .rest_since_ns
-        .is_some_and(|since| (input.time_ns - since) as f64 / NS_PER_S >= config.rest_min_s);
-    let dv_dt_mv_per_min = if resting {
-        slope_mv_per_min(&state.rest_window, config.settle_window_s)
-    } else {
-        None
-    };
-    let calm = dv_dt_mv_per_min.is_some_and(|s| s.abs() < config.settle_mv_per_min);
-    if calm {
-        state.settled_since_ns.get_or_insert(input.time_ns);
-    } else {
-        state.settled_since_ns = None;
-    }
-    let rest_settled = state
-        .settled_since_ns
-        .is_some_and(|since| (input.time_ns - since) as f64 / NS_PER_S >= config.settle_hold_s);
-
-    // Fused SOC.
-    let fused = fuse_soc(
-        config,
-        state,
-        evaluation.soc,
-        input,
-        rest_settled,
-        compensated,
-    );
-    let (soc_counted, soc_fused, soc_method) = (fused.counted, fused.fused, fused.method);
-    // Under current the terminal voltage also carries polarisation, which
-    // V − I·R cannot remove; between rests the counted SOC is the better
-    // witness of the equilibrium potential (common practice), so the
-    // thermodynamics use the model OCV at that SOC.
-    let mut evaluation = evaluation;
-    if soc_method == SocMethod::Counted
-        && let (Some(counted), Some(i)) = (soc_counted, input.amps)
-        && i.abs() >= config.rest_current_amps
-    {
-        let ctx = electrochem::NernstContext {
-            n_electrons: chemistry.n_electrons,
-            e_standard_volts: evaluation.thermo.e_standard_volts,
-            temp_k,
-        };
-        if let Some(ocv_cell) = chemistry.soc_model.ocv_volts(counted, ctx) {
-            evaluation.thermo = electrochem::thermo::thermo_state(
-                chemistry.n_electrons,
-                chemistry.standard_potential(),
-                ocv_cell,
-                temp_k,
-                config.equilibrium_tolerance_volts,
-            );
-            ocv_source = OcvSource::CountedSoc;
-        }
-    }
-    let soc_rate_per_s = match (input.amps, config.capacity_ah > 0.0) {
-        (Some(i), true) => {
-            let eff = if i > 0.0 {
-                config.coulombic_efficiency
-            } else {
-                1.0
-            };
-            Some(i * eff / (3600.0 * config.capacity_ah))
-        }
+    let compensated_stack_volts = match (resistance_ohm, input.amps) {
+        (Some(r), Some(i)) if i != 0.0 => Some(input.stack_volts - i * r),
         _ => None,
     };
+    let flowing = input
+        .amps
+        .is_some_and(|i| i.abs() >= config.rest_current_amps);
+    let cell_terminal = input.stack_volts / cells;
+    let rest = track_rest(config, state, input.time_ns, cell_terminal, input.amps);
 
-    let direction = match input.amps {
-        Some(i) if i >= config.rest_current_amps => cycles::Direction::Charge,
-        Some(i) if i <= -config.rest_current_amps => cycles::Direction::Discharge,
-        _ => cycles::Direction::Rest,
+    // The model reads SOC only off an open-circuit voltage: the terminal
+    // voltage with no current, V − I·R under current.
+    let model_stack_volts = if flowing {
+        compensated_stack_volts
+    } else {
+        Some(input.stack_volts)
     };
+    let request = |stack_volts| EvalRequest {
+        stack_volts,
+        cells_in_series: config.cells_in_series.max(1),
+        temp_k,
+        equilibrium_tolerance_volts: config.equilibrium_tolerance_volts,
+    };
+    let at_model = electrochem::evaluate(
+        chemistry,
+        request(model_stack_volts.unwrap_or(input.stack_volts)),
+    )?;
+    let soc_model = model_stack_volts.and(at_model.soc);
+    let anchor_by_resistance = compensated_stack_volts.is_some() && config.resistance_ohm.is_some();
+    let fused = fuse_soc(config, state, soc_model, input, rest.settled, anchor_by_resistance);
+    let counted_ocv = fused
+        .counted
+        .filter(|_| fused.method == SocMethod::Counted)
+        .and_then(|soc| model_ocv_cell_volts(chemistry, soc, at_model.thermo.e_standard_volts, temp_k));
+    let (ocv_source, ocv_cell_volts) = open_circuit(OpenCircuitClues {
+        config,
+        temp_k,
+        cell_terminal,
+        has_current: input.amps.is_some(),
+        flowing,
+        counted_ocv,
+        compensated_cell_volts: compensated_stack_volts.map(|v| v / cells),
+    });
+    let mut evaluation = at_model;
+    if ocv_cell_volts != evaluation.thermo.cell_volts {
+        evaluation.thermo = electrochem::thermo::thermo_state(
+            chemistry.n_electrons,
+            chemistry.standard_potential(),
+            ocv_cell_volts,
+            temp_k,
+            config.equilibrium_tolerance_volts,
+        );
+    }
+    let driving_force_volts = driving_force(ocv_source, flowing, cell_terminal, ocv_cell_volts, counted_ocv);
     let cycle_closed = state.cycles.observe(cycles::Observation {
         time_ns: input.time_ns,
-        direction,
+        direction: direction_of(config, input.amps),
         cell_volts: cell_terminal,
-        delta_g_kj_per_mol: evaluation.thermo.delta_g_kj_per_mol,
-        soc: soc_fused,
+        delta_g_kj_per_mol: ocv_source
+            .known()
+            .then_some(evaluation.thermo.delta_g_kj_per_mol),
+        soc: fused.fused,
         charge_in_ah: state.charge_in_ah,
         charge_out_ah: state.charge_out_ah,
         energy_in_wh: state.energy_in_wh,
@@ -506,17 +439,19 @@ pub fn step(
 
     Ok(Estimate {
         temp_k,
-        cell_volts_used: evaluation.thermo.cell_volts,
+        cell_volts_used: ocv_cell_volts,
         ocv_source,
+        driving_force_volts,
+        soc_model,
         resistance_ohm,
-        soc_counted,
+        soc_counted: fused.counted,
         soc_counted_unclamped: fused.counted_unclamped,
-        soc_fused,
-        soc_method,
-        resting,
-        rest_settled,
-        dv_dt_mv_per_min,
-        soc_rate_per_s,
+        soc_fused: fused.fused,
+        soc_method: fused.method,
+        resting: rest.resting,
+        rest_settled: rest.settled,
+        dv_dt_mv_per_min: rest.dv_dt_mv_per_min,
+        soc_rate_per_s: soc_rate_per_s(config, input.amps),
         charge_ah: state.charge_ah,
         energy_wh: state.energy_wh,
         gap,
@@ -525,12 +460,220 @@ pub fn step(
     })
 }
 
+/// Resistance from a current step: ΔV/ΔI across a short interval (the
+/// current-interrupt method).
+fn sample_resistance(config: &EstimatorConfig, state: &mut EstimatorState, input: EstimatorInput, dt_s: f64) {
+    let (Some(i_now), Some(i_prev)) = (input.amps, state.last_amps) else {
+        return;
+    };
+    let di = i_now - i_prev;
+    if !(dt_s > 0.0 && dt_s <= config.step_window_s && di.abs() >= config.step_min_amps) {
+        return;
+    }
+    let sample = (input.stack_volts - state.last_stack_volts) / di;
+    if !(sample.is_finite() && sample > 0.0) {
+        return;
+    }
+    let r = state.resistance.get_or_insert(ResistanceEstimate {
+        ohm: sample,
+        uncertainty_ohm: 0.0,
+        samples: 0,
+        last_sample_ns: input.time_ns,
+    });
+    if r.samples > 0 {
+        let diff = sample - r.ohm;
+        r.ohm += RESISTANCE_EWMA_ALPHA * diff;
+        let var =
+            (1.0 - RESISTANCE_EWMA_ALPHA) * (r.uncertainty_ohm.powi(2) + RESISTANCE_EWMA_ALPHA * diff * diff);
+        r.uncertainty_ohm = var.sqrt();
+    }
+    r.samples += 1;
+    r.last_sample_ns = input.time_ns;
+}
+
+/// Coulomb and energy counting by the trapezoid rule.
+fn integrate(config: &EstimatorConfig, state: &mut EstimatorState, input: EstimatorInput, dt_s: f64) {
+    let (Some(i_now), Some(i_prev)) = (input.amps, state.last_amps) else {
+        return;
+    };
+    let dq_ah = 0.5 * (i_now + i_prev) * dt_s / 3600.0;
+    let de_wh = 0.5 * (input.stack_volts * i_now + state.last_stack_volts * i_prev) * dt_s / 3600.0;
+    state.charge_ah += dq_ah;
+    state.energy_wh += de_wh;
+    let stored_delta_ah = if dq_ah >= 0.0 {
+        state.charge_in_ah += dq_ah;
+        dq_ah * config.coulombic_efficiency
+    } else {
+        state.charge_out_ah -= dq_ah;
+        dq_ah
+    };
+    if de_wh >= 0.0 {
+        state.energy_in_wh += de_wh;
+    } else {
+        state.energy_out_wh -= de_wh;
+    }
+    state.stored_charge_ah += stored_delta_ah;
+}
+
+/// Where a reading stands in a rest.
+struct RestState {
+    resting: bool,
+    settled: bool,
+    dv_dt_mv_per_min: Option<f64>,
+}
+
+/// Rest detection and relaxation: a rest is no current for `rest_min_s`,
+/// settled once |dV/dt| stays under the threshold for `settle_hold_s`.
+fn track_rest(
+    config: &EstimatorConfig,
+    state: &mut EstimatorState,
+    time_ns: i64,
+    cell_terminal: f64,
+    amps: Option<f64>,
+) -> RestState {
+    let no_current = amps.is_some_and(|i| i.abs() < config.rest_current_amps);
+    if no_current {
+        state.rest_since_ns.get_or_insert(time_ns);
+        state.rest_window.push_back((time_ns, cell_terminal));
+        let window_ns = (config.settle_window_s * NS_PER_S) as i64;
+        while state
+            .rest_window
+            .front()
+            .is_some_and(|(t, _)| time_ns - t > window_ns)
+        {
+            state.rest_window.pop_front();
+        }
+        if state.rest_window.len() > REST_WINDOW_MAX_POINTS {
+            // Keep every other point: the slope survives, memory stays bounded.
+            state.rest_window = state.rest_window.iter().copied().step_by(2).collect();
+        }
+    } else {
+        state.rest_since_ns = None;
+        state.settled_since_ns = None;
+        state.rest_window.clear();
+    }
+    let held = |since: Option<i64>, hold_s: f64| {
+        since.is_some_and(|since| (time_ns - since) as f64 / NS_PER_S >= hold_s)
+    };
+    let resting = held(state.rest_since_ns, config.rest_min_s);
+    let dv_dt_mv_per_min = if resting {
+        slope_mv_per_min(&state.rest_window, config.settle_window_s)
+    } else {
+        None
+    };
+    if dv_dt_mv_per_min.is_some_and(|s| s.abs() < config.settle_mv_per_min) {
+        state.settled_since_ns.get_or_insert(time_ns);
+    } else {
+        state.settled_since_ns = None;
+    }
+    RestState {
+        resting,
+        settled: held(state.settled_since_ns, config.settle_hold_s),
+        dv_dt_mv_per_min,
+    }
+}
+
+fn model_ocv_cell_volts(chemistry: &Chemistry, soc: f64, e_standard_volts: f64, temp_k: f64) -> Option<f64> {
+    let ctx = electrochem::NernstContext {
+        n_electrons: chemistry.n_electrons,
+        e_standard_volts,
+        temp_k,
+    };
+    chemistry.soc_model.ocv_volts(soc, ctx)
+}
+
+/// What is known about a reading's open-circuit voltage.
+struct OpenCircuitClues<'a> {
+    config: &'a EstimatorConfig,
+    temp_k: f64,
+    cell_terminal: f64,
+    has_current: bool,
+    flowing: bool,
+    /// The model's OCV at the anchored, counted SOC.
+    counted_ocv: Option<f64>,
+    compensated_cell_volts: Option<f64>,
+}
+
+/// The equilibrium voltage a reading's thermodynamics use, and its source.
+/// A hydrogen–oxygen cell's comes from its temperature and gases (its open
+/// circuit voltage sits below it: crossover); a battery's, under current,
+/// from the counted SOC (which carries the polarisation V − I·R leaves
+/// in: common practice), else V − I·R; with neither it is unknown.
+fn open_circuit(c: OpenCircuitClues) -> (OcvSource, f64) {
+    if let Some(gas) = &c.config.water_gas {
+        return (
+            OcvSource::Reversible,
+            electrochem::hydrogen::reversible_cell_volts(c.temp_k, gas),
+        );
+    }
+    if !c.has_current {
+        return (OcvSource::Terminal, c.cell_terminal);
+    }
+    if !c.flowing {
+        return (OcvSource::Rest, c.cell_terminal);
+    }
+    if let Some(ocv) = c.counted_ocv {
+        return (OcvSource::CountedSoc, ocv);
+    }
+    match c.compensated_cell_volts {
+        Some(v) => (OcvSource::OhmicCompensated, v),
+        None => (OcvSource::None, c.cell_terminal),
+    }
+}
+
+/// η = V − E_eq per cell. At rest the terminal voltage is its own
+/// estimate, so η is known only against the counted SOC's OCV (the
+/// relaxation still to come).
+fn driving_force(
+    source: OcvSource,
+    flowing: bool,
+    cell_terminal: f64,
+    ocv_cell_volts: f64,
+    counted_ocv: Option<f64>,
+) -> Option<f64> {
+    match source {
+        OcvSource::None => None,
+        OcvSource::Terminal | OcvSource::Rest if !flowing => counted_ocv.map(|ocv| cell_terminal - ocv),
+        _ => Some(cell_terminal - ocv_cell_volts),
+    }
+}
+
+fn direction_of(config: &EstimatorConfig, amps: Option<f64>) -> cycles::Direction {
+    match amps {
+        Some(i) if i >= config.rest_current_amps => cycles::Direction::Charge,
+        Some(i) if i <= -config.rest_current_amps => cycles::Direction::Discharge,
+        _ => cycles::Direction::Rest,
+    }
+}
+
+/// dSOC/dt from the current, per second, when the capacity is known.
+fn soc_rate_per_s(config: &EstimatorConfig, amps: Option<f64>) -> Option<f64> {
+    let i = amps.filter(|_| config.capacity_ah > 0.0)?;
+    let efficiency = if i > 0.0 {
+        config.coulombic_efficiency
+    } else {
+        1.0
+    };
+    Some(i * efficiency / (3600.0 * config.capacity_ah))
+}
+
 /// The SOC of one reading, with how it was found.
 struct FusedSoc {
     counted: Option<f64>,
     counted_unclamped: Option<f64>,
     fused: Option<f64>,
     method: SocMethod,
+}
+
+impl FusedSoc {
+    fn without_count(fused: Option<f64>, method: SocMethod) -> FusedSoc {
+        FusedSoc {
+            counted: None,
+            counted_unclamped: None,
+            fused,
+            method,
+        }
+    }
 }
 
 /// Counted SOC between anchors. The model SOC of a reading anchors the
@@ -546,44 +689,31 @@ fn fuse_soc(
     model_soc: Option<f64>,
     input: EstimatorInput,
     rest_settled: bool,
-    compensated: bool,
+    anchor_by_resistance: bool,
 ) -> FusedSoc {
     let counting = config.capacity_ah > 0.0 && input.amps.is_some();
-    let Some(model) = model_soc else {
-        return FusedSoc {
-            counted: None,
-            counted_unclamped: None,
-            fused: None,
-            method: SocMethod::None,
-        };
-    };
     if !counting {
-        return FusedSoc {
-            counted: None,
-            counted_unclamped: None,
-            fused: Some(model),
-            method: SocMethod::Model,
+        let method = if model_soc.is_some() {
+            SocMethod::Model
+        } else {
+            SocMethod::None
         };
+        return FusedSoc::without_count(model_soc, method);
     }
-    let open_circuit_known =
-        rest_settled || (state.anchor.is_none() && compensated && config.resistance_ohm.is_some());
-    if open_circuit_known {
-        state.anchor = Some(SocAnchor {
-            soc: model,
-            stored_charge_ah: state.stored_charge_ah,
-            time_ns: input.time_ns,
-        });
+    if let Some(model) = model_soc {
+        let open_circuit_known = rest_settled || (state.anchor.is_none() && anchor_by_resistance);
+        if open_circuit_known {
+            state.anchor = Some(SocAnchor {
+                soc: model,
+                stored_charge_ah: state.stored_charge_ah,
+                time_ns: input.time_ns,
+            });
+        }
     }
     let Some(anchor) = state.anchor else {
-        return FusedSoc {
-            counted: None,
-            counted_unclamped: None,
-            fused: None,
-            method: SocMethod::Unanchored,
-        };
+        return FusedSoc::without_count(None, SocMethod::Unanchored);
     };
-    let unclamped =
-        anchor.soc + (state.stored_charge_ah - anchor.stored_charge_ah) / config.capacity_ah;
+    let unclamped = anchor.soc + (state.stored_charge_ah - anchor.stored_charge_ah) / config.capacity_ah;
     let counted = unclamped.clamp(0.0, 1.0);
     FusedSoc {
         counted: Some(counted),

@@ -99,7 +99,14 @@ fn constructed_cycle_efficiencies_are_exact() {
         gap_limit_s: 10.0,
         ..EstimatorConfig::for_channel(1, 10.0, 298.15)
     };
-    let mut inputs = Vec::new();
+    // A test starts from rest (1 ns before the charge: nothing counted);
+    // a run whose first reading is under current is a partial cycle.
+    let mut inputs = vec![EstimatorInput {
+        time_ns: -1,
+        stack_volts: 1.1,
+        amps: Some(0.0),
+        temp_k: None,
+    }];
     for k in 0..=3600 {
         inputs.push(EstimatorInput {
             time_ns: k * S,
@@ -228,18 +235,25 @@ fn first_reading_step_zero_capacity_and_missing_current() {
     )
     .unwrap();
     assert_eq!(first.resistance_ohm, None);
-    assert_eq!(first.ocv_source, OcvSource::Terminal);
-    // Under 5 A with no known resistance the voltage is no OCV: unknown.
+    // Under 5 A with no known resistance the voltage is no OCV: ΔG, Q and
+    // SOC are unknown, not read off the terminal voltage.
+    assert_eq!(first.ocv_source, OcvSource::None);
+    assert_eq!(first.delta_g_kj_per_mol(), None);
+    assert_eq!(first.soc_model, None);
+    assert_eq!(first.driving_force_volts, None);
     assert_eq!(first.soc_method, SocMethod::Unanchored);
     assert_eq!(first.soc_fused, None);
-    // Zero capacity: counting still runs, but no counted SOC.
+    // Zero capacity: counting still runs, but no counted SOC; under 1 A
+    // with no resistance there is no OCV to read SOC from, at rest there is.
     let cfg0 = EstimatorConfig::for_channel(1, 0.0, 298.15);
     let (_, out) = feed(&c, &cfg0, &constant(Some(1.0), 1.05, 60, 1));
-    assert!(
-        out.iter()
-            .all(|e| e.soc_counted.is_none() && e.soc_method == SocMethod::Model)
-    );
-    assert!(out.iter().all(|e| e.soc_fused.is_some_and(f64::is_finite)));
+    assert!(out.iter().all(|e| e.soc_counted.is_none()
+        && e.soc_fused.is_none()
+        && e.soc_method == SocMethod::None));
+    let (_, out) = feed(&c, &cfg0, &constant(Some(0.0), 1.05, 60, 1));
+    assert!(out.iter().all(|e| e.soc_method == SocMethod::Model
+        && e.soc_fused.is_some_and(f64::is_finite)
+        && e.ocv_source == OcvSource::Rest));
     // Missing current: model SOC only, nothing counted, never NaN.
     let (state, out) = feed(&c, &cfg, &constant(None, 1.05, 60, 1));
     assert_eq!(state.charge_ah, 0.0);

@@ -5,7 +5,9 @@ use super::status::invalid;
 use crate::alerts::{AlertKind, AlertRules, Threshold};
 use crate::channel::ChannelDef;
 use crate::electrochem;
-use crate::estimator::CurrentSign;
+use crate::electrochem::builtin::WATER_CELL_ID;
+use crate::electrochem::hydrogen::{self, GasConditions};
+use crate::estimator::{CurrentSign, CycleRecord, OcvSource};
 use crate::ingest::RawReading;
 use crate::pb;
 use crate::store::{AlertEvent, AlertRow, EventKind, ReadingRow, RunRow, flags};
@@ -55,6 +57,27 @@ pub fn channel_to_pb(def: &ChannelDef, run_id: i64) -> pb::Channel {
         faradaic_efficiency: def.faradaic_efficiency,
         description: def.description.clone(),
         run_id: run_id as u64,
+        gas: def.gas.map(|g| pb::GasConditions {
+            h2_side_bar_abs: g.h2_side_bar_abs,
+            o2_side_bar_abs: g.o2_side_bar_abs,
+            o2_dry_fraction: g.o2_dry_fraction,
+            saturated: g.saturated,
+            water_activity: g.water_activity,
+        }),
+        active_area_cm2: def.active_area_cm2,
+    }
+}
+
+/// Gas conditions from the wire: zeros mean the defaults.
+pub fn gas_from_pb(g: &pb::GasConditions) -> GasConditions {
+    let or = |v: f64, d: f64| if v == 0.0 { d } else { v };
+    let d = GasConditions::default();
+    GasConditions {
+        h2_side_bar_abs: or(g.h2_side_bar_abs, d.h2_side_bar_abs),
+        o2_side_bar_abs: or(g.o2_side_bar_abs, d.o2_side_bar_abs),
+        o2_dry_fraction: or(g.o2_dry_fraction, d.o2_dry_fraction),
+        saturated: g.saturated,
+        water_activity: or(g.water_activity, d.water_activity),
     }
 }
 
@@ -86,6 +109,71 @@ fn mode_to_pb(row: &ReadingRow, run: &RunRow) -> i32 {
     }) as i32
 }
 
+fn ocv_source_to_pb(source: OcvSource) -> i32 {
+    (match source {
+        OcvSource::Terminal => pb::OcvSource::Terminal,
+        OcvSource::Rest => pb::OcvSource::Rest,
+        OcvSource::OhmicCompensated => pb::OcvSource::OhmicCompensated,
+        OcvSource::CountedSoc => pb::OcvSource::CountedSoc,
+        OcvSource::Reversible => pb::OcvSource::Reversible,
+        OcvSource::None => pb::OcvSource::None,
+    }) as i32
+}
+
+/// The channel definition a run was computed with (runs before it was
+/// stored: none, and the figures that need it use defaults).
+fn run_definition(run: &RunRow) -> Option<ChannelDef> {
+    serde_json::from_str(run.definition_json.as_deref()?).ok()
+}
+
+/// An electrolyser's or fuel cell's figures for a stored reading.
+pub fn hydrogen_to_pb(row: &ReadingRow, run: &RunRow, temp_k: f64) -> Option<pb::HydrogenFigures> {
+    if run.chemistry_id != WATER_CELL_ID {
+        return None;
+    }
+    let def = run_definition(run);
+    let facts = hydrogen::StackFacts {
+        gas: def.as_ref().map(ChannelDef::water_gas).unwrap_or_default(),
+        resistance_ohm: def.as_ref().and_then(|d| d.resistance_ohm),
+        faradaic_efficiency: def.as_ref().map_or(1.0, |d| d.faradaic_efficiency),
+        active_area_cm2: def.as_ref().and_then(|d| d.active_area_cm2),
+    };
+    let rest_amps = def
+        .as_ref()
+        .map_or(1e-3, |d| d.estimator_config().rest_current_amps);
+    let f = hydrogen::figures(
+        hydrogen::StackReading {
+            stack_volts: row.volts,
+            amps: row.amps.unwrap_or(0.0),
+            cells_in_series: run.cells_in_series,
+            temp_k,
+        },
+        &facts,
+        rest_amps,
+    );
+    Some(pb::HydrogenFigures {
+        reversible_v: f.reversible_volts,
+        thermoneutral_hhv_v: f.thermoneutral_hhv_volts,
+        thermoneutral_lhv_v: f.thermoneutral_lhv_volts,
+        overpotential_v: f.overpotential_volts,
+        overpotential_ir_free_v: f.overpotential_ir_free_volts,
+        voltage_efficiency_hhv: f.voltage_efficiency_hhv,
+        voltage_efficiency_lhv: f.voltage_efficiency_lhv,
+        heat_w: f.heat_w,
+        h2_rate_mol_per_s: f.h2_rate_mol_per_s,
+        h2_rate_normal_litres_per_min: f.h2_rate_normal_litres_per_min,
+        h2_rate_kg_per_h: f.h2_rate_kg_per_h,
+        specific_energy_kwh_per_kg: f.specific_energy_kwh_per_kg,
+        current_density_a_per_cm2: f.current_density_a_per_cm2,
+        area_specific_resistance_ohm_cm2: f.area_specific_resistance_ohm_cm2,
+        breach: (match f.breach {
+            None => pb::BoundBreach::Unspecified,
+            Some(hydrogen::BoundBreach::Reversible) => pb::BoundBreach::Reversible,
+            Some(hydrogen::BoundBreach::Thermoneutral) => pb::BoundBreach::Thermoneutral,
+        }) as i32,
+    })
+}
+
 /// Recomputes the cheap derived values from a stored row and its run.
 pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading {
     let derived = run.map(|run| {
@@ -100,18 +188,34 @@ pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading
             temp_k,
             run.equilibrium_tolerance_v,
         );
+        let source = flags::ocv_source(row.flags);
+        let known = source.known();
+        let cell_terminal = row.volts / f64::from(run.cells_in_series.max(1));
+        // At rest the terminal voltage is its own estimate: η is not known.
+        let driving_force_v = matches!(
+            source,
+            OcvSource::OhmicCompensated | OcvSource::CountedSoc | OcvSource::Reversible
+        )
+        .then(|| cell_terminal - row.cell_volts_used);
         pb::DerivedState {
             cell_volts: row.cell_volts_used,
-            ohmic_compensated: row.flags & (flags::OCV_OHMIC | flags::OCV_COUNTED) != 0,
+            ohmic_compensated: !matches!(
+                source,
+                OcvSource::Terminal | OcvSource::Rest | OcvSource::None
+            ),
             temp_k,
             e_standard_v: t.e_standard_volts,
-            delta_g_kj_per_mol: t.delta_g_kj_per_mol,
+            delta_g_kj_per_mol: known.then_some(t.delta_g_kj_per_mol),
             delta_g_standard_kj_per_mol: t.delta_g_standard_kj_per_mol,
-            ln_q: t.ln_q,
-            log10_q: t.log10_q(),
+            ln_q: known.then_some(t.ln_q),
+            log10_q: known.then(|| t.log10_q()),
             log10_k: t.log10_k(),
-            affinity_ln_k_over_q: t.affinity_ln_k_over_q,
-            state: state_to_pb(t.state),
+            affinity_ln_k_over_q: known.then_some(t.affinity_ln_k_over_q),
+            state: if known {
+                state_to_pb(t.state)
+            } else {
+                pb::ReactionState::Unspecified as i32
+            },
             soc_model: row.soc_model,
             soc_clamped: row.flags & flags::SOC_CLAMPED != 0,
             soc_fused: row.soc_fused,
@@ -124,6 +228,12 @@ pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading
             rest_settled: row.flags & flags::REST_SETTLED != 0,
             out_of_order: row.flags & flags::OUT_OF_ORDER != 0,
             soc_model_name: run.soc_model.clone(),
+            ocv_source: ocv_source_to_pb(source),
+            driving_force_v,
+            driving_force_kj_per_mol: driving_force_v.map(|eta| {
+                f64::from(run.n_electrons) * electrochem::constants::FARADAY_C_PER_MOL * eta / 1e3
+            }),
+            hydrogen: hydrogen_to_pb(row, run, temp_k),
         }
     });
     pb::StoredReading {
@@ -148,6 +258,7 @@ fn kind_to_pb(k: AlertKind) -> i32 {
         AlertKind::TemperatureLimit => pb::AlertKind::TemperatureLimit,
         AlertKind::SilentRig => pb::AlertKind::SilentRig,
         AlertKind::Timeline => pb::AlertKind::Timeline,
+        AlertKind::DrivingForceSpent => pb::AlertKind::DrivingForceSpent,
     }) as i32
 }
 
@@ -225,6 +336,8 @@ pub fn rules_to_pb(r: &AlertRules) -> pb::AlertRules {
         max_temp_c: r.max_temp_c,
         silent_interval_multiple: r.silent_interval_multiple,
         silent_min_s: r.silent_min_s,
+        driving_force_cell_volts: Some(threshold_to_pb(&r.driving_force_cell_volts)),
+        driving_force_after_stop_s: Some(r.driving_force_after_stop_s),
     }
 }
 
@@ -256,9 +369,40 @@ pub fn rules_from_pb(r: pb::AlertRules) -> Result<AlertRules, Status> {
         max_temp_c: r.max_temp_c,
         silent_interval_multiple: r.silent_interval_multiple,
         silent_min_s: r.silent_min_s,
+        driving_force_cell_volts: match r.driving_force_cell_volts {
+            // Older clients know no such rule: they get the default.
+            None => AlertRules::defaults_for(0.0, 1.0).driving_force_cell_volts,
+            t => threshold_from_pb("driving_force_cell_volts", t)?,
+        },
+        driving_force_after_stop_s: r.driving_force_after_stop_s.unwrap_or(
+            AlertRules::defaults_for(0.0, 1.0).driving_force_after_stop_s,
+        ),
     };
     rules
         .validate()
         .map_err(|m| Status::invalid_argument(format!("rules.{m}")))?;
     Ok(rules)
+}
+
+pub fn cycle_to_pb(run_id: i64, c: &CycleRecord) -> pb::Cycle {
+    pb::Cycle {
+        run_id: run_id as u64,
+        index: c.index,
+        start_unix_ns: c.start_ns,
+        end_unix_ns: c.end_ns,
+        charge_in_ah: c.charge_in_ah,
+        charge_out_ah: c.charge_out_ah,
+        energy_in_wh: c.energy_in_wh,
+        energy_out_wh: c.energy_out_wh,
+        coulombic_efficiency: c.coulombic_efficiency,
+        energy_efficiency: c.energy_efficiency,
+        voltage_efficiency: c.voltage_efficiency,
+        mean_delta_g_charge_kj_per_mol: c.mean_delta_g_charge_kj_per_mol,
+        mean_delta_g_discharge_kj_per_mol: c.mean_delta_g_discharge_kj_per_mol,
+        start_soc: c.start_soc,
+        end_soc: c.end_soc,
+        open: c.open,
+        partial: c.partial,
+        discharge_only: c.discharge_only,
+    }
 }

@@ -252,6 +252,8 @@ impl pb::channel_service_server::ChannelService for Api {
                 c.faradaic_efficiency
             },
             description: c.description,
+            gas: c.gas.as_ref().map(convert::gas_from_pb),
+            active_area_cm2: c.active_area_cm2,
         };
         let (run_id, new_run) = self.hub.put_channel(def.clone()).await?;
         tracing::info!(channel_id = %def.channel_id, run_id, new_run, "channel defined");
@@ -747,12 +749,14 @@ impl pb::history_service_server::HistoryService for Api {
             .filter(|_| g.def.capacity_ah > 0.0);
         let is_h2 = g.chemistry.id == crate::electrochem::builtin::WATER_CELL_ID;
         let h2 = is_h2.then(|| estimator::hydrogen_account(&g.est, &g.est_config));
-        let voltage_efficiency = match (is_h2, latest.as_ref(), g.chemistry.thermoneutral_volts()) {
-            (true, Some(r), Some(tn)) if r.amps.is_some_and(|i| i > 0.0) => {
-                estimator::driven_voltage_efficiency(tn, r.volts / f64::from(g.def.cells_in_series))
-            }
-            _ => None,
-        };
+        let latest_pb = latest
+            .as_ref()
+            .map(|r| stored_to_pb(r, runs.get(&r.run_id)));
+        // On the HHV basis at the reading's temperature.
+        let voltage_efficiency = latest_pb
+            .as_ref()
+            .and_then(|r| r.derived.as_ref()?.hydrogen.as_ref()?.voltage_efficiency_hhv)
+            .filter(|_| latest.as_ref().is_some_and(|r| r.amps.is_some_and(|i| i > 0.0)));
         let estimator_pb = pb::EstimatorState {
             resistance_ohm,
             resistance_uncertainty_ohm: uncertainty,
@@ -780,9 +784,7 @@ impl pb::history_service_server::HistoryService for Api {
         };
         Ok(Response::new(pb::GetChannelStateResponse {
             channel: Some(channel_to_pb(&g.def, g.run_id)),
-            latest: latest
-                .as_ref()
-                .map(|r| stored_to_pb(r, runs.get(&r.run_id))),
+            latest: latest_pb,
             estimator: Some(estimator_pb),
             last_seen_unix_ns: g.last_time_ns,
         }))
@@ -793,29 +795,18 @@ impl pb::history_service_server::HistoryService for Api {
         request: Request<pb::ListCyclesRequest>,
     ) -> Result<Response<pb::ListCyclesResponse>, Status> {
         let _principal = self.authorize(&request, Permission::Read, "ListCycles")?;
-        let (_, key) = self.key_of(&request.into_inner().channel_id)?;
+        let (rt, key) = self.key_of(&request.into_inner().channel_id)?;
         let rows = store::list_cycles(&self.hub.store.reader, key).await?;
-        let mut cycles = Vec::with_capacity(rows.len());
+        let mut cycles = Vec::with_capacity(rows.len() + 1);
         for (run_id, json) in rows {
             let c: estimator::CycleRecord = serde_json::from_str(&json)
                 .map_err(|e| Status::internal(format!("stored cycle: {e}")))?;
-            cycles.push(pb::Cycle {
-                run_id: run_id as u64,
-                index: c.index,
-                start_unix_ns: c.start_ns,
-                end_unix_ns: c.end_ns,
-                charge_in_ah: c.charge_in_ah,
-                charge_out_ah: c.charge_out_ah,
-                energy_in_wh: c.energy_in_wh,
-                energy_out_wh: c.energy_out_wh,
-                coulombic_efficiency: c.coulombic_efficiency,
-                energy_efficiency: c.energy_efficiency,
-                voltage_efficiency: c.voltage_efficiency,
-                mean_delta_g_charge_kj_per_mol: c.mean_delta_g_charge_kj_per_mol,
-                mean_delta_g_discharge_kj_per_mol: c.mean_delta_g_discharge_kj_per_mol,
-                start_soc: c.start_soc,
-                end_soc: c.end_soc,
-            });
+            cycles.push(convert::cycle_to_pb(run_id, &c));
+        }
+        // The cycle still running lives in the channel's state, not the store.
+        let g = rt.lock().expect("channel state poisoned");
+        if let Some(open) = g.est.cycles.peek(&estimator::Counters::of(&g.est)) {
+            cycles.push(convert::cycle_to_pb(g.run_id, &open));
         }
         Ok(Response::new(pb::ListCyclesResponse { cycles }))
     }

@@ -11,7 +11,7 @@ use crate::channel::{
     ChannelDef, MAX_READING_ABS_AMPS, MAX_READING_TEMP_C, MIN_READING_TEMP_C, shown,
 };
 use crate::electrochem::{Chemistry, Registry};
-use crate::estimator::{self, EstimatorConfig, EstimatorInput, EstimatorState, OcvSource};
+use crate::estimator::{self, EstimatorConfig, EstimatorInput, EstimatorState};
 use crate::store::{self, AlertEvent, ReadingRow, Store, StoreError, flags};
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex, RwLock};
@@ -245,6 +245,7 @@ impl Hub {
             Some(rt) => rt.lock().expect("channel state poisoned").def.run_key() != def.run_key(),
             None => true,
         };
+        let json = serde_json::to_string(&def).map_err(|e| StoreError::Corrupt(e.to_string()))?;
         let run = new_run.then(|| store::RunRow {
             run_id: 0,
             channel_key: 0,
@@ -256,8 +257,8 @@ impl Hub {
             default_temp_c: def.default_temp_c,
             equilibrium_tolerance_v: def.equilibrium_tolerance_mv / 1e3,
             soc_model: chemistry.soc_model.name().to_string(),
+            definition_json: Some(json.clone()),
         });
-        let json = serde_json::to_string(&def).map_err(|e| StoreError::Corrupt(e.to_string()))?;
         let (_, run_id) =
             store::put_channel(&self.store, &def.channel_id, &json, run, now_ns()).await?;
         match existing {
@@ -835,7 +836,8 @@ pub fn derive_batch(
             cell_volts_terminal: r.volts / cells,
             amps,
             temp_c: r.temp_c,
-            delta_g_kj_per_mol: est.evaluation.thermo.delta_g_kj_per_mol,
+            delta_g_kj_per_mol: est.delta_g_kj_per_mol(),
+            driving_force_volts: est.driving_force_volts,
             soc: est.soc_fused,
             charging: amps.is_some_and(|i| i >= rt.est_config.rest_current_amps),
             discharging: amps.is_some_and(|i| i <= -rt.est_config.rest_current_amps),
@@ -870,11 +872,7 @@ pub fn derive_batch(
         if est.gap {
             f |= flags::GAP_BEFORE;
         }
-        f |= match est.ocv_source {
-            OcvSource::Terminal => 0,
-            OcvSource::OhmicCompensated => flags::OCV_OHMIC,
-            OcvSource::CountedSoc => flags::OCV_COUNTED,
-        };
+        f |= flags::of_ocv_source(est.ocv_source);
         rows.push(ReadingRow {
             channel_key: rt.key,
             seq: r.seq,
@@ -884,7 +882,7 @@ pub fn derive_batch(
             amps,
             temp_c: r.temp_c,
             cell_volts_used: est.cell_volts_used,
-            soc_model: est.evaluation.soc,
+            soc_model: est.soc_model,
             soc_fused: est.soc_fused,
             charge_ah: est.charge_ah,
             energy_wh: est.energy_wh,

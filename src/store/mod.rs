@@ -296,6 +296,38 @@ pub mod flags {
     /// Operating mode from the current (neither bit: rest, or no current).
     pub const CHARGING: i64 = 256;
     pub const DISCHARGING: i64 = 512;
+    /// Open-circuit voltage source beyond the first two bits (none of the
+    /// five bits: the terminal voltage, no current reported).
+    pub const OCV_REST: i64 = 1024;
+    pub const OCV_REVERSIBLE: i64 = 2048;
+    /// Under current with no open-circuit estimate: thermodynamics absent.
+    pub const OCV_NONE: i64 = 4096;
+
+    use crate::estimator::OcvSource;
+
+    pub fn of_ocv_source(source: OcvSource) -> i64 {
+        match source {
+            OcvSource::Terminal => 0,
+            OcvSource::Rest => OCV_REST,
+            OcvSource::OhmicCompensated => OCV_OHMIC,
+            OcvSource::CountedSoc => OCV_COUNTED,
+            OcvSource::Reversible => OCV_REVERSIBLE,
+            OcvSource::None => OCV_NONE,
+        }
+    }
+
+    pub fn ocv_source(flags: i64) -> OcvSource {
+        [
+            (OCV_REST, OcvSource::Rest),
+            (OCV_OHMIC, OcvSource::OhmicCompensated),
+            (OCV_COUNTED, OcvSource::CountedSoc),
+            (OCV_REVERSIBLE, OcvSource::Reversible),
+            (OCV_NONE, OcvSource::None),
+        ]
+        .into_iter()
+        .find(|(bit, _)| flags & bit != 0)
+        .map_or(OcvSource::Terminal, |(_, source)| source)
+    }
 }
 
 /// The definition a run was computed with.
@@ -311,6 +343,8 @@ pub struct RunRow {
     pub default_temp_c: f64,
     pub equilibrium_tolerance_v: f64,
     pub soc_model: String,
+    /// The channel definition as JSON (runs since migration 0004).
+    pub definition_json: Option<String>,
 }
 
 #[derive(Debug, Clone, PartialEq)]
@@ -426,6 +460,7 @@ fn run_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<RunRow, StoreError> {
         default_temp_c: row.try_get("default_temp_c")?,
         equilibrium_tolerance_v: row.try_get("equilibrium_tolerance_v")?,
         soc_model: row.try_get("soc_model")?,
+        definition_json: row.try_get("definition_json")?,
     })
 }
 
@@ -518,7 +553,8 @@ async fn put_channel_in(
         Some(run) => {
             let run_id: i64 = sqlx::query(
                 "INSERT INTO runs (channel_key, started_ns, chemistry_id, n_electrons, e_standard_298_v, de_dt_v_per_k, \
-                 cells_in_series, default_temp_c, equilibrium_tolerance_v, soc_model) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING run_id",
+                 cells_in_series, default_temp_c, equilibrium_tolerance_v, soc_model, definition_json) \
+                 VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING run_id",
             )
             .bind(channel_key)
             .bind(now_ns)
@@ -530,6 +566,7 @@ async fn put_channel_in(
             .bind(run.default_temp_c)
             .bind(run.equilibrium_tolerance_v)
             .bind(&run.soc_model)
+            .bind(&run.definition_json)
             .fetch_one(&mut **tx)
             .await?
             .try_get("run_id")?;

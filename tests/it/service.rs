@@ -67,7 +67,7 @@ async fn stream_store_query_restart_resend() {
         },
     )
     .unwrap();
-    assert!((d.delta_g_kj_per_mol - core.thermo.delta_g_kj_per_mol).abs() < 1e-9);
+    assert!((d.delta_g_kj_per_mol.unwrap() - core.thermo.delta_g_kj_per_mol).abs() < 1e-9);
     assert!((d.log10_k - core.thermo.log10_k()).abs() < 1e-9);
     assert_eq!(d.soc_model, core.soc);
 

@@ -14,7 +14,8 @@ fn quiet(time_s: i64) -> RuleInput {
         cell_volts_terminal: 1.3,
         amps: Some(0.0),
         temp_c: Some(25.0),
-        delta_g_kj_per_mol: -125.0,
+        delta_g_kj_per_mol: Some(-125.0),
+        driving_force_volts: None,
         soc: Some(0.5),
         charging: false,
         discharging: false,
@@ -146,7 +147,7 @@ fn every_kind_from_a_constructed_sequence() {
     // Equilibrium: |ΔG| 0.5 kJ/mol for 10 s (hold 10 s) → raised at t = 10.
     let eq: Vec<_> = (0..=10)
         .map(|k| RuleInput {
-            delta_g_kj_per_mol: -0.5,
+            delta_g_kj_per_mol: Some(-0.5),
             ..quiet(k)
         })
         .collect();
