@@ -154,7 +154,7 @@ impl ChannelRuntime {
         ChannelRuntime {
             key,
             est_config: def.estimator_config(),
-            rules: AlertRules::defaults_for(chemistry.min_cell_volts, chemistry.max_cell_volts),
+            rules: AlertRules::for_chemistry(&chemistry),
             def,
             chemistry,
             run_id,
@@ -930,7 +930,7 @@ pub async fn load_runtime(
     let rules = match &row.rules_json {
         Some(json) => serde_json::from_str(json)
             .map_err(|e| StoreError::Corrupt(format!("rules of {}: {e}", row.channel_id)))?,
-        None => AlertRules::defaults_for(chemistry.min_cell_volts, chemistry.max_cell_volts),
+        None => AlertRules::for_chemistry(&chemistry),
     };
     let resume = store::load_resume_state(&store.writer, row.channel_key).await?;
     Ok(restore_runtime(
@@ -987,3 +987,6 @@ pub fn restore_runtime(
         usual_arrival_interval_s: 0.0,
     }
 }
+
+#[cfg(test)]
+mod tests;

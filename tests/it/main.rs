@@ -11,3 +11,4 @@ mod hostile;
 mod metrics;
 mod security;
 mod service;
+mod truth;

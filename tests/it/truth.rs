@@ -1,0 +1,118 @@
+//! What the service says about cells under current, through the real API:
+//! open and half cycles, an electrolyser's figures. Outside references are
+//! named beside each value.
+
+use crate::harness::*;
+use gibbsline::pb;
+use gibbsline::pb::history_service_client::HistoryServiceClient;
+use gibbsline::pb::ingest_service_client::IngestServiceClient;
+
+const S: i64 = 1_000_000_000;
+
+fn steps(channel: &str, t0: i64, seqs: std::ops::Range<u64>, volts: f64, amps: f64) -> pb::ReadingBatch {
+    pb::ReadingBatch {
+        channel_id: channel.into(),
+        batch_id: seqs.start,
+        readings: seqs
+            .map(|s| reading(s, t0 + s as i64 * S, volts, Some(amps)))
+            .collect(),
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn cycles_list_the_open_cycle_and_half_cycles() {
+    let (_dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    put_channel(&ch, channel_def("cyc-1", "vanadium-redox")).await;
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    let t0 = now_ns() - 1_000 * S;
+    // The run begins mid-discharge (a resumed test), then charges 100 s at
+    // 1 A, then discharges 50 s at 1 A and is still discharging.
+    send_batches(
+        &mut ingest,
+        vec![
+            steps("cyc-1", t0, 1..51, 1.30, -1.0),
+            steps("cyc-1", t0, 51..151, 1.45, 1.0),
+            steps("cyc-1", t0, 151..201, 1.30, -1.0),
+        ],
+    )
+    .await;
+    let cycles = HistoryServiceClient::new(ch.clone())
+        .list_cycles(pb::ListCyclesRequest {
+            channel_id: "cyc-1".into(),
+        })
+        .await
+        .unwrap()
+        .into_inner()
+        .cycles;
+    assert_eq!(cycles.len(), 2, "{cycles:?}");
+    let half = &cycles[0];
+    assert!(half.discharge_only && half.partial && !half.open, "{half:?}");
+    assert_eq!(half.charge_in_ah, 0.0);
+    assert_eq!(half.coulombic_efficiency, None);
+    let open = &cycles[1];
+    assert!(open.open && !open.partial && !open.discharge_only, "{open:?}");
+    // Trapezoid rule over 1 s steps: 99 intervals at 1 A from seq 51 to
+    // 150; the steps across a sign change (−1 A to +1 A) net to zero.
+    let charge_ah = 99.0 / 3600.0;
+    assert!((open.charge_in_ah - charge_ah).abs() < 1e-9, "{}", open.charge_in_ah);
+    assert!(open.charge_out_ah > 0.0);
+    // An open cycle's efficiencies are what they are so far.
+    assert!(open.coulombic_efficiency.unwrap() < 1.0);
+    server.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_electrolyser_reports_its_reversible_voltage_efficiency_and_hydrogen_rate() {
+    let (_dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    let mut def = channel_def("pem-1", "hydrogen-oxygen");
+    def.cells_in_series = 2;
+    def.capacity_ah = 0.0;
+    def.default_temp_c = 60.0;
+    def.resistance_ohm = Some(0.012);
+    def.active_area_cm2 = Some(25.0);
+    def.gas = Some(pb::GasConditions {
+        saturated: true,
+        ..Default::default()
+    });
+    put_channel(&ch, def).await;
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    let t0 = now_ns() - 100 * S;
+    let mut batch = steps("pem-1", t0, 1..11, 3.4, 20.0);
+    for r in &mut batch.readings {
+        r.temp_c = Some(60.0);
+    }
+    send_batches(&mut ingest, vec![batch]).await;
+    let state = HistoryServiceClient::new(ch.clone())
+        .get_channel_state(pb::GetChannelStateRequest {
+            channel_id: "pem-1".into(),
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    let d = state.latest.unwrap().derived.unwrap();
+    assert_eq!(d.ocv_source, pb::OcvSource::Reversible as i32);
+    assert_eq!(d.operating_mode, pb::OperatingMode::Electrolysis as i32);
+    let h = d.hydrogen.unwrap();
+    // Cantera 3.2, saturated gases at 1 atm, 60 °C: E_rev 1.1950 V, E_tn
+    // (HHV) 1.4752 V (tests/reference/water_cell_cantera.py).
+    assert!((h.reversible_v - 1.1950).abs() < 1e-3, "{}", h.reversible_v);
+    assert!((d.cell_volts - h.reversible_v).abs() < 1e-12);
+    assert!((h.thermoneutral_hhv_v - 1.4752).abs() < 1e-3);
+    assert!((d.driving_force_v.unwrap() - (1.7 - h.reversible_v)).abs() < 1e-9);
+    // Faraday's law: 2 cells · 20 A / (2F) = 2.07285e-4 mol/s.
+    assert!((h.h2_rate_mol_per_s - 2.07285e-4).abs() < 1e-9);
+    assert!((h.current_density_a_per_cm2.unwrap() - 0.8).abs() < 1e-12);
+    assert!((h.voltage_efficiency_hhv.unwrap() - h.thermoneutral_hhv_v / 1.7).abs() < 1e-12);
+    assert_eq!(h.breach, pb::BoundBreach::Unspecified as i32);
+    // Specific energy: 1.7 V · 26.59 kWh/(kg·V) ≈ 45.2 kWh/kg, above the
+    // 39.4 kWh/kg HHV bound.
+    let kwh = h.specific_energy_kwh_per_kg.unwrap();
+    assert!(kwh > 39.4 && (kwh - 45.2).abs() < 0.1, "{kwh}");
+    let e = state.estimator.unwrap();
+    assert_eq!(e.voltage_efficiency, h.voltage_efficiency_hhv);
+    server.stop().await;
+}
