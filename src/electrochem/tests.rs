@@ -35,7 +35,7 @@ fn every_builtin_validates_and_is_listed() {
 /// typed from memory of that table, tolerance 2 mV).
 #[test]
 fn standard_potentials_against_crc_series() {
-    let rows: [(&str, f64, &str); 6] = [
+    let rows: [(&str, f64, &str); 5] = [
         (
             "daniell",
             0.3419 - (-0.7618),
@@ -55,11 +55,6 @@ fn standard_potentials_against_crc_series() {
             "zinc-bromine",
             1.0873 - (-0.7618),
             "CRC: Br2(aq)/Br- 1.0873, Zn2+/Zn -0.7618",
-        ),
-        (
-            "lead-acid",
-            1.6913 - (-0.3588),
-            "CRC: PbO2/PbSO4 1.6913, PbSO4/Pb -0.3588",
         ),
         ("hydrogen-oxygen", 1.229, "CRC: O2/H2O 1.229, H+/H2 0"),
     ];
@@ -115,6 +110,26 @@ fn vanadium_proton_term_matters() {
     let thermal = constants::thermal_volts(298.15);
     let ideal_soc = 1.0 / (1.0 + (-(mid.thermo.cell_volts - 1.246) / (2.0 * thermal)).exp());
     assert!((ideal_soc - 0.83).abs() < 0.01, "{ideal_soc}");
+}
+
+/// E° and ΔS° must describe one written reaction. From the NBS tables
+/// (Wagman 1982, values from memory): the bisulfate form gives E° and
+/// ΔS° both; the sulfate form's E° (the CRC series) pairs with a ΔS°
+/// six times larger, so mixing the two forms is caught here.
+#[test]
+fn lead_acid_potential_and_entropy_belong_to_one_reaction() {
+    let f = crate::electrochem::constants::FARADAY_C_PER_MOL;
+    // ΔfG°, kJ/mol: PbSO4 −813.14, H2O(l) −237.13, PbO2 −217.33, HSO4− −755.91.
+    let dg_bisulfate = 2.0 * -813.14 + 2.0 * -237.13 - (-217.33 + 2.0 * -755.91);
+    // S°, J/(mol K): PbSO4 148.5, H2O(l) 69.91, Pb 64.81, PbO2 68.6, HSO4− 131.8.
+    let ds_bisulfate = 2.0 * 148.5 + 2.0 * 69.91 - (64.81 + 68.6 + 2.0 * 131.8);
+    let c = chem("lead-acid");
+    assert!(c.reaction.contains("HSO4-"));
+    assert!((c.e_standard_298_volts - (-dg_bisulfate * 1e3 / (2.0 * f))).abs() < 1e-3);
+    assert!((c.de_dt_volts_per_k - ds_bisulfate / (2.0 * f)).abs() < 1e-6);
+    // The sulfate form (CRC: PbO2/PbSO4 1.6913, PbSO4/Pb −0.3588 V) is a
+    // different reaction: 125 mV higher.
+    assert!(((1.6913 + 0.3588) - c.e_standard_298_volts - 0.1255).abs() < 2e-3);
 }
 
 #[test]
