@@ -194,7 +194,11 @@ impl ChannelDef {
         if let Some(a) = self.active_area_cm2
             && !(a.is_finite() && a > 0.0 && a <= 1e7)
         {
-            return Err(err("active_area_cm2", shown(a), "must be above 0 and at most 1e7 cm²"));
+            return Err(err(
+                "active_area_cm2",
+                shown(a),
+                "must be above 0 and at most 1e7 cm²",
+            ));
         }
         match self.e_standard_override_v {
             Some(e) if !e.is_finite() => Err(err("e_standard_override_v", e, "must be finite")),

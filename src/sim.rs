@@ -1,8 +1,9 @@
 //! A simulated cell for demos, benchmarks and tests with known truth.
 //!
-//! Terminal voltage = OCV(SOC, T) of the chemistry + I·R_ohmic + a
-//! first-order polarisation (R_p with time constant τ) + Gaussian noise;
-//! SOC follows the current exactly. Pure and deterministic for a seed: time
+//! Terminal voltage = OCV(SOC, T) of the chemistry (a water cell: its
+//! reversible voltage with saturated gases at 1 atm) + activation
+//! overpotential + I·R_ohmic + a first-order polarisation (R_p with time
+//! constant τ) + Gaussian noise; SOC follows the current exactly. Pure and deterministic for a seed: time
 //! advances only when the caller says so.
 
 use crate::electrochem::{self, Chemistry, NernstContext};
@@ -46,6 +47,10 @@ pub struct SimCellParams {
     /// Temperature swing (K) with a period of `temp_period_s`.
     pub temp_swing_k: f64,
     pub temp_period_s: f64,
+    /// Activation overpotential per cell, Butler–Volmer with symmetric
+    /// transfer: b·asinh(I / 2·i0). `exchange_amps` 0 = none.
+    pub tafel_volts: f64,
+    pub exchange_amps: f64,
 }
 
 /// True state of the simulated cell.
@@ -93,6 +98,14 @@ impl SimCell {
     /// Open-circuit stack voltage at the current truth.
     pub fn ocv_stack_volts(&self, chemistry: &Chemistry) -> f64 {
         let temp_k = self.temp_k();
+        let cells = f64::from(self.params.cells_in_series);
+        if chemistry.id == electrochem::builtin::WATER_CELL_ID {
+            let gas = electrochem::hydrogen::GasConditions {
+                saturated: true,
+                ..Default::default()
+            };
+            return electrochem::hydrogen::reversible_cell_volts(temp_k, &gas) * cells;
+        }
         let ctx = NernstContext {
             n_electrons: chemistry.n_electrons,
             e_standard_volts: chemistry.standard_potential().at(temp_k),
@@ -102,7 +115,16 @@ impl SimCell {
             .soc_model
             .ocv_volts(self.soc, ctx)
             .unwrap_or(ctx.e_standard_volts);
-        cell * f64::from(self.params.cells_in_series)
+        cell * cells
+    }
+
+    /// Activation overpotential of the stack at `amps`.
+    fn activation_stack_volts(&self, amps: f64) -> f64 {
+        let p = &self.params;
+        if p.exchange_amps <= 0.0 {
+            return 0.0;
+        }
+        p.tafel_volts * (amps / (2.0 * p.exchange_amps)).asinh() * f64::from(p.cells_in_series)
     }
 
     /// Advances `dt_s` at charge-positive current `amps` and measures.
@@ -120,7 +142,11 @@ impl SimCell {
         let ocv = self.ocv_stack_volts(chemistry);
         let noise = p.noise_volts * self.rng.normal();
         SimSample {
-            stack_volts: ocv + amps * p.resistance_ohm + self.polarisation_volts + noise,
+            stack_volts: ocv
+                + self.activation_stack_volts(amps)
+                + amps * p.resistance_ohm
+                + self.polarisation_volts
+                + noise,
             amps,
             temp_k: self.temp_k(),
             true_soc: self.soc,

@@ -53,7 +53,8 @@ impl AlertKind {
             AlertKind::VoltageLimit | AlertKind::CurrentLimit | AlertKind::TemperatureLimit => {
                 Severity::Critical
             }
-            AlertKind::RestSettled => Severity::Info,
+            // A state worth knowing (a taper done, a cell relaxed), not a fault.
+            AlertKind::RestSettled | AlertKind::DrivingForceSpent => Severity::Info,
             _ => Severity::Warning,
         }
     }
@@ -258,7 +259,10 @@ impl AlertRules {
             ("max_temp_c", self.max_temp_c),
             ("silent_interval_multiple", self.silent_interval_multiple),
             ("silent_min_s", self.silent_min_s),
-            ("driving_force_after_stop_s", self.driving_force_after_stop_s),
+            (
+                "driving_force_after_stop_s",
+                self.driving_force_after_stop_s,
+            ),
         ] {
             if !v.is_finite() {
                 return Err(format!("{name} = {v}: must be finite"));
@@ -507,8 +511,7 @@ fn end_of_charge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
         }
     }
     if volts_rule.enabled {
-        let (raise, below_clear) =
-            compare(&volts_rule, Side::AtOrAbove, input.cell_volts_terminal);
+        let (raise, below_clear) = compare(&volts_rule, Side::AtOrAbove, input.cell_volts_terminal);
         if input.charging && raise && !past {
             (value, threshold, unit) = (input.cell_volts_terminal, volts_rule.raise_at, "V");
         }
@@ -558,8 +561,7 @@ fn end_of_discharge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check
         }
     }
     if volts_rule.enabled {
-        let (raise, above_clear) =
-            compare(&volts_rule, Side::AtOrBelow, input.cell_volts_terminal);
+        let (raise, above_clear) = compare(&volts_rule, Side::AtOrBelow, input.cell_volts_terminal);
         past |= input.discharging && raise;
         clear &= above_clear || !input.discharging;
     }

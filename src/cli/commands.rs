@@ -386,7 +386,9 @@ fn thermo_text(d: &pb::DerivedState) -> String {
             ocv_source_name(d.ocv_source),
             d.log10_k
         ),
-        _ => format!("ΔG and Q unknown under current (no rest, resistance or anchored SOC yet){eta}"),
+        _ => {
+            format!("ΔG and Q unknown under current (no rest, resistance or anchored SOC yet){eta}")
+        }
     }
 }
 

@@ -2,9 +2,9 @@
 //! simulated Harbour Lane rig in one process, talking real gRPC over
 //! loopback, with a live table and the alerts as they arrive.
 
-use crate::cli::commands::mode_name;
 use super::client;
 use super::rig::{self, RigOptions, RigStats};
+use crate::cli::commands::mode_name;
 use gibbsline::pb;
 use gibbsline::pb::alert_service_client::AlertServiceClient;
 use gibbsline::pb::history_service_client::HistoryServiceClient;
@@ -42,6 +42,7 @@ pub fn kind_name(code: i32) -> &'static str {
         Ok(pb::AlertKind::TemperatureLimit) => "temperature limit",
         Ok(pb::AlertKind::SilentRig) => "silent rig",
         Ok(pb::AlertKind::Timeline) => "timeline",
+        Ok(pb::AlertKind::DrivingForceSpent) => "driving force spent",
         _ => "unknown",
     }
 }

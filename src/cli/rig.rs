@@ -3,6 +3,7 @@
 //! disconnect, so a restart loses nothing and doubles nothing.
 
 use super::client;
+use gibbsline::electrochem::builtin::WATER_CELL_ID;
 use gibbsline::electrochem::{Chemistry, Registry};
 use gibbsline::pb;
 use gibbsline::pb::channel_service_client::ChannelServiceClient;
@@ -47,6 +48,8 @@ pub fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
         temp_k: temp_c + 273.15,
         temp_swing_k: swing,
         temp_period_s: period,
+        tafel_volts: 0.0,
+        exchange_amps: 0.0,
     };
     let specs: Vec<(&str, &str, SimCellParams, f64, Drive, i32, &str)> = vec![
         (
@@ -54,7 +57,7 @@ pub fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
             "vanadium-redox",
             base(1, 2.0, 0.05, 0.02, 30.0, 1.0, 3600.0),
             0.80,
-            Drive::Cycling(CycleSchedule::new(2.0, 2.0, 0.04, 0.965, 600.0)),
+            Drive::Cycling(CycleSchedule::new(2.0, 2.0, 0.10, 0.96, 600.0)),
             pb::CurrentSign::ChargePositive as i32,
             "vanadium flow cell, 25 cm² felt electrodes",
         ),
@@ -63,7 +66,7 @@ pub fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
             "iron-chromium",
             base(1, 3.0, 0.03, 0.01, 45.0, 1.5, 2400.0),
             0.30,
-            Drive::Cycling(CycleSchedule::new(2.5, 2.5, 0.04, 0.9, 600.0)),
+            Drive::Cycling(CycleSchedule::new(2.5, 2.5, 0.10, 0.90, 600.0)),
             pb::CurrentSign::DischargePositive as i32,
             "iron–chromium flow cell; this instrument signs discharge positive",
         ),
@@ -72,14 +75,21 @@ pub fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
             "ocv-table-demo",
             base(4, 5.0, 0.02, 0.01, 25.0, 0.5, 3600.0),
             0.60,
-            Drive::Cycling(CycleSchedule::new(5.0, 5.0, 0.04, 0.965, 600.0)),
+            Drive::Cycling(CycleSchedule::new(5.0, 5.0, 0.08, 0.96, 600.0)),
             pb::CurrentSign::ChargePositive as i32,
             "four-cell module with the illustrative OCV table",
         ),
         (
             "hl-pem-stack",
             "hydrogen-oxygen",
-            base(2, 0.0, 0.004, 0.003, 65.0, 7.0, 3600.0),
+            // 25 cm² cells at 0.8 A/cm²: activation b = 60 mV, i0 = 0.05 A
+            // (0.36 V), ASR 0.15 Ω·cm² (0.12 V): about 1.7 V per cell at
+            // 65 °C, inside the 1.6–1.9 V of PEM practice.
+            SimCellParams {
+                tafel_volts: 0.060,
+                exchange_amps: 0.05,
+                ..base(2, 0.0, 0.012, 0.003, 65.0, 5.0, 3600.0)
+            },
             0.5,
             Drive::Constant(20.0),
             pb::CurrentSign::ChargePositive as i32,
@@ -108,6 +118,14 @@ pub fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
                         current_sign: sign,
                         default_temp_c: params.temp_k - 273.15,
                         description: description.into(),
+                        // The electrolyser: saturated product gases, known
+                        // ohmic resistance and area for iR-free figures.
+                        gas: (chem_id == WATER_CELL_ID).then(|| pb::GasConditions {
+                            saturated: true,
+                            ..Default::default()
+                        }),
+                        active_area_cm2: (chem_id == WATER_CELL_ID).then_some(25.0),
+                        resistance_ohm: (chem_id == WATER_CELL_ID).then_some(0.012),
                         ..Default::default()
                     },
                     chemistry,

@@ -234,8 +234,14 @@ impl ChemistrySpec {
             ));
         }
         let (discharge_cutoff, charge_cutoff) = ordered_pair(
-            ("discharge_cutoff_cell_volts", self.discharge_cutoff_cell_volts.unwrap_or(min_v)),
-            ("charge_cutoff_cell_volts", self.charge_cutoff_cell_volts.unwrap_or(max_v)),
+            (
+                "discharge_cutoff_cell_volts",
+                self.discharge_cutoff_cell_volts.unwrap_or(min_v),
+            ),
+            (
+                "charge_cutoff_cell_volts",
+                self.charge_cutoff_cell_volts.unwrap_or(max_v),
+            ),
         )?;
         let (min_temp_c, max_temp_c) = ordered_pair(
             ("min_temp_c", self.min_temp_c.unwrap_or(DEFAULT_MIN_TEMP_C)),

@@ -68,7 +68,11 @@ impl GasConditions {
         ];
         for (field, v) in positive {
             if !(v.is_finite() && v > 0.0 && v <= 1000.0) {
-                return Err((field, v, "must be an absolute pressure above 0 and at most 1000 bar"));
+                return Err((
+                    field,
+                    v,
+                    "must be an absolute pressure above 0 and at most 1000 bar",
+                ));
             }
         }
         for (field, v) in [
@@ -256,7 +260,11 @@ pub fn figures(reading: StackReading, facts: &StackFacts, rest_amps: f64) -> Hyd
             (cell_volts > 0.0).then(|| e_lhv / cell_volts),
         )
     } else if fuel_cell {
-        (e_rev - cell_volts, Some(cell_volts / e_hhv), Some(cell_volts / e_lhv))
+        (
+            e_rev - cell_volts,
+            Some(cell_volts / e_hhv),
+            Some(cell_volts / e_lhv),
+        )
     } else {
         (e_rev - cell_volts, None, None)
     };

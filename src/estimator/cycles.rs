@@ -42,7 +42,10 @@ pub struct SegmentSums {
 
 impl SegmentSums {
     fn mean_delta_g(&self) -> Option<f64> {
-        mean(self.delta_g_sum, self.delta_g_readings.unwrap_or(self.readings))
+        mean(
+            self.delta_g_sum,
+            self.delta_g_readings.unwrap_or(self.readings),
+        )
     }
 }
 

@@ -394,11 +394,20 @@ pub fn step(
     )?;
     let soc_model = model_stack_volts.and(at_model.soc);
     let anchor_by_resistance = compensated_stack_volts.is_some() && config.resistance_ohm.is_some();
-    let fused = fuse_soc(config, state, soc_model, input, rest.settled, anchor_by_resistance);
+    let fused = fuse_soc(
+        config,
+        state,
+        soc_model,
+        input,
+        rest.settled,
+        anchor_by_resistance,
+    );
     let counted_ocv = fused
         .counted
         .filter(|_| fused.method == SocMethod::Counted)
-        .and_then(|soc| model_ocv_cell_volts(chemistry, soc, at_model.thermo.e_standard_volts, temp_k));
+        .and_then(|soc| {
+            model_ocv_cell_volts(chemistry, soc, at_model.thermo.e_standard_volts, temp_k)
+        });
     let (ocv_source, ocv_cell_volts) = open_circuit(OpenCircuitClues {
         config,
         temp_k,
@@ -418,7 +427,13 @@ pub fn step(
             config.equilibrium_tolerance_volts,
         );
     }
-    let driving_force_volts = driving_force(ocv_source, flowing, cell_terminal, ocv_cell_volts, counted_ocv);
+    let driving_force_volts = driving_force(
+        ocv_source,
+        flowing,
+        cell_terminal,
+        ocv_cell_volts,
+        counted_ocv,
+    );
     let cycle_closed = state.cycles.observe(cycles::Observation {
         time_ns: input.time_ns,
         direction: direction_of(config, input.amps),
@@ -462,7 +477,12 @@ pub fn step(
 
 /// Resistance from a current step: ΔV/ΔI across a short interval (the
 /// current-interrupt method).
-fn sample_resistance(config: &EstimatorConfig, state: &mut EstimatorState, input: EstimatorInput, dt_s: f64) {
+fn sample_resistance(
+    config: &EstimatorConfig,
+    state: &mut EstimatorState,
+    input: EstimatorInput,
+    dt_s: f64,
+) {
     let (Some(i_now), Some(i_prev)) = (input.amps, state.last_amps) else {
         return;
     };
@@ -483,8 +503,8 @@ fn sample_resistance(config: &EstimatorConfig, state: &mut EstimatorState, input
     if r.samples > 0 {
         let diff = sample - r.ohm;
         r.ohm += RESISTANCE_EWMA_ALPHA * diff;
-        let var =
-            (1.0 - RESISTANCE_EWMA_ALPHA) * (r.uncertainty_ohm.powi(2) + RESISTANCE_EWMA_ALPHA * diff * diff);
+        let var = (1.0 - RESISTANCE_EWMA_ALPHA)
+            * (r.uncertainty_ohm.powi(2) + RESISTANCE_EWMA_ALPHA * diff * diff);
         r.uncertainty_ohm = var.sqrt();
     }
     r.samples += 1;
@@ -492,7 +512,12 @@ fn sample_resistance(config: &EstimatorConfig, state: &mut EstimatorState, input
 }
 
 /// Coulomb and energy counting by the trapezoid rule.
-fn integrate(config: &EstimatorConfig, state: &mut EstimatorState, input: EstimatorInput, dt_s: f64) {
+fn integrate(
+    config: &EstimatorConfig,
+    state: &mut EstimatorState,
+    input: EstimatorInput,
+    dt_s: f64,
+) {
     let (Some(i_now), Some(i_prev)) = (input.amps, state.last_amps) else {
         return;
     };
@@ -573,7 +598,12 @@ fn track_rest(
     }
 }
 
-fn model_ocv_cell_volts(chemistry: &Chemistry, soc: f64, e_standard_volts: f64, temp_k: f64) -> Option<f64> {
+fn model_ocv_cell_volts(
+    chemistry: &Chemistry,
+    soc: f64,
+    e_standard_volts: f64,
+    temp_k: f64,
+) -> Option<f64> {
     let ctx = electrochem::NernstContext {
         n_electrons: chemistry.n_electrons,
         e_standard_volts,
@@ -633,7 +663,9 @@ fn driving_force(
 ) -> Option<f64> {
     match source {
         OcvSource::None => None,
-        OcvSource::Terminal | OcvSource::Rest if !flowing => counted_ocv.map(|ocv| cell_terminal - ocv),
+        OcvSource::Terminal | OcvSource::Rest if !flowing => {
+            counted_ocv.map(|ocv| cell_terminal - ocv)
+        }
         _ => Some(cell_terminal - ocv_cell_volts),
     }
 }
@@ -713,7 +745,8 @@ fn fuse_soc(
     let Some(anchor) = state.anchor else {
         return FusedSoc::without_count(None, SocMethod::Unanchored);
     };
-    let unclamped = anchor.soc + (state.stored_charge_ah - anchor.stored_charge_ah) / config.capacity_ah;
+    let unclamped =
+        anchor.soc + (state.stored_charge_ah - anchor.stored_charge_ah) / config.capacity_ah;
     let counted = unclamped.clamp(0.0, 1.0);
     FusedSoc {
         counted: Some(counted),

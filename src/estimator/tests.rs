@@ -277,6 +277,8 @@ fn simulated_run_tracks_truth() {
         temp_k: 298.15,
         temp_swing_k: 0.0,
         temp_period_s: 0.0,
+        tafel_volts: 0.0,
+        exchange_amps: 0.0,
     };
     let mut cell = SimCell::new(params.clone(), 0.5, 7);
     let mut schedule = CycleSchedule::new(2.0, 2.0, 0.15, 0.85, 900.0);

@@ -374,9 +374,9 @@ pub fn rules_from_pb(r: pb::AlertRules) -> Result<AlertRules, Status> {
             None => AlertRules::defaults_for(0.0, 1.0).driving_force_cell_volts,
             t => threshold_from_pb("driving_force_cell_volts", t)?,
         },
-        driving_force_after_stop_s: r.driving_force_after_stop_s.unwrap_or(
-            AlertRules::defaults_for(0.0, 1.0).driving_force_after_stop_s,
-        ),
+        driving_force_after_stop_s: r
+            .driving_force_after_stop_s
+            .unwrap_or(AlertRules::defaults_for(0.0, 1.0).driving_force_after_stop_s),
     };
     rules
         .validate()

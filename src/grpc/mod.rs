@@ -755,8 +755,18 @@ impl pb::history_service_server::HistoryService for Api {
         // On the HHV basis at the reading's temperature.
         let voltage_efficiency = latest_pb
             .as_ref()
-            .and_then(|r| r.derived.as_ref()?.hydrogen.as_ref()?.voltage_efficiency_hhv)
-            .filter(|_| latest.as_ref().is_some_and(|r| r.amps.is_some_and(|i| i > 0.0)));
+            .and_then(|r| {
+                r.derived
+                    .as_ref()?
+                    .hydrogen
+                    .as_ref()?
+                    .voltage_efficiency_hhv
+            })
+            .filter(|_| {
+                latest
+                    .as_ref()
+                    .is_some_and(|r| r.amps.is_some_and(|i| i > 0.0))
+            });
         let estimator_pb = pb::EstimatorState {
             resistance_ohm,
             resistance_uncertainty_ohm: uncertainty,

@@ -65,6 +65,8 @@ fn a_constant_voltage_taper_raises_one_driving_force_alert() {
             temp_k: 298.15,
             temp_swing_k: 0.0,
             temp_period_s: 0.0,
+            tafel_volts: 0.0,
+            exchange_amps: 0.0,
         },
         0.3,
         7,
@@ -96,13 +98,21 @@ fn a_constant_voltage_taper_raises_one_driving_force_alert() {
             break;
         }
     }
-    assert!(taper_started.is_some(), "the charge reached the CV setpoint");
+    assert!(
+        taper_started.is_some(),
+        "the charge reached the CV setpoint"
+    );
     let mut changes = Vec::new();
     let mut etas = Vec::new();
     for batch in readings.chunks(500) {
         let wall_now_ns = batch.last().unwrap().time_unix_ns;
         let (derived, rejected) = derive_batch(&mut rt, batch, wall_now_ns);
-        assert!(rejected.is_empty(), "{} rejected: {:?}", rejected.len(), rejected.first());
+        assert!(
+            rejected.is_empty(),
+            "{} rejected: {:?}",
+            rejected.len(),
+            rejected.first()
+        );
         for row in &derived.rows {
             if row.amps.is_some_and(|i| i >= 0.05) {
                 etas.push((row.amps.unwrap(), row.volts - row.cell_volts_used));
@@ -167,9 +177,16 @@ fn an_electrolyser_uses_its_reversible_voltage() {
         T0,
     );
     let row = &derived.rows[0];
-    assert_eq!(flags::ocv_source(row.flags), estimator::OcvSource::Reversible);
+    assert_eq!(
+        flags::ocv_source(row.flags),
+        estimator::OcvSource::Reversible
+    );
     // Cantera 3.2, dry gases at 1 atm, 80 °C: 1.1832 V
     // (tests/reference/water_cell_cantera.py).
-    assert!((row.cell_volts_used - 1.1832).abs() < 1e-3, "{}", row.cell_volts_used);
+    assert!(
+        (row.cell_volts_used - 1.1832).abs() < 1e-3,
+        "{}",
+        row.cell_volts_used
+    );
     assert!(row.flags & flags::CHARGING != 0);
 }

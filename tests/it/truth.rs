@@ -9,7 +9,13 @@ use gibbsline::pb::ingest_service_client::IngestServiceClient;
 
 const S: i64 = 1_000_000_000;
 
-fn steps(channel: &str, t0: i64, seqs: std::ops::Range<u64>, volts: f64, amps: f64) -> pb::ReadingBatch {
+fn steps(
+    channel: &str,
+    t0: i64,
+    seqs: std::ops::Range<u64>,
+    volts: f64,
+    amps: f64,
+) -> pb::ReadingBatch {
     pb::ReadingBatch {
         channel_id: channel.into(),
         batch_id: seqs.start,
@@ -48,15 +54,25 @@ async fn cycles_list_the_open_cycle_and_half_cycles() {
         .cycles;
     assert_eq!(cycles.len(), 2, "{cycles:?}");
     let half = &cycles[0];
-    assert!(half.discharge_only && half.partial && !half.open, "{half:?}");
+    assert!(
+        half.discharge_only && half.partial && !half.open,
+        "{half:?}"
+    );
     assert_eq!(half.charge_in_ah, 0.0);
     assert_eq!(half.coulombic_efficiency, None);
     let open = &cycles[1];
-    assert!(open.open && !open.partial && !open.discharge_only, "{open:?}");
+    assert!(
+        open.open && !open.partial && !open.discharge_only,
+        "{open:?}"
+    );
     // Trapezoid rule over 1 s steps: 99 intervals at 1 A from seq 51 to
     // 150; the steps across a sign change (−1 A to +1 A) net to zero.
     let charge_ah = 99.0 / 3600.0;
-    assert!((open.charge_in_ah - charge_ah).abs() < 1e-9, "{}", open.charge_in_ah);
+    assert!(
+        (open.charge_in_ah - charge_ah).abs() < 1e-9,
+        "{}",
+        open.charge_in_ah
+    );
     assert!(open.charge_out_ah > 0.0);
     // An open cycle's efficiencies are what they are so far.
     assert!(open.coulombic_efficiency.unwrap() < 1.0);

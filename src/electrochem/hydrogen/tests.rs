@@ -35,7 +35,10 @@ fn reversible_voltage_against_cantera() {
         let e_dry = reversible_cell_volts(t, &one_atm(false));
         let e_sat = reversible_cell_volts(t, &one_atm(true));
         assert!((e_dry - dry).abs() < 1e-3, "{t} K dry: {e_dry} vs {dry}");
-        assert!((e_sat - saturated).abs() < 1e-3, "{t} K saturated: {e_sat} vs {saturated}");
+        assert!(
+            (e_sat - saturated).abs() < 1e-3,
+            "{t} K saturated: {e_sat} vs {saturated}"
+        );
     }
 }
 
@@ -47,8 +50,16 @@ fn thermoneutral_voltage_varies_with_temperature() {
         (C60, 1.4752, 1.2550),
         (C80, 1.4716, 1.2560),
     ] {
-        assert!((thermoneutral_hhv_volts(t) - hhv).abs() < 1e-3, "{t} K HHV {}", thermoneutral_hhv_volts(t));
-        assert!((thermoneutral_lhv_volts(t) - lhv).abs() < 1e-3, "{t} K LHV {}", thermoneutral_lhv_volts(t));
+        assert!(
+            (thermoneutral_hhv_volts(t) - hhv).abs() < 1e-3,
+            "{t} K HHV {}",
+            thermoneutral_hhv_volts(t)
+        );
+        assert!(
+            (thermoneutral_lhv_volts(t) - lhv).abs() < 1e-3,
+            "{t} K LHV {}",
+            thermoneutral_lhv_volts(t)
+        );
     }
 }
 
@@ -93,7 +104,11 @@ fn faradays_law_for_the_hydrogen_rate() {
     // 20 A through 2 cells: 2·20/(2F) = 2.07285e-4 mol/s (Faraday's law);
     // · 22.414 L/mol · 60 = 0.27877 NL/min; · 2.01588 g/mol · 3.6 = 1.50430e-3 kg/h.
     let f = pem(3.4, 20.0);
-    assert!((f.h2_rate_mol_per_s - 2.07285e-4).abs() < 1e-9, "{}", f.h2_rate_mol_per_s);
+    assert!(
+        (f.h2_rate_mol_per_s - 2.07285e-4).abs() < 1e-9,
+        "{}",
+        f.h2_rate_mol_per_s
+    );
     assert!((f.h2_rate_normal_litres_per_min - 0.27877).abs() < 1e-5);
     assert!((f.h2_rate_kg_per_h - 1.50430e-3).abs() < 1e-8);
     // 1.7 V per cell: 1.4755/1.7 = 0.868 on HHV; heat 20·(3.4 − 2·1.4755) W.
