@@ -195,6 +195,13 @@ impl CycleSchedule {
         }
     }
 
+    /// Begins with a rest, as a test does to read the cell's open-circuit
+    /// voltage before the first charge.
+    pub fn resting_first(mut self) -> CycleSchedule {
+        self.phase = Phase::RestAfterDischarge;
+        self
+    }
+
     /// Current for the next step, given the true SOC now.
     pub fn amps(&mut self, soc: f64, dt_s: f64) -> f64 {
         self.phase_elapsed_s += dt_s;

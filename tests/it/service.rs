@@ -28,7 +28,9 @@ async fn stream_store_query_restart_resend() {
         channel_id: id.into(),
         batch_id: from,
         readings: (from..from + n)
-            .map(|s| reading(s, t0 + s as i64 * 1_000_000_000, volts, Some(0.5)))
+            // At rest: the terminal voltage is the open-circuit voltage, so
+            // the stored thermodynamics must equal the core's at that voltage.
+            .map(|s| reading(s, t0 + s as i64 * 1_000_000_000, volts, Some(0.0)))
             .collect(),
     };
     let acks = send_batches(
@@ -67,6 +69,7 @@ async fn stream_store_query_restart_resend() {
         },
     )
     .unwrap();
+    assert_eq!(d.ocv_source, pb::OcvSource::Rest as i32);
     assert!((d.delta_g_kj_per_mol.unwrap() - core.thermo.delta_g_kj_per_mol).abs() < 1e-9);
     assert!((d.log10_k - core.thermo.log10_k()).abs() < 1e-9);
     assert_eq!(d.soc_model, core.soc);
