@@ -714,19 +714,30 @@ fn refused_by_core(index: usize, seq: u64, e: impl std::fmt::Display) -> Rejecti
     }
 }
 
+/// What one batch's readings add up to while they are derived.
+#[derive(Default)]
+struct BatchParts {
+    rows: Vec<ReadingRow>,
+    maybe_dup: Vec<ReadingRow>,
+    changes: Vec<AlertChange>,
+    cycles: Vec<estimator::CycleRecord>,
+    /// A fresh reading moved the estimator on.
+    advanced: bool,
+    /// The highest seq moved (a late reading can raise it).
+    front_moved: bool,
+}
+
 /// The pure part of ingest for one batch, under the channel's lock.
 pub fn derive_batch(
     rt: &mut ChannelRuntime,
     readings: &[RawReading],
     wall_now_ns: i64,
 ) -> (DerivedBatch, Vec<Rejection>) {
-    let mut rows = Vec::with_capacity(readings.len());
-    let mut maybe_dup = Vec::new();
-    let mut changes = Vec::new();
-    let mut cycles = Vec::new();
+    let mut parts = BatchParts {
+        rows: Vec::with_capacity(readings.len()),
+        ..BatchParts::default()
+    };
     let mut rejected = Vec::new();
-    let mut advanced = false;
-    let mut front_moved = false;
     let mut timeline = TimelineTally::default();
     for (index, r) in readings.iter().enumerate() {
         let checked = check_reading(rt, r).and_then(|()| {
@@ -741,8 +752,6 @@ pub fn derive_batch(
             });
             continue;
         }
-        let amps = r.amps.map(|a| rt.def.current_sign.to_charge_positive(a));
-        let temp_k = r.temp_c.map(|t| t + 273.15);
         let new_seq = rt.max_seq.is_none_or(|m| r.seq > m);
         let fresh = new_seq && r.time_unix_ns > rt.last_time_ns;
         if new_seq && !fresh {
@@ -752,157 +761,176 @@ pub fn derive_batch(
             // came from a seq that jumped ahead of the rig's numbering.
             timeline.seq_behind += 1;
         }
-        if !fresh {
-            // A resend or a late reading: stored (if new) with its own
-            // thermodynamics, but kept out of the running counts and rules.
-            let ev = crate::electrochem::evaluate(
-                &rt.chemistry,
-                crate::electrochem::EvalRequest {
-                    stack_volts: r.volts,
-                    cells_in_series: rt.def.cells_in_series,
-                    temp_k: temp_k.unwrap_or(rt.est_config.default_temp_k),
-                    equilibrium_tolerance_volts: rt.est_config.equilibrium_tolerance_volts,
-                },
-            );
-            // Every reading must end stored, duplicate or rejected: one the
-            // core cannot evaluate is rejected with the core's reason.
-            let ev = match ev {
-                Ok(ev) => ev,
-                Err(e) => {
-                    rejected.push(refused_by_core(index, r.seq, e));
-                    continue;
-                }
-            };
-            // A late reading can carry a seq above every fresh one (its
-            // clock went back); it then raises the stored maximum, as the
-            // store's MAX(seq) will after a restart, so both agree on what
-            // the next reading is.
-            if rt.max_seq.is_some_and(|m| r.seq > m) {
-                rt.max_seq = Some(r.seq);
-                front_moved = true;
-            }
-            maybe_dup.push(ReadingRow {
-                channel_key: rt.key,
-                seq: r.seq,
-                run_id: rt.run_id,
-                time_ns: r.time_unix_ns,
-                volts: r.volts,
-                amps,
-                temp_c: r.temp_c,
-                cell_volts_used: ev.thermo.cell_volts,
-                soc_model: ev.soc,
-                soc_fused: ev.soc,
-                charge_ah: rt.est.charge_ah,
-                energy_wh: rt.est.energy_wh,
-                flags: flags::OUT_OF_ORDER
-                    | mode_flags(amps, rt.est_config.rest_current_amps)
-                    | if ev.soc_clamped {
-                        flags::SOC_CLAMPED
-                    } else {
-                        0
-                    },
-                soc_counted_unclamped: None,
-            });
-            continue;
-        }
-        let input = EstimatorInput {
-            time_ns: r.time_unix_ns,
-            stack_volts: r.volts,
-            amps,
-            temp_k,
+        let derived = if fresh {
+            derive_fresh(rt, r, &mut parts)
+        } else {
+            derive_late(rt, r, &mut parts)
         };
-        let est = match estimator::step(&rt.chemistry, &rt.est_config, &mut rt.est, input) {
-            Ok(e) => e,
-            Err(e) => {
-                rejected.push(refused_by_core(index, r.seq, e));
-                continue;
-            }
-        };
-        if rt.last_time_ns > 0 {
-            let dt_s = (r.time_unix_ns - rt.last_time_ns) as f64 / 1e9;
-            rt.usual_interval_s = if rt.usual_interval_s > 0.0 {
-                0.9 * rt.usual_interval_s + 0.1 * dt_s
-            } else {
-                dt_s
-            };
+        // Every reading must end stored, duplicate or rejected: one the
+        // core cannot evaluate is rejected with the core's reason.
+        if let Err(reason) = derived {
+            rejected.push(refused_by_core(index, r.seq, reason));
         }
-        rt.max_seq = Some(r.seq);
-        rt.last_time_ns = r.time_unix_ns;
-        advanced = true;
-        let cells = f64::from(rt.def.cells_in_series);
-        let rule_input = alerts::rules::RuleInput {
-            time_ns: r.time_unix_ns,
-            seq: r.seq,
-            cell_volts_terminal: r.volts / cells,
-            amps,
-            temp_c: r.temp_c,
-            delta_g_kj_per_mol: est.delta_g_kj_per_mol(),
-            driving_force_volts: est.driving_force_volts,
-            soc: est.soc_fused,
-            charging: amps.is_some_and(|i| i >= rt.est_config.rest_current_amps),
-            discharging: amps.is_some_and(|i| i <= -rt.est_config.rest_current_amps),
-            resting: est.resting,
-            dv_dt_mv_per_min: est.dv_dt_mv_per_min,
-            soc_rate_per_s: est.soc_rate_per_s,
-        };
-        changes.extend(alerts::rules::evaluate(
-            &rt.rules,
-            &mut rt.rule_state,
-            &rule_input,
-        ));
-        if let Some(c) = est.cycle_closed.clone() {
-            cycles.push(c);
-        }
-        let mut f = mode_flags(amps, rt.est_config.rest_current_amps);
-        if est
-            .soc_counted_unclamped
-            .is_some_and(|c| !(0.0..=1.0).contains(&c))
-        {
-            f |= flags::COUNT_CLAMPED;
-        }
-        if est.evaluation.soc_clamped {
-            f |= flags::SOC_CLAMPED;
-        }
-        if est.resting {
-            f |= flags::RESTING;
-        }
-        if est.rest_settled {
-            f |= flags::REST_SETTLED;
-        }
-        if est.gap {
-            f |= flags::GAP_BEFORE;
-        }
-        f |= flags::of_ocv_source(est.ocv_source);
-        rows.push(ReadingRow {
-            channel_key: rt.key,
-            seq: r.seq,
-            run_id: rt.run_id,
-            time_ns: r.time_unix_ns,
-            volts: r.volts,
-            amps,
-            temp_c: r.temp_c,
-            cell_volts_used: est.cell_volts_used,
-            soc_model: est.soc_model,
-            soc_fused: est.soc_fused,
-            charge_ah: est.charge_ah,
-            energy_wh: est.energy_wh,
-            flags: f,
-            soc_counted_unclamped: est.soc_counted_unclamped,
-        });
     }
-    changes.extend(timeline_change(rt, &timeline, advanced, wall_now_ns));
-    let estimator = (advanced || front_moved).then(|| snapshot_of(rt));
+    parts
+        .changes
+        .extend(timeline_change(rt, &timeline, parts.advanced, wall_now_ns));
+    let estimator = (parts.advanced || parts.front_moved).then(|| snapshot_of(rt));
     (
         DerivedBatch {
             channel_key: rt.key,
             run_id: rt.run_id,
-            rows,
-            maybe_dup,
-            changes,
-            cycles,
+            rows: parts.rows,
+            maybe_dup: parts.maybe_dup,
+            changes: parts.changes,
+            cycles: parts.cycles,
             estimator,
         },
         rejected,
+    )
+}
+
+/// A resend or a late reading: stored (if new) with its own
+/// thermodynamics, but kept out of the running counts and rules.
+fn derive_late(
+    rt: &mut ChannelRuntime,
+    r: &RawReading,
+    parts: &mut BatchParts,
+) -> Result<(), String> {
+    let amps = r.amps.map(|a| rt.def.current_sign.to_charge_positive(a));
+    let temp_k = r
+        .temp_c
+        .map_or(rt.est_config.default_temp_k, |t| t + 273.15);
+    let ev = crate::electrochem::evaluate(
+        &rt.chemistry,
+        crate::electrochem::EvalRequest {
+            stack_volts: r.volts,
+            cells_in_series: rt.def.cells_in_series,
+            temp_k,
+            equilibrium_tolerance_volts: rt.est_config.equilibrium_tolerance_volts,
+        },
+    )
+    .map_err(|e| e.to_string())?;
+    // A late reading can carry a seq above every fresh one (its clock went
+    // back); it then raises the stored maximum, as the store's MAX(seq)
+    // will after a restart, so both agree on what the next reading is.
+    if rt.max_seq.is_some_and(|m| r.seq > m) {
+        rt.max_seq = Some(r.seq);
+        parts.front_moved = true;
+    }
+    let clamped = if ev.soc_clamped {
+        flags::SOC_CLAMPED
+    } else {
+        0
+    };
+    parts.maybe_dup.push(ReadingRow {
+        channel_key: rt.key,
+        seq: r.seq,
+        run_id: rt.run_id,
+        time_ns: r.time_unix_ns,
+        volts: r.volts,
+        amps,
+        temp_c: r.temp_c,
+        cell_volts_used: ev.thermo.cell_volts,
+        soc_model: ev.soc,
+        soc_fused: ev.soc,
+        charge_ah: rt.est.charge_ah,
+        energy_wh: rt.est.energy_wh,
+        flags: flags::OUT_OF_ORDER | mode_flags(amps, rt.est_config.rest_current_amps) | clamped,
+        soc_counted_unclamped: None,
+    });
+    Ok(())
+}
+
+/// A reading past the front: the estimator and the alert rules move on.
+fn derive_fresh(
+    rt: &mut ChannelRuntime,
+    r: &RawReading,
+    parts: &mut BatchParts,
+) -> Result<(), String> {
+    let amps = r.amps.map(|a| rt.def.current_sign.to_charge_positive(a));
+    let input = EstimatorInput {
+        time_ns: r.time_unix_ns,
+        stack_volts: r.volts,
+        amps,
+        temp_k: r.temp_c.map(|t| t + 273.15),
+    };
+    let est = estimator::step(&rt.chemistry, &rt.est_config, &mut rt.est, input)
+        .map_err(|e| e.to_string())?;
+    advance_front(rt, r);
+    parts.advanced = true;
+    let deadband = rt.est_config.rest_current_amps;
+    let rule_input = alerts::rules::RuleInput {
+        time_ns: r.time_unix_ns,
+        seq: r.seq,
+        cell_volts_terminal: r.volts / f64::from(rt.def.cells_in_series),
+        amps,
+        temp_c: r.temp_c,
+        delta_g_kj_per_mol: est.delta_g_kj_per_mol(),
+        driving_force_volts: est.driving_force_volts,
+        soc: est.soc_fused,
+        charging: amps.is_some_and(|i| i >= deadband),
+        discharging: amps.is_some_and(|i| i <= -deadband),
+        resting: est.resting,
+        dv_dt_mv_per_min: est.dv_dt_mv_per_min,
+        soc_rate_per_s: est.soc_rate_per_s,
+    };
+    parts.changes.extend(alerts::rules::evaluate(
+        &rt.rules,
+        &mut rt.rule_state,
+        &rule_input,
+    ));
+    parts.cycles.extend(est.cycle_closed.clone());
+    parts.rows.push(ReadingRow {
+        channel_key: rt.key,
+        seq: r.seq,
+        run_id: rt.run_id,
+        time_ns: r.time_unix_ns,
+        volts: r.volts,
+        amps,
+        temp_c: r.temp_c,
+        cell_volts_used: est.cell_volts_used,
+        soc_model: est.soc_model,
+        soc_fused: est.soc_fused,
+        charge_ah: est.charge_ah,
+        energy_wh: est.energy_wh,
+        flags: fresh_flags(&est, amps, deadband),
+        soc_counted_unclamped: est.soc_counted_unclamped,
+    });
+    Ok(())
+}
+
+/// The front moves to a fresh reading; the usual interval follows it.
+fn advance_front(rt: &mut ChannelRuntime, r: &RawReading) {
+    if rt.last_time_ns > 0 {
+        let dt_s = (r.time_unix_ns - rt.last_time_ns) as f64 / 1e9;
+        rt.usual_interval_s = if rt.usual_interval_s > 0.0 {
+            0.9 * rt.usual_interval_s + 0.1 * dt_s
+        } else {
+            dt_s
+        };
+    }
+    rt.max_seq = Some(r.seq);
+    rt.last_time_ns = r.time_unix_ns;
+}
+
+/// The stored flags of a fresh reading.
+fn fresh_flags(est: &estimator::Estimate, amps: Option<f64>, deadband_amps: f64) -> i64 {
+    let count_clamped = est
+        .soc_counted_unclamped
+        .is_some_and(|c| !(0.0..=1.0).contains(&c));
+    [
+        (count_clamped, flags::COUNT_CLAMPED),
+        (est.evaluation.soc_clamped, flags::SOC_CLAMPED),
+        (est.resting, flags::RESTING),
+        (est.rest_settled, flags::REST_SETTLED),
+        (est.gap, flags::GAP_BEFORE),
+    ]
+    .into_iter()
+    .filter(|(set, _)| *set)
+    .fold(
+        mode_flags(amps, deadband_amps) | flags::of_ocv_source(est.ocv_source),
+        |f, (_, bit)| f | bit,
     )
 }
 
