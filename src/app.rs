@@ -5,17 +5,15 @@
 
 use crate::alerts::rules as alert_rules;
 use crate::electrochem::{Registry, chemistry::ChemistrySpec};
-use crate::grpc::Api;
-use crate::ingest::{self, Hub, Job, writer};
+use crate::grpc;
+use crate::ingest::{self, Hub, Job, hub::HubHandles, writer};
 use crate::pb;
 use crate::store::{self, Durability, Store};
-use std::collections::HashMap;
 use std::future::Future;
 use std::path::PathBuf;
-use std::sync::{Arc, Mutex, RwLock};
+use std::sync::{Arc, Mutex};
 use std::time::Duration;
 use tokio::net::TcpListener;
-use tokio::sync::{broadcast, mpsc};
 
 #[derive(Debug)]
 pub struct Config {
@@ -55,18 +53,8 @@ impl Config {
     }
 }
 
-/// Largest gRPC message sent, and accepted outside ingest: 16 MiB.
-pub const MAX_MESSAGE_BYTES: usize = 16 * 1024 * 1024;
-/// Largest ingest message accepted: 1 MiB. A full batch of 10,000 readings
-/// encodes to about 400 kB; the tighter bound keeps what a flood of
-/// streams can make the server decode at once small (see README, Operations).
-pub const MAX_INGEST_MESSAGE_BYTES: usize = 1024 * 1024;
 /// HTTP/2 streams one connection may have open at once.
 const MAX_STREAMS_PER_CONNECTION: u32 = 128;
-/// Alert events buffered for subscribers; a subscriber more than this far
-/// behind is told to resume from its last id.
-const EVENT_BUFFER: usize = 4096;
-
 #[derive(Debug, thiserror::Error)]
 pub enum AppError {
     #[error(transparent)]
@@ -90,50 +78,17 @@ pub async fn run(
     if let Ok(addr) = listener.local_addr() {
         store.note_holder(&addr.to_string());
     }
-    let mut registry = Registry::builtin();
-    for spec_json in store::list_chemistry_specs(&store.writer).await? {
-        if let Ok(spec) = serde_json::from_str::<ChemistrySpec>(&spec_json)
-            && let Ok(chem) = spec.validate(false)
-        {
-            let _ = registry.insert_user(chem);
-        }
-    }
-    for chem in config.extra_chemistries {
-        let spec_id = chem.id.clone();
-        registry
-            .insert_user(chem)
-            .map_err(|e| store::StoreError::Corrupt(format!("chemistry {spec_id}: {e}")))?;
-    }
-    let mut channels = HashMap::new();
-    for row in store::list_channels(&store.writer).await? {
-        let mut rt = ingest::load_runtime(&store, &registry, &row).await?;
-        rt.limits = config.limits.ingest();
-        channels.insert(row.channel_id.clone(), Arc::new(Mutex::new(rt)));
-    }
-    let (writer_tx, writer_rx) = mpsc::channel(writer::WRITER_QUEUE_JOBS);
-    let (events, _) = broadcast::channel(EVENT_BUFFER);
-    let (shutdown_tx, shutdown_rx) = tokio::sync::watch::channel(false);
-    let hub = Arc::new(Hub {
-        store: store.clone(),
-        registry: RwLock::new(registry),
-        channels: RwLock::new(channels),
-        writer: writer_tx,
-        events: events.clone(),
-        shutdown: shutdown_rx,
-        metrics: Arc::new(crate::metrics::Metrics::default()),
-        auth: crate::auth::TokenTable::new(&config.tokens).map_err(AppError::Config)?,
-        limits: config.limits.ingest(),
-    });
+    let registry = build_registry(&store, config.extra_chemistries).await?;
+    let (hub, handles) = Hub::open(store.clone(), registry, config.limits.ingest()).await?;
+    let HubHandles {
+        jobs: writer_rx,
+        shutdown: shutdown_tx,
+    } = handles;
     for entry in config.channels {
         let id = entry.def.channel_id.clone();
         hub.put_channel(entry.def).await?;
         if let Some(rules) = entry.rules {
-            let rt = hub.channel(&id)?;
-            let key = rt.lock().expect("channel state poisoned").key;
-            let json = serde_json::to_string(&rules)
-                .map_err(|e| store::StoreError::Corrupt(e.to_string()))?;
-            store::put_rules(&store, key, &json).await?;
-            rt.lock().expect("channel state poisoned").rules = rules;
+            hub.put_rules(&id, rules).await?;
         }
     }
     let metrics_task = config
@@ -143,15 +98,18 @@ pub async fn run(
     let writer_task = tokio::spawn(writer::run(
         store.clone(),
         writer_rx,
-        events,
-        hub.metrics.clone(),
+        hub.events(),
+        hub.metrics().clone(),
         writer_stop_rx,
     ));
     let silent_task = tokio::spawn(silent_watch(hub.clone()));
 
     let (health_reporter, health_service) = tonic_health::server::health_reporter();
     health_reporter
-        .set_serving::<pb::ingest_service_server::IngestServiceServer<Api>>()
+        .set_service_status(
+            grpc::INGEST_SERVICE_NAME,
+            tonic_health::ServingStatus::Serving,
+        )
         .await;
     health_reporter
         .set_service_status("", tonic_health::ServingStatus::Serving)
@@ -159,7 +117,7 @@ pub async fn run(
     let health_task = tokio::spawn(follow_storage_health(
         store.clone(),
         health_reporter.clone(),
-        hub.shutdown.clone(),
+        hub.shutdown_signal(),
     ));
     let reflection_v1 = tonic_reflection::server::Builder::configure()
         .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
@@ -172,14 +130,6 @@ pub async fn run(
         .build_v1alpha()
         .map_err(|e| AppError::Reflection(e.to_string()))?;
 
-    let api = Api::new(hub.clone(), config.limits);
-    macro_rules! limited {
-        ($server:ty) => {
-            <$server>::new(api.clone())
-                .max_decoding_message_size(MAX_MESSAGE_BYTES)
-                .max_encoding_message_size(MAX_MESSAGE_BYTES)
-        };
-    }
     let addr = listener.local_addr().ok();
     tracing::info!(?addr, db = %config.db_path.display(), "serving");
     let connection_idle = Duration::from_secs(config.limits.connection_idle_timeout_s);
@@ -205,26 +155,15 @@ pub async fn run(
         }
         builder = builder.tls_config(tls_config)?;
     }
-    let serve = builder
+    let tokens = crate::auth::TokenTable::new(&config.tokens).map_err(AppError::Config)?;
+    let router = builder
+        .layer(grpc::authz::AuthLayer::new(tokens))
         .add_service(health_service)
         .add_service(reflection_v1)
-        .add_service(reflection_v1alpha)
-        .add_service(limited!(
-            pb::channel_service_server::ChannelServiceServer<Api>
-        ))
-        .add_service(
-            pb::ingest_service_server::IngestServiceServer::new(api.clone())
-                .max_decoding_message_size(MAX_INGEST_MESSAGE_BYTES)
-                .max_encoding_message_size(MAX_MESSAGE_BYTES),
-        )
-        .add_service(limited!(
-            pb::history_service_server::HistoryServiceServer<Api>
-        ))
-        .add_service(limited!(
-            pb::chemistry_service_server::ChemistryServiceServer<Api>
-        ))
-        .add_service(limited!(pb::alert_service_server::AlertServiceServer<Api>))
-        .serve_with_incoming_shutdown(incoming, async move {
+        .add_service(reflection_v1alpha);
+    let serve = grpc::add_services(router, &hub, config.limits).serve_with_incoming_shutdown(
+        incoming,
+        async move {
             shutdown.await;
             tracing::info!("shutting down: health NOT_SERVING");
             let _ = shutdown_tx.send(true);
@@ -232,11 +171,15 @@ pub async fn run(
                 .set_service_status("", tonic_health::ServingStatus::NotServing)
                 .await;
             reporter
-                .set_not_serving::<pb::ingest_service_server::IngestServiceServer<Api>>()
+                .set_service_status(
+                    grpc::INGEST_SERVICE_NAME,
+                    tonic_health::ServingStatus::NotServing,
+                )
                 .await;
-        });
+        },
+    );
     let shutdown_budget = Duration::from_secs(config.limits.shutdown_timeout_s);
-    let result = serve_until_deadline(serve, hub.shutdown.clone(), shutdown_budget / 2).await;
+    let result = serve_until_deadline(serve, hub.shutdown_signal(), shutdown_budget / 2).await;
     silent_task.abort();
     health_task.abort();
     if let Some(t) = metrics_task {
@@ -246,7 +189,6 @@ pub async fn run(
     // so the writer's queue): the writer is told to stop, not left waiting
     // for every sender to go.
     let _ = writer_stop_tx.send(true);
-    drop(api);
     drop(hub);
     match tokio::time::timeout(shutdown_budget / 2, writer_task).await {
         Ok(Ok(Ok(()))) => tracing::info!("writer flushed"),
@@ -305,10 +247,7 @@ async fn follow_storage_health(
         };
         reporter.set_service_status("", status).await;
         reporter
-            .set_service_status(
-                <pb::ingest_service_server::IngestServiceServer<Api> as tonic::server::NamedService>::NAME,
-                status,
-            )
+            .set_service_status(grpc::INGEST_SERVICE_NAME, status)
             .await;
         if fault.is_some() {
             tokio::time::sleep(STORAGE_PROBE_INTERVAL).await;
@@ -330,14 +269,7 @@ async fn silent_watch(hub: Arc<Hub>) {
     loop {
         tick.tick().await;
         let now = ingest::now_ns();
-        let runtimes: Vec<_> = hub
-            .channels
-            .read()
-            .expect("channel map poisoned")
-            .values()
-            .cloned()
-            .collect();
-        for rt in runtimes {
+        for (_, rt) in hub.runtimes() {
             raise_if_silent(&hub, &rt, now).await;
         }
     }
@@ -438,20 +370,39 @@ async fn serve_metrics(listener: TcpListener, hub: Arc<Hub>) {
 
 pub fn render_metrics(hub: &Hub) -> String {
     let now = ingest::now_ns();
-    let mut ages: Vec<(String, f64)> = hub
-        .channels
-        .read()
-        .expect("channel map poisoned")
-        .iter()
+    let ages: Vec<(String, f64)> = hub
+        .runtimes()
+        .into_iter()
         .filter_map(|(id, rt)| {
             let last = rt
                 .lock()
                 .expect("channel state poisoned")
                 .last_arrival_wall_ns;
-            (last > 0).then(|| (id.clone(), (now - last) as f64 / 1e9))
+            (last > 0).then(|| (id, (now - last) as f64 / 1e9))
         })
         .collect();
-    ages.sort_by(|a, b| a.0.cmp(&b.0));
-    let depth = writer::WRITER_QUEUE_JOBS - hub.writer.capacity();
-    hub.metrics.render(depth, &ages)
+    hub.metrics().render(hub.writer_queue_depth(), &ages)
+}
+
+/// The built-in chemistries, those stored by earlier runs, and the
+/// config's own (which must not clash with a built-in).
+async fn build_registry(
+    store: &Store,
+    extra: Vec<crate::electrochem::Chemistry>,
+) -> Result<Registry, AppError> {
+    let mut registry = Registry::builtin();
+    for spec_json in store::list_chemistry_specs(&store.writer).await? {
+        if let Ok(spec) = serde_json::from_str::<ChemistrySpec>(&spec_json)
+            && let Ok(chem) = spec.validate(false)
+        {
+            let _ = registry.insert_user(chem);
+        }
+    }
+    for chem in extra {
+        let id = chem.id.clone();
+        registry
+            .insert_user(chem)
+            .map_err(|e| AppError::Config(format!("chemistry {id}: {e}")))?;
+    }
+    Ok(registry)
 }

@@ -2,6 +2,7 @@
 //! costs a relaxed add on the hot path, and nothing here ever blocks.
 
 use std::fmt::Write;
+use std::sync::Arc;
 use std::sync::atomic::{AtomicU64, Ordering::Relaxed};
 
 /// Upper bounds of the commit-latency histogram, seconds.
@@ -34,7 +35,34 @@ pub struct Metrics {
     pub ingest_streams: AtomicU64,
 }
 
+/// One taken place of a bounded gauge (open streams, subscribers), given
+/// back when dropped, however the holder ends.
+pub struct Slot {
+    metrics: Arc<Metrics>,
+    gauge: fn(&Metrics) -> &AtomicU64,
+}
+
+impl Drop for Slot {
+    fn drop(&mut self) {
+        (self.gauge)(&self.metrics).fetch_sub(1, Relaxed);
+    }
+}
+
 impl Metrics {
+    /// Takes a place of `gauge` if fewer than `limit` are taken.
+    pub fn take_slot(
+        self: &Arc<Metrics>,
+        gauge: fn(&Metrics) -> &AtomicU64,
+        limit: u64,
+    ) -> Option<Slot> {
+        let previous = gauge(self).fetch_add(1, Relaxed);
+        let slot = Slot {
+            metrics: self.clone(),
+            gauge,
+        };
+        (previous < limit).then_some(slot)
+    }
+
     pub fn reject(&self, field: &str) {
         let i = REJECT_FIELDS
             .iter()

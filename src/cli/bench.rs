@@ -172,8 +172,8 @@ pub async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
         // independent rigs, not one burst per tick.
         let phase = index as f64 / f64::from(args.channels);
         let mut ingest = IngestServiceClient::new(channel.clone())
-            .max_encoding_message_size(gibbsline::app::MAX_MESSAGE_BYTES)
-            .max_decoding_message_size(gibbsline::app::MAX_MESSAGE_BYTES);
+            .max_encoding_message_size(gibbsline::grpc::MAX_MESSAGE_BYTES)
+            .max_decoding_message_size(gibbsline::grpc::MAX_MESSAGE_BYTES);
         let batch = u64::from(args.batch);
         let alert_every = args.alert_every;
         let ack_times = ack_times.clone();

@@ -107,7 +107,7 @@ pub async fn readings(args: &ReadingsArgs) -> anyhow::Result<()> {
         .transpose()?
         .unwrap_or(0);
     let mut history = HistoryServiceClient::new(client::connect(&args.connect).await?)
-        .max_decoding_message_size(gibbsline::app::MAX_MESSAGE_BYTES);
+        .max_decoding_message_size(gibbsline::grpc::MAX_MESSAGE_BYTES);
     if let Some(width) = args.bucket {
         let start = if start == 0 && end == 0 {
             now - 86_400_000_000_000

@@ -37,6 +37,38 @@ pub fn sign_from_pb(code: i32) -> Result<CurrentSign, Status> {
     }
 }
 
+/// A channel definition off the wire; zero means "the default" for the
+/// voltage window (from the chemistry) and the tolerance and efficiencies.
+pub fn channel_from_pb(
+    c: pb::Channel,
+    registry: &electrochem::Registry,
+) -> Result<ChannelDef, Status> {
+    let current_sign = sign_from_pb(c.current_sign)?;
+    let (min_volts, max_volts) = match (c.min_volts, c.max_volts, registry.get(&c.chemistry_id)) {
+        (0.0, 0.0, Ok(chem)) => ChannelDef::default_window(&chem),
+        (lo, hi, _) => (lo, hi),
+    };
+    let or_default = |v: f64, default: f64| if v == 0.0 { default } else { v };
+    Ok(ChannelDef {
+        channel_id: c.channel_id,
+        chemistry_id: c.chemistry_id,
+        cells_in_series: c.cells_in_series,
+        capacity_ah: c.capacity_ah,
+        current_sign,
+        default_temp_c: c.default_temp_c,
+        min_volts,
+        max_volts,
+        e_standard_override_v: c.e_standard_override_v,
+        resistance_ohm: c.resistance_ohm,
+        equilibrium_tolerance_mv: or_default(c.equilibrium_tolerance_mv, 1.0),
+        coulombic_efficiency: or_default(c.coulombic_efficiency, 1.0),
+        faradaic_efficiency: or_default(c.faradaic_efficiency, 1.0),
+        description: c.description,
+        gas: c.gas.as_ref().map(gas_from_pb),
+        active_area_cm2: c.active_area_cm2,
+    })
+}
+
 pub fn channel_to_pb(def: &ChannelDef, run_id: i64) -> pb::Channel {
     pb::Channel {
         channel_id: def.channel_id.clone(),

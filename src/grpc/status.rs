@@ -1,6 +1,8 @@
 //! The one table from the crate's errors to gRPC status codes.
 
+use crate::alerts::feed::{FeedEnd, TooManySubscribers};
 use crate::ingest::IngestError;
+use crate::ingest::session::AdmitError;
 use crate::store::{StorageFault, StoreError};
 use tonic::Status;
 
@@ -51,4 +53,50 @@ impl From<StoreError> for Status {
 
 pub fn invalid(field: &str, value: impl std::fmt::Display, reason: &str) -> Status {
     Status::invalid_argument(format!("{field} = {value}: {reason}"))
+}
+
+impl From<AdmitError> for Status {
+    fn from(e: AdmitError) -> Status {
+        match e {
+            AdmitError::ShuttingDown => Status::unavailable(e.to_string()),
+            AdmitError::ClientBusy { .. } | AdmitError::ServerBusy { .. } => {
+                Status::resource_exhausted(e.to_string())
+            }
+        }
+    }
+}
+
+impl From<TooManySubscribers> for Status {
+    fn from(e: TooManySubscribers) -> Status {
+        Status::resource_exhausted(e.to_string())
+    }
+}
+
+impl From<FeedEnd> for Status {
+    fn from(e: FeedEnd) -> Status {
+        match e {
+            FeedEnd::Store(e) => e.into(),
+            FeedEnd::ShuttingDown { .. } => Status::unavailable(e.to_string()),
+            FeedEnd::FellBehind { .. } => Status::resource_exhausted(e.to_string()),
+        }
+    }
+}
+
+/// An operator action's name (1–200 characters) and note (≤ 4 KiB).
+pub fn check_person(field: &str, name: &str, note: &str) -> Result<(), Status> {
+    if name.trim().is_empty() || name.len() > 200 {
+        return Err(invalid(
+            field,
+            format!("{:?}", name.chars().take(40).collect::<String>()),
+            "a name of 1–200 characters is required",
+        ));
+    }
+    if note.len() > crate::channel::MAX_TEXT_BYTES {
+        return Err(invalid(
+            "note",
+            format!("({} bytes)", note.len()),
+            "at most 4096 bytes",
+        ));
+    }
+    Ok(())
 }

@@ -1,10 +1,13 @@
 //! The pure ingest path on constructed runs with known truth.
 
 use super::*;
-use crate::alerts::AlertKind;
+use crate::alerts::{AlertChange, AlertKind};
+use crate::channel::ChannelDef;
 use crate::electrochem::Registry;
+use crate::estimator;
 use crate::estimator::CurrentSign;
 use crate::sim::{SimCell, SimCellParams};
+use crate::store::flags;
 
 const S: i64 = 1_000_000_000;
 /// 2026-01-01T00:00:00Z: inside the timeline checks' window.

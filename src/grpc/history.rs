@@ -1,0 +1,352 @@
+//! `HistoryService`: stored readings page by page, buckets, a channel's
+//! state now, its cycles.
+
+use super::BoxStream;
+use super::convert::{self, stored_to_pb};
+use super::status::invalid;
+use crate::electrochem;
+use crate::estimator;
+use crate::ingest::{ChannelRuntime, Hub};
+use crate::pb;
+use crate::store::{self, ReadingRow, RunRow};
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex};
+use tokio::sync::mpsc;
+use tokio_stream::wrappers::ReceiverStream;
+use tonic::{Request, Response, Status};
+
+/// QueryReadings calls producing pages at once; more wait their turn.
+pub const MAX_CONCURRENT_QUERIES: usize = 32;
+
+pub struct HistoryApi {
+    pub hub: Arc<Hub>,
+    pub max_query_rows: u32,
+    /// QueryReadings responses being produced at once, server-wide: with
+    /// each holding at most a few pages, this bounds query memory.
+    pub queries: Arc<tokio::sync::Semaphore>,
+}
+
+impl HistoryApi {
+    pub fn new(hub: Arc<Hub>, max_query_rows: u32) -> HistoryApi {
+        HistoryApi {
+            hub,
+            max_query_rows,
+            queries: Arc::new(tokio::sync::Semaphore::new(MAX_CONCURRENT_QUERIES)),
+        }
+    }
+
+    async fn runs_of(&self, channel_key: i64) -> Result<HashMap<i64, RunRow>, Status> {
+        Ok(store::get_runs(&self.hub.store().reader, channel_key)
+            .await?
+            .into_iter()
+            .map(|r| (r.run_id, r))
+            .collect())
+    }
+
+    fn key_of(&self, channel_id: &str) -> Result<(Arc<Mutex<ChannelRuntime>>, i64), Status> {
+        let rt = self.hub.channel(channel_id)?;
+        let key = rt.lock().expect("channel state poisoned").key;
+        Ok((rt, key))
+    }
+}
+
+/// Rows per QueryReadings response message.
+const QUERY_PAGE_ROWS: u32 = 2_000;
+/// How long a query waits for a free slot before it is refused.
+const QUERY_WAIT: std::time::Duration = std::time::Duration::from_secs(10);
+/// How long a client may leave a page unread before its query is ended
+/// (freeing its slot and memory).
+const QUERY_SEND_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(30);
+
+/// The range one QueryReadings call reads, page by page.
+struct QueryPage {
+    reader: sqlx::SqlitePool,
+    channel_key: i64,
+    start_ns: i64,
+    end_ns: i64,
+}
+
+impl QueryPage {
+    async fn stream_to(
+        self,
+        tx: mpsc::Sender<Result<pb::QueryReadingsResponse, Status>>,
+        limit: u32,
+        runs: &HashMap<i64, RunRow>,
+    ) {
+        let mut after = (self.start_ns, -1i64);
+        let mut left = limit;
+        while left > 0 {
+            let want = left.min(QUERY_PAGE_ROWS);
+            let rows = match store::query_readings_page(
+                &self.reader,
+                self.channel_key,
+                self.start_ns,
+                self.end_ns,
+                after,
+                want,
+            )
+            .await
+            {
+                Ok(rows) => rows,
+                Err(e) => {
+                    let _ = tx.send(Err(Status::from(e))).await;
+                    return;
+                }
+            };
+            let Some(last) = rows.last() else { return };
+            after = (last.time_ns, last.seq as i64);
+            left -= rows.len() as u32;
+            let full = rows.len() as u32 == want;
+            let readings = rows
+                .iter()
+                .map(|r| stored_to_pb(r, runs.get(&r.run_id)))
+                .collect();
+            drop(rows);
+            let sent = tokio::time::timeout(
+                QUERY_SEND_TIMEOUT,
+                tx.send(Ok(pb::QueryReadingsResponse { readings })),
+            )
+            .await;
+            match sent {
+                Ok(Ok(())) if full => {}
+                Ok(Ok(())) | Ok(Err(_)) => return,
+                Err(_) => {
+                    let _ = tx.try_send(Err(Status::deadline_exceeded(format!(
+                        "the client read nothing for {} s; query ended to free its memory",
+                        QUERY_SEND_TIMEOUT.as_secs()
+                    ))));
+                    return;
+                }
+            }
+        }
+    }
+}
+const DEFAULT_QUERY_LIMIT: u32 = 100_000;
+
+#[tonic::async_trait]
+impl pb::history_service_server::HistoryService for HistoryApi {
+    type QueryReadingsStream = BoxStream<pb::QueryReadingsResponse>;
+
+    async fn query_readings(
+        &self,
+        request: Request<pb::QueryReadingsRequest>,
+    ) -> Result<Response<Self::QueryReadingsStream>, Status> {
+        let q = request.into_inner();
+        let (_, key) = self.key_of(&q.channel_id)?;
+        let end = if q.end_unix_ns == 0 {
+            i64::MAX
+        } else {
+            q.end_unix_ns
+        };
+        if end <= q.start_unix_ns {
+            return Err(invalid(
+                "end_unix_ns",
+                q.end_unix_ns,
+                "must be after start_unix_ns",
+            ));
+        }
+        let limit = if q.limit == 0 {
+            DEFAULT_QUERY_LIMIT
+        } else {
+            q.limit
+        }
+        .min(self.max_query_rows);
+        let permit = tokio::time::timeout(QUERY_WAIT, self.queries.clone().acquire_owned())
+            .await
+            .map_err(|_| {
+                Status::resource_exhausted(format!(
+                    "{MAX_CONCURRENT_QUERIES} history queries are running; retry shortly"
+                ))
+            })?
+            .map_err(|_| Status::unavailable("the server is shutting down"))?;
+        let runs = self.runs_of(key).await?;
+        let page = QueryPage {
+            reader: self.hub.store().reader.clone(),
+            channel_key: key,
+            start_ns: q.start_unix_ns,
+            end_ns: end,
+        };
+        // One page in the channel and one being built at most: a client
+        // that does not read holds ≈ 2 pages, and only for QUERY_SEND_TIMEOUT.
+        let (tx, rx) = mpsc::channel(1);
+        tokio::spawn(async move {
+            let _permit = permit;
+            page.stream_to(tx, limit, &runs).await;
+        });
+        Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
+    }
+
+    async fn query_buckets(
+        &self,
+        request: Request<pb::QueryBucketsRequest>,
+    ) -> Result<Response<pb::QueryBucketsResponse>, Status> {
+        let q = request.into_inner();
+        let (_, key) = self.key_of(&q.channel_id)?;
+        if q.bucket_width_ns <= 0 {
+            return Err(invalid(
+                "bucket_width_ns",
+                q.bucket_width_ns,
+                "must be positive",
+            ));
+        }
+        let end = if q.end_unix_ns == 0 {
+            i64::MAX
+        } else {
+            q.end_unix_ns
+        };
+        if end <= q.start_unix_ns {
+            return Err(invalid(
+                "end_unix_ns",
+                q.end_unix_ns,
+                "must be after start_unix_ns",
+            ));
+        }
+        if (end.saturating_sub(q.start_unix_ns)) / q.bucket_width_ns > 100_000 && q.end_unix_ns != 0
+        {
+            return Err(invalid(
+                "bucket_width_ns",
+                q.bucket_width_ns,
+                "gives more than 100,000 buckets; widen it",
+            ));
+        }
+        let rows = store::query_buckets(
+            &self.hub.store().reader,
+            key,
+            q.start_unix_ns,
+            end,
+            q.bucket_width_ns,
+        )
+        .await?;
+        let runs = self.runs_of(key).await?;
+        let buckets = rows
+            .iter()
+            .map(|b| {
+                // ΔG = −nFE is linear in E, so its min/max/mean follow from E's
+                // (using the run of the bucket's last reading).
+                let n = runs.get(&b.last_run_id).map(|r| r.n_electrons).unwrap_or(1);
+                let dg = |e: f64| electrochem::thermo::delta_g_kj_per_mol(n, e);
+                let [e_min, e_max, e_mean, e_last] = b.cell_volts_used;
+                let stats = |s: [f64; 4]| pb::Stats {
+                    min: s[0],
+                    max: s[1],
+                    mean: s[2],
+                    last: s[3],
+                };
+                pb::Bucket {
+                    start_unix_ns: q.start_unix_ns + b.bucket * q.bucket_width_ns,
+                    count: b.count,
+                    volts: Some(stats(b.volts)),
+                    soc: b.soc.map(stats),
+                    delta_g_kj_per_mol: Some(pb::Stats {
+                        min: dg(e_max),
+                        max: dg(e_min),
+                        mean: dg(e_mean),
+                        last: dg(e_last),
+                    }),
+                }
+            })
+            .collect();
+        Ok(Response::new(pb::QueryBucketsResponse { buckets }))
+    }
+
+    async fn get_channel_state(
+        &self,
+        request: Request<pb::GetChannelStateRequest>,
+    ) -> Result<Response<pb::GetChannelStateResponse>, Status> {
+        let q = request.into_inner();
+        let (rt, key) = self.key_of(&q.channel_id)?;
+        let latest = store::latest_reading(&self.hub.store().reader, key).await?;
+        let runs = self.runs_of(key).await?;
+        let latest_pb = latest
+            .as_ref()
+            .map(|r| stored_to_pb(r, runs.get(&r.run_id)));
+        let g = rt.lock().expect("channel state poisoned");
+        let estimator = estimator_to_pb(&g, latest.as_ref(), latest_pb.as_ref());
+        Ok(Response::new(pb::GetChannelStateResponse {
+            channel: Some(convert::channel_to_pb(&g.def, g.run_id)),
+            latest: latest_pb,
+            estimator: Some(estimator),
+            last_seen_unix_ns: g.last_time_ns,
+        }))
+    }
+
+    async fn list_cycles(
+        &self,
+        request: Request<pb::ListCyclesRequest>,
+    ) -> Result<Response<pb::ListCyclesResponse>, Status> {
+        let (rt, key) = self.key_of(&request.into_inner().channel_id)?;
+        let rows = store::list_cycles(&self.hub.store().reader, key).await?;
+        let mut cycles = Vec::with_capacity(rows.len() + 1);
+        for (run_id, json) in rows {
+            let c: estimator::CycleRecord = serde_json::from_str(&json)
+                .map_err(|e| Status::internal(format!("stored cycle: {e}")))?;
+            cycles.push(convert::cycle_to_pb(run_id, &c));
+        }
+        // The cycle still running lives in the channel's state, not the store.
+        let g = rt.lock().expect("channel state poisoned");
+        if let Some(open) = g.est.cycles.peek(&estimator::Counters::of(&g.est)) {
+            cycles.push(convert::cycle_to_pb(g.run_id, &open));
+        }
+        Ok(Response::new(pb::ListCyclesResponse { cycles }))
+    }
+}
+
+/// The estimator's view of a channel now, beside its latest reading.
+fn estimator_to_pb(
+    g: &ChannelRuntime,
+    latest: Option<&ReadingRow>,
+    latest_pb: Option<&pb::StoredReading>,
+) -> pb::EstimatorState {
+    let (resistance_ohm, resistance_source, uncertainty, age) =
+        match (g.def.resistance_ohm, g.est.resistance) {
+            (Some(r), _) => (Some(r), "configured", None, None),
+            (None, Some(e)) => (
+                Some(e.ohm),
+                "current_step",
+                Some(e.uncertainty_ohm),
+                Some((g.last_time_ns - e.last_sample_ns) as f64 / 1e9),
+            ),
+            _ => (None, "none", None, None),
+        };
+    let latest_soc_model = latest.and_then(|r| r.soc_model);
+    let soc_counted = latest
+        .and_then(|r| r.soc_fused)
+        .filter(|_| g.def.capacity_ah > 0.0);
+    let is_h2 = g.chemistry.id == crate::electrochem::builtin::WATER_CELL_ID;
+    let h2 = is_h2.then(|| estimator::hydrogen_account(&g.est, &g.est_config));
+    // On the HHV basis at the reading's temperature.
+    let voltage_efficiency = latest_pb
+        .and_then(|r| {
+            r.derived
+                .as_ref()?
+                .hydrogen
+                .as_ref()?
+                .voltage_efficiency_hhv
+        })
+        .filter(|_| latest.is_some_and(|r| r.amps.is_some_and(|i| i > 0.0)));
+    pb::EstimatorState {
+        resistance_ohm,
+        resistance_uncertainty_ohm: uncertainty,
+        resistance_age_s: age,
+        resistance_source: resistance_source.into(),
+        soc_counted,
+        soc_disagreement: match (soc_counted, latest_soc_model) {
+            (Some(c), Some(m)) => Some(c - m),
+            _ => None,
+        },
+        soc_method: if g.def.capacity_ah > 0.0 {
+            "anchored_count"
+        } else {
+            "model"
+        }
+        .into(),
+        gaps: g.est.gaps,
+        reaction_extent_mol: estimator::reaction_extent_mol(&g.est, g.chemistry.n_electrons),
+        hydrogen_mol: h2.map(|h| h.hydrogen_mol),
+        hydrogen_g: h2.map(|h| h.hydrogen_g),
+        hydrogen_normal_litres: h2.map(|h| h.hydrogen_normal_litres),
+        oxygen_mol: h2.map(|h| h.oxygen_mol),
+        voltage_efficiency,
+        specific_energy_kwh_per_kg_h2: h2.and_then(|h| h.specific_energy_kwh_per_kg),
+    }
+}

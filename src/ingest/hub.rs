@@ -1,0 +1,512 @@
+//! The hub: the service's shared state and the operations every shell
+//! (gRPC, HTTP, CLI) calls into. Fields are private: shells ask.
+
+use super::derive::{DerivedBatch, check_batch_size, derive_batch, snapshot_of};
+use super::writer::{self, Job, ReadingsJob, WriteOutcome};
+use super::{
+    Ack, ChannelRuntime, IngestError, IngestLimits, RawReading, Rejection, invalid, load_runtime,
+};
+use crate::alerts::{self, AlertRules};
+use crate::channel::ChannelDef;
+use crate::electrochem::Registry;
+use crate::estimator::{self, EstimatorState};
+use crate::metrics::Metrics;
+use crate::store::{self, AlertEvent, Store, StoreError};
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex, RwLock};
+use tokio::sync::{broadcast, mpsc, oneshot, watch};
+
+/// Shared state of the service.
+pub struct Hub {
+    store: Store,
+    registry: RwLock<Registry>,
+    channels: RwLock<HashMap<String, Arc<Mutex<ChannelRuntime>>>>,
+    writer: mpsc::Sender<Job>,
+    events: broadcast::Sender<AlertEvent>,
+    /// Turns true when the server begins to shut down: open streams finish
+    /// the batch in hand and end with UNAVAILABLE.
+    shutdown: watch::Receiver<bool>,
+    metrics: Arc<Metrics>,
+    limits: IngestLimits,
+}
+
+/// The other ends of a hub's queues, for the wiring: the writer takes the
+/// jobs, and sending `true` on `shutdown` begins the ordered stop.
+pub struct HubHandles {
+    pub jobs: mpsc::Receiver<Job>,
+    pub shutdown: watch::Sender<bool>,
+}
+
+/// Alert events buffered for subscribers; a subscriber more than this far
+/// behind is told to resume from its last id.
+const EVENT_BUFFER: usize = 4096;
+
+/// Resolves once `stop` turns true (never, if its sender is gone without it).
+pub async fn stopped(mut stop: watch::Receiver<bool>) {
+    loop {
+        if *stop.borrow_and_update() {
+            return;
+        }
+        if stop.changed().await.is_err() {
+            std::future::pending::<()>().await;
+        }
+    }
+}
+
+pub fn now_ns() -> i64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map(|d| d.as_nanos() as i64)
+        .unwrap_or(0)
+}
+
+impl Hub {
+    /// A hub over `store` with every stored channel restored.
+    pub async fn open(
+        store: Store,
+        registry: Registry,
+        limits: IngestLimits,
+    ) -> Result<(Arc<Hub>, HubHandles), IngestError> {
+        let mut channels = HashMap::new();
+        for row in store::list_channels(&store.writer).await? {
+            let mut rt = load_runtime(&store, &registry, &row).await?;
+            rt.limits = limits;
+            channels.insert(row.channel_id.clone(), Arc::new(Mutex::new(rt)));
+        }
+        let (writer, jobs) = mpsc::channel(writer::WRITER_QUEUE_JOBS);
+        let (events, _) = broadcast::channel(EVENT_BUFFER);
+        let (shutdown_tx, shutdown) = watch::channel(false);
+        let hub = Hub {
+            store,
+            registry: RwLock::new(registry),
+            channels: RwLock::new(channels),
+            writer,
+            events,
+            shutdown,
+            metrics: Arc::default(),
+            limits,
+        };
+        let handles = HubHandles {
+            jobs,
+            shutdown: shutdown_tx,
+        };
+        Ok((Arc::new(hub), handles))
+    }
+
+    pub fn store(&self) -> &Store {
+        &self.store
+    }
+
+    /// The chemistries as they are now (a cheap clone).
+    pub fn registry(&self) -> Registry {
+        self.registry.read().expect("registry poisoned").clone()
+    }
+
+    pub fn metrics(&self) -> &Arc<Metrics> {
+        &self.metrics
+    }
+
+    /// Where the writer announces committed alert events.
+    pub fn events(&self) -> broadcast::Sender<AlertEvent> {
+        self.events.clone()
+    }
+
+    /// Alert events committed from now on.
+    pub fn subscribe(&self) -> broadcast::Receiver<AlertEvent> {
+        self.events.subscribe()
+    }
+
+    /// Turns true when the server begins to stop.
+    pub fn shutdown_signal(&self) -> watch::Receiver<bool> {
+        self.shutdown.clone()
+    }
+
+    pub fn is_shutting_down(&self) -> bool {
+        *self.shutdown.borrow()
+    }
+
+    /// Jobs waiting in the writer's queue.
+    pub fn writer_queue_depth(&self) -> usize {
+        writer::WRITER_QUEUE_JOBS - self.writer.capacity()
+    }
+
+    /// Every channel's runtime, by channel id.
+    pub fn runtimes(&self) -> Vec<(String, Arc<Mutex<ChannelRuntime>>)> {
+        let mut all: Vec<_> = self
+            .channels
+            .read()
+            .expect("channel map poisoned")
+            .iter()
+            .map(|(id, rt)| (id.clone(), rt.clone()))
+            .collect();
+        all.sort_by(|a, b| a.0.cmp(&b.0));
+        all
+    }
+
+    /// Up to `size` channel definitions (with their current run) after
+    /// `after` in id order, and whether more follow.
+    pub fn channel_page(&self, after: &str, size: usize) -> (Vec<(ChannelDef, i64)>, bool) {
+        let map = self.channels.read().expect("channel map poisoned");
+        let mut ids: Vec<&String> = map.keys().filter(|id| id.as_str() > after).collect();
+        ids.sort();
+        let more = ids.len() > size;
+        ids.truncate(size);
+        let page = ids
+            .iter()
+            .map(|id| {
+                let g = map[*id].lock().expect("channel state poisoned");
+                (g.def.clone(), g.run_id)
+            })
+            .collect();
+        (page, more)
+    }
+
+    /// Replaces a channel's alert rules, stored first.
+    pub async fn put_rules(&self, channel_id: &str, rules: AlertRules) -> Result<(), IngestError> {
+        let rt = self.channel(channel_id)?;
+        let key = rt.lock().expect("channel state poisoned").key;
+        let json = serde_json::to_string(&rules).map_err(|e| IngestError::Invalid {
+            field: "rules".into(),
+            value: "(unencodable)".into(),
+            reason: e.to_string(),
+        })?;
+        store::put_rules(&self.store, key, &json).await?;
+        rt.lock().expect("channel state poisoned").rules = rules;
+        Ok(())
+    }
+
+    /// The store's key for a channel.
+    pub fn channel_key(&self, channel_id: &str) -> Result<i64, IngestError> {
+        Ok(self
+            .channel(channel_id)?
+            .lock()
+            .expect("channel state poisoned")
+            .key)
+    }
+
+    /// The highest committed seq of a channel: where its rig resumes.
+    pub fn resume_point(&self, channel_id: &str) -> Result<Option<u64>, IngestError> {
+        Ok(self
+            .channel(channel_id)?
+            .lock()
+            .expect("channel state poisoned")
+            .committed_seq)
+    }
+
+    pub fn channel(&self, channel_id: &str) -> Result<Arc<Mutex<ChannelRuntime>>, IngestError> {
+        self.channels
+            .read()
+            .expect("channel map poisoned")
+            .get(channel_id)
+            .cloned()
+            .ok_or_else(|| IngestError::UnknownChannel(channel_id.chars().take(80).collect()))
+    }
+
+    /// Creates or replaces a channel. A change of chemistry, cell count or
+    /// E° override starts a new run (fresh estimator, history keeps the
+    /// old definition); other changes keep the running state.
+    pub async fn put_channel(&self, def: ChannelDef) -> Result<(i64, bool), IngestError> {
+        let registry = self.registry.read().expect("registry poisoned").clone();
+        let chemistry = def.validate(&registry).map_err(|e| IngestError::Invalid {
+            field: format!("channel.{}", e.field),
+            value: e.value,
+            reason: e.reason,
+        })?;
+        let existing = self.channel(&def.channel_id).ok();
+        let new_run = match &existing {
+            Some(rt) => rt.lock().expect("channel state poisoned").def.run_key() != def.run_key(),
+            None => true,
+        };
+        let json = serde_json::to_string(&def).map_err(|e| StoreError::Corrupt(e.to_string()))?;
+        let run = new_run.then(|| store::RunRow {
+            run_id: 0,
+            channel_key: 0,
+            chemistry_id: chemistry.id.clone(),
+            n_electrons: chemistry.n_electrons,
+            e_standard_298_v: chemistry.e_standard_298_volts,
+            de_dt_v_per_k: chemistry.de_dt_volts_per_k,
+            cells_in_series: def.cells_in_series,
+            default_temp_c: def.default_temp_c,
+            equilibrium_tolerance_v: def.equilibrium_tolerance_mv / 1e3,
+            soc_model: chemistry.soc_model.name().to_string(),
+            definition_json: Some(json.clone()),
+        });
+        let (_, run_id) =
+            store::put_channel(&self.store, &def.channel_id, &json, run, now_ns()).await?;
+        match existing {
+            Some(rt) => {
+                let mut g = rt.lock().expect("channel state poisoned");
+                g.est_config = def.estimator_config();
+                g.def = def;
+                g.chemistry = chemistry;
+                if new_run {
+                    g.est = EstimatorState::default();
+                    g.run_id = run_id;
+                }
+            }
+            None => {
+                let row = store::get_channel(&self.store.writer, &def.channel_id)
+                    .await?
+                    .ok_or_else(|| StoreError::Corrupt("channel vanished after write".into()))?;
+                let mut runtime = load_runtime(&self.store, &registry, &row).await?;
+                runtime.limits = self.limits;
+                self.channels
+                    .write()
+                    .expect("channel map poisoned")
+                    .entry(def.channel_id.clone())
+                    .or_insert_with(|| Arc::new(Mutex::new(runtime)));
+            }
+        }
+        Ok((run_id, new_run))
+    }
+
+    /// Sends a job to the writer and waits for its commit.
+    pub async fn submit(
+        &self,
+        job: impl FnOnce(oneshot::Sender<Result<WriteOutcome, StoreError>>) -> Job,
+    ) -> Result<WriteOutcome, IngestError> {
+        let (tx, rx) = oneshot::channel();
+        // A full queue makes this await: the stream stops reading from its
+        // client until the writer catches up (backpressure, no loss).
+        self.writer
+            .send(job(tx))
+            .await
+            .map_err(|_| IngestError::ShuttingDown)?;
+        match rx.await {
+            Ok(Ok(outcome)) => Ok(outcome),
+            Ok(Err(e)) => Err(IngestError::Store(e)),
+            Err(_) => Err(IngestError::ShuttingDown),
+        }
+    }
+
+    /// Validates, derives and stores one batch; returns its ack after commit.
+    /// Takes the readings by value and drops them once derived: a stream
+    /// waiting for its commit then holds only the rows to be written, which
+    /// is what bounds memory under a flood.
+    pub async fn ingest(
+        &self,
+        channel_id: &str,
+        batch_id: u64,
+        readings: Vec<RawReading>,
+    ) -> Result<Ack, IngestError> {
+        check_batch_size(&readings)?;
+        let (runtime, _turn) = self.take_turn(channel_id).await?;
+        let wall_now = now_ns();
+        let (derived, rejected) = {
+            let mut rt = runtime.lock().expect("channel state poisoned");
+            rt.note_arrival(wall_now);
+            derive_batch(&mut rt, &readings, wall_now)
+        };
+        drop(readings);
+        let outcome = match self
+            .submit(|reply| Job::Readings(derived.into_job(reply)))
+            .await
+        {
+            Ok(outcome) => outcome,
+            Err(e) => {
+                self.reload_after_failure(&runtime).await;
+                return Err(e);
+            }
+        };
+        let committed = {
+            let mut rt = runtime.lock().expect("channel state poisoned");
+            rt.committed_seq = rt.max_seq;
+            rt.committed_seq
+        };
+        self.count(&outcome, &rejected);
+        Ok(Ack {
+            channel_id: channel_id.to_string(),
+            batch_id,
+            accepted: (outcome.fresh_inserted + outcome.late_inserted) as u32,
+            duplicates: outcome.duplicates as u32,
+            out_of_order: outcome.late_inserted as u32,
+            rejected,
+            last_stored_seq: committed.unwrap_or(0),
+        })
+    }
+
+    /// Moves the channel's front back to a stored reading (see the
+    /// ResetTimeline RPC): the readings behind a garbled front count as
+    /// fresh again. The new front is committed with the estimator snapshot
+    /// (so a restart keeps it), and the timeline alert is cleared.
+    pub async fn reset_timeline(
+        &self,
+        channel_id: &str,
+        after_seq: Option<u64>,
+    ) -> Result<(u64, i64), IngestError> {
+        let (runtime, _turn) = self.take_turn(channel_id).await?;
+        let key = runtime.lock().expect("channel state poisoned").key;
+        let Some((seq, time_ns)) =
+            store::timeline_anchor(&self.store.writer, key, after_seq).await?
+        else {
+            return Err(match after_seq {
+                Some(seq) => invalid(
+                    "after_seq",
+                    seq,
+                    "no stored reading of this channel has that seq",
+                ),
+                None => invalid(
+                    "after_seq",
+                    "unset",
+                    "no reading of this channel was taken out of order: its timeline is in step",
+                ),
+            });
+        };
+        let job = {
+            let mut rt = runtime.lock().expect("channel state poisoned");
+            rt.max_seq = Some(seq);
+            rt.last_time_ns = time_ns;
+            let changes = alerts::rules::clear_timeline(&mut rt.rule_state, now_ns())
+                .into_iter()
+                .collect();
+            DerivedBatch {
+                channel_key: rt.key,
+                run_id: rt.run_id,
+                rows: vec![],
+                maybe_dup: vec![],
+                changes,
+                cycles: vec![],
+                estimator: Some(snapshot_of(&rt)),
+            }
+        };
+        if let Err(e) = self
+            .submit(|reply| Job::Readings(job.into_job(reply)))
+            .await
+        {
+            self.reload_after_failure(&runtime).await;
+            return Err(e);
+        }
+        runtime
+            .lock()
+            .expect("channel state poisoned")
+            .committed_seq = Some(seq);
+        tracing::info!(channel_id, seq, time_ns, "timeline reset");
+        Ok((seq, time_ns))
+    }
+
+    /// Anchors the channel's count at an SOC an operator entered, from its
+    /// last reading on; stored as an operator event with the snapshot.
+    pub async fn set_soc(
+        &self,
+        channel_id: &str,
+        soc: f64,
+        by: &str,
+        note: &str,
+    ) -> Result<i64, IngestError> {
+        if !(0.0..=1.0).contains(&soc) {
+            return Err(invalid("soc", soc, "must be from 0 to 1"));
+        }
+        let (runtime, _turn) = self.take_turn(channel_id).await?;
+        let (change, time_ns) = {
+            let mut rt = runtime.lock().expect("channel state poisoned");
+            let time_ns = if rt.last_time_ns > 0 {
+                rt.last_time_ns
+            } else {
+                now_ns()
+            };
+            estimator::anchor_at(&mut rt.est, soc, time_ns);
+            let change = writer::OperatorChange {
+                channel_key: rt.key,
+                run_id: rt.run_id,
+                time_ns: now_ns(),
+                kind: "set_soc",
+                by: by.to_string(),
+                detail_json:
+                    serde_json::json!({"soc": soc, "applies_from_ns": time_ns, "note": note})
+                        .to_string(),
+                estimator: snapshot_of(&rt),
+            };
+            (change, time_ns)
+        };
+        if let Err(e) = self.submit(|reply| Job::Operator { change, reply }).await {
+            self.reload_after_failure(&runtime).await;
+            return Err(e);
+        }
+        tracing::info!(channel_id, soc, by, "soc entered by an operator");
+        Ok(time_ns)
+    }
+
+    fn count(&self, outcome: &WriteOutcome, rejected: &[Rejection]) {
+        use std::sync::atomic::Ordering::Relaxed;
+        let m = &self.metrics;
+        m.readings_accepted
+            .fetch_add(outcome.fresh_inserted + outcome.late_inserted, Relaxed);
+        m.readings_duplicate.fetch_add(outcome.duplicates, Relaxed);
+        m.readings_out_of_order
+            .fetch_add(outcome.late_inserted, Relaxed);
+        for r in rejected {
+            m.reject(r.field);
+        }
+    }
+
+    /// The channel and its commit gate, held until the caller's commit is
+    /// answered; a channel left stale by an earlier refusal is reloaded first.
+    async fn take_turn(
+        &self,
+        channel_id: &str,
+    ) -> Result<(Arc<Mutex<ChannelRuntime>>, tokio::sync::OwnedMutexGuard<()>), IngestError> {
+        let runtime = self.channel(channel_id)?;
+        let gate = runtime
+            .lock()
+            .expect("channel state poisoned")
+            .commit_gate
+            .clone();
+        let turn = gate.lock_owned().await;
+        self.reload_if_needed(&runtime).await?;
+        Ok((runtime, turn))
+    }
+
+    /// After a refused commit the runtime is ahead of the store (front,
+    /// estimator, alert state): rebuild it from what was committed, so the
+    /// resume point and the next derivation start from stored truth.
+    pub async fn reload_after_failure(&self, runtime: &Mutex<ChannelRuntime>) {
+        if let Err(e) = self.reload(runtime).await {
+            let mut rt = runtime.lock().expect("channel state poisoned");
+            tracing::warn!(channel_id = %rt.def.channel_id, error = %e, "channel state not reloaded after a failed commit; retrying before the next batch");
+            rt.needs_reload = true;
+        }
+    }
+
+    async fn reload_if_needed(&self, runtime: &Mutex<ChannelRuntime>) -> Result<(), IngestError> {
+        if runtime.lock().expect("channel state poisoned").needs_reload {
+            self.reload(runtime).await?;
+        }
+        Ok(())
+    }
+
+    async fn reload(&self, runtime: &Mutex<ChannelRuntime>) -> Result<(), IngestError> {
+        let channel_id = runtime
+            .lock()
+            .expect("channel state poisoned")
+            .def
+            .channel_id
+            .clone();
+        let row = store::get_channel(&self.store.writer, &channel_id)
+            .await?
+            .ok_or_else(|| StoreError::Corrupt(format!("channel {channel_id} vanished")))?;
+        let registry = self.registry.read().expect("registry poisoned").clone();
+        let mut fresh = load_runtime(&self.store, &registry, &row).await?;
+        let mut rt = runtime.lock().expect("channel state poisoned");
+        fresh.commit_gate = rt.commit_gate.clone();
+        fresh.limits = rt.limits;
+        fresh.last_arrival_wall_ns = rt.last_arrival_wall_ns;
+        fresh.usual_arrival_interval_s = rt.usual_arrival_interval_s;
+        *rt = fresh;
+        Ok(())
+    }
+}
+
+impl DerivedBatch {
+    fn into_job(self, reply: oneshot::Sender<Result<WriteOutcome, StoreError>>) -> ReadingsJob {
+        ReadingsJob {
+            channel_key: self.channel_key,
+            run_id: self.run_id,
+            rows: self.rows,
+            maybe_dup: self.maybe_dup,
+            changes: self.changes,
+            cycles: self.cycles,
+            estimator: self.estimator,
+            reply,
+        }
+    }
+}
