@@ -1,8 +1,6 @@
-//! gRPC shell: one file per proto service, each a thin struct whose
-//! handlers convert at the edge and call the hub, the store and the core.
-//! Only this module (and the client commands) see generated protobuf
-//! types. Authorization is the [`authz`] layer in front of all of them;
-//! errors become statuses in [`status`] only.
+//! gRPC shell: one file per proto service, thin handlers that convert at
+//! the edge and call the hub. Authorization: the [`authz`] layer; errors
+//! become statuses in [`status`] only.
 
 pub mod alert;
 pub mod authz;
@@ -25,9 +23,8 @@ type BoxStream<T> = Pin<Box<dyn Stream<Item = Result<T, tonic::Status>> + Send>>
 
 /// Largest gRPC message sent, and accepted outside ingest: 16 MiB.
 pub const MAX_MESSAGE_BYTES: usize = 16 * 1024 * 1024;
-/// Largest ingest message accepted: 1 MiB. A full batch of 10,000 readings
-/// encodes to about 400 kB; the tighter bound keeps what a flood of
-/// streams can make the server decode at once small (see README, Operations).
+/// Largest ingest message accepted: 1 MiB (a full batch of 10,000 readings
+/// is ≈ 400 kB); it bounds what a flood of streams makes the server decode.
 pub const MAX_INGEST_MESSAGE_BYTES: usize = 1024 * 1024;
 
 /// The name the health service reports ingest under.

@@ -1,0 +1,110 @@
+//! Channels: definitions, current sign, gas conditions.
+
+use super::super::status::invalid;
+use crate::channel::ChannelDef;
+use crate::electrochem;
+use crate::electrochem::hydrogen::GasConditions;
+use crate::estimator::CurrentSign;
+use crate::ingest::RawReading;
+use crate::pb;
+use tonic::Status;
+
+impl From<&pb::Reading> for RawReading {
+    fn from(r: &pb::Reading) -> RawReading {
+        RawReading {
+            seq: r.seq,
+            time_unix_ns: r.time_unix_ns,
+            volts: r.volts,
+            amps: r.amps,
+            temp_c: r.temp_c,
+        }
+    }
+}
+
+pub fn sign_from_pb(code: i32) -> Result<CurrentSign, Status> {
+    match pb::CurrentSign::try_from(code) {
+        Ok(pb::CurrentSign::ChargePositive) => Ok(CurrentSign::ChargePositive),
+        Ok(pb::CurrentSign::DischargePositive) => Ok(CurrentSign::DischargePositive),
+        _ => Err(invalid(
+            "channel.current_sign",
+            code,
+            "must be CHARGE_POSITIVE or DISCHARGE_POSITIVE",
+        )),
+    }
+}
+
+/// A channel definition off the wire; zero means "the default" for the
+/// voltage window (from the chemistry) and the tolerance and efficiencies.
+pub fn channel_from_pb(
+    c: pb::Channel,
+    registry: &electrochem::Registry,
+) -> Result<ChannelDef, Status> {
+    let current_sign = sign_from_pb(c.current_sign)?;
+    let (min_volts, max_volts) = match (c.min_volts, c.max_volts, registry.get(&c.chemistry_id)) {
+        (0.0, 0.0, Ok(chem)) => ChannelDef::default_window(&chem),
+        (lo, hi, _) => (lo, hi),
+    };
+    let or_default = |v: f64, default: f64| if v == 0.0 { default } else { v };
+    Ok(ChannelDef {
+        channel_id: c.channel_id,
+        chemistry_id: c.chemistry_id,
+        cells_in_series: c.cells_in_series,
+        capacity_ah: c.capacity_ah,
+        current_sign,
+        default_temp_c: c.default_temp_c,
+        min_volts,
+        max_volts,
+        e_standard_override_v: c.e_standard_override_v,
+        resistance_ohm: c.resistance_ohm,
+        equilibrium_tolerance_mv: or_default(c.equilibrium_tolerance_mv, 1.0),
+        coulombic_efficiency: or_default(c.coulombic_efficiency, 1.0),
+        faradaic_efficiency: or_default(c.faradaic_efficiency, 1.0),
+        description: c.description,
+        gas: c.gas.as_ref().map(gas_from_pb),
+        active_area_cm2: c.active_area_cm2,
+    })
+}
+
+pub fn channel_to_pb(def: &ChannelDef, run_id: i64) -> pb::Channel {
+    pb::Channel {
+        channel_id: def.channel_id.clone(),
+        chemistry_id: def.chemistry_id.clone(),
+        cells_in_series: def.cells_in_series,
+        capacity_ah: def.capacity_ah,
+        current_sign: match def.current_sign {
+            CurrentSign::ChargePositive => pb::CurrentSign::ChargePositive as i32,
+            CurrentSign::DischargePositive => pb::CurrentSign::DischargePositive as i32,
+        },
+        default_temp_c: def.default_temp_c,
+        min_volts: def.min_volts,
+        max_volts: def.max_volts,
+        e_standard_override_v: def.e_standard_override_v,
+        resistance_ohm: def.resistance_ohm,
+        equilibrium_tolerance_mv: def.equilibrium_tolerance_mv,
+        coulombic_efficiency: def.coulombic_efficiency,
+        faradaic_efficiency: def.faradaic_efficiency,
+        description: def.description.clone(),
+        run_id: run_id as u64,
+        gas: def.gas.map(|g| pb::GasConditions {
+            h2_side_bar_abs: g.h2_side_bar_abs,
+            o2_side_bar_abs: g.o2_side_bar_abs,
+            o2_dry_fraction: g.o2_dry_fraction,
+            saturated: g.saturated,
+            water_activity: g.water_activity,
+        }),
+        active_area_cm2: def.active_area_cm2,
+    }
+}
+
+/// Gas conditions from the wire: zeros mean the defaults.
+pub fn gas_from_pb(g: &pb::GasConditions) -> GasConditions {
+    let or = |v: f64, d: f64| if v == 0.0 { d } else { v };
+    let d = GasConditions::default();
+    GasConditions {
+        h2_side_bar_abs: or(g.h2_side_bar_abs, d.h2_side_bar_abs),
+        o2_side_bar_abs: or(g.o2_side_bar_abs, d.o2_side_bar_abs),
+        o2_dry_fraction: or(g.o2_dry_fraction, d.o2_dry_fraction),
+        saturated: g.saturated,
+        water_activity: or(g.water_activity, d.water_activity),
+    }
+}
