@@ -11,6 +11,9 @@ pub mod channel;
 pub mod config;
 pub mod electrochem;
 pub mod estimator;
+/// Fuzz-target bodies: built for tests and for `cargo fuzz` (which sets
+/// `--cfg fuzzing`), never into the release binary.
+#[cfg(any(test, fuzzing))]
 pub mod fuzzing;
 pub mod grpc;
 pub mod ingest;

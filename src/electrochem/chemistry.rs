@@ -337,13 +337,19 @@ impl SpeciesSpec {
     }
 }
 
-/// Parses and validates a chemistry file. `path` only labels errors.
-pub fn parse_chemistry_file(path: &str, text: &str) -> Result<Vec<Chemistry>, ChemistryError> {
+/// Reads a chemistry file's definitions, not yet validated. `path` only
+/// labels errors.
+pub fn read_chemistry_specs(path: &str, text: &str) -> Result<Vec<ChemistrySpec>, ChemistryError> {
     let file: ChemistryFile = toml::from_str(text).map_err(|e| ChemistryError::File {
         path: path.to_string(),
         message: e.to_string().trim_end().replace('\n', " "),
     })?;
-    file.chemistry
+    Ok(file.chemistry)
+}
+
+/// Parses and validates a chemistry file. `path` only labels errors.
+pub fn parse_chemistry_file(path: &str, text: &str) -> Result<Vec<Chemistry>, ChemistryError> {
+    read_chemistry_specs(path, text)?
         .iter()
         .enumerate()
         .map(|(i, spec)| {

@@ -38,6 +38,23 @@ fn every_committed_seed_holds_the_properties() {
     }
 }
 
+/// The chemistry seeds start from the built-in files themselves: a
+/// built-in edited without its seed (or the other way) fails here.
+#[test]
+fn chemistry_seeds_are_the_builtin_files() {
+    for (id, text) in crate::electrochem::builtin::builtin_files() {
+        let path = seed_dir("chemistry_file").join(format!("builtin-{id}.toml"));
+        let seed =
+            std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+        assert_eq!(
+            seed,
+            text,
+            "{} differs from src/electrochem/builtin/{id}.toml",
+            path.display()
+        );
+    }
+}
+
 /// The batch seeds must stay real batches (a proto change could turn them
 /// into noise the fuzzer starts from), and the simulated ones must reach
 /// the estimator rather than stop at validation.

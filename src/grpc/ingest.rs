@@ -137,3 +137,13 @@ fn end_to_status(end: End<Status>) -> Status {
         End::Failed(e) => e.into(),
     }
 }
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn health_reports_ingest_under_its_proto_name() {
+        use tonic::server::NamedService;
+        type Server = crate::pb::ingest_service_server::IngestServiceServer<super::IngestApi>;
+        assert_eq!(Server::NAME, super::super::INGEST_SERVICE_NAME);
+    }
+}

@@ -28,9 +28,7 @@ pub const MAX_MESSAGE_BYTES: usize = 16 * 1024 * 1024;
 pub const MAX_INGEST_MESSAGE_BYTES: usize = 1024 * 1024;
 
 /// The name the health service reports ingest under.
-pub const INGEST_SERVICE_NAME: &str = <pb::ingest_service_server::IngestServiceServer<
-    ingest::IngestApi,
-> as tonic::server::NamedService>::NAME;
+pub const INGEST_SERVICE_NAME: &str = "gibbsline.v1.IngestService";
 
 /// Adds the five services, each with its message limits, to a router.
 pub fn add_services<L>(
