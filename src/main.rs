@@ -12,6 +12,12 @@ fn main() -> ExitCode {
     match cli::dispatch(cli) {
         Ok(()) => ExitCode::SUCCESS,
         Err(err) => {
+            // `gibbsline readings … | head`: the reader left; not a failure.
+            if let Some(io) = err.downcast_ref::<std::io::Error>()
+                && io.kind() == std::io::ErrorKind::BrokenPipe
+            {
+                return ExitCode::SUCCESS;
+            }
             if let Some(usage) = err.downcast_ref::<cli::UsageError>() {
                 eprintln!("error: {usage}");
                 return ExitCode::from(2);

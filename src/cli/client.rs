@@ -84,3 +84,35 @@ pub async fn connect(addr: &str) -> anyhow::Result<Conn> {
 pub fn now_ns() -> i64 {
     gibbsline::ingest::now_ns()
 }
+
+/// A refused call as the CLI reports it: what the caller got wrong (an
+/// unknown channel, a bad argument) is a usage error, exit 2, in one
+/// line; the rest keep their status.
+pub fn status_error(status: tonic::Status) -> anyhow::Error {
+    match status.code() {
+        tonic::Code::NotFound | tonic::Code::InvalidArgument | tonic::Code::FailedPrecondition => {
+            super::UsageError(status.message().to_string()).into()
+        }
+        _ => status.into(),
+    }
+}
+
+/// Every channel, following ListChannels pages.
+pub async fn all_channels(conn: &Conn) -> anyhow::Result<Vec<gibbsline::pb::Channel>> {
+    use gibbsline::pb;
+    let mut client = pb::channel_service_client::ChannelServiceClient::new(conn.clone());
+    let mut out = Vec::new();
+    let mut page_token = String::new();
+    loop {
+        let request = pb::ListChannelsRequest {
+            page_size: 0,
+            page_token,
+        };
+        let page = client.list_channels(request).await?.into_inner();
+        out.extend(page.channels);
+        if page.next_page_token.is_empty() {
+            return Ok(out);
+        }
+        page_token = page.next_page_token;
+    }
+}

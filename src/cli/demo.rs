@@ -4,7 +4,7 @@
 
 use super::client;
 use super::rig::{self, RigOptions, RigStats};
-use crate::cli::commands::mode_name;
+use crate::cli::names::{kind_label, mode_name, severity_label};
 use gibbsline::pb;
 use gibbsline::pb::alert_service_client::AlertServiceClient;
 use gibbsline::pb::history_service_client::HistoryServiceClient;
@@ -29,40 +29,6 @@ pub struct DemoArgs {
     /// Address for the demo server.
     #[arg(long, default_value = "127.0.0.1:50051")]
     pub listen: String,
-}
-
-pub fn kind_name(code: i32) -> &'static str {
-    match pb::AlertKind::try_from(code) {
-        Ok(pb::AlertKind::EquilibriumApproach) => "equilibrium approach",
-        Ok(pb::AlertKind::EndOfCharge) => "end of charge",
-        Ok(pb::AlertKind::EndOfDischarge) => "end of discharge",
-        Ok(pb::AlertKind::RestSettled) => "rest settled",
-        Ok(pb::AlertKind::VoltageLimit) => "voltage limit",
-        Ok(pb::AlertKind::CurrentLimit) => "current limit",
-        Ok(pb::AlertKind::TemperatureLimit) => "temperature limit",
-        Ok(pb::AlertKind::SilentRig) => "silent rig",
-        Ok(pb::AlertKind::Timeline) => "timeline",
-        Ok(pb::AlertKind::DrivingForceSpent) => "driving force spent",
-        _ => "unknown",
-    }
-}
-
-pub fn severity_name(code: i32) -> &'static str {
-    match pb::Severity::try_from(code) {
-        Ok(pb::Severity::Info) => "info",
-        Ok(pb::Severity::Warning) => "WARNING",
-        Ok(pb::Severity::Critical) => "CRITICAL",
-        _ => "-",
-    }
-}
-
-pub fn state_name(code: i32) -> &'static str {
-    match pb::ReactionState::try_from(code) {
-        Ok(pb::ReactionState::Spontaneous) => "spontaneous",
-        Ok(pb::ReactionState::Driven) => "driven",
-        Ok(pb::ReactionState::Equilibrium) => "equilibrium",
-        _ => "-",
-    }
 }
 
 pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
@@ -127,9 +93,9 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
             lines.lock().expect("poisoned").push(format!(
                 "#{:<4} {verb} {:<8} {:<13} {:<19} {}",
                 a.alert_id,
-                severity_name(a.severity),
+                severity_label(a.severity),
                 a.channel_id,
-                kind_name(a.kind),
+                kind_label(a.kind),
                 a.message
             ));
         }

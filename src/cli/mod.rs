@@ -1,11 +1,21 @@
 //! Command-line definitions (stage one: flags only, no I/O) and dispatch.
 
+pub mod alerts;
 pub mod bench;
+pub mod channels;
 pub mod client;
-pub mod commands;
+pub mod cycles;
 pub mod demo;
 pub mod eval;
+pub mod names;
+pub mod output;
+pub mod readings;
 pub mod rig;
+pub mod simulate;
+pub mod state;
+
+/// Where the client commands look for a server unless told.
+pub const DEFAULT_ADDR: &str = "127.0.0.1:50051";
 
 use clap::{Args, Parser, Subcommand};
 use std::path::PathBuf;
@@ -44,19 +54,19 @@ pub enum Command {
     Demo(demo::DemoArgs),
     /// Simulated rigs.
     #[command(subcommand)]
-    Rig(commands::RigCommand),
+    Rig(simulate::RigCommand),
     /// Stored readings of a channel, raw or in time buckets.
-    Readings(commands::ReadingsArgs),
+    Readings(readings::ReadingsArgs),
     /// Live state of one or all channels.
-    State(commands::StateArgs),
+    State(state::StateArgs),
     /// Watch, list and acknowledge alerts.
     #[command(subcommand)]
-    Alerts(commands::AlertsCommand),
+    Alerts(alerts::AlertsCommand),
     /// Define and inspect channels.
     #[command(subcommand)]
-    Channels(commands::ChannelsCommand),
+    Channels(channels::ChannelsCommand),
     /// Charge/discharge cycles of a channel with efficiencies.
-    Cycles(commands::CyclesArgs),
+    Cycles(cycles::CyclesArgs),
     /// Bearer tokens for the config's [[token]] table.
     #[command(subcommand)]
     Token(TokenCommand),
@@ -178,12 +188,12 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Bench(BenchCommand::Ingest(args)) => block_on(bench::run(&args)),
         Command::Bench(BenchCommand::Derive(args)) => bench::derive(&args),
         Command::Demo(args) => block_on(demo::run(&args)),
-        Command::Rig(cmd) => block_on(commands::rig_cmd(&cmd)),
-        Command::Readings(args) => block_on(commands::readings(&args)),
-        Command::State(args) => block_on(commands::state(&args)),
-        Command::Alerts(cmd) => block_on(commands::alerts(&cmd)),
-        Command::Channels(cmd) => block_on(commands::channels(&cmd)),
-        Command::Cycles(args) => block_on(commands::cycles(&args)),
+        Command::Rig(cmd) => block_on(simulate::run(&cmd)),
+        Command::Readings(args) => block_on(readings::run(&args)),
+        Command::State(args) => block_on(state::run(&args)),
+        Command::Alerts(cmd) => block_on(alerts::run(&cmd)),
+        Command::Channels(cmd) => block_on(channels::run(&cmd)),
+        Command::Cycles(args) => block_on(cycles::run(&args)),
         Command::Token(cmd) => token(&cmd),
         Command::Config(ConfigCommand::Check { file, no_files }) => {
             let config = load_config(Some(&file), &std::collections::BTreeMap::new())?;

@@ -1,0 +1,254 @@
+//! `gibbsline channels`: define channels from a file, list and show them,
+//! anchor a count at a known SOC, reset a garbled timeline.
+
+use super::client;
+use super::output::{self, Col, Format, Row};
+use super::{DEFAULT_ADDR, UsageError};
+use gibbsline::grpc::convert::{channel_to_pb, rules_to_pb};
+use gibbsline::pb;
+use gibbsline::pb::alert_service_client::AlertServiceClient;
+use gibbsline::pb::channel_service_client::ChannelServiceClient;
+use serde::Serialize;
+use std::path::{Path, PathBuf};
+
+#[derive(Debug, clap::Subcommand)]
+pub enum ChannelsCommand {
+    /// Create or replace the channels of a TOML file ([[channel]] tables).
+    Put {
+        file: PathBuf,
+        #[arg(long, default_value = DEFAULT_ADDR)]
+        connect: String,
+    },
+    List {
+        #[arg(long, default_value = DEFAULT_ADDR)]
+        connect: String,
+        #[arg(long, value_enum, default_value_t = Format::Table)]
+        format: Format,
+    },
+    Get {
+        id: String,
+        #[arg(long, default_value = DEFAULT_ADDR)]
+        connect: String,
+        #[arg(long, value_enum, default_value_t = Format::Table)]
+        format: Format,
+    },
+    /// Anchor a channel's coulomb count at an SOC you know (operator role).
+    SetSoc {
+        id: String,
+        /// 0–1.
+        #[arg(long)]
+        soc: f64,
+        #[arg(long)]
+        by: String,
+        #[arg(long, default_value = "")]
+        note: String,
+        #[arg(long, default_value = DEFAULT_ADDR)]
+        connect: String,
+    },
+    /// Move a channel's front back to a stored reading after a garbled
+    /// time or seq (operator role); nothing stored is deleted.
+    ResetTimeline {
+        id: String,
+        /// Resume after this stored seq (default: the latest reading that
+        /// was taken out of order).
+        #[arg(long)]
+        after_seq: Option<u64>,
+        #[arg(long, default_value = DEFAULT_ADDR)]
+        connect: String,
+    },
+}
+
+#[derive(serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+struct ChannelsFile {
+    channel: Vec<gibbsline::config::ChannelEntry>,
+}
+
+/// One channel definition as listed.
+#[derive(Serialize)]
+struct ChannelOut {
+    channel_id: String,
+    chemistry_id: String,
+    cells_in_series: u32,
+    capacity_ah: f64,
+    min_volts: f64,
+    max_volts: f64,
+    run_id: u64,
+    description: String,
+}
+
+impl From<pb::Channel> for ChannelOut {
+    fn from(c: pb::Channel) -> ChannelOut {
+        ChannelOut {
+            channel_id: c.channel_id,
+            chemistry_id: c.chemistry_id,
+            cells_in_series: c.cells_in_series,
+            capacity_ah: c.capacity_ah,
+            min_volts: c.min_volts,
+            max_volts: c.max_volts,
+            run_id: c.run_id,
+            description: c.description,
+        }
+    }
+}
+
+impl Row for ChannelOut {
+    const CSV_HEADER: &'static [&'static str] = &[
+        "channel_id",
+        "chemistry_id",
+        "cells_in_series",
+        "capacity_ah",
+        "min_cell_volts_v",
+        "max_cell_volts_v",
+        "run_id",
+        "description",
+    ];
+    const TABLE: &'static [Col] = &[
+        Col::left("channel", 16),
+        Col::left("chemistry", 16),
+        Col::right("cells", 5),
+        Col::right("Ah", 8),
+        Col::left("window V/cell", 13),
+        Col::right("run", 5),
+        Col::left("description", 0),
+    ];
+    fn table_cells(&self) -> Vec<String> {
+        vec![
+            self.channel_id.clone(),
+            self.chemistry_id.clone(),
+            self.cells_in_series.to_string(),
+            format!("{:.2}", self.capacity_ah),
+            format!("{:.3}–{:.3}", self.min_volts, self.max_volts),
+            self.run_id.to_string(),
+            self.description.clone(),
+        ]
+    }
+}
+
+pub async fn run(cmd: &ChannelsCommand) -> anyhow::Result<()> {
+    match cmd {
+        ChannelsCommand::Put { file, connect } => put(file, connect).await,
+        ChannelsCommand::List { connect, format } => {
+            let channels = client::all_channels(&client::connect(connect).await?).await?;
+            let rows: Vec<ChannelOut> = channels.into_iter().map(ChannelOut::from).collect();
+            output::print_all(&rows, *format)
+        }
+        ChannelsCommand::Get {
+            id,
+            connect,
+            format,
+        } => get(connect, id, *format).await,
+        ChannelsCommand::SetSoc {
+            id,
+            soc,
+            by,
+            note,
+            connect,
+        } => set_soc(connect, id, *soc, by, note).await,
+        ChannelsCommand::ResetTimeline {
+            id,
+            after_seq,
+            connect,
+        } => reset_timeline(connect, id, *after_seq).await,
+    }
+}
+
+fn read_file(file: &Path) -> Result<ChannelsFile, UsageError> {
+    let text = std::fs::read_to_string(file)
+        .map_err(|e| UsageError(format!("{}: {e}", file.display())))?;
+    toml::from_str(&text).map_err(|e| {
+        UsageError(format!(
+            "{}: {}",
+            file.display(),
+            e.to_string().replace('\n', " ")
+        ))
+    })
+}
+
+async fn put(file: &Path, connect: &str) -> anyhow::Result<()> {
+    let parsed = read_file(file)?;
+    let conn = client::connect(connect).await?;
+    let mut channels = ChannelServiceClient::new(conn.clone());
+    let mut alerts = AlertServiceClient::new(conn);
+    for entry in parsed.channel {
+        let id = entry.def.channel_id.clone();
+        let refused = |what: &str, s: tonic::Status| {
+            UsageError(format!(
+                "{}: {what} {id:?}: {}",
+                file.display(),
+                s.message()
+            ))
+        };
+        let request = pb::PutChannelRequest {
+            channel: Some(channel_to_pb(&entry.def, 0)),
+        };
+        let r = channels
+            .put_channel(request)
+            .await
+            .map_err(|s| refused("channel", s))?
+            .into_inner();
+        if let Some(rules) = entry.rules {
+            let request = pb::PutAlertRulesRequest {
+                channel_id: id.clone(),
+                rules: Some(rules_to_pb(&rules)),
+            };
+            alerts
+                .put_alert_rules(request)
+                .await
+                .map_err(|s| refused("rules of", s))?;
+        }
+        let verb = if r.new_run { "new run " } else { "updated " };
+        println!("{verb} {id}");
+    }
+    Ok(())
+}
+
+async fn get(connect: &str, id: &str, format: Format) -> anyhow::Result<()> {
+    let request = pb::GetChannelRequest {
+        channel_id: id.to_string(),
+    };
+    let c = ChannelServiceClient::new(client::connect(connect).await?)
+        .get_channel(request)
+        .await
+        .map_err(client::status_error)?
+        .into_inner()
+        .channel
+        .unwrap_or_default();
+    output::print_all(&[ChannelOut::from(c)], format)
+}
+
+async fn set_soc(connect: &str, id: &str, soc: f64, by: &str, note: &str) -> anyhow::Result<()> {
+    let request = pb::SetChannelSocRequest {
+        channel_id: id.to_string(),
+        soc,
+        set_by: by.to_string(),
+        note: note.to_string(),
+    };
+    let r = ChannelServiceClient::new(client::connect(connect).await?)
+        .set_channel_soc(request)
+        .await
+        .map_err(|s| UsageError(s.message().to_string()))?
+        .into_inner();
+    println!(
+        "{id}: SOC {} from time_unix_ns {} on, counted from there",
+        r.soc, r.time_unix_ns
+    );
+    Ok(())
+}
+
+async fn reset_timeline(connect: &str, id: &str, after_seq: Option<u64>) -> anyhow::Result<()> {
+    let request = pb::ResetTimelineRequest {
+        channel_id: id.to_string(),
+        after_seq,
+    };
+    let r = ChannelServiceClient::new(client::connect(connect).await?)
+        .reset_timeline(request)
+        .await
+        .map_err(|s| UsageError(s.message().to_string()))?
+        .into_inner();
+    println!(
+        "{id}: readings after seq {} (time_unix_ns {}) count as fresh again",
+        r.last_stored_seq, r.time_unix_ns
+    );
+    Ok(())
+}

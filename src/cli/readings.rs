@@ -1,0 +1,286 @@
+//! `gibbsline readings`: a channel's stored readings, or buckets of them,
+//! as a table, CSV or JSON.
+
+use super::client;
+use super::names::{mode_name, ocv_source_name, state_name};
+use super::output::{self, Col, Format, Row, fixed, percent};
+use super::{DEFAULT_ADDR, UsageError};
+use gibbsline::pb;
+use gibbsline::pb::history_service_client::HistoryServiceClient;
+use serde::Serialize;
+use std::time::Duration;
+use tokio_stream::StreamExt;
+
+#[derive(Debug, clap::Args)]
+pub struct ReadingsArgs {
+    #[arg(long, default_value = DEFAULT_ADDR)]
+    pub connect: String,
+    #[arg(long)]
+    pub channel: String,
+    /// Start: a unix time in seconds, or an age such as 2h (two hours ago).
+    #[arg(long)]
+    pub since: Option<String>,
+    /// End (exclusive), same forms as --since.
+    #[arg(long)]
+    pub until: Option<String>,
+    /// Downsample into buckets of this width, e.g. 1m, 10s.
+    #[arg(long, value_parser = super::parse_duration)]
+    pub bucket: Option<Duration>,
+    #[arg(long, default_value_t = 100_000)]
+    pub limit: u32,
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
+}
+
+/// A day, in ns: the default window of a bucket query.
+const DAY_NS: i64 = 86_400_000_000_000;
+
+/// Parses `--since`/`--until`: unix seconds (may be fractional) or an age.
+pub fn parse_time(flag: &str, text: &str, now_ns: i64) -> Result<i64, UsageError> {
+    if let Ok(secs) = text.parse::<f64>()
+        && secs.is_finite()
+        && secs >= 0.0
+    {
+        return Ok((secs * 1e9) as i64);
+    }
+    super::parse_duration(text)
+        .map(|age| now_ns - age.as_nanos() as i64)
+        .map_err(|e| {
+            UsageError(format!(
+                "{flag} {text}: {e}; give unix seconds or an age like 90m"
+            ))
+        })
+}
+
+/// One stored reading; the JSON names are the field names, the CSV header
+/// carries units.
+#[derive(Serialize)]
+pub struct ReadingOut {
+    seq: u64,
+    time_unix_ns: i64,
+    volts: f64,
+    amps: Option<f64>,
+    temp_c: Option<f64>,
+    cell_volts_used: f64,
+    soc_model: Option<f64>,
+    soc_fused: Option<f64>,
+    delta_g_kj_per_mol: Option<f64>,
+    ln_q: Option<f64>,
+    log10_q: Option<f64>,
+    log10_k: f64,
+    affinity_ln_k_over_q: Option<f64>,
+    state: &'static str,
+    charge_ah: f64,
+    energy_wh: f64,
+    resting: bool,
+    out_of_order: bool,
+    operating_mode: &'static str,
+    ocv_source: &'static str,
+    driving_force_v: Option<f64>,
+}
+
+impl From<pb::StoredReading> for ReadingOut {
+    fn from(r: pb::StoredReading) -> ReadingOut {
+        let d = r.derived.unwrap_or_default();
+        ReadingOut {
+            seq: r.seq,
+            time_unix_ns: r.time_unix_ns,
+            volts: r.volts,
+            amps: r.amps,
+            temp_c: r.temp_c,
+            cell_volts_used: d.cell_volts,
+            soc_model: d.soc_model,
+            soc_fused: d.soc_fused,
+            delta_g_kj_per_mol: d.delta_g_kj_per_mol,
+            ln_q: d.ln_q,
+            log10_q: d.log10_q,
+            log10_k: d.log10_k,
+            affinity_ln_k_over_q: d.affinity_ln_k_over_q,
+            state: state_name(d.state),
+            charge_ah: d.charge_ah,
+            energy_wh: d.energy_wh,
+            resting: d.resting,
+            out_of_order: d.out_of_order,
+            operating_mode: mode_name(d.operating_mode),
+            ocv_source: ocv_source_name(d.ocv_source),
+            driving_force_v: d.driving_force_v,
+        }
+    }
+}
+
+impl Row for ReadingOut {
+    const CSV_HEADER: &'static [&'static str] = &[
+        "seq",
+        "time_unix_ns",
+        "volts_v",
+        "amps_a",
+        "temp_c",
+        "cell_volts_used_v",
+        "soc_model",
+        "soc_fused",
+        "delta_g_kj_per_mol",
+        "ln_q",
+        "log10_q",
+        "log10_k",
+        "affinity_ln_k_over_q",
+        "state",
+        "charge_ah",
+        "energy_wh",
+        "resting",
+        "out_of_order",
+        "operating_mode",
+        "ocv_source",
+        "driving_force_v",
+    ];
+    const TABLE: &'static [Col] = &[
+        Col::right("seq", 8),
+        Col::right("time_unix_ns", 19),
+        Col::right("volts", 9),
+        Col::right("amps", 8),
+        Col::right("°C", 7),
+        Col::right("SOC %", 7),
+        Col::right("ΔG kJ/mol", 11),
+        Col::right("log10 Q", 9),
+        Col::left("reaction", 11),
+        Col::left("mode", 12),
+        Col::right("η mV", 8),
+    ];
+    fn table_cells(&self) -> Vec<String> {
+        vec![
+            self.seq.to_string(),
+            self.time_unix_ns.to_string(),
+            format!("{:.4}", self.volts),
+            fixed(self.amps, 3),
+            fixed(self.temp_c, 2),
+            percent(self.soc_fused, 2),
+            fixed(self.delta_g_kj_per_mol, 3),
+            fixed(self.log10_q, 3),
+            self.state.into(),
+            self.operating_mode.into(),
+            fixed(self.driving_force_v.map(|v| v * 1e3), 3),
+        ]
+    }
+}
+
+/// One bucket of readings.
+#[derive(Serialize)]
+pub struct BucketOut {
+    start_unix_ns: i64,
+    count: u64,
+    volts_min: f64,
+    volts_max: f64,
+    volts_mean: f64,
+    volts_last: f64,
+    soc_mean: Option<f64>,
+    soc_last: Option<f64>,
+    delta_g_mean_kj_per_mol: f64,
+}
+
+impl From<&pb::Bucket> for BucketOut {
+    fn from(b: &pb::Bucket) -> BucketOut {
+        let v = b.volts.unwrap_or_default();
+        BucketOut {
+            start_unix_ns: b.start_unix_ns,
+            count: b.count,
+            volts_min: v.min,
+            volts_max: v.max,
+            volts_mean: v.mean,
+            volts_last: v.last,
+            soc_mean: b.soc.map(|s| s.mean),
+            soc_last: b.soc.map(|s| s.last),
+            delta_g_mean_kj_per_mol: b.delta_g_kj_per_mol.unwrap_or_default().mean,
+        }
+    }
+}
+
+impl Row for BucketOut {
+    const CSV_HEADER: &'static [&'static str] = &[
+        "start_unix_ns",
+        "count",
+        "volts_min_v",
+        "volts_max_v",
+        "volts_mean_v",
+        "volts_last_v",
+        "soc_mean",
+        "soc_last",
+        "delta_g_mean_kj_per_mol",
+    ];
+    const TABLE: &'static [Col] = &[
+        Col::right("start_unix_ns", 19),
+        Col::right("count", 6),
+        Col::right("V min", 9),
+        Col::right("V mean", 9),
+        Col::right("V max", 9),
+        Col::right("SOC %", 7),
+        Col::right("ΔG kJ/mol", 11),
+    ];
+    fn table_cells(&self) -> Vec<String> {
+        vec![
+            self.start_unix_ns.to_string(),
+            self.count.to_string(),
+            format!("{:.4}", self.volts_min),
+            format!("{:.4}", self.volts_mean),
+            format!("{:.4}", self.volts_max),
+            percent(self.soc_mean, 1),
+            format!("{:.3}", self.delta_g_mean_kj_per_mol),
+        ]
+    }
+}
+
+/// The asked window in ns; 0 means open at that end.
+fn window(args: &ReadingsArgs, now: i64) -> Result<(i64, i64), UsageError> {
+    let at = |flag, text: &Option<String>| {
+        text.as_deref()
+            .map(|s| parse_time(flag, s, now))
+            .transpose()
+            .map(|t| t.unwrap_or(0))
+    };
+    Ok((at("--since", &args.since)?, at("--until", &args.until)?))
+}
+
+pub async fn run(args: &ReadingsArgs) -> anyhow::Result<()> {
+    let now = client::now_ns();
+    let (start, end) = window(args, now)?;
+    let mut history = HistoryServiceClient::new(client::connect(&args.connect).await?)
+        .max_decoding_message_size(gibbsline::grpc::MAX_MESSAGE_BYTES);
+    if let Some(width) = args.bucket {
+        let request = pb::QueryBucketsRequest {
+            channel_id: args.channel.clone(),
+            start_unix_ns: if start == 0 && end == 0 {
+                now - DAY_NS
+            } else {
+                start
+            },
+            end_unix_ns: if end == 0 { now + DAY_NS } else { end },
+            bucket_width_ns: width.as_nanos() as i64,
+        };
+        let buckets = history
+            .query_buckets(request)
+            .await
+            .map_err(client::status_error)?
+            .into_inner()
+            .buckets;
+        let rows: Vec<BucketOut> = buckets.iter().map(BucketOut::from).collect();
+        return output::print_all(&rows, args.format);
+    }
+    let request = pb::QueryReadingsRequest {
+        channel_id: args.channel.clone(),
+        start_unix_ns: start,
+        end_unix_ns: end,
+        limit: args.limit,
+    };
+    let mut stream = history
+        .query_readings(request)
+        .await
+        .map_err(client::status_error)?
+        .into_inner();
+    let mut rows = Vec::new();
+    while let Some(page) = stream.next().await {
+        rows.extend(page?.readings.into_iter().map(ReadingOut::from));
+    }
+    output::print_all(&rows, args.format)?;
+    if args.format == Format::Table {
+        eprintln!("{} readings", rows.len());
+    }
+    Ok(())
+}

@@ -1,0 +1,63 @@
+//! `gibbsline rig simulate`: the simulated bench as its own process,
+//! streaming to a server and resuming after restarts.
+
+use super::{DEFAULT_ADDR, UsageError, rig};
+use std::time::Duration;
+
+#[derive(Debug, clap::Subcommand)]
+pub enum RigCommand {
+    /// Stream the simulated bench to a server; resumes after restarts.
+    Simulate {
+        #[arg(long, default_value = DEFAULT_ADDR)]
+        connect: String,
+        /// How many simulated channels (the bench's four, repeated).
+        #[arg(long, default_value_t = 4)]
+        channels: usize,
+        #[arg(long, default_value_t = 60.0)]
+        speed: f64,
+        /// Stop after this long (default: run until Ctrl-C).
+        #[arg(long, value_parser = super::parse_duration)]
+        duration: Option<Duration>,
+    },
+}
+
+pub async fn run(cmd: &RigCommand) -> anyhow::Result<()> {
+    let RigCommand::Simulate {
+        connect,
+        channels,
+        speed,
+        duration,
+    } = cmd;
+    if *channels == 0 || *channels > 10_000 {
+        return Err(UsageError(format!("--channels {channels}: must be from 1 to 10000")).into());
+    }
+    if !(speed.is_finite() && *speed > 0.0 && *speed <= 10_000.0) {
+        return Err(UsageError(format!(
+            "--speed {speed}: must be above 0 and at most 10000"
+        ))
+        .into());
+    }
+    let sim = rig::harbour_lane(*channels, 11);
+    rig::define_channels(connect, &sim).await?;
+    let stats = std::sync::Arc::new(rig::RigStats::default());
+    let stop = stats.clone();
+    tokio::spawn(async move {
+        let _ = tokio::signal::ctrl_c().await;
+        stop.stop.store(true, std::sync::atomic::Ordering::Relaxed);
+    });
+    let opts = rig::RigOptions {
+        speed: *speed,
+        readings_per_sim_s: 1.0,
+        duration: *duration,
+        quiet: false,
+    };
+    rig::run(connect.clone(), sim, opts, stats.clone()).await?;
+    use std::sync::atomic::Ordering::Relaxed;
+    println!(
+        "rig: {} readings sent, {} acknowledged, {} reconnects",
+        stats.sent.load(Relaxed),
+        stats.acked.load(Relaxed),
+        stats.reconnects.load(Relaxed)
+    );
+    Ok(())
+}
