@@ -193,7 +193,26 @@ impl AlertRules {
 
     /// Rejects rules that cannot work, naming the field and value.
     pub fn validate(&self) -> Result<(), String> {
-        let pairs: [(&str, Threshold, bool); 7] = [
+        for (name, t, rising) in self.thresholds() {
+            t.check(name, rising)?;
+        }
+        for (name, v) in self.scalars() {
+            if !v.is_finite() {
+                return Err(format!("{name} = {v}: must be finite"));
+            }
+        }
+        below(
+            "min_cell_volts",
+            self.min_cell_volts,
+            "max_cell_volts",
+            self.max_cell_volts,
+        )?;
+        below("min_temp_c", self.min_temp_c, "max_temp_c", self.max_temp_c)
+    }
+
+    /// The hysteresis thresholds, and whether each raises on a rising value.
+    fn thresholds(&self) -> [(&'static str, Threshold, bool); 7] {
+        [
             (
                 "driving_force_cell_volts",
                 self.driving_force_cell_volts,
@@ -221,36 +240,12 @@ impl AlertRules {
                 self.rest_settled_mv_per_min,
                 false,
             ),
-        ];
-        for (name, t, rising) in pairs {
-            for (part, v) in [
-                ("raise_at", t.raise_at),
-                ("clear_at", t.clear_at),
-                ("hold_s", t.hold_s),
-            ] {
-                if !v.is_finite() {
-                    return Err(format!("{name}.{part} = {v}: must be finite"));
-                }
-            }
-            if t.hold_s < 0.0 {
-                return Err(format!(
-                    "{name}.hold_s = {}: must not be negative",
-                    t.hold_s
-                ));
-            }
-            let ok = if rising {
-                t.clear_at <= t.raise_at
-            } else {
-                t.clear_at >= t.raise_at
-            };
-            if !ok {
-                return Err(format!(
-                    "{name}.clear_at = {}: must be on the safe side of raise_at ({}) for hysteresis",
-                    t.clear_at, t.raise_at
-                ));
-            }
-        }
-        for (name, v) in [
+        ]
+    }
+
+    /// The plain numbers, each of which must be finite.
+    fn scalars(&self) -> [(&'static str, f64); 9] {
+        [
             ("end_of_charge_lead_s", self.end_of_charge_lead_s),
             ("min_cell_volts", self.min_cell_volts),
             ("max_cell_volts", self.max_cell_volts),
@@ -263,21 +258,48 @@ impl AlertRules {
                 "driving_force_after_stop_s",
                 self.driving_force_after_stop_s,
             ),
+        ]
+    }
+}
+
+/// A window's upper end must lie above its lower end.
+fn below(low_name: &str, low: f64, high_name: &str, high: f64) -> Result<(), String> {
+    if low >= high {
+        return Err(format!(
+            "{high_name} = {high}: must be above {low_name} ({low})"
+        ));
+    }
+    Ok(())
+}
+
+impl Threshold {
+    /// Finite parts, a hold that is not negative, and a clear level on the
+    /// safe side of the raise level (hysteresis).
+    fn check(&self, name: &str, rising: bool) -> Result<(), String> {
+        for (part, v) in [
+            ("raise_at", self.raise_at),
+            ("clear_at", self.clear_at),
+            ("hold_s", self.hold_s),
         ] {
             if !v.is_finite() {
-                return Err(format!("{name} = {v}: must be finite"));
+                return Err(format!("{name}.{part} = {v}: must be finite"));
             }
         }
-        if self.min_cell_volts >= self.max_cell_volts {
+        if self.hold_s < 0.0 {
             return Err(format!(
-                "max_cell_volts = {}: must be above min_cell_volts ({})",
-                self.max_cell_volts, self.min_cell_volts
+                "{name}.hold_s = {}: must not be negative",
+                self.hold_s
             ));
         }
-        if self.min_temp_c >= self.max_temp_c {
+        let safe_side = if rising {
+            self.clear_at <= self.raise_at
+        } else {
+            self.clear_at >= self.raise_at
+        };
+        if !safe_side {
             return Err(format!(
-                "max_temp_c = {}: must be above min_temp_c ({})",
-                self.max_temp_c, self.min_temp_c
+                "{name}.clear_at = {}: must be on the safe side of raise_at ({}) for hysteresis",
+                self.clear_at, self.raise_at
             ));
         }
         Ok(())

@@ -350,7 +350,104 @@ pub fn step(
     input: EstimatorInput,
 ) -> Result<Estimate, EstimatorError> {
     let temp_k = input.temp_k.unwrap_or(config.default_temp_k);
-    let cells = f64::from(config.cells_in_series.max(1));
+    let gap = advance_counts(config, state, input);
+    let terminal = Terminal::of(config, state, input);
+    let rest = track_rest(
+        config,
+        state,
+        input.time_ns,
+        terminal.cell_volts,
+        input.amps,
+    );
+    let (at_model, soc_model) = model_soc(chemistry, config, &terminal, input, temp_k)?;
+    let anchor_by_resistance =
+        terminal.compensated_stack_volts.is_some() && config.resistance_ohm.is_some();
+    let fused = fuse_soc(
+        config,
+        state,
+        soc_model,
+        input,
+        rest.settled,
+        anchor_by_resistance,
+    );
+    let eq = equilibrium(
+        chemistry, config, &terminal, input, &fused, at_model, temp_k,
+    );
+    let cycle_closed = observe_cycle(config, state, input, terminal.cell_volts, &eq, fused.fused);
+    remember(state, input);
+    Ok(Estimate {
+        temp_k,
+        cell_volts_used: eq.ocv_cell_volts,
+        ocv_source: eq.ocv_source,
+        driving_force_volts: eq.driving_force_volts,
+        soc_model,
+        resistance_ohm: terminal.resistance_ohm,
+        soc_counted: fused.counted,
+        soc_counted_unclamped: fused.counted_unclamped,
+        soc_fused: fused.fused,
+        soc_method: fused.method,
+        resting: rest.resting,
+        rest_settled: rest.settled,
+        dv_dt_mv_per_min: rest.dv_dt_mv_per_min,
+        soc_rate_per_s: soc_rate_per_s(config, input.amps),
+        charge_ah: state.charge_ah,
+        energy_wh: state.energy_wh,
+        gap,
+        cycle_closed,
+        evaluation: eq.evaluation,
+    })
+}
+
+/// The open-circuit estimate, the thermodynamics there and the driving force.
+struct AtEquilibrium {
+    ocv_source: OcvSource,
+    ocv_cell_volts: f64,
+    driving_force_volts: Option<f64>,
+    evaluation: electrochem::Evaluation,
+}
+
+fn equilibrium(
+    chemistry: &Chemistry,
+    config: &EstimatorConfig,
+    terminal: &Terminal,
+    input: EstimatorInput,
+    fused: &FusedSoc,
+    at_model: electrochem::Evaluation,
+    temp_k: f64,
+) -> AtEquilibrium {
+    let counted_ocv = counted_ocv_cell_volts(chemistry, fused, &at_model, temp_k);
+    let (ocv_source, ocv_cell_volts) = open_circuit(OpenCircuitClues {
+        config,
+        temp_k,
+        cell_terminal: terminal.cell_volts,
+        has_current: input.amps.is_some(),
+        flowing: terminal.flowing,
+        counted_ocv,
+        compensated_cell_volts: terminal.compensated_stack_volts.map(|v| v / terminal.cells),
+    });
+    let evaluation = at_open_circuit(chemistry, config, at_model, ocv_cell_volts, temp_k);
+    let driving_force_volts = driving_force(
+        ocv_source,
+        terminal.flowing,
+        terminal.cell_volts,
+        ocv_cell_volts,
+        counted_ocv,
+    );
+    AtEquilibrium {
+        ocv_source,
+        ocv_cell_volts,
+        driving_force_volts,
+        evaluation,
+    }
+}
+
+/// Resistance and charge since the last reading; whether the interval
+/// was a gap (too long to count across).
+fn advance_counts(
+    config: &EstimatorConfig,
+    state: &mut EstimatorState,
+    input: EstimatorInput,
+) -> bool {
     let dt_s = state
         .last_time_ns
         .map(|last| (input.time_ns - last) as f64 / NS_PER_S);
@@ -364,60 +461,92 @@ pub fn step(
             integrate(config, state, input, dt);
         }
     }
-    let resistance_ohm = config.resistance_ohm.or(state.resistance.map(|r| r.ohm));
-    let compensated_stack_volts = match (resistance_ohm, input.amps) {
-        (Some(r), Some(i)) if i != 0.0 => Some(input.stack_volts - i * r),
-        _ => None,
-    };
-    let flowing = input
-        .amps
-        .is_some_and(|i| i.abs() >= config.rest_current_amps);
-    let cell_terminal = input.stack_volts / cells;
-    let rest = track_rest(config, state, input.time_ns, cell_terminal, input.amps);
+    gap
+}
 
-    // The model reads SOC only off an open-circuit voltage: the terminal
-    // voltage with no current, V − I·R under current.
-    let model_stack_volts = if flowing {
-        compensated_stack_volts
-    } else {
-        Some(input.stack_volts)
-    };
-    let request = |stack_volts| EvalRequest {
-        stack_volts,
-        cells_in_series: config.cells_in_series.max(1),
-        temp_k,
-        equilibrium_tolerance_volts: config.equilibrium_tolerance_volts,
-    };
-    let at_model = electrochem::evaluate(
-        chemistry,
-        request(model_stack_volts.unwrap_or(input.stack_volts)),
-    )?;
-    let soc_model = model_stack_volts.and(at_model.soc);
-    let anchor_by_resistance = compensated_stack_volts.is_some() && config.resistance_ohm.is_some();
-    let fused = fuse_soc(
-        config,
-        state,
-        soc_model,
-        input,
-        rest.settled,
-        anchor_by_resistance,
-    );
-    let counted_ocv = fused
+/// The model's OCV at the counted SOC, when the count is what SOC rests on.
+fn counted_ocv_cell_volts(
+    chemistry: &Chemistry,
+    fused: &FusedSoc,
+    at_model: &electrochem::Evaluation,
+    temp_k: f64,
+) -> Option<f64> {
+    fused
         .counted
         .filter(|_| fused.method == SocMethod::Counted)
         .and_then(|soc| {
             model_ocv_cell_volts(chemistry, soc, at_model.thermo.e_standard_volts, temp_k)
-        });
-    let (ocv_source, ocv_cell_volts) = open_circuit(OpenCircuitClues {
-        config,
+        })
+}
+
+/// What the terminals say about one reading.
+struct Terminal {
+    cells: f64,
+    cell_volts: f64,
+    resistance_ohm: Option<f64>,
+    /// V − I·R of the stack, when a resistance is known and current flows.
+    compensated_stack_volts: Option<f64>,
+    /// Current above the rest threshold.
+    flowing: bool,
+    stack_volts: f64,
+}
+
+impl Terminal {
+    fn of(config: &EstimatorConfig, state: &EstimatorState, input: EstimatorInput) -> Terminal {
+        let cells = f64::from(config.cells_in_series.max(1));
+        let resistance_ohm = config.resistance_ohm.or(state.resistance.map(|r| r.ohm));
+        let compensated_stack_volts = match (resistance_ohm, input.amps) {
+            (Some(r), Some(i)) if i != 0.0 => Some(input.stack_volts - i * r),
+            _ => None,
+        };
+        Terminal {
+            cells,
+            cell_volts: input.stack_volts / cells,
+            resistance_ohm,
+            compensated_stack_volts,
+            flowing: input
+                .amps
+                .is_some_and(|i| i.abs() >= config.rest_current_amps),
+            stack_volts: input.stack_volts,
+        }
+    }
+}
+
+/// The model's evaluation, and its SOC when the voltage it read was an
+/// open-circuit one: the terminal voltage with no current, V − I·R under
+/// current, never the terminal voltage under load.
+fn model_soc(
+    chemistry: &Chemistry,
+    config: &EstimatorConfig,
+    terminal: &Terminal,
+    input: EstimatorInput,
+    temp_k: f64,
+) -> Result<(electrochem::Evaluation, Option<f64>), EstimatorError> {
+    let model_stack_volts = if terminal.flowing {
+        terminal.compensated_stack_volts
+    } else {
+        Some(terminal.stack_volts)
+    };
+    let request = EvalRequest {
+        stack_volts: model_stack_volts.unwrap_or(input.stack_volts),
+        cells_in_series: config.cells_in_series.max(1),
         temp_k,
-        cell_terminal,
-        has_current: input.amps.is_some(),
-        flowing,
-        counted_ocv,
-        compensated_cell_volts: compensated_stack_volts.map(|v| v / cells),
-    });
-    let mut evaluation = at_model;
+        equilibrium_tolerance_volts: config.equilibrium_tolerance_volts,
+    };
+    let at_model = electrochem::evaluate(chemistry, request)?;
+    let soc = model_stack_volts.and(at_model.soc);
+    Ok((at_model, soc))
+}
+
+/// The thermodynamics at the open-circuit estimate (recomputed only when
+/// it differs from the voltage the model read).
+fn at_open_circuit(
+    chemistry: &Chemistry,
+    config: &EstimatorConfig,
+    mut evaluation: electrochem::Evaluation,
+    ocv_cell_volts: f64,
+    temp_k: f64,
+) -> electrochem::Evaluation {
     if ocv_cell_volts != evaluation.thermo.cell_volts {
         evaluation.thermo = electrochem::thermo::thermo_state(
             chemistry.n_electrons,
@@ -427,52 +556,40 @@ pub fn step(
             config.equilibrium_tolerance_volts,
         );
     }
-    let driving_force_volts = driving_force(
-        ocv_source,
-        flowing,
-        cell_terminal,
-        ocv_cell_volts,
-        counted_ocv,
-    );
-    let cycle_closed = state.cycles.observe(cycles::Observation {
+    evaluation
+}
+
+/// Feeds the cycle tracker; a cycle it closed, if any.
+fn observe_cycle(
+    config: &EstimatorConfig,
+    state: &mut EstimatorState,
+    input: EstimatorInput,
+    cell_volts: f64,
+    eq: &AtEquilibrium,
+    soc: Option<f64>,
+) -> Option<CycleRecord> {
+    let delta_g_kj_per_mol = eq
+        .ocv_source
+        .known()
+        .then_some(eq.evaluation.thermo.delta_g_kj_per_mol);
+    state.cycles.observe(cycles::Observation {
         time_ns: input.time_ns,
         direction: direction_of(config, input.amps),
-        cell_volts: cell_terminal,
-        delta_g_kj_per_mol: ocv_source
-            .known()
-            .then_some(evaluation.thermo.delta_g_kj_per_mol),
-        soc: fused.fused,
+        cell_volts,
+        delta_g_kj_per_mol,
+        soc,
         charge_in_ah: state.charge_in_ah,
         charge_out_ah: state.charge_out_ah,
         energy_in_wh: state.energy_in_wh,
         energy_out_wh: state.energy_out_wh,
-    });
+    })
+}
 
+/// What the next reading's interval is measured from.
+fn remember(state: &mut EstimatorState, input: EstimatorInput) {
     state.last_time_ns = Some(input.time_ns);
     state.last_stack_volts = input.stack_volts;
     state.last_amps = input.amps;
-
-    Ok(Estimate {
-        temp_k,
-        cell_volts_used: ocv_cell_volts,
-        ocv_source,
-        driving_force_volts,
-        soc_model,
-        resistance_ohm,
-        soc_counted: fused.counted,
-        soc_counted_unclamped: fused.counted_unclamped,
-        soc_fused: fused.fused,
-        soc_method: fused.method,
-        resting: rest.resting,
-        rest_settled: rest.settled,
-        dv_dt_mv_per_min: rest.dv_dt_mv_per_min,
-        soc_rate_per_s: soc_rate_per_s(config, input.amps),
-        charge_ah: state.charge_ah,
-        energy_wh: state.energy_wh,
-        gap,
-        cycle_closed,
-        evaluation,
-    })
 }
 
 /// Resistance from a current step: ΔV/ΔI across a short interval (the

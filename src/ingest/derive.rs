@@ -200,6 +200,23 @@ struct BatchParts {
     front_moved: bool,
 }
 
+impl TimelineTally {
+    /// Whether `r` is past the channel's front (fresh), counting the ways
+    /// a reading that is not can disagree with it.
+    fn classify(&mut self, rt: &ChannelRuntime, r: &RawReading) -> bool {
+        let new_seq = rt.max_seq.is_none_or(|m| r.seq > m);
+        let fresh = new_seq && r.time_unix_ns > rt.last_time_ns;
+        if new_seq && !fresh {
+            self.clock_back += 1;
+        } else if !new_seq && r.time_unix_ns > rt.last_time_ns {
+            // Time moved on but the seq is behind the front: the front
+            // came from a seq that jumped ahead of the rig's numbering.
+            self.seq_behind += 1;
+        }
+        fresh
+    }
+}
+
 /// The pure part of ingest for one batch, under the channel's lock.
 pub fn derive_batch(
     rt: &mut ChannelRuntime,
@@ -225,15 +242,7 @@ pub fn derive_batch(
             });
             continue;
         }
-        let new_seq = rt.max_seq.is_none_or(|m| r.seq > m);
-        let fresh = new_seq && r.time_unix_ns > rt.last_time_ns;
-        if new_seq && !fresh {
-            timeline.clock_back += 1;
-        } else if !new_seq && r.time_unix_ns > rt.last_time_ns {
-            // Time moved on but the seq is behind the front: the front
-            // came from a seq that jumped ahead of the rig's numbering.
-            timeline.seq_behind += 1;
-        }
+        let fresh = timeline.classify(rt, r);
         let derived = if fresh {
             derive_fresh(rt, r, &mut parts)
         } else {

@@ -198,67 +198,7 @@ async fn write_jobs(
     for job in batch {
         let mut out = WriteOutcome::default();
         match job {
-            Job::Readings(r) => {
-                out.fresh_inserted = store::insert_fresh(tx, &r.rows).await?;
-                // A fresh row can only collide if two streams raced on a
-                // channel; count it as the duplicate it is.
-                out.duplicates += r.rows.len() as u64 - out.fresh_inserted;
-                for row in &r.maybe_dup {
-                    if store::insert_if_new(tx, row).await? {
-                        out.late_inserted += 1;
-                    } else {
-                        out.duplicates += 1;
-                    }
-                }
-                for change in &r.changes {
-                    match change {
-                        AlertChange::Raise(a) => {
-                            let ev = store::raise_alert(
-                                tx,
-                                ids.next_alert_id,
-                                ids.next_event_id,
-                                r.channel_key,
-                                r.run_id,
-                                a,
-                            )
-                            .await?;
-                            ids.next_alert_id += 1;
-                            ids.next_event_id += 1;
-                            out.events.push(ev);
-                        }
-                        AlertChange::Clear { kind, time_ns } => {
-                            if let Some(ev) = store::clear_alert(
-                                tx,
-                                ids.next_event_id,
-                                r.channel_key,
-                                *kind,
-                                *time_ns,
-                            )
-                            .await?
-                            {
-                                ids.next_event_id += 1;
-                                out.events.push(ev);
-                            }
-                        }
-                    }
-                }
-                for c in &r.cycles {
-                    let json = serde_json::to_string(c).unwrap_or_default();
-                    store::insert_cycle(tx, r.channel_key, r.run_id, c.index, &json).await?;
-                }
-                if let Some(s) = &r.estimator {
-                    store::save_estimator(
-                        tx,
-                        r.channel_key,
-                        r.run_id,
-                        s.last_seq,
-                        s.last_time_ns,
-                        s.usual_interval_s,
-                        &s.state_json,
-                    )
-                    .await?;
-                }
-            }
+            Job::Readings(r) => write_readings(tx, ids, r, &mut out).await?,
             Job::Alerts {
                 channel_key,
                 run_id,
@@ -266,43 +206,11 @@ async fn write_jobs(
                 ..
             } => {
                 for a in raised {
-                    let ev = store::raise_alert(
-                        tx,
-                        ids.next_alert_id,
-                        ids.next_event_id,
-                        *channel_key,
-                        *run_id,
-                        a,
-                    )
-                    .await?;
-                    ids.next_alert_id += 1;
-                    ids.next_event_id += 1;
-                    out.events.push(ev);
+                    out.events
+                        .push(raise(tx, ids, *channel_key, *run_id, a).await?);
                 }
             }
-            Job::Operator { change: c, .. } => {
-                store::insert_operator_event(
-                    tx,
-                    c.channel_key,
-                    c.run_id,
-                    c.time_ns,
-                    c.kind,
-                    &c.by,
-                    &c.detail_json,
-                )
-                .await?;
-                let s = &c.estimator;
-                store::save_estimator(
-                    tx,
-                    c.channel_key,
-                    c.run_id,
-                    s.last_seq,
-                    s.last_time_ns,
-                    s.usual_interval_s,
-                    &s.state_json,
-                )
-                .await?;
-            }
+            Job::Operator { change, .. } => write_operator(tx, change).await?,
             Job::Acknowledge {
                 alert_id,
                 by,
@@ -310,10 +218,10 @@ async fn write_jobs(
                 time_ns,
                 ..
             } => {
-                if let Some(ev) =
+                let event =
                     store::acknowledge_alert(tx, ids.next_event_id, *alert_id, by, note, *time_ns)
-                        .await?
-                {
+                        .await?;
+                if let Some(ev) = event {
                     ids.next_event_id += 1;
                     out.events.push(ev);
                 }
@@ -322,4 +230,102 @@ async fn write_jobs(
         outcomes.push(out);
     }
     Ok(outcomes)
+}
+
+/// One batch's rows, alert changes, closed cycles and estimator snapshot.
+async fn write_readings(
+    tx: &mut store::Tx<'_>,
+    ids: &mut Ids,
+    r: &ReadingsJob,
+    out: &mut WriteOutcome,
+) -> Result<(), StoreError> {
+    out.fresh_inserted = store::insert_fresh(tx, &r.rows).await?;
+    // A fresh row can only collide if two streams raced on a channel;
+    // count it as the duplicate it is.
+    out.duplicates += r.rows.len() as u64 - out.fresh_inserted;
+    for row in &r.maybe_dup {
+        if store::insert_if_new(tx, row).await? {
+            out.late_inserted += 1;
+        } else {
+            out.duplicates += 1;
+        }
+    }
+    for change in &r.changes {
+        let event = match change {
+            AlertChange::Raise(a) => Some(raise(tx, ids, r.channel_key, r.run_id, a).await?),
+            AlertChange::Clear { kind, time_ns } => {
+                let event =
+                    store::clear_alert(tx, ids.next_event_id, r.channel_key, *kind, *time_ns)
+                        .await?;
+                if event.is_some() {
+                    ids.next_event_id += 1;
+                }
+                event
+            }
+        };
+        out.events.extend(event);
+    }
+    for c in &r.cycles {
+        let json = serde_json::to_string(c).unwrap_or_default();
+        store::insert_cycle(tx, r.channel_key, r.run_id, c.index, &json).await?;
+    }
+    if let Some(s) = &r.estimator {
+        save_snapshot(tx, r.channel_key, r.run_id, s).await?;
+    }
+    Ok(())
+}
+
+/// Raises one alert with the next alert and event ids.
+async fn raise(
+    tx: &mut store::Tx<'_>,
+    ids: &mut Ids,
+    channel_key: i64,
+    run_id: i64,
+    alert: &RaisedAlert,
+) -> Result<AlertEvent, StoreError> {
+    let event = store::raise_alert(
+        tx,
+        ids.next_alert_id,
+        ids.next_event_id,
+        channel_key,
+        run_id,
+        alert,
+    )
+    .await?;
+    ids.next_alert_id += 1;
+    ids.next_event_id += 1;
+    Ok(event)
+}
+
+/// An operator's change, with the estimator snapshot it leaves behind.
+async fn write_operator(tx: &mut store::Tx<'_>, c: &OperatorChange) -> Result<(), StoreError> {
+    store::insert_operator_event(
+        tx,
+        c.channel_key,
+        c.run_id,
+        c.time_ns,
+        c.kind,
+        &c.by,
+        &c.detail_json,
+    )
+    .await?;
+    save_snapshot(tx, c.channel_key, c.run_id, &c.estimator).await
+}
+
+async fn save_snapshot(
+    tx: &mut store::Tx<'_>,
+    channel_key: i64,
+    run_id: i64,
+    s: &EstimatorSnapshot,
+) -> Result<(), StoreError> {
+    store::save_estimator(
+        tx,
+        channel_key,
+        run_id,
+        s.last_seq,
+        s.last_time_ns,
+        s.usual_interval_s,
+        &s.state_json,
+    )
+    .await
 }
