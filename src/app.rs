@@ -93,7 +93,7 @@ pub async fn run(
     }
     let metrics_task = config
         .metrics_listener
-        .map(|l| tokio::spawn(serve_metrics(l, hub.clone())));
+        .map(|l| tokio::spawn(crate::http::serve_metrics(l, hub.clone())));
     let (writer_stop_tx, writer_stop_rx) = tokio::sync::watch::channel(false);
     let writer_task = tokio::spawn(writer::run(
         store.clone(),
@@ -312,59 +312,6 @@ async fn raise_if_silent(hub: &Hub, rt: &Mutex<ingest::ChannelRuntime>, now: i64
         if written.is_err() {
             hub.reload_after_failure(rt).await;
         }
-    }
-}
-
-/// Metrics connections served at once.
-const METRICS_CONNECTIONS: usize = 16;
-
-/// A minimal HTTP/1.1 responder: every request gets the metrics page.
-/// Requests are read only up to the end of their headers and bounded, so a
-/// slow or hostile client cannot hold memory.
-async fn serve_metrics(listener: TcpListener, hub: Arc<Hub>) {
-    use tokio::io::{AsyncReadExt, AsyncWriteExt};
-    // Scrapers come a few at a time; beyond this many open connections a
-    // new one is closed at once rather than given a task and a buffer.
-    let open = Arc::new(tokio::sync::Semaphore::new(METRICS_CONNECTIONS));
-    loop {
-        let mut socket = match listener.accept().await {
-            Ok((socket, _)) => socket,
-            Err(e) => {
-                // Out of file descriptors, typically: back off, don't spin.
-                tracing::warn!(error = %e, "metrics accept failed");
-                tokio::time::sleep(Duration::from_millis(100)).await;
-                continue;
-            }
-        };
-        let Ok(permit) = open.clone().try_acquire_owned() else {
-            continue;
-        };
-        let hub = hub.clone();
-        tokio::spawn(async move {
-            let _permit = permit;
-            let mut buf = vec![0u8; 4096];
-            let mut used = 0;
-            let read = tokio::time::timeout(Duration::from_secs(5), async {
-                while used < buf.len() {
-                    match socket.read(&mut buf[used..]).await {
-                        Ok(0) | Err(_) => break,
-                        Ok(n) => used += n,
-                    }
-                    if buf[..used].windows(4).any(|w| w == b"\r\n\r\n") {
-                        break;
-                    }
-                }
-            });
-            if read.await.is_err() {
-                return;
-            }
-            let body = render_metrics(&hub);
-            let response = format!(
-                "HTTP/1.1 200 OK\r\ncontent-type: text/plain; version=0.0.4\r\ncontent-length: {}\r\nconnection: close\r\n\r\n{body}",
-                body.len()
-            );
-            let _ = socket.write_all(response.as_bytes()).await;
-        });
     }
 }
 

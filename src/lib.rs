@@ -16,6 +16,7 @@ pub mod estimator;
 #[cfg(any(test, fuzzing))]
 pub mod fuzzing;
 pub mod grpc;
+pub mod http;
 pub mod ingest;
 pub mod listen;
 pub mod metrics;

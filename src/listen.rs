@@ -1,4 +1,4 @@
-//! The accepting side of the gRPC port: an accept loop that backs off
+//! The accepting side of the gRPC (and HTTP) ports: an accept loop that backs off
 //! (and says so) when the process is out of file descriptors, and
 //! connections that are closed after a stretch with no bytes either way.
 //!
@@ -13,14 +13,14 @@ use std::task::{Context, Poll};
 use std::time::Duration;
 use tokio::io::{AsyncRead, AsyncWrite, ReadBuf};
 use tokio::net::{TcpListener, TcpStream};
-use tokio::sync::mpsc;
+use tokio::sync::{OwnedSemaphorePermit, mpsc};
 use tokio::time::{Instant, Sleep};
 use tokio_stream::wrappers::ReceiverStream;
 
 /// Accepted connections waiting for the server to take them.
 const ACCEPT_QUEUE: usize = 64;
 /// Pause after a failed accept (EMFILE and the like).
-const ACCEPT_BACKOFF: Duration = Duration::from_millis(200);
+pub const ACCEPT_BACKOFF: Duration = Duration::from_millis(200);
 
 /// The stream of connections `tonic` serves; the loop ends with the stream.
 pub fn incoming(
@@ -66,6 +66,8 @@ pub struct IdleLimited {
     inner: TcpStream,
     idle: Duration,
     deadline: Pin<Box<Sleep>>,
+    /// A place among a bounded number of connections, held while open.
+    _place: Option<OwnedSemaphorePermit>,
 }
 
 impl IdleLimited {
@@ -74,6 +76,15 @@ impl IdleLimited {
             inner,
             idle,
             deadline: Box::pin(tokio::time::sleep(idle)),
+            _place: None,
+        }
+    }
+
+    /// A connection that holds `place` until it closes.
+    pub fn holding(inner: TcpStream, idle: Duration, place: OwnedSemaphorePermit) -> IdleLimited {
+        IdleLimited {
+            _place: Some(place),
+            ..IdleLimited::new(inner, idle)
         }
     }
 

@@ -9,7 +9,7 @@ use tokio::io::{AsyncReadExt, AsyncWriteExt};
 async fn scrape(addr: std::net::SocketAddr) -> String {
     let mut socket = tokio::net::TcpStream::connect(addr).await.unwrap();
     socket
-        .write_all(b"GET /metrics HTTP/1.1\r\nhost: test\r\n\r\n")
+        .write_all(b"GET /metrics HTTP/1.1\r\nhost: test\r\nconnection: close\r\n\r\n")
         .await
         .unwrap();
     let mut response = String::new();
