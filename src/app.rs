@@ -105,77 +105,30 @@ pub async fn run(
     let silent_task = tokio::spawn(silent_watch(hub.clone()));
 
     let (health_reporter, health_service) = tonic_health::server::health_reporter();
-    health_reporter
-        .set_service_status(
-            grpc::INGEST_SERVICE_NAME,
-            tonic_health::ServingStatus::Serving,
-        )
-        .await;
-    health_reporter
-        .set_service_status("", tonic_health::ServingStatus::Serving)
-        .await;
+    set_health(&health_reporter, tonic_health::ServingStatus::Serving).await;
     let health_task = tokio::spawn(follow_storage_health(
         store.clone(),
         health_reporter.clone(),
         hub.shutdown_signal(),
     ));
-    let reflection_v1 = tonic_reflection::server::Builder::configure()
-        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
-        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
-        .build_v1()
-        .map_err(|e| AppError::Reflection(e.to_string()))?;
-    let reflection_v1alpha = tonic_reflection::server::Builder::configure()
-        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
-        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
-        .build_v1alpha()
-        .map_err(|e| AppError::Reflection(e.to_string()))?;
-
     let addr = listener.local_addr().ok();
     tracing::info!(?addr, db = %config.db_path.display(), "serving");
     let connection_idle = Duration::from_secs(config.limits.connection_idle_timeout_s);
-    let keepalive = connection_idle / 3;
     let incoming = crate::listen::incoming(listener, connection_idle);
     let reporter = health_reporter.clone();
-    let mut builder = tonic::transport::Server::builder()
-        .max_concurrent_streams(Some(MAX_STREAMS_PER_CONNECTION))
-        // Small flow-control windows: a client that sends faster than the
-        // writer commits is held back by HTTP/2 itself, instead of the server
-        // buffering megabytes per stream.
-        .initial_stream_window_size(Some(256 * 1024))
-        .initial_connection_window_size(Some(1024 * 1024))
-        // Pings keep live connections inside the idle limit (listen.rs):
-        // at least three per idle period.
-        .http2_keepalive_interval(Some(keepalive.min(Duration::from_secs(30))))
-        .http2_keepalive_timeout(Some(keepalive.min(Duration::from_secs(20))));
-    if let Some(tls) = &config.tls {
-        let mut tls_config = tonic::transport::ServerTlsConfig::new()
-            .identity(tonic::transport::Identity::from_pem(&tls.cert, &tls.key));
-        if let Some(ca) = &tls.client_ca {
-            tls_config = tls_config.client_ca_root(tonic::transport::Certificate::from_pem(ca));
-        }
-        builder = builder.tls_config(tls_config)?;
-    }
+    let builder = server_builder(&config.limits, config.tls.as_ref())?;
     let tokens = crate::auth::TokenTable::new(&config.tokens).map_err(AppError::Config)?;
     let router = builder
         .layer(grpc::authz::AuthLayer::new(tokens))
-        .add_service(health_service)
-        .add_service(reflection_v1)
-        .add_service(reflection_v1alpha);
+        .add_service(health_service);
+    let router = add_reflection(router)?;
     let serve = grpc::add_services(router, &hub, config.limits).serve_with_incoming_shutdown(
         incoming,
         async move {
             shutdown.await;
             tracing::info!("shutting down: health NOT_SERVING");
             let _ = shutdown_tx.send(true);
-            reporter
-                .set_service_status("", tonic_health::ServingStatus::NotServing)
-                .await;
-            reporter
-                .set_service_status(
-                    grpc::INGEST_SERVICE_NAME,
-                    tonic_health::ServingStatus::NotServing,
-                )
-                .await;
+            set_health(&reporter, tonic_health::ServingStatus::NotServing).await;
         },
     );
     let shutdown_budget = Duration::from_secs(config.limits.shutdown_timeout_s);
@@ -190,14 +143,76 @@ pub async fn run(
     // for every sender to go.
     let _ = writer_stop_tx.send(true);
     drop(hub);
-    match tokio::time::timeout(shutdown_budget / 2, writer_task).await {
+    flush_and_close(writer_task, store, shutdown_budget / 2).await;
+    result.map_err(AppError::from)
+}
+
+/// The whole server's health and the ingest service's, together.
+async fn set_health(
+    reporter: &tonic_health::server::HealthReporter,
+    status: tonic_health::ServingStatus,
+) {
+    reporter.set_service_status("", status).await;
+    reporter
+        .set_service_status(grpc::INGEST_SERVICE_NAME, status)
+        .await;
+}
+
+/// Reflection (v1 and v1alpha) over our protos and the health service's.
+fn add_reflection<L>(
+    router: tonic::transport::server::Router<L>,
+) -> Result<tonic::transport::server::Router<L>, AppError> {
+    let builder = || {
+        tonic_reflection::server::Builder::configure()
+            .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
+            .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+    };
+    let fail = |e: tonic_reflection::server::Error| AppError::Reflection(e.to_string());
+    Ok(router
+        .add_service(builder().build_v1().map_err(fail)?)
+        .add_service(builder().build_v1alpha().map_err(fail)?))
+}
+
+/// The transport: per-connection stream limit, small flow-control
+/// windows, keepalive pings inside the idle limit, TLS if configured.
+fn server_builder(
+    limits: &crate::config::Limits,
+    tls: Option<&TlsPem>,
+) -> Result<tonic::transport::Server, AppError> {
+    let keepalive = Duration::from_secs(limits.connection_idle_timeout_s) / 3;
+    let mut builder = tonic::transport::Server::builder()
+        .max_concurrent_streams(Some(MAX_STREAMS_PER_CONNECTION))
+        // Small flow-control windows: a client that sends faster than the
+        // writer commits is held back by HTTP/2 itself, instead of the server
+        // buffering megabytes per stream.
+        .initial_stream_window_size(Some(256 * 1024))
+        .initial_connection_window_size(Some(1024 * 1024))
+        // Pings keep live connections inside the idle limit (listen.rs):
+        // at least three per idle period.
+        .http2_keepalive_interval(Some(keepalive.min(Duration::from_secs(30))))
+        .http2_keepalive_timeout(Some(keepalive.min(Duration::from_secs(20))));
+    if let Some(tls) = tls {
+        let mut tls_config = tonic::transport::ServerTlsConfig::new()
+            .identity(tonic::transport::Identity::from_pem(&tls.cert, &tls.key));
+        if let Some(ca) = &tls.client_ca {
+            tls_config = tls_config.client_ca_root(tonic::transport::Certificate::from_pem(ca));
+        }
+        builder = builder.tls_config(tls_config)?;
+    }
+    Ok(builder)
+}
+
+/// Waits (bounded) for the writer's last commit, then closes the pools.
+async fn flush_and_close(
+    writer_task: tokio::task::JoinHandle<Result<(), store::StoreError>>,
+    store: Store,
+    budget: Duration,
+) {
+    match tokio::time::timeout(budget, writer_task).await {
         Ok(Ok(Ok(()))) => tracing::info!("writer flushed"),
         Ok(Ok(Err(e))) => tracing::error!(error = %e, "writer failed"),
         Ok(Err(e)) => tracing::error!(error = %e, "writer task panicked"),
-        Err(_) => tracing::error!(
-            budget_s = shutdown_budget.as_secs() / 2,
-            "writer did not flush in time"
-        ),
+        Err(_) => tracing::error!(budget_s = budget.as_secs(), "writer did not flush in time"),
     }
     if tokio::time::timeout(Duration::from_secs(1), store.close())
         .await
@@ -205,7 +220,6 @@ pub async fn run(
     {
         tracing::warn!("database connections still busy at exit");
     }
-    result.map_err(AppError::from)
 }
 
 /// Serves until the server's own graceful end, or until `grace` after

@@ -9,7 +9,8 @@ use std::sync::atomic::{AtomicU64, Ordering::Relaxed};
 const COMMIT_BUCKETS_S: [f64; 10] = [0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0];
 /// Rejection reasons that get their own series (the field that was wrong).
 pub const REJECT_FIELDS: [&str; 6] = ["volts", "amps", "temp_c", "time_unix_ns", "seq", "other"];
-const ALERT_KIND_NAMES: [&str; 8] = [
+/// Indexed by alert kind code − 1 (the proto's numbering).
+const ALERT_KIND_NAMES: [&str; 10] = [
     "equilibrium_approach",
     "end_of_charge",
     "end_of_discharge",
@@ -18,6 +19,8 @@ const ALERT_KIND_NAMES: [&str; 8] = [
     "current_limit",
     "temperature_limit",
     "silent_rig",
+    "timeline",
+    "driving_force_spent",
 ];
 
 #[derive(Debug, Default)]
@@ -30,7 +33,7 @@ pub struct Metrics {
     pub commits: AtomicU64,
     commit_buckets: [AtomicU64; 10],
     commit_sum_us: AtomicU64,
-    pub alerts_raised: [AtomicU64; 8],
+    pub alerts_raised: [AtomicU64; 10],
     pub subscribers: AtomicU64,
     pub ingest_streams: AtomicU64,
 }
@@ -94,109 +97,113 @@ impl Metrics {
     /// Prometheus text exposition format 0.0.4.
     pub fn render(&self, queue_depth: usize, channel_ages_s: &[(String, f64)]) -> String {
         let mut o = String::new();
-        let counter = |o: &mut String, name: &str, help: &str, v: u64| {
-            let _ = writeln!(o, "# HELP {name} {help}\n# TYPE {name} counter\n{name} {v}");
-        };
-        counter(
-            &mut o,
-            "gibbsline_readings_accepted_total",
-            "Readings stored.",
-            self.readings_accepted.load(Relaxed),
-        );
-        counter(
-            &mut o,
-            "gibbsline_readings_duplicate_total",
-            "Readings already stored (resends).",
-            self.readings_duplicate.load(Relaxed),
-        );
-        counter(
-            &mut o,
-            "gibbsline_readings_out_of_order_total",
-            "Late readings stored and flagged.",
-            self.readings_out_of_order.load(Relaxed),
-        );
-        counter(
-            &mut o,
-            "gibbsline_batches_refused_total",
-            "Batches refused whole (unknown channel, empty, too large).",
-            self.batches_refused.load(Relaxed),
-        );
-        let _ = writeln!(
-            o,
-            "# HELP gibbsline_readings_rejected_total Readings rejected, by the field at fault.\n# TYPE gibbsline_readings_rejected_total counter"
-        );
-        for (i, f) in REJECT_FIELDS.iter().enumerate() {
-            let _ = writeln!(
-                o,
-                "gibbsline_readings_rejected_total{{field=\"{f}\"}} {}",
-                self.rejected[i].load(Relaxed)
-            );
+        for (name, help, counter) in [
+            (
+                "gibbsline_readings_accepted_total",
+                "Readings stored.",
+                &self.readings_accepted,
+            ),
+            (
+                "gibbsline_readings_duplicate_total",
+                "Readings already stored (resends).",
+                &self.readings_duplicate,
+            ),
+            (
+                "gibbsline_readings_out_of_order_total",
+                "Late readings stored and flagged.",
+                &self.readings_out_of_order,
+            ),
+            (
+                "gibbsline_batches_refused_total",
+                "Batches refused whole (unknown channel, empty, too large).",
+                &self.batches_refused,
+            ),
+        ] {
+            family(&mut o, name, help, "counter");
+            let _ = writeln!(o, "{name} {}", counter.load(Relaxed));
         }
-        let _ = writeln!(
-            o,
-            "# HELP gibbsline_alerts_raised_total Alerts raised, by kind.\n# TYPE gibbsline_alerts_raised_total counter"
+        labelled(
+            &mut o,
+            "gibbsline_readings_rejected_total",
+            "Readings rejected, by the field at fault.",
+            "field",
+            &REJECT_FIELDS,
+            &self.rejected,
         );
-        for (i, k) in ALERT_KIND_NAMES.iter().enumerate() {
-            let _ = writeln!(
-                o,
-                "gibbsline_alerts_raised_total{{kind=\"{k}\"}} {}",
-                self.alerts_raised[i].load(Relaxed)
-            );
+        labelled(
+            &mut o,
+            "gibbsline_alerts_raised_total",
+            "Alerts raised, by kind.",
+            "kind",
+            &ALERT_KIND_NAMES,
+            &self.alerts_raised,
+        );
+        self.render_commits(&mut o);
+        for (name, help, v) in [
+            (
+                "gibbsline_writer_queue_depth",
+                "Jobs waiting for the writer.",
+                queue_depth as u64,
+            ),
+            (
+                "gibbsline_alert_subscribers",
+                "Open WatchAlerts streams.",
+                self.subscribers.load(Relaxed),
+            ),
+            (
+                "gibbsline_ingest_streams",
+                "Open StreamReadings streams.",
+                self.ingest_streams.load(Relaxed),
+            ),
+        ] {
+            family(&mut o, name, help, "gauge");
+            let _ = writeln!(o, "{name} {v}");
         }
-        let _ = writeln!(
-            o,
-            "# HELP gibbsline_commit_seconds Writer transaction latency.\n# TYPE gibbsline_commit_seconds histogram"
-        );
-        for (i, b) in COMMIT_BUCKETS_S.iter().enumerate() {
-            let _ = writeln!(
-                o,
-                "gibbsline_commit_seconds_bucket{{le=\"{b}\"}} {}",
-                self.commit_buckets[i].load(Relaxed)
-            );
-        }
-        let commits = self.commits.load(Relaxed);
-        let _ = writeln!(
-            o,
-            "gibbsline_commit_seconds_bucket{{le=\"+Inf\"}} {commits}"
-        );
-        let _ = writeln!(
-            o,
-            "gibbsline_commit_seconds_sum {}",
-            self.commit_sum_us.load(Relaxed) as f64 / 1e6
-        );
-        let _ = writeln!(o, "gibbsline_commit_seconds_count {commits}");
-        let gauge = |o: &mut String, name: &str, help: &str, v: f64| {
-            let _ = writeln!(o, "# HELP {name} {help}\n# TYPE {name} gauge\n{name} {v}");
-        };
-        gauge(
+        let name = "gibbsline_channel_last_seen_age_seconds";
+        family(
             &mut o,
-            "gibbsline_writer_queue_depth",
-            "Jobs waiting for the writer.",
-            queue_depth as f64,
-        );
-        gauge(
-            &mut o,
-            "gibbsline_alert_subscribers",
-            "Open WatchAlerts streams.",
-            self.subscribers.load(Relaxed) as f64,
-        );
-        gauge(
-            &mut o,
-            "gibbsline_ingest_streams",
-            "Open StreamReadings streams.",
-            self.ingest_streams.load(Relaxed) as f64,
-        );
-        let _ = writeln!(
-            o,
-            "# HELP gibbsline_channel_last_seen_age_seconds Seconds since a channel's last batch arrived.\n# TYPE gibbsline_channel_last_seen_age_seconds gauge"
+            name,
+            "Seconds since a channel's last batch arrived.",
+            "gauge",
         );
         for (id, age) in channel_ages_s {
-            let _ = writeln!(
-                o,
-                "gibbsline_channel_last_seen_age_seconds{{channel_id=\"{id}\"}} {age}"
-            );
+            let _ = writeln!(o, "{name}{{channel_id=\"{id}\"}} {age}");
         }
         o
+    }
+
+    /// The commit-latency histogram (cumulative buckets, sum, count).
+    fn render_commits(&self, o: &mut String) {
+        let name = "gibbsline_commit_seconds";
+        family(o, name, "Writer transaction latency.", "histogram");
+        for (b, count) in COMMIT_BUCKETS_S.iter().zip(&self.commit_buckets) {
+            let _ = writeln!(o, "{name}_bucket{{le=\"{b}\"}} {}", count.load(Relaxed));
+        }
+        let commits = self.commits.load(Relaxed);
+        let _ = writeln!(o, "{name}_bucket{{le=\"+Inf\"}} {commits}");
+        let sum_s = self.commit_sum_us.load(Relaxed) as f64 / 1e6;
+        let _ = writeln!(o, "{name}_sum {sum_s}");
+        let _ = writeln!(o, "{name}_count {commits}");
+    }
+}
+
+/// A metric family's HELP and TYPE lines.
+fn family(o: &mut String, name: &str, help: &str, kind: &str) {
+    let _ = writeln!(o, "# HELP {name} {help}\n# TYPE {name} {kind}");
+}
+
+/// A counter family with one series per label value.
+fn labelled(
+    o: &mut String,
+    name: &str,
+    help: &str,
+    label: &str,
+    values: &[&str],
+    counters: &[AtomicU64],
+) {
+    family(o, name, help, "counter");
+    for (value, c) in values.iter().zip(counters) {
+        let _ = writeln!(o, "{name}{{{label}=\"{value}\"}} {}", c.load(Relaxed));
     }
 }
 
