@@ -109,29 +109,10 @@ pub const MAX_TEXT_BYTES: usize = 4096;
 impl ChannelDef {
     /// Checks the definition and resolves its chemistry (with the E° override).
     pub fn validate(&self, registry: &Registry) -> Result<Arc<Chemistry>, ChannelError> {
-        if self.description.len() > MAX_TEXT_BYTES {
-            return Err(err(
-                "description",
-                format!("({} bytes)", self.description.len()),
-                "at most 4096 bytes",
-            ));
-        }
-        validate_id("channel_id", &self.channel_id).map_err(|e| {
-            err(
-                "channel_id",
-                format!("{:?}", self.channel_id.chars().take(80).collect::<String>()),
-                e.to_string(),
-            )
-        })?;
+        self.check_names()?;
         let chemistry = registry.get(&self.chemistry_id).map_err(|_| {
-            err(
-                "chemistry_id",
-                format!(
-                    "{:?}",
-                    self.chemistry_id.chars().take(80).collect::<String>()
-                ),
-                "unknown chemistry id",
-            )
+            let id: String = self.chemistry_id.chars().take(80).collect();
+            err("chemistry_id", format!("{id:?}"), "unknown chemistry id")
         })?;
         if self.cells_in_series == 0 || self.cells_in_series > 10_000 {
             return Err(err(
@@ -140,15 +121,45 @@ impl ChannelDef {
                 "must be from 1 to 10000",
             ));
         }
-        let finite_nonneg = |name: &str, v: f64| {
-            if v.is_finite() && v >= 0.0 {
-                Ok(())
-            } else {
-                Err(err(name, v, "must be finite and not negative"))
+        self.check_numbers()?;
+        self.check_window()?;
+        if let Some(gas) = &self.gas {
+            gas.validate()
+                .map_err(|(field, v, reason)| err(&format!("gas.{field}"), shown(v), reason))?;
+        }
+        match self.e_standard_override_v {
+            Some(e) if !e.is_finite() => Err(err("e_standard_override_v", e, "must be finite")),
+            Some(e) => Ok(Arc::new(chemistry.with_e_standard_override(e))),
+            None => Ok(chemistry),
+        }
+    }
+
+    /// The id and the free text.
+    fn check_names(&self) -> Result<(), ChannelError> {
+        if self.description.len() > MAX_TEXT_BYTES {
+            return Err(err(
+                "description",
+                format!("({} bytes)", self.description.len()),
+                "at most 4096 bytes",
+            ));
+        }
+        validate_id("channel_id", &self.channel_id).map_err(|e| {
+            let id: String = self.channel_id.chars().take(80).collect();
+            err("channel_id", format!("{id:?}"), e.to_string())
+        })
+    }
+
+    /// Capacity, tolerance, temperature, efficiencies, resistance, area.
+    fn check_numbers(&self) -> Result<(), ChannelError> {
+        for (name, v) in [
+            ("capacity_ah", self.capacity_ah),
+            ("equilibrium_tolerance_mv", self.equilibrium_tolerance_mv),
+            ("resistance_ohm", self.resistance_ohm.unwrap_or(0.0)),
+        ] {
+            if !(v.is_finite() && v >= 0.0) {
+                return Err(err(name, v, "must be finite and not negative"));
             }
-        };
-        finite_nonneg("capacity_ah", self.capacity_ah)?;
-        finite_nonneg("equilibrium_tolerance_mv", self.equilibrium_tolerance_mv)?;
+        }
         if !(self.default_temp_c.is_finite()
             && (MIN_READING_TEMP_C..=MAX_READING_TEMP_C).contains(&self.default_temp_c))
         {
@@ -158,6 +169,26 @@ impl ChannelDef {
                 "must be from -100 to 200 °C",
             ));
         }
+        for (name, v) in [
+            ("coulombic_efficiency", self.coulombic_efficiency),
+            ("faradaic_efficiency", self.faradaic_efficiency),
+        ] {
+            if !(v.is_finite() && v > 0.0 && v <= 1.0) {
+                return Err(err(name, v, "must be in (0, 1]"));
+            }
+        }
+        match self.active_area_cm2 {
+            Some(a) if !(a.is_finite() && a > 0.0 && a <= 1e7) => Err(err(
+                "active_area_cm2",
+                shown(a),
+                "must be above 0 and at most 1e7 cm²",
+            )),
+            _ => Ok(()),
+        }
+    }
+
+    /// The per-cell plausibility window.
+    fn check_window(&self) -> Result<(), ChannelError> {
         for (name, v) in [("min_volts", self.min_volts), ("max_volts", self.max_volts)] {
             if !(v.is_finite() && v.abs() <= MAX_WINDOW_ABS_CELL_VOLTS) {
                 return Err(err(
@@ -174,37 +205,7 @@ impl ChannelDef {
                 format!("must be above min_volts ({})", self.min_volts),
             ));
         }
-        for (name, v) in [
-            ("coulombic_efficiency", self.coulombic_efficiency),
-            ("faradaic_efficiency", self.faradaic_efficiency),
-        ] {
-            if !(v.is_finite() && v > 0.0 && v <= 1.0) {
-                return Err(err(name, v, "must be in (0, 1]"));
-            }
-        }
-        if let Some(r) = self.resistance_ohm
-            && !(r.is_finite() && r >= 0.0)
-        {
-            return Err(err("resistance_ohm", r, "must be finite and not negative"));
-        }
-        if let Some(gas) = &self.gas {
-            gas.validate()
-                .map_err(|(field, v, reason)| err(&format!("gas.{field}"), shown(v), reason))?;
-        }
-        if let Some(a) = self.active_area_cm2
-            && !(a.is_finite() && a > 0.0 && a <= 1e7)
-        {
-            return Err(err(
-                "active_area_cm2",
-                shown(a),
-                "must be above 0 and at most 1e7 cm²",
-            ));
-        }
-        match self.e_standard_override_v {
-            Some(e) if !e.is_finite() => Err(err("e_standard_override_v", e, "must be finite")),
-            Some(e) => Ok(Arc::new(chemistry.with_e_standard_override(e))),
-            None => Ok(chemistry),
-        }
+        Ok(())
     }
 
     /// Fields whose change invalidates stored derived values: a new run.

@@ -178,13 +178,16 @@ pub fn load(
     resolve(path, text, file, env)
 }
 
+/// Where in the file a problem is (a line, if one can be named) and what it is.
+type Problem = (Option<usize>, String);
+
 pub fn resolve(
     path: &str,
     text: &str,
     file: ConfigFile,
     env: &BTreeMap<String, String>,
 ) -> Result<ServerConfig, ConfigError> {
-    let fail = |line: Option<usize>, message: String| ConfigError {
+    let fail = |(line, message): Problem| ConfigError {
         path: path.into(),
         line,
         message,
@@ -192,32 +195,10 @@ pub fn resolve(
     let durability = match env.get("GIBBSLINE_DURABILITY") {
         Some(v) => v
             .parse()
-            .map_err(|e| fail(None, format!("GIBBSLINE_DURABILITY {e}")))?,
+            .map_err(|e| fail((None, format!("GIBBSLINE_DURABILITY {e}"))))?,
         None => file.durability.unwrap_or_default(),
     };
-    let listen = env
-        .get("GIBBSLINE_LISTEN")
-        .cloned()
-        .or(file.listen)
-        .unwrap_or_else(|| DEFAULT_LISTEN.into());
-    if listen.parse::<std::net::SocketAddr>().is_err() {
-        return Err(fail(
-            None,
-            format!("listen = {listen:?}: expected an address like 127.0.0.1:50051"),
-        ));
-    }
-    let metrics_listen = env
-        .get("GIBBSLINE_METRICS_LISTEN")
-        .cloned()
-        .or(file.metrics_listen);
-    if let Some(m) = &metrics_listen
-        && m.parse::<std::net::SocketAddr>().is_err()
-    {
-        return Err(fail(
-            None,
-            format!("metrics_listen = {m:?}: expected an address like 127.0.0.1:9464"),
-        ));
-    }
+    let (listen, metrics_listen) = addresses(&file, env).map_err(fail)?;
     let allow_insecure = match env.get("GIBBSLINE_ALLOW_INSECURE") {
         Some(v) => matches!(v.as_str(), "1" | "true" | "yes"),
         None => file.allow_insecure,
@@ -225,44 +206,15 @@ pub fn resolve(
     let db = env
         .get("GIBBSLINE_DB")
         .cloned()
-        .or(file.db)
+        .or(file.db.clone())
         .unwrap_or_else(|| DEFAULT_DB.into());
     crate::auth::TokenTable::new(&file.token)
-        .map_err(|e| fail(table_line(text, "[[token]]", 0), e))?;
-    let mut registry = Registry::builtin();
-    for (i, spec) in file.chemistry.iter().enumerate() {
-        let line = table_line(text, "[[chemistry]]", i);
-        let chem = spec
-            .validate(false)
-            .map_err(|e| fail(line, format!("chemistry[{i}] ({:?}): {e}", spec.id)))?;
-        registry
-            .insert_user(chem)
-            .map_err(|e| fail(line, format!("chemistry[{i}]: {e}")))?;
-    }
-    let mut seen = std::collections::BTreeSet::new();
-    for (i, entry) in file.channel.iter().enumerate() {
-        let line = table_line(text, "[[channel]]", i);
-        let id = &entry.def.channel_id;
-        entry
-            .def
-            .validate(&registry)
-            .map_err(|e| fail(line, format!("channel[{i}] ({id:?}): {e}")))?;
-        if !seen.insert(id.clone()) {
-            return Err(fail(
-                line,
-                format!("channel[{i}]: channel_id = {id:?} is defined twice"),
-            ));
-        }
-        if let Some(rules) = &entry.rules {
-            rules
-                .validate()
-                .map_err(|e| fail(line, format!("channel[{i}] ({id:?}): rules.{e}")))?;
-        }
-    }
+        .map_err(|e| fail((table_line(text, "[[token]]", 0), e)))?;
+    check_definitions(text, &file).map_err(fail)?;
     let limits = file.limits.unwrap_or_default();
     limits
         .validate()
-        .map_err(|e| fail(table_line(text, "[limits]", 0), e))?;
+        .map_err(|e| fail((table_line(text, "[limits]", 0), e)))?;
     Ok(ServerConfig {
         limits,
         listen,
@@ -275,6 +227,73 @@ pub fn resolve(
         chemistry: file.chemistry,
         channel: file.channel,
     })
+}
+
+/// The gRPC and metrics addresses, the environment before the file.
+fn addresses(
+    file: &ConfigFile,
+    env: &BTreeMap<String, String>,
+) -> Result<(String, Option<String>), Problem> {
+    let listen = env
+        .get("GIBBSLINE_LISTEN")
+        .cloned()
+        .or(file.listen.clone())
+        .unwrap_or_else(|| DEFAULT_LISTEN.into());
+    if listen.parse::<std::net::SocketAddr>().is_err() {
+        return Err((
+            None,
+            format!("listen = {listen:?}: expected an address like 127.0.0.1:50051"),
+        ));
+    }
+    let metrics_listen = env
+        .get("GIBBSLINE_METRICS_LISTEN")
+        .cloned()
+        .or(file.metrics_listen.clone());
+    if let Some(m) = &metrics_listen
+        && m.parse::<std::net::SocketAddr>().is_err()
+    {
+        return Err((
+            None,
+            format!("metrics_listen = {m:?}: expected an address like 127.0.0.1:9464"),
+        ));
+    }
+    Ok((listen, metrics_listen))
+}
+
+/// The file's chemistries, channels and their rules, each against the
+/// registry the server will have; errors name the table's line.
+fn check_definitions(text: &str, file: &ConfigFile) -> Result<(), Problem> {
+    let mut registry = Registry::builtin();
+    for (i, spec) in file.chemistry.iter().enumerate() {
+        let line = table_line(text, "[[chemistry]]", i);
+        let chem = spec
+            .validate(false)
+            .map_err(|e| (line, format!("chemistry[{i}] ({:?}): {e}", spec.id)))?;
+        registry
+            .insert_user(chem)
+            .map_err(|e| (line, format!("chemistry[{i}]: {e}")))?;
+    }
+    let mut seen = std::collections::BTreeSet::new();
+    for (i, entry) in file.channel.iter().enumerate() {
+        let line = table_line(text, "[[channel]]", i);
+        let id = &entry.def.channel_id;
+        entry
+            .def
+            .validate(&registry)
+            .map_err(|e| (line, format!("channel[{i}] ({id:?}): {e}")))?;
+        if !seen.insert(id.clone()) {
+            return Err((
+                line,
+                format!("channel[{i}]: channel_id = {id:?} is defined twice"),
+            ));
+        }
+        if let Some(rules) = &entry.rules {
+            rules
+                .validate()
+                .map_err(|e| (line, format!("channel[{i}] ({id:?}): rules.{e}")))?;
+        }
+    }
+    Ok(())
 }
 
 impl ServerConfig {
