@@ -71,36 +71,7 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
     ));
 
     let channel = client::connect(&addr).await?;
-    let alert_lines: Arc<Mutex<Vec<String>>> = Arc::default();
-    let lines = alert_lines.clone();
-    let mut alerts = AlertServiceClient::new(channel.clone());
-    let mut watch = alerts
-        .watch_alerts(pb::WatchAlertsRequest {
-            after_id: u64::MAX >> 1,
-            ..Default::default()
-        })
-        .await?
-        .into_inner();
-    let watcher = tokio::spawn(async move {
-        while let Some(Ok(m)) = watch.next().await {
-            let Some(a) = m.alert else { continue };
-            let verb = match pb::AlertEventKind::try_from(m.event) {
-                Ok(pb::AlertEventKind::Raised) => "raised ",
-                Ok(pb::AlertEventKind::Cleared) => "cleared",
-                Ok(pb::AlertEventKind::Acknowledged) => "acked  ",
-                _ => continue,
-            };
-            lines.lock().expect("poisoned").push(format!(
-                "#{:<4} {verb} {:<8} {:<13} {:<19} {}",
-                a.alert_id,
-                severity_label(a.severity),
-                a.channel_id,
-                kind_label(a.kind),
-                a.message
-            ));
-        }
-    });
-
+    let alert_lines = watch_alert_lines(channel.clone()).await?;
     let mut history = HistoryServiceClient::new(channel.clone());
     let tty = std::io::stdout().is_terminal();
     let started = tokio::time::Instant::now();
@@ -123,76 +94,9 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
             _ = redraw.tick() => {}
             _ = &mut ctrl_c => { stats.stop.store(true, Ordering::Relaxed); break; }
         }
-        let mut table = String::new();
-        table.push_str(&format!(
-            "{:<13} {:<16} {:<12} {:>9} {:>8} {:>7} {:>7} {:>11} {:>8}\n",
-            "channel", "chemistry", "mode", "volts", "amps", "°C", "SOC %", "ΔG kJ/mol", "η mV"
-        ));
-        for id in &ids {
-            let Ok(state) = history
-                .get_channel_state(pb::GetChannelStateRequest {
-                    channel_id: id.clone(),
-                })
-                .await
-            else {
-                continue;
-            };
-            let state = state.into_inner();
-            let chem = state
-                .channel
-                .as_ref()
-                .map(|c| c.chemistry_id.clone())
-                .unwrap_or_default();
-            match state.latest {
-                Some(r) => {
-                    let d = r.derived.unwrap_or_default();
-                    table.push_str(&format!(
-                        "{:<13} {:<16} {:<12} {:>9.4} {:>8.3} {:>7.2} {:>7} {:>11} {:>8}\n",
-                        id,
-                        chem,
-                        mode_name(d.operating_mode),
-                        r.volts,
-                        r.amps.unwrap_or(0.0),
-                        r.temp_c.unwrap_or(f64::NAN),
-                        d.soc_fused
-                            .map(|s| format!("{:.1}", s * 100.0))
-                            .unwrap_or_else(|| "-".into()),
-                        d.delta_g_kj_per_mol
-                            .map(|g| format!("{g:.3}"))
-                            .unwrap_or_else(|| "-".into()),
-                        d.driving_force_v
-                            .map(|v| format!("{:+.1}", v * 1e3))
-                            .unwrap_or_else(|| "-".into()),
-                    ));
-                }
-                None => table.push_str(&format!("{id:<13} {chem:<16} (no readings yet)\n")),
-            }
-        }
-        let recent: Vec<String> = {
-            let l = alert_lines.lock().expect("poisoned");
-            l.iter().rev().take(10).rev().cloned().collect()
-        };
-        let total_alerts = alert_lines.lock().expect("poisoned").len();
+        let table = bench_table(&mut history, &ids).await;
         let elapsed = started.elapsed().as_secs_f64();
-        let mut out = String::new();
-        if tty {
-            out.push_str("\x1b[H\x1b[J");
-        }
-        out.push_str(&format!(
-            "gibbsline demo — {:.0}/{:.0} s, {} readings stored, {} alert events (Ctrl-C to stop)\n\n",
-            elapsed,
-            args.duration.as_secs_f64(),
-            stats.acked.load(Ordering::Relaxed),
-            total_alerts
-        ));
-        out.push_str(&table);
-        out.push_str("\nalerts (newest last):\n");
-        for l in recent {
-            out.push_str(&l);
-            out.push('\n');
-        }
-        print!("{out}");
-        let _ = std::io::stdout().flush();
+        print_frame(args, tty, elapsed, &stats, &alert_lines, &table);
         if rig_task.is_finished() {
             break;
         }
@@ -200,9 +104,136 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
     stats.stop.store(true, Ordering::Relaxed);
     let _ = rig_task.await;
     tokio::time::sleep(Duration::from_millis(200)).await;
-    watcher.abort();
+
     let _ = stop_tx.send(());
     server.await??;
+    farewell(args, &stats, &alert_lines);
+    Ok(())
+}
+
+type AlertLines = Arc<Mutex<Vec<String>>>;
+
+/// Alert events from now on, one line each, collected as they come.
+async fn watch_alert_lines(channel: client::Conn) -> anyhow::Result<AlertLines> {
+    let alert_lines: AlertLines = Arc::default();
+    let lines = alert_lines.clone();
+    let mut alerts = AlertServiceClient::new(channel);
+    let mut watch = alerts
+        .watch_alerts(pb::WatchAlertsRequest {
+            after_id: u64::MAX >> 1,
+            ..Default::default()
+        })
+        .await?
+        .into_inner();
+    tokio::spawn(async move {
+        while let Some(Ok(m)) = watch.next().await {
+            let Some(a) = m.alert else { continue };
+            let verb = match pb::AlertEventKind::try_from(m.event) {
+                Ok(pb::AlertEventKind::Raised) => "raised ",
+                Ok(pb::AlertEventKind::Cleared) => "cleared",
+                Ok(pb::AlertEventKind::Acknowledged) => "acked  ",
+                _ => continue,
+            };
+            lines.lock().expect("poisoned").push(format!(
+                "#{:<4} {verb} {:<8} {:<13} {:<19} {}",
+                a.alert_id,
+                severity_label(a.severity),
+                a.channel_id,
+                kind_label(a.kind),
+                a.message
+            ));
+        }
+    });
+    Ok(alert_lines)
+}
+
+/// One line per channel: mode, volts, amps, °C, SOC, ΔG, η.
+async fn bench_table(history: &mut HistoryServiceClient<client::Conn>, ids: &[String]) -> String {
+    let mut table = String::new();
+    table.push_str(&format!(
+        "{:<13} {:<16} {:<12} {:>9} {:>8} {:>7} {:>7} {:>11} {:>8}\n",
+        "channel", "chemistry", "mode", "volts", "amps", "°C", "SOC %", "ΔG kJ/mol", "η mV"
+    ));
+    for id in ids {
+        let Ok(state) = history
+            .get_channel_state(pb::GetChannelStateRequest {
+                channel_id: id.clone(),
+            })
+            .await
+        else {
+            continue;
+        };
+        let state = state.into_inner();
+        let chem = state
+            .channel
+            .as_ref()
+            .map(|c| c.chemistry_id.clone())
+            .unwrap_or_default();
+        match state.latest {
+            Some(r) => {
+                let d = r.derived.unwrap_or_default();
+                table.push_str(&format!(
+                    "{:<13} {:<16} {:<12} {:>9.4} {:>8.3} {:>7.2} {:>7} {:>11} {:>8}\n",
+                    id,
+                    chem,
+                    mode_name(d.operating_mode),
+                    r.volts,
+                    r.amps.unwrap_or(0.0),
+                    r.temp_c.unwrap_or(f64::NAN),
+                    d.soc_fused
+                        .map(|s| format!("{:.1}", s * 100.0))
+                        .unwrap_or_else(|| "-".into()),
+                    d.delta_g_kj_per_mol
+                        .map(|g| format!("{g:.3}"))
+                        .unwrap_or_else(|| "-".into()),
+                    d.driving_force_v
+                        .map(|v| format!("{:+.1}", v * 1e3))
+                        .unwrap_or_else(|| "-".into()),
+                ));
+            }
+            None => table.push_str(&format!("{id:<13} {chem:<16} (no readings yet)\n")),
+        }
+    }
+    table
+}
+
+/// Redraws the screen (or prints a block when not on a terminal).
+fn print_frame(
+    args: &DemoArgs,
+    tty: bool,
+    elapsed: f64,
+    stats: &RigStats,
+    alert_lines: &AlertLines,
+    table: &str,
+) {
+    let recent: Vec<String> = {
+        let l = alert_lines.lock().expect("poisoned");
+        l.iter().rev().take(10).rev().cloned().collect()
+    };
+    let total_alerts = alert_lines.lock().expect("poisoned").len();
+    let mut out = String::new();
+    if tty {
+        out.push_str("\x1b[H\x1b[J");
+    }
+    out.push_str(&format!(
+        "gibbsline demo — {:.0}/{:.0} s, {} readings stored, {} alert events (Ctrl-C to stop)\n\n",
+        elapsed,
+        args.duration.as_secs_f64(),
+        stats.acked.load(Ordering::Relaxed),
+        total_alerts
+    ));
+    out.push_str(table);
+    out.push_str("\nalerts (newest last):\n");
+    for l in recent {
+        out.push_str(&l);
+        out.push('\n');
+    }
+    print!("{out}");
+    let _ = std::io::stdout().flush();
+}
+
+/// What was stored, and how to look at it again.
+fn farewell(args: &DemoArgs, stats: &RigStats, alert_lines: &AlertLines) {
     let stored = stats.acked.load(Ordering::Relaxed);
     let total_alerts = alert_lines.lock().expect("poisoned").len();
     println!("\ndemo finished: {stored} readings stored, {total_alerts} alert events.");
@@ -216,5 +247,4 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
     );
     println!("  gibbsline alerts list --connect 127.0.0.1:50051");
     println!("  gibbsline cycles --connect 127.0.0.1:50051 --channel hl-vrb-1");
-    Ok(())
 }
