@@ -185,9 +185,10 @@ pub async fn run(
     stats: Arc<RigStats>,
 ) -> anyhow::Result<()> {
     let start_wall = tokio::time::Instant::now();
-    let dt_sim_s = 1.0 / opts.readings_per_sim_s;
-    let tick = Duration::from_millis(250);
-    let per_tick = ((opts.speed * opts.readings_per_sim_s) * tick.as_secs_f64()).max(1.0) as usize;
+    let done = || {
+        stats.stop.load(Ordering::Relaxed)
+            || opts.duration.is_some_and(|d| start_wall.elapsed() >= d)
+    };
     // Simulated time ends near "now" for a bounded run; open-ended runs start
     // a day back so their clock stays behind the server's future limit longer.
     let span_ns = match opts.duration {
@@ -196,13 +197,8 @@ pub async fn run(
     };
     let mut sim_ns = client::now_ns() - span_ns;
     let mut first_connect = true;
-    'outer: loop {
-        if stats.stop.load(Ordering::Relaxed)
-            || opts.duration.is_some_and(|d| start_wall.elapsed() >= d)
-        {
-            break;
-        }
-        let channel = match client::connect(&addr).await {
+    while !done() {
+        let conn = match client::connect(&addr).await {
             Ok(c) => c,
             Err(e) => {
                 if !opts.quiet {
@@ -215,135 +211,207 @@ pub async fn run(
         if !first_connect {
             stats.reconnects.fetch_add(1, Ordering::Relaxed);
         }
-        // Resume: drop what the server already has, resend the rest.
-        let mut ingest = IngestServiceClient::new(channel.clone());
-        let mut history = pb::history_service_client::HistoryServiceClient::new(channel.clone());
-        let mut resumed = true;
-        for ch in channels.iter_mut() {
-            let point = match ingest
-                .get_resume_point(pb::GetResumePointRequest {
-                    channel_id: ch.def.channel_id.clone(),
-                })
-                .await
-            {
-                Ok(p) => p.into_inner(),
-                Err(_) => {
-                    resumed = false;
-                    break;
-                }
-            };
-            if point.any_stored {
-                ch.pending.retain(|r| r.seq > point.last_stored_seq);
-                ch.next_seq = ch.next_seq.max(point.last_stored_seq + 1);
-                if first_connect
-                    && let Ok(state) = history
-                        .get_channel_state(pb::GetChannelStateRequest {
-                            channel_id: ch.def.channel_id.clone(),
-                        })
-                        .await
-                {
-                    sim_ns = sim_ns.max(state.into_inner().last_seen_unix_ns + 1_000_000_000);
-                }
-            }
-        }
-        if !resumed {
+        if !resume(&conn, &mut channels, first_connect, &mut sim_ns).await {
             tokio::time::sleep(Duration::from_secs(1)).await;
             continue;
         }
         first_connect = false;
-        let (tx, rx) = tokio::sync::mpsc::channel::<pb::StreamReadingsRequest>(8);
-        let response = ingest
-            .stream_readings(tokio_stream::wrappers::ReceiverStream::new(rx))
-            .await;
-        let Ok(response) = response else {
-            tokio::time::sleep(Duration::from_secs(1)).await;
-            continue;
-        };
-        let mut acks = response.into_inner();
-        let mut batch_id = 0u64;
-        let mut in_flight: HashMap<u64, (usize, u64)> = HashMap::new();
-        let mut interval = tokio::time::interval(tick);
-        loop {
-            if stats.stop.load(Ordering::Relaxed)
-                || opts.duration.is_some_and(|d| start_wall.elapsed() >= d)
-            {
-                // Wait briefly for outstanding acks, then finish.
-                let deadline = tokio::time::Instant::now() + Duration::from_secs(5);
-                while !in_flight.is_empty() {
-                    match tokio::time::timeout_at(deadline, acks.next()).await {
-                        Ok(Some(Ok(m))) => {
-                            if let Some(ack) = m.ack {
-                                settle(&mut channels, &mut in_flight, &ack, &stats);
-                            }
-                        }
-                        _ => break,
-                    }
-                }
-                break 'outer;
-            }
-            tokio::select! {
-                _ = interval.tick() => {
-                    for _ in 0..per_tick {
-                        sim_ns += (dt_sim_s * 1e9) as i64;
-                        for ch in channels.iter_mut() {
-                            if ch.pending.len() >= MAX_PENDING {
-                                continue;
-                            }
-                            let amps = match &mut ch.drive {
-                                Drive::Cycling(s) => s.amps(ch.cell.soc, dt_sim_s),
-                                Drive::Constant(a) => *a,
-                            };
-                            let sample = ch.cell.step(&ch.chemistry, amps, dt_sim_s);
-                            ch.pending.push_back(pb::Reading {
-                                seq: ch.next_seq,
-                                time_unix_ns: sim_ns,
-                                volts: sample.stack_volts,
-                                amps: Some(sample.amps * ch.sign),
-                                temp_c: Some(sample.temp_k - 273.15),
-                            });
-                            ch.next_seq += 1;
-                        }
-                    }
-                    let mut failed = false;
-                    for (index, ch) in channels.iter().enumerate() {
-                        let sent_hi = in_flight.values().filter(|(i, _)| *i == index).map(|(_, hi)| *hi).max().unwrap_or(0);
-                        let readings: Vec<_> = ch.pending.iter().filter(|r| r.seq > sent_hi).take(10_000).cloned().collect();
-                        let Some(last) = readings.last() else { continue };
-                        in_flight.insert(batch_id, (index, last.seq));
-                        stats.sent.fetch_add(readings.len() as u64, Ordering::Relaxed);
-                        let msg = pb::StreamReadingsRequest { batch: Some(pb::ReadingBatch { channel_id: ch.def.channel_id.clone(), batch_id, readings }) };
-                        batch_id += 1;
-                        if tx.send(msg).await.is_err() {
-                            failed = true;
-                            break;
-                        }
-                    }
-                    if failed {
-                        break;
-                    }
-                }
-                m = acks.next() => match m {
-                    Some(Ok(m)) => {
-                        if let Some(ack) = m.ack {
-                            settle(&mut channels, &mut in_flight, &ack, &stats);
-                        }
-                    }
-                    other => {
-                        if !opts.quiet {
-                            let why = match other {
-                                Some(Err(s)) => s.message().to_string(),
-                                _ => "stream closed".into(),
-                            };
-                            eprintln!("rig: stream ended ({why}); reconnecting");
-                        }
-                        break;
-                    }
-                },
-            }
+        let finished = stream(&conn, &mut channels, &opts, &stats, &mut sim_ns, &done).await;
+        if finished {
+            break;
         }
         tokio::time::sleep(Duration::from_millis(500)).await;
     }
     Ok(())
+}
+
+/// Drops what the server already has, so the rest is resent; on the first
+/// connection the simulated clock continues after the stored readings.
+/// False when the server could not say.
+async fn resume(
+    conn: &client::Conn,
+    channels: &mut [SimChannel],
+    first_connect: bool,
+    sim_ns: &mut i64,
+) -> bool {
+    let mut ingest = IngestServiceClient::new(conn.clone());
+    let mut history = pb::history_service_client::HistoryServiceClient::new(conn.clone());
+    for ch in channels.iter_mut() {
+        let channel_id = ch.def.channel_id.clone();
+        let Ok(point) = ingest
+            .get_resume_point(pb::GetResumePointRequest {
+                channel_id: channel_id.clone(),
+            })
+            .await
+        else {
+            return false;
+        };
+        let point = point.into_inner();
+        if !point.any_stored {
+            continue;
+        }
+        ch.pending.retain(|r| r.seq > point.last_stored_seq);
+        ch.next_seq = ch.next_seq.max(point.last_stored_seq + 1);
+        if first_connect
+            && let Ok(state) = history
+                .get_channel_state(pb::GetChannelStateRequest { channel_id })
+                .await
+        {
+            *sim_ns = (*sim_ns).max(state.into_inner().last_seen_unix_ns + 1_000_000_000);
+        }
+    }
+    true
+}
+
+/// Batches sent and not yet acknowledged: batch id → (channel index, last seq).
+type InFlight = HashMap<u64, (usize, u64)>;
+
+/// One ingest stream: simulate, send, settle acks. True once the run is
+/// over (acks drained), false when the stream broke and should be retried.
+async fn stream(
+    conn: &client::Conn,
+    channels: &mut [SimChannel],
+    opts: &RigOptions,
+    stats: &RigStats,
+    sim_ns: &mut i64,
+    done: &impl Fn() -> bool,
+) -> bool {
+    let tick = Duration::from_millis(250);
+    let dt_sim_s = 1.0 / opts.readings_per_sim_s;
+    let per_tick = ((opts.speed * opts.readings_per_sim_s) * tick.as_secs_f64()).max(1.0) as usize;
+    let (tx, rx) = tokio::sync::mpsc::channel::<pb::StreamReadingsRequest>(8);
+    let response = IngestServiceClient::new(conn.clone())
+        .stream_readings(tokio_stream::wrappers::ReceiverStream::new(rx))
+        .await;
+    let Ok(response) = response else {
+        return false;
+    };
+    let mut acks = response.into_inner();
+    let mut batch_id = 0u64;
+    let mut in_flight = InFlight::new();
+    let mut interval = tokio::time::interval(tick);
+    loop {
+        if done() {
+            drain(&mut acks, channels, &mut in_flight, stats).await;
+            return true;
+        }
+        tokio::select! {
+            _ = interval.tick() => {
+                for _ in 0..per_tick {
+                    *sim_ns += (dt_sim_s * 1e9) as i64;
+                    simulate(channels, dt_sim_s, *sim_ns);
+                }
+                if !send_pending(channels, &mut in_flight, &mut batch_id, &tx, stats).await {
+                    return false;
+                }
+            }
+            m = acks.next() => match m {
+                Some(Ok(m)) => {
+                    if let Some(ack) = m.ack {
+                        settle(channels, &mut in_flight, &ack, stats);
+                    }
+                }
+                other => {
+                    if !opts.quiet {
+                        let why = match other {
+                            Some(Err(s)) => s.message().to_string(),
+                            _ => "stream closed".into(),
+                        };
+                        eprintln!("rig: stream ended ({why}); reconnecting");
+                    }
+                    return false;
+                }
+            },
+        }
+    }
+}
+
+/// One simulated reading per channel (unless its backlog is full).
+fn simulate(channels: &mut [SimChannel], dt_sim_s: f64, sim_ns: i64) {
+    for ch in channels.iter_mut() {
+        if ch.pending.len() >= MAX_PENDING {
+            continue;
+        }
+        let amps = match &mut ch.drive {
+            Drive::Cycling(s) => s.amps(ch.cell.soc, dt_sim_s),
+            Drive::Constant(a) => *a,
+        };
+        let sample = ch.cell.step(&ch.chemistry, amps, dt_sim_s);
+        ch.pending.push_back(pb::Reading {
+            seq: ch.next_seq,
+            time_unix_ns: sim_ns,
+            volts: sample.stack_volts,
+            amps: Some(sample.amps * ch.sign),
+            temp_c: Some(sample.temp_k - 273.15),
+        });
+        ch.next_seq += 1;
+    }
+}
+
+/// Sends each channel's readings not yet in flight; false if the stream is gone.
+async fn send_pending(
+    channels: &[SimChannel],
+    in_flight: &mut InFlight,
+    batch_id: &mut u64,
+    tx: &tokio::sync::mpsc::Sender<pb::StreamReadingsRequest>,
+    stats: &RigStats,
+) -> bool {
+    for (index, ch) in channels.iter().enumerate() {
+        let sent_hi = in_flight
+            .values()
+            .filter(|(i, _)| *i == index)
+            .map(|(_, hi)| *hi)
+            .max()
+            .unwrap_or(0);
+        let readings: Vec<_> = ch
+            .pending
+            .iter()
+            .filter(|r| r.seq > sent_hi)
+            .take(10_000)
+            .cloned()
+            .collect();
+        let Some(last) = readings.last() else {
+            continue;
+        };
+        in_flight.insert(*batch_id, (index, last.seq));
+        stats
+            .sent
+            .fetch_add(readings.len() as u64, Ordering::Relaxed);
+        let batch = pb::ReadingBatch {
+            channel_id: ch.def.channel_id.clone(),
+            batch_id: *batch_id,
+            readings,
+        };
+        *batch_id += 1;
+        if tx
+            .send(pb::StreamReadingsRequest { batch: Some(batch) })
+            .await
+            .is_err()
+        {
+            return false;
+        }
+    }
+    true
+}
+
+/// Waits briefly for outstanding acks at the end of a run.
+async fn drain(
+    acks: &mut tonic::Streaming<pb::StreamReadingsResponse>,
+    channels: &mut [SimChannel],
+    in_flight: &mut InFlight,
+    stats: &RigStats,
+) {
+    let deadline = tokio::time::Instant::now() + Duration::from_secs(5);
+    while !in_flight.is_empty() {
+        match tokio::time::timeout_at(deadline, acks.next()).await {
+            Ok(Some(Ok(m))) => {
+                if let Some(ack) = m.ack {
+                    settle(channels, in_flight, &ack, stats);
+                }
+            }
+            _ => break,
+        }
+    }
 }
 
 fn settle(
