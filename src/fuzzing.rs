@@ -419,8 +419,28 @@ fn check_derived(
         readings.len(),
         "{id}: every reading must be stored, a possible duplicate or rejected"
     );
+    check_rejections(&id, readings, &rejected);
+    check_rows(&id, max_seq_before, &derived);
+    check_alerts_name_stored_seqs(&id, rt, &derived);
+    if let Some(snapshot) = &derived.estimator {
+        // The snapshot is what a restart resumes from: it must read back
+        // as the state the channel holds now.
+        let restored: EstimatorState = serde_json::from_str(&snapshot.state_json)
+            .unwrap_or_else(|e| panic!("{id}: estimator snapshot does not read back: {e}"));
+        assert!(
+            restored == rt.est,
+            "{id}: estimator snapshot reads back differently:\n{:?}\n{:?}",
+            restored,
+            rt.est
+        );
+    }
+    (derived, rejected)
+}
+
+/// Each rejection names a reading of the batch once, its seq and its field.
+fn check_rejections(id: &str, readings: &[RawReading], rejected: &[ingest::Rejection]) {
     let mut indices = HashSet::new();
-    for r in &rejected {
+    for r in rejected {
         let i = r.index as usize;
         assert!(i < readings.len() && indices.insert(i), "{id}: index {i}");
         assert_eq!(r.seq, readings[i].seq, "{id}: rejection {i} names seq");
@@ -431,6 +451,10 @@ fn check_derived(
             r.reason
         );
     }
+}
+
+/// Fresh rows rise in seq and time and hold finite values, SOC in [0, 1].
+fn check_rows(id: &str, max_seq_before: Option<u64>, derived: &ingest::DerivedBatch) {
     let mut last: Option<(u64, i64)> = max_seq_before.map(|s| (s, i64::MIN));
     for row in &derived.rows {
         if let Some((seq, time_ns)) = last {
@@ -457,6 +481,11 @@ fn check_derived(
             );
         }
     }
+}
+
+/// Every raised alert names a seq this batch stored (the timeline alert:
+/// the channel's front).
+fn check_alerts_name_stored_seqs(id: &str, rt: &ChannelRuntime, derived: &ingest::DerivedBatch) {
     let fresh_seqs: HashSet<u64> = derived.rows.iter().map(|r| r.seq).collect();
     for change in &derived.changes {
         if let crate::alerts::AlertChange::Raise(a) = change {
@@ -474,19 +503,6 @@ fn check_derived(
             );
         }
     }
-    if let Some(snapshot) = &derived.estimator {
-        // The snapshot is what a restart resumes from: it must read back
-        // as the state the channel holds now.
-        let restored: EstimatorState = serde_json::from_str(&snapshot.state_json)
-            .unwrap_or_else(|e| panic!("{id}: estimator snapshot does not read back: {e}"));
-        assert!(
-            restored == rt.est,
-            "{id}: estimator snapshot reads back differently:\n{:?}\n{:?}",
-            restored,
-            rt.est
-        );
-    }
-    (derived, rejected)
 }
 
 #[cfg(test)]

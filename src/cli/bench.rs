@@ -83,181 +83,43 @@ pub async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
         )
         .into());
     }
-    let mut local = None;
-    let addr = match &args.connect {
-        Some(a) => a.clone(),
-        None => {
-            let dir = tempfile_dir()?;
-            let db = dir.join("bench.db");
-            let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
-            let addr = listener.local_addr()?.to_string();
-            let durability = args
-                .durability
-                .parse()
-                .map_err(|e| super::UsageError(format!("--durability {e}")))?;
-            let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
-            let config = gibbsline::app::Config::new(db.clone(), durability);
-            let task = tokio::spawn(gibbsline::app::run(config, listener, async move {
-                let _ = stop_rx.await;
-            }));
-            local = Some((stop_tx, task, dir, db));
-            addr
-        }
+    let local = match &args.connect {
+        Some(_) => None,
+        None => Some(LocalServer::start(&args.durability).await?),
     };
-    let channel = client::connect(&addr).await?;
-    let mut channels = ChannelServiceClient::new(channel.clone());
-    let run_tag = client::now_ns() % 1_000_000;
-    let ids: Vec<String> = (0..args.channels)
-        .map(|i| format!("bench-{run_tag}-{i:04}"))
-        .collect();
-    for id in &ids {
-        channels
-            .put_channel(pb::PutChannelRequest {
-                channel: Some(pb::Channel {
-                    channel_id: id.clone(),
-                    chemistry_id: args.chemistry.clone(),
-                    cells_in_series: 1,
-                    capacity_ah: 10.0,
-                    current_sign: pb::CurrentSign::ChargePositive as i32,
-                    default_temp_c: 25.0,
-                    ..Default::default()
-                }),
-            })
-            .await?;
-    }
-    let chemistry = gibbsline::electrochem::Registry::builtin()
-        .get(&args.chemistry)
-        .ok();
-    let (normal_volts, over_volts) = match &chemistry {
-        Some(c) => (
-            0.5 * (c.min_cell_volts + c.max_cell_volts),
-            c.max_cell_volts + 0.1,
-        ),
-        None => (1.0, 1.0),
+    let addr = match (&args.connect, &local) {
+        (Some(a), _) => a.clone(),
+        (None, Some(l)) => l.addr.clone(),
+        (None, None) => unreachable!("a local server is started when none is given"),
     };
-
-    // Alert latency: time from the ack of the batch holding the raising
-    // reading to the alert's arrival at a subscriber.
-    let ack_times: Arc<Mutex<HashMap<(String, u64), Instant>>> = Arc::default();
-    let alert_arrivals: Arc<Mutex<Vec<(String, u64, Instant)>>> = Arc::default();
-    let mut alerts = AlertServiceClient::new(channel.clone());
-    let mut watch = alerts
-        .watch_alerts(pb::WatchAlertsRequest {
-            after_id: u64::MAX >> 1,
-            ..Default::default()
-        })
-        .await?
-        .into_inner();
-    let arrivals = alert_arrivals.clone();
-    let watcher = tokio::spawn(async move {
-        while let Some(Ok(m)) = watch.next().await {
-            if m.event == pb::AlertEventKind::Raised as i32
-                && let Some(a) = m.alert
-            {
-                arrivals.lock().expect("poisoned").push((
-                    a.channel_id,
-                    a.raised_seq,
-                    Instant::now(),
-                ));
-            }
-        }
-    });
-
+    let conn = client::connect(&addr).await?;
+    let ids = define_channels(&conn, args).await?;
+    let clock = AlertClock::default();
+    let watcher = clock.watch(&conn).await?;
+    let (normal_volts, over_volts) = test_voltages(&args.chemistry);
     let per_channel = args.readings / u64::from(args.channels);
-    let t0 = client::now_ns() - (per_channel as i64 + 10) * 1_000_000;
+    let load = Load {
+        per_channel,
+        batch: u64::from(args.batch),
+        alert_every: args.alert_every,
+        t0: client::now_ns() - (per_channel as i64 + 10) * 1_000_000,
+        normal_volts,
+        over_volts,
+        batch_interval: (args.rate > 0.0).then(|| {
+            Duration::from_secs_f64(f64::from(args.batch) * f64::from(args.channels) / args.rate)
+        }),
+    };
     let start = Instant::now();
-    let mut tasks = Vec::new();
-    for (index, id) in ids.clone().into_iter().enumerate() {
-        // Channels start out of phase so the offered load is smooth, as from
-        // independent rigs, not one burst per tick.
-        let phase = index as f64 / f64::from(args.channels);
-        let mut ingest = IngestServiceClient::new(channel.clone())
-            .max_encoding_message_size(gibbsline::grpc::MAX_MESSAGE_BYTES)
-            .max_decoding_message_size(gibbsline::grpc::MAX_MESSAGE_BYTES);
-        let batch = u64::from(args.batch);
-        let alert_every = args.alert_every;
-        let ack_times = ack_times.clone();
-        let batch_interval = (args.rate > 0.0)
-            .then(|| Duration::from_secs_f64(batch as f64 * f64::from(args.channels) / args.rate));
-        tasks.push(tokio::spawn(async move {
-            let (tx, rx) = tokio::sync::mpsc::channel::<pb::StreamReadingsRequest>(4);
-            let sent: Arc<Mutex<HashMap<u64, (Instant, u64)>>> = Arc::default();
-            let sent_w = sent.clone();
-            let id_w = id.clone();
-            let producer = tokio::spawn(async move {
-                let mut seq = 1u64;
-                let mut batch_id = 0u64;
-                let paced_start = tokio::time::Instant::now()
-                    + batch_interval.map(|e| e.mul_f64(phase)).unwrap_or_default();
-                while seq <= per_channel {
-                    if let Some(every) = batch_interval {
-                        tokio::time::sleep_until(paced_start + every * batch_id as u32).await;
-                    }
-                    let end = (seq + batch).min(per_channel + 1);
-                    let readings = (seq..end)
-                        .map(|s| {
-                            let over = alert_every > 0 && s % alert_every == 0;
-                            pb::Reading {
-                                seq: s,
-                                time_unix_ns: t0 + s as i64 * 1_000_000,
-                                volts: if over {
-                                    over_volts
-                                } else {
-                                    normal_volts + 1e-4 * ((s % 7) as f64)
-                                },
-                                amps: Some(0.0),
-                                temp_c: Some(25.0),
-                            }
-                        })
-                        .collect();
-                    sent_w
-                        .lock()
-                        .expect("poisoned")
-                        .insert(batch_id, (Instant::now(), end - 1));
-                    let msg = pb::StreamReadingsRequest {
-                        batch: Some(pb::ReadingBatch {
-                            channel_id: id_w.clone(),
-                            batch_id,
-                            readings,
-                        }),
-                    };
-                    if tx.send(msg).await.is_err() {
-                        break;
-                    }
-                    seq = end;
-                    batch_id += 1;
-                }
-            });
-            let mut inbound = ingest
-                .stream_readings(tokio_stream::wrappers::ReceiverStream::new(rx))
-                .await?
-                .into_inner();
-            let mut latencies = Vec::new();
-            let mut last_seq = 0u64;
-            let mut accepted = 0u64;
-            while last_seq < per_channel {
-                let Some(msg) = inbound.next().await else {
-                    break;
-                };
-                let ack = msg?.ack.ok_or_else(|| anyhow::anyhow!("ack missing"))?;
-                let now = Instant::now();
-                accepted += u64::from(ack.accepted);
-                if let Some((t, hi)) = sent.lock().expect("poisoned").remove(&ack.batch_id) {
-                    latencies.push(now.duration_since(t).as_secs_f64() * 1e3);
-                    let lo = hi.saturating_sub(batch) + 1;
-                    if alert_every > 0 {
-                        let mut times = ack_times.lock().expect("poisoned");
-                        for s in (lo..=hi).filter(|s| s % alert_every == 0) {
-                            times.insert((id.clone(), s), now);
-                        }
-                    }
-                    last_seq = hi;
-                }
-            }
-            producer.abort();
-            anyhow::Ok((accepted, latencies))
-        }));
-    }
+    let tasks: Vec<_> = ids
+        .into_iter()
+        .enumerate()
+        .map(|(index, id)| {
+            // Channels start out of phase so the offered load is smooth, as
+            // from independent rigs, not one burst per tick.
+            let phase = index as f64 / f64::from(args.channels);
+            tokio::spawn(load.clone().stream(conn.clone(), id, phase, clock.clone()))
+        })
+        .collect();
     let mut latencies = Vec::new();
     let mut accepted = 0;
     for t in tasks {
@@ -269,25 +131,8 @@ pub async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
     tokio::time::sleep(Duration::from_millis(300)).await;
     watcher.abort();
     latencies.sort_by(f64::total_cmp);
-    let acks = std::mem::take(&mut *ack_times.lock().expect("poisoned"));
-    let mut alert_lat: Vec<f64> = alert_arrivals
-        .lock()
-        .expect("poisoned")
-        .iter()
-        .filter_map(|(ch, seq, at)| {
-            acks.get(&(ch.clone(), *seq))
-                .map(|acked| at.saturating_duration_since(*acked).as_secs_f64() * 1e3)
-        })
-        .collect();
-    alert_lat.sort_by(f64::total_cmp);
-    let db_bytes_per_reading = local.as_ref().and_then(|(_, _, _, db)| {
-        let size: u64 = ["", "-wal"]
-            .iter()
-            .filter_map(|s| std::fs::metadata(format!("{}{s}", db.display())).ok())
-            .map(|m| m.len())
-            .sum();
-        (accepted > 0).then(|| size as f64 / accepted as f64)
-    });
+    let alert_lat = clock.latencies_ms();
+    let db_bytes_per_reading = local.as_ref().and_then(|l| l.bytes_per_reading(accepted));
     let report = BenchReport {
         readings: accepted,
         channels: args.channels,
@@ -301,46 +146,310 @@ pub async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
         alerts_seen: alert_lat.len(),
         alert_p50_ms: (!alert_lat.is_empty()).then(|| percentile(&alert_lat, 0.5)),
         alert_p99_ms: (!alert_lat.is_empty()).then(|| percentile(&alert_lat, 0.99)),
-        peak_rss_mib: if local.is_some() {
-            peak_rss_mib()
-        } else {
-            None
-        },
+        peak_rss_mib: local.as_ref().and_then(|_| peak_rss_mib()),
         db_bytes_per_reading,
     };
-    if let Some((stop, task, dir, _)) = local {
-        let _ = stop.send(());
-        let _ = task.await;
-        let _ = std::fs::remove_dir_all(dir);
+    if let Some(l) = local {
+        l.stop().await;
     }
-    if args.json {
-        println!("{}", serde_json::to_string(&report)?);
-    } else {
-        println!(
-            "readings        {} over {} channels, batches of {}",
-            report.readings, report.channels, report.batch
-        );
-        println!(
-            "sustained       {:.0} readings/s ({:.2} s)",
-            report.readings_per_s, report.seconds
-        );
-        println!(
-            "ack latency     p50 {:.1} ms, p99 {:.1} ms, max {:.1} ms",
-            report.ack_p50_ms, report.ack_p99_ms, report.ack_max_ms
-        );
-        match (report.alert_p50_ms, report.alert_p99_ms) {
-            (Some(p50), Some(p99)) => println!(
-                "alert latency   p50 {p50:.1} ms, p99 {p99:.1} ms ({} alerts)",
-                report.alerts_seen
-            ),
-            _ => println!("alert latency   no alerts measured"),
+    print_ingest_report(&report, args.json)
+}
+
+/// A server started in this process on a temporary database.
+struct LocalServer {
+    addr: String,
+    stop: tokio::sync::oneshot::Sender<()>,
+    task: tokio::task::JoinHandle<Result<(), gibbsline::app::AppError>>,
+    dir: std::path::PathBuf,
+    db: std::path::PathBuf,
+}
+
+impl LocalServer {
+    async fn start(durability: &str) -> anyhow::Result<LocalServer> {
+        let dir = tempfile_dir()?;
+        let db = dir.join("bench.db");
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
+        let addr = listener.local_addr()?.to_string();
+        let durability = durability
+            .parse()
+            .map_err(|e| super::UsageError(format!("--durability {e}")))?;
+        let (stop, stop_rx) = tokio::sync::oneshot::channel::<()>();
+        let config = gibbsline::app::Config::new(db.clone(), durability);
+        let task = tokio::spawn(gibbsline::app::run(config, listener, async move {
+            let _ = stop_rx.await;
+        }));
+        Ok(LocalServer {
+            addr,
+            stop,
+            task,
+            dir,
+            db,
+        })
+    }
+
+    /// The database and its write-ahead log, per stored reading.
+    fn bytes_per_reading(&self, stored: u64) -> Option<f64> {
+        let size: u64 = ["", "-wal"]
+            .iter()
+            .filter_map(|s| std::fs::metadata(format!("{}{s}", self.db.display())).ok())
+            .map(|m| m.len())
+            .sum();
+        (stored > 0).then(|| size as f64 / stored as f64)
+    }
+
+    async fn stop(self) {
+        let _ = self.stop.send(());
+        let _ = self.task.await;
+        let _ = std::fs::remove_dir_all(self.dir);
+    }
+}
+
+/// One channel per stream, each with a fresh id so runs never collide.
+async fn define_channels(
+    conn: &client::Conn,
+    args: &BenchIngestArgs,
+) -> anyhow::Result<Vec<String>> {
+    let mut channels = ChannelServiceClient::new(conn.clone());
+    let run_tag = client::now_ns() % 1_000_000;
+    let ids: Vec<String> = (0..args.channels)
+        .map(|i| format!("bench-{run_tag}-{i:04}"))
+        .collect();
+    for id in &ids {
+        let channel = pb::Channel {
+            channel_id: id.clone(),
+            chemistry_id: args.chemistry.clone(),
+            cells_in_series: 1,
+            capacity_ah: 10.0,
+            current_sign: pb::CurrentSign::ChargePositive as i32,
+            default_temp_c: 25.0,
+            ..Default::default()
+        };
+        channels
+            .put_channel(pb::PutChannelRequest {
+                channel: Some(channel),
+            })
+            .await?;
+    }
+    Ok(ids)
+}
+
+/// A voltage inside the chemistry's window, and one over its limit.
+fn test_voltages(chemistry_id: &str) -> (f64, f64) {
+    match gibbsline::electrochem::Registry::builtin().get(chemistry_id) {
+        Ok(c) => (
+            0.5 * (c.min_cell_volts + c.max_cell_volts),
+            c.max_cell_volts + 0.1,
+        ),
+        Err(_) => (1.0, 1.0),
+    }
+}
+
+/// Alert latency: from the ack of the batch holding the raising reading
+/// to the alert's arrival at a subscriber.
+#[derive(Clone, Default)]
+struct AlertClock {
+    acked: Arc<Mutex<HashMap<(String, u64), Instant>>>,
+    arrived: Arc<Mutex<Vec<(String, u64, Instant)>>>,
+}
+
+impl AlertClock {
+    async fn watch(&self, conn: &client::Conn) -> anyhow::Result<tokio::task::JoinHandle<()>> {
+        let request = pb::WatchAlertsRequest {
+            after_id: u64::MAX >> 1,
+            ..Default::default()
+        };
+        let mut watch = AlertServiceClient::new(conn.clone())
+            .watch_alerts(request)
+            .await?
+            .into_inner();
+        let arrived = self.arrived.clone();
+        Ok(tokio::spawn(async move {
+            while let Some(Ok(m)) = watch.next().await {
+                if m.event == pb::AlertEventKind::Raised as i32
+                    && let Some(a) = m.alert
+                {
+                    let at = Instant::now();
+                    arrived
+                        .lock()
+                        .expect("poisoned")
+                        .push((a.channel_id, a.raised_seq, at));
+                }
+            }
+        }))
+    }
+
+    fn acked(&self, channel_id: &str, seqs: impl Iterator<Item = u64>, at: Instant) {
+        let mut acked = self.acked.lock().expect("poisoned");
+        for s in seqs {
+            acked.insert((channel_id.to_string(), s), at);
         }
-        if let Some(rss) = report.peak_rss_mib {
-            println!("peak RSS        {rss:.0} MiB (server and client in one process)");
+    }
+
+    /// Sorted ack-to-arrival times of the alerts seen, ms.
+    fn latencies_ms(&self) -> Vec<f64> {
+        let acked = self.acked.lock().expect("poisoned");
+        let mut out: Vec<f64> = self
+            .arrived
+            .lock()
+            .expect("poisoned")
+            .iter()
+            .filter_map(|(ch, seq, at)| {
+                acked
+                    .get(&(ch.clone(), *seq))
+                    .map(|t| at.saturating_duration_since(*t).as_secs_f64() * 1e3)
+            })
+            .collect();
+        out.sort_by(f64::total_cmp);
+        out
+    }
+}
+
+/// What every channel's stream sends.
+#[derive(Clone)]
+struct Load {
+    per_channel: u64,
+    batch: u64,
+    alert_every: u64,
+    t0: i64,
+    normal_volts: f64,
+    over_volts: f64,
+    /// Paced: one batch per channel this often; `None`: as fast as acked.
+    batch_interval: Option<Duration>,
+}
+
+/// Batches sent and not yet acknowledged: batch id → (sent at, last seq).
+type Sent = Arc<Mutex<HashMap<u64, (Instant, u64)>>>;
+
+impl Load {
+    /// One channel's stream: readings accepted and ack latencies (ms).
+    async fn stream(
+        self,
+        conn: client::Conn,
+        id: String,
+        phase: f64,
+        clock: AlertClock,
+    ) -> anyhow::Result<(u64, Vec<f64>)> {
+        let mut ingest = IngestServiceClient::new(conn)
+            .max_encoding_message_size(gibbsline::grpc::MAX_MESSAGE_BYTES)
+            .max_decoding_message_size(gibbsline::grpc::MAX_MESSAGE_BYTES);
+        let (tx, rx) = tokio::sync::mpsc::channel::<pb::StreamReadingsRequest>(4);
+        let sent: Sent = Arc::default();
+        let producer = tokio::spawn(self.clone().produce(id.clone(), phase, tx, sent.clone()));
+        let mut inbound = ingest
+            .stream_readings(tokio_stream::wrappers::ReceiverStream::new(rx))
+            .await?
+            .into_inner();
+        let mut latencies = Vec::new();
+        let mut last_seq = 0u64;
+        let mut accepted = 0u64;
+        while last_seq < self.per_channel {
+            let Some(msg) = inbound.next().await else {
+                break;
+            };
+            let ack = msg?.ack.ok_or_else(|| anyhow::anyhow!("ack missing"))?;
+            let now = Instant::now();
+            accepted += u64::from(ack.accepted);
+            if let Some((t, hi)) = sent.lock().expect("poisoned").remove(&ack.batch_id) {
+                latencies.push(now.duration_since(t).as_secs_f64() * 1e3);
+                let lo = hi.saturating_sub(self.batch) + 1;
+                if self.alert_every > 0 {
+                    let every = self.alert_every;
+                    clock.acked(&id, (lo..=hi).filter(|s| s % every == 0), now);
+                }
+                last_seq = hi;
+            }
         }
-        if let Some(b) = report.db_bytes_per_reading {
-            println!("disk            {b:.0} bytes per stored reading");
+        producer.abort();
+        Ok((accepted, latencies))
+    }
+
+    /// Sends the channel's batches, paced or as fast as the stream takes them.
+    async fn produce(
+        self,
+        id: String,
+        phase: f64,
+        tx: tokio::sync::mpsc::Sender<pb::StreamReadingsRequest>,
+        sent: Sent,
+    ) {
+        let mut seq = 1u64;
+        let mut batch_id = 0u64;
+        let paced_start = tokio::time::Instant::now()
+            + self
+                .batch_interval
+                .map(|e| e.mul_f64(phase))
+                .unwrap_or_default();
+        while seq <= self.per_channel {
+            if let Some(every) = self.batch_interval {
+                tokio::time::sleep_until(paced_start + every * batch_id as u32).await;
+            }
+            let end = (seq + self.batch).min(self.per_channel + 1);
+            let readings = (seq..end).map(|s| self.reading(s)).collect();
+            sent.lock()
+                .expect("poisoned")
+                .insert(batch_id, (Instant::now(), end - 1));
+            let batch = pb::ReadingBatch {
+                channel_id: id.clone(),
+                batch_id,
+                readings,
+            };
+            if tx
+                .send(pb::StreamReadingsRequest { batch: Some(batch) })
+                .await
+                .is_err()
+            {
+                break;
+            }
+            seq = end;
+            batch_id += 1;
         }
+    }
+
+    /// Reading `s`: inside the window, or over it every `alert_every`.
+    fn reading(&self, s: u64) -> pb::Reading {
+        let over = self.alert_every > 0 && s.is_multiple_of(self.alert_every);
+        pb::Reading {
+            seq: s,
+            time_unix_ns: self.t0 + s as i64 * 1_000_000,
+            volts: if over {
+                self.over_volts
+            } else {
+                self.normal_volts + 1e-4 * ((s % 7) as f64)
+            },
+            amps: Some(0.0),
+            temp_c: Some(25.0),
+        }
+    }
+}
+
+fn print_ingest_report(report: &BenchReport, json: bool) -> anyhow::Result<()> {
+    if json {
+        println!("{}", serde_json::to_string(report)?);
+        return Ok(());
+    }
+    println!(
+        "readings        {} over {} channels, batches of {}",
+        report.readings, report.channels, report.batch
+    );
+    println!(
+        "sustained       {:.0} readings/s ({:.2} s)",
+        report.readings_per_s, report.seconds
+    );
+    println!(
+        "ack latency     p50 {:.1} ms, p99 {:.1} ms, max {:.1} ms",
+        report.ack_p50_ms, report.ack_p99_ms, report.ack_max_ms
+    );
+    match (report.alert_p50_ms, report.alert_p99_ms) {
+        (Some(p50), Some(p99)) => println!(
+            "alert latency   p50 {p50:.1} ms, p99 {p99:.1} ms ({} alerts)",
+            report.alerts_seen
+        ),
+        _ => println!("alert latency   no alerts measured"),
+    }
+    if let Some(rss) = report.peak_rss_mib {
+        println!("peak RSS        {rss:.0} MiB (server and client in one process)");
+    }
+    if let Some(b) = report.db_bytes_per_reading {
+        println!("disk            {b:.0} bytes per stored reading");
     }
     Ok(())
 }
@@ -374,15 +483,47 @@ pub struct DeriveReport {
 /// thermodynamics and SOC alone (what ingest did before the estimator),
 /// and the full path (estimator, rules, row building) as ingest runs it.
 pub fn derive(args: &BenchDeriveArgs) -> anyhow::Result<()> {
-    use gibbsline::channel::ChannelDef;
-    use gibbsline::electrochem::{self, EvalRequest, Registry};
-    use gibbsline::ingest::{ChannelRuntime, RawReading, derive_batch};
+    use gibbsline::electrochem::Registry;
+    use gibbsline::ingest::ChannelRuntime;
     let registry = Registry::builtin();
     let chem = registry
         .get(&args.chemistry)
         .map_err(|_| super::UsageError(format!("--chemistry {:?}: unknown id", args.chemistry)))?;
-    let (min_volts, max_volts) = ChannelDef::default_window(&chem);
-    let def = ChannelDef {
+    let readings = derive_readings(args.readings, &chem);
+    let (thermo_ns, thermo_sink) = time_thermo(&chem, &readings)?;
+    let mut rt = ChannelRuntime::fresh(1, derive_channel(&chem), chem.clone(), 1);
+    let (full_ns, full_sink) = time_full(&mut rt, &readings);
+    std::hint::black_box(thermo_sink + full_sink);
+    let report = DeriveReport {
+        readings: args.readings,
+        thermo_only_ns_per_reading: thermo_ns,
+        full_path_ns_per_reading: full_ns,
+        estimator_and_rules_ns_per_reading: full_ns - thermo_ns,
+    };
+    if args.json {
+        println!("{}", serde_json::to_string(&report)?);
+        return Ok(());
+    }
+    println!("readings            {}", report.readings);
+    println!(
+        "thermo + SOC only   {:.0} ns/reading",
+        report.thermo_only_ns_per_reading
+    );
+    println!(
+        "full ingest derive  {:.0} ns/reading (estimator, rules, row)",
+        report.full_path_ns_per_reading
+    );
+    println!(
+        "estimator + rules   {:.0} ns/reading extra",
+        report.estimator_and_rules_ns_per_reading
+    );
+    Ok(())
+}
+
+fn derive_channel(chem: &gibbsline::electrochem::Chemistry) -> gibbsline::channel::ChannelDef {
+    use gibbsline::channel::ChannelDef;
+    let (min_volts, max_volts) = ChannelDef::default_window(chem);
+    ChannelDef {
         channel_id: "bench".into(),
         chemistry_id: chem.id.clone(),
         cells_in_series: 1,
@@ -399,16 +540,22 @@ pub fn derive(args: &BenchDeriveArgs) -> anyhow::Result<()> {
         description: String::new(),
         gas: None,
         active_area_cm2: None,
-    };
+    }
+}
+
+/// Current steps every 600 readings and rests between, so every branch
+/// of the estimator is exercised.
+fn derive_readings(
+    n: u64,
+    chem: &gibbsline::electrochem::Chemistry,
+) -> Vec<gibbsline::ingest::RawReading> {
     let mid = 0.5 * (chem.min_cell_volts + chem.max_cell_volts);
-    let t0 = client::now_ns() - (args.readings as i64 + 10) * 1_000_000_000;
-    // Current steps every 600 readings and rests between, so every branch
-    // of the estimator is exercised.
-    let readings: Vec<RawReading> = (1..=args.readings)
+    let t0 = client::now_ns() - (n as i64 + 10) * 1_000_000_000;
+    (1..=n)
         .map(|s| {
             let phase = (s / 600) % 3;
             let amps = [1.0, 0.0, -1.0][phase as usize];
-            RawReading {
+            gibbsline::ingest::RawReading {
                 seq: s,
                 time_unix_ns: t0 + s as i64 * 1_000_000_000,
                 volts: mid + 0.05 * amps + 1e-4 * ((s % 13) as f64),
@@ -416,52 +563,44 @@ pub fn derive(args: &BenchDeriveArgs) -> anyhow::Result<()> {
                 temp_c: Some(25.0 + 0.001 * (s % 100) as f64),
             }
         })
-        .collect();
+        .collect()
+}
+
+/// Thermodynamics and SOC alone: ns per reading, and a sink the optimiser keeps.
+fn time_thermo(
+    chem: &gibbsline::electrochem::Chemistry,
+    readings: &[gibbsline::ingest::RawReading],
+) -> anyhow::Result<(f64, f64)> {
+    use gibbsline::electrochem::{self, EvalRequest};
     let started = Instant::now();
     let mut sink = 0.0;
-    for r in &readings {
-        let ev = electrochem::evaluate(
-            &chem,
-            EvalRequest {
-                stack_volts: r.volts,
-                cells_in_series: 1,
-                temp_k: r.temp_c.unwrap_or(25.0) + 273.15,
-                equilibrium_tolerance_volts: 1e-3,
-            },
-        )?;
+    for r in readings {
+        let request = EvalRequest {
+            stack_volts: r.volts,
+            cells_in_series: 1,
+            temp_k: r.temp_c.unwrap_or(25.0) + 273.15,
+            equilibrium_tolerance_volts: 1e-3,
+        };
+        let ev = electrochem::evaluate(chem, request)?;
         sink += ev.thermo.delta_g_kj_per_mol + ev.soc.unwrap_or(0.0);
     }
-    let thermo_ns = started.elapsed().as_nanos() as f64 / args.readings as f64;
-    let mut rt = ChannelRuntime::fresh(1, def, chem.clone(), 1);
+    Ok((per_reading_ns(started, readings.len()), sink))
+}
+
+/// The full ingest derivation in batches of 1,000.
+fn time_full(
+    rt: &mut gibbsline::ingest::ChannelRuntime,
+    readings: &[gibbsline::ingest::RawReading],
+) -> (f64, f64) {
     let started = Instant::now();
+    let mut sink = 0.0;
     for chunk in readings.chunks(1000) {
-        let (batch, _) = derive_batch(&mut rt, chunk, client::now_ns());
+        let (batch, _) = gibbsline::ingest::derive_batch(rt, chunk, client::now_ns());
         sink += batch.rows.len() as f64;
     }
-    let full_ns = started.elapsed().as_nanos() as f64 / args.readings as f64;
-    std::hint::black_box(sink);
-    let report = DeriveReport {
-        readings: args.readings,
-        thermo_only_ns_per_reading: thermo_ns,
-        full_path_ns_per_reading: full_ns,
-        estimator_and_rules_ns_per_reading: full_ns - thermo_ns,
-    };
-    if args.json {
-        println!("{}", serde_json::to_string(&report)?);
-    } else {
-        println!("readings            {}", report.readings);
-        println!(
-            "thermo + SOC only   {:.0} ns/reading",
-            report.thermo_only_ns_per_reading
-        );
-        println!(
-            "full ingest derive  {:.0} ns/reading (estimator, rules, row)",
-            report.full_path_ns_per_reading
-        );
-        println!(
-            "estimator + rules   {:.0} ns/reading extra",
-            report.estimator_and_rules_ns_per_reading
-        );
-    }
-    Ok(())
+    (per_reading_ns(started, readings.len()), sink)
+}
+
+fn per_reading_ns(started: Instant, n: usize) -> f64 {
+    started.elapsed().as_nanos() as f64 / n.max(1) as f64
 }

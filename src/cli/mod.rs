@@ -285,26 +285,7 @@ pub fn load_config(
 }
 
 fn serve(args: &ServeArgs) -> anyhow::Result<()> {
-    use gibbsline::app;
-    let env: std::collections::BTreeMap<String, String> = std::env::vars()
-        .filter(|(k, _)| k.starts_with("GIBBSLINE_"))
-        .collect();
-    let mut config = load_config(args.config.as_deref(), &env)?;
-    if let Some(l) = &args.listen {
-        config.listen = l.clone();
-    }
-    if let Some(db) = &args.db {
-        config.db = db.display().to_string();
-    }
-    if let Some(d) = &args.durability {
-        config.durability = d
-            .parse()
-            .map_err(|e| UsageError(format!("--durability {e}")))?;
-    }
-    if let Some(m) = &args.metrics_listen {
-        config.metrics_listen = Some(m.clone());
-    }
-    config.allow_insecure |= args.allow_insecure;
+    let config = resolve_serve_config(args)?;
     if args.print_config {
         print!("{}", toml::to_string(&config)?);
         return Ok(());
@@ -315,20 +296,7 @@ fn serve(args: &ServeArgs) -> anyhow::Result<()> {
             tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
         )
         .init();
-    let mut registry = eval::load_registry(&args.chemistry_file)?;
-    for spec in &config.chemistry {
-        let chem = spec
-            .validate(false)
-            .map_err(|e| UsageError(e.to_string()))?;
-        registry
-            .insert_user(chem)
-            .map_err(|e| UsageError(e.to_string()))?;
-    }
-    let extra = registry
-        .iter()
-        .filter(|c| !c.builtin)
-        .map(|c| (**c).clone())
-        .collect();
+    let extra = user_chemistries(&args.chemistry_file, &config)?;
     // Each connection is a descriptor; the common soft limit of 1024 would
     // make a few hundred idle clients lock the rest out. Raised to the hard
     // limit (the accept loop still backs off if even that runs out).
@@ -351,7 +319,7 @@ fn serve(args: &ServeArgs) -> anyhow::Result<()> {
             ),
             None => None,
         };
-        let app_config = app::Config {
+        let app_config = gibbsline::app::Config {
             db_path: config.db.clone().into(),
             durability: config.durability,
             extra_chemistries: extra,
@@ -361,9 +329,54 @@ fn serve(args: &ServeArgs) -> anyhow::Result<()> {
             tls: config.read_tls().map_err(UsageError)?,
             limits: config.limits,
         };
-        app::run(app_config, listener, shutdown_signal()).await?;
+        gibbsline::app::run(app_config, listener, shutdown_signal()).await?;
         Ok(())
     })
+}
+
+/// File, then environment, then flags: the one validated server config.
+fn resolve_serve_config(args: &ServeArgs) -> anyhow::Result<gibbsline::config::ServerConfig> {
+    let env: std::collections::BTreeMap<String, String> = std::env::vars()
+        .filter(|(k, _)| k.starts_with("GIBBSLINE_"))
+        .collect();
+    let mut config = load_config(args.config.as_deref(), &env)?;
+    if let Some(l) = &args.listen {
+        config.listen = l.clone();
+    }
+    if let Some(db) = &args.db {
+        config.db = db.display().to_string();
+    }
+    if let Some(d) = &args.durability {
+        config.durability = d
+            .parse()
+            .map_err(|e| UsageError(format!("--durability {e}")))?;
+    }
+    if let Some(m) = &args.metrics_listen {
+        config.metrics_listen = Some(m.clone());
+    }
+    config.allow_insecure |= args.allow_insecure;
+    Ok(config)
+}
+
+/// The chemistries of `--chemistry-file` files and of the config file.
+fn user_chemistries(
+    files: &[PathBuf],
+    config: &gibbsline::config::ServerConfig,
+) -> anyhow::Result<Vec<gibbsline::electrochem::Chemistry>> {
+    let mut registry = eval::load_registry(files)?;
+    for spec in &config.chemistry {
+        let chem = spec
+            .validate(false)
+            .map_err(|e| UsageError(e.to_string()))?;
+        registry
+            .insert_user(chem)
+            .map_err(|e| UsageError(e.to_string()))?;
+    }
+    Ok(registry
+        .iter()
+        .filter(|c| !c.builtin)
+        .map(|c| (**c).clone())
+        .collect())
 }
 
 async fn shutdown_signal() {

@@ -38,6 +38,52 @@ pub struct SimChannel {
 /// flow and battery cells and a two-cell electrolyser stack.
 pub fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
     let registry = Registry::builtin();
+    harbour_lane_specs()
+        .into_iter()
+        .cycle()
+        .take(count)
+        .enumerate()
+        .map(
+            |(i, (id, chem_id, params, soc, drive, sign, description))| {
+                // Repeats of the four get a suffix: hl-vrb-1-1, hl-vrb-1-2, …
+                let channel_id = if i < 4 {
+                    id.to_string()
+                } else {
+                    format!("{id}-{}", i / 4)
+                };
+                let def = sim_channel_def(channel_id, chem_id, &params, sign, description);
+                SimChannel {
+                    def,
+                    chemistry: registry.get(chem_id).expect("scenario uses built-ins"),
+                    cell: SimCell::new(params, soc, seed + i as u64),
+                    drive,
+                    sign: if sign == pb::CurrentSign::DischargePositive as i32 {
+                        -1.0
+                    } else {
+                        1.0
+                    },
+                    next_seq: 1,
+                    pending: VecDeque::new(),
+                }
+            },
+        )
+        .collect()
+}
+
+/// One simulated channel: id, chemistry, cell, starting SOC, drive, the
+/// instrument's current sign, description.
+type SimSpec = (
+    &'static str,
+    &'static str,
+    SimCellParams,
+    f64,
+    Drive,
+    i32,
+    &'static str,
+);
+
+/// The bench's four cells (invented for the demo).
+fn harbour_lane_specs() -> Vec<SimSpec> {
     let base = |cells, capacity_ah, r, rp, temp_c: f64, swing, period| SimCellParams {
         cells_in_series: cells,
         capacity_ah,
@@ -51,7 +97,7 @@ pub fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
         tafel_volts: 0.0,
         exchange_amps: 0.0,
     };
-    let specs: Vec<(&str, &str, SimCellParams, f64, Drive, i32, &str)> = vec![
+    vec![
         (
             "hl-vrb-1",
             "vanadium-redox",
@@ -95,53 +141,36 @@ pub fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
             pb::CurrentSign::ChargePositive as i32,
             "two-cell water electrolyser stack held at 20 A",
         ),
-    ];
-    specs
-        .into_iter()
-        .cycle()
-        .take(count)
-        .enumerate()
-        .map(
-            |(i, (id, chem_id, params, soc, drive, sign, description))| {
-                let chemistry = registry.get(chem_id).expect("scenario uses built-ins");
-                let channel_id = if i < 4 {
-                    id.to_string()
-                } else {
-                    format!("{id}-{}", i / 4)
-                };
-                SimChannel {
-                    def: pb::Channel {
-                        channel_id,
-                        chemistry_id: chem_id.into(),
-                        cells_in_series: params.cells_in_series,
-                        capacity_ah: params.capacity_ah,
-                        current_sign: sign,
-                        default_temp_c: params.temp_k - 273.15,
-                        description: description.into(),
-                        // The electrolyser: saturated product gases, known
-                        // ohmic resistance and area for iR-free figures.
-                        gas: (chem_id == WATER_CELL_ID).then(|| pb::GasConditions {
-                            saturated: true,
-                            ..Default::default()
-                        }),
-                        active_area_cm2: (chem_id == WATER_CELL_ID).then_some(25.0),
-                        resistance_ohm: (chem_id == WATER_CELL_ID).then_some(0.012),
-                        ..Default::default()
-                    },
-                    chemistry,
-                    cell: SimCell::new(params, soc, seed + i as u64),
-                    drive,
-                    sign: if sign == pb::CurrentSign::DischargePositive as i32 {
-                        -1.0
-                    } else {
-                        1.0
-                    },
-                    next_seq: 1,
-                    pending: VecDeque::new(),
-                }
-            },
-        )
-        .collect()
+    ]
+}
+
+/// A simulated channel's definition as the server is told it.
+fn sim_channel_def(
+    channel_id: String,
+    chem_id: &str,
+    params: &SimCellParams,
+    sign: i32,
+    description: &str,
+) -> pb::Channel {
+    let water = chem_id == WATER_CELL_ID;
+    pb::Channel {
+        channel_id,
+        chemistry_id: chem_id.into(),
+        cells_in_series: params.cells_in_series,
+        capacity_ah: params.capacity_ah,
+        current_sign: sign,
+        default_temp_c: params.temp_k - 273.15,
+        description: description.into(),
+        // The electrolyser: saturated product gases, known ohmic
+        // resistance and area for iR-free figures.
+        gas: water.then(|| pb::GasConditions {
+            saturated: true,
+            ..Default::default()
+        }),
+        active_area_cm2: water.then_some(25.0),
+        resistance_ohm: water.then_some(0.012),
+        ..Default::default()
+    }
 }
 
 /// Unacknowledged readings kept per channel at most; past it the simulated
