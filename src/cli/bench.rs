@@ -85,7 +85,7 @@ pub async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
     }
     let local = match &args.connect {
         Some(_) => None,
-        None => Some(LocalServer::start(&args.durability).await?),
+        None => Some(LocalServer::start(&args.durability, args.channels).await?),
     };
     let addr = match (&args.connect, &local) {
         (Some(a), _) => a.clone(),
@@ -165,7 +165,7 @@ struct LocalServer {
 }
 
 impl LocalServer {
-    async fn start(durability: &str) -> anyhow::Result<LocalServer> {
+    async fn start(durability: &str, channels: u32) -> anyhow::Result<LocalServer> {
         let dir = tempfile_dir()?;
         let db = dir.join("bench.db");
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
@@ -174,7 +174,13 @@ impl LocalServer {
             .parse()
             .map_err(|e| super::UsageError(format!("--durability {e}")))?;
         let (stop, stop_rx) = tokio::sync::oneshot::channel::<()>();
-        let config = gibbsline::app::Config::new(db.clone(), durability);
+        let mut config = gibbsline::app::Config::new(db.clone(), durability);
+        // One client opens a stream per channel here: the per-client bound
+        // (meant to stop one rig PC taking every slot) must let it.
+        config.limits.max_streams_per_client = config
+            .limits
+            .max_streams_per_client
+            .max(u64::from(channels));
         let task = tokio::spawn(gibbsline::app::run(config, listener, async move {
             let _ = stop_rx.await;
         }));
