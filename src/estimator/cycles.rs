@@ -77,7 +77,7 @@ pub struct CycleTracker {
 }
 
 /// Running totals at one reading, for closing or peeking at a cycle.
-#[derive(Debug, Clone, Copy, PartialEq)]
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
 pub struct Counters {
     pub charge_in_ah: f64,
     pub charge_out_ah: f64,
@@ -106,13 +106,19 @@ pub struct CycleRecord {
     /// Still running: the last reading so far, not the cycle's end.
     #[serde(default)]
     pub open: bool,
-    /// Began mid-segment at the start of the run: efficiencies unknown.
+    /// Began mid-segment at the start of the run, or ended more than
+    /// `CYCLE_CLOSURE_SOC` away from the SOC it began at: efficiencies unknown.
     #[serde(default)]
     pub partial: bool,
     /// A discharge with no charge before it.
     #[serde(default)]
     pub discharge_only: bool,
 }
+
+/// How far a cycle's end SOC may lie from its start for its coulombic and
+/// energy efficiencies to mean anything: 5 points (our choice; a cycle
+/// between the same cutoffs closes far tighter).
+pub const CYCLE_CLOSURE_SOC: f64 = 0.05;
 
 fn ratio(num: f64, den: f64) -> Option<f64> {
     (den > 0.0).then(|| num / den)
@@ -174,6 +180,9 @@ impl CycleTracker {
         let open = self.open.as_ref()?;
         let mut record = record_of(open, self.completed + 1, now);
         record.open = true;
+        // Not back at its start yet is what running means, not partial;
+        // its efficiencies wait for the end.
+        record.partial = open.partial;
         Some(record)
     }
 
@@ -205,7 +214,14 @@ fn record_of(open: &OpenCycle, index: u32, at: &Counters) -> CycleRecord {
     let discharge_only = open.charge.readings == 0;
     // A partial or half cycle's efficiencies compare charge that was never
     // counted with charge that was (a resumed run read 560 %): unknown.
-    let comparable = !open.partial && !discharge_only;
+    // So do a cycle's that ends far from the state it began in (a first
+    // charge from 80 % read 575 %).
+    let returned = match (open.start_soc, open.last_soc) {
+        (Some(start), Some(end)) => (start - end).abs() <= CYCLE_CLOSURE_SOC,
+        _ => true,
+    };
+    let partial = open.partial || !returned;
+    let comparable = !partial && !discharge_only;
     CycleRecord {
         index,
         start_ns: open.start_ns,
@@ -225,7 +241,81 @@ fn record_of(open: &OpenCycle, index: u32, at: &Counters) -> CycleRecord {
         start_soc: open.start_soc,
         end_soc: open.last_soc,
         open: false,
-        partial: open.partial,
+        partial,
         discharge_only,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A cell at 1 A: one reading a second, SOC moving by `dsoc` each,
+    /// charge and energy counted at a constant 1.4 V.
+    struct Run {
+        tracker: CycleTracker,
+        t: i64,
+        soc: f64,
+        counters: Counters,
+    }
+
+    impl Run {
+        fn steps(&mut self, direction: Direction, n: u32, dsoc: f64) -> Vec<CycleRecord> {
+            let mut closed = Vec::new();
+            for _ in 0..n {
+                self.t += 1_000_000_000;
+                let ah = 1.0 / 3600.0;
+                match direction {
+                    Direction::Charge => {
+                        self.counters.charge_in_ah += ah;
+                        self.counters.energy_in_wh += 1.4 * ah;
+                    }
+                    Direction::Discharge => {
+                        self.counters.charge_out_ah += ah;
+                        self.counters.energy_out_wh += 1.4 * ah;
+                    }
+                    Direction::Rest => {}
+                }
+                self.soc += dsoc;
+                closed.extend(self.tracker.observe(Observation {
+                    time_ns: self.t,
+                    direction,
+                    cell_volts: 1.4,
+                    delta_g_kj_per_mol: None,
+                    soc: Some(self.soc),
+                    charge_in_ah: self.counters.charge_in_ah,
+                    charge_out_ah: self.counters.charge_out_ah,
+                    energy_in_wh: self.counters.energy_in_wh,
+                    energy_out_wh: self.counters.energy_out_wh,
+                }));
+            }
+            closed
+        }
+    }
+
+    #[test]
+    fn a_cycle_that_does_not_return_to_its_start_soc_has_no_efficiencies() {
+        let mut run = Run {
+            tracker: CycleTracker::default(),
+            t: 0,
+            soc: 0.80,
+            counters: Counters::default(),
+        };
+        run.steps(Direction::Rest, 10, 0.0);
+        // First charge from 80 % to 96 %, then a full discharge to 4 %.
+        run.steps(Direction::Charge, 16, 0.01);
+        run.steps(Direction::Discharge, 92, -0.01);
+        let first = run.steps(Direction::Charge, 92, 0.01);
+        run.steps(Direction::Discharge, 92, -0.01);
+        let second = run.steps(Direction::Charge, 1, 0.01);
+        let (first, second) = (&first[0], &second[0]);
+        // 16 s in, 92 s out: a ratio of 5.75 that means nothing.
+        assert!(first.partial);
+        assert_eq!(first.coulombic_efficiency, None);
+        assert_eq!(first.energy_efficiency, None);
+        // From 4 % back to 4 %: 92 s in, 92 s out.
+        assert!(!second.partial);
+        let ce = second.coulombic_efficiency.unwrap();
+        assert!((ce - 1.0).abs() < 1e-9, "{ce}");
     }
 }
