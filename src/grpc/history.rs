@@ -122,6 +122,23 @@ impl QueryPage {
 }
 const DEFAULT_QUERY_LIMIT: u32 = 100_000;
 
+/// A query window's end: 0 means open-ended; otherwise after the start.
+fn window_end(start_unix_ns: i64, end_unix_ns: i64) -> Result<i64, Status> {
+    let end = if end_unix_ns == 0 {
+        i64::MAX
+    } else {
+        end_unix_ns
+    };
+    if end <= start_unix_ns {
+        return Err(invalid(
+            "end_unix_ns",
+            end_unix_ns,
+            "must be after start_unix_ns",
+        ));
+    }
+    Ok(end)
+}
+
 #[tonic::async_trait]
 impl pb::history_service_server::HistoryService for HistoryApi {
     type QueryReadingsStream = BoxStream<pb::QueryReadingsResponse>;
@@ -132,18 +149,7 @@ impl pb::history_service_server::HistoryService for HistoryApi {
     ) -> Result<Response<Self::QueryReadingsStream>, Status> {
         let q = request.into_inner();
         let (_, key) = self.key_of(&q.channel_id)?;
-        let end = if q.end_unix_ns == 0 {
-            i64::MAX
-        } else {
-            q.end_unix_ns
-        };
-        if end <= q.start_unix_ns {
-            return Err(invalid(
-                "end_unix_ns",
-                q.end_unix_ns,
-                "must be after start_unix_ns",
-            ));
-        }
+        let end = window_end(q.start_unix_ns, q.end_unix_ns)?;
         let limit = if q.limit == 0 {
             DEFAULT_QUERY_LIMIT
         } else {
@@ -188,18 +194,7 @@ impl pb::history_service_server::HistoryService for HistoryApi {
                 "must be positive",
             ));
         }
-        let end = if q.end_unix_ns == 0 {
-            i64::MAX
-        } else {
-            q.end_unix_ns
-        };
-        if end <= q.start_unix_ns {
-            return Err(invalid(
-                "end_unix_ns",
-                q.end_unix_ns,
-                "must be after start_unix_ns",
-            ));
-        }
+        let end = window_end(q.start_unix_ns, q.end_unix_ns)?;
         if (end.saturating_sub(q.start_unix_ns)) / q.bucket_width_ns > 100_000 && q.end_unix_ns != 0
         {
             return Err(invalid(
