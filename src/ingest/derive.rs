@@ -305,22 +305,22 @@ fn derive_late(
     } else {
         0
     };
-    parts.maybe_dup.push(ReadingRow {
-        channel_key: rt.key,
-        seq: r.seq,
-        run_id: rt.run_id,
-        time_ns: r.time_unix_ns,
-        volts: r.volts,
+    parts.maybe_dup.push(row_of(
+        rt,
+        r,
         amps,
-        temp_c: r.temp_c,
-        cell_volts_used: ev.thermo.cell_volts,
-        soc_model: ev.soc,
-        soc_fused: ev.soc,
-        charge_ah: rt.est.charge_ah,
-        energy_wh: rt.est.energy_wh,
-        flags: flags::OUT_OF_ORDER | mode_flags(amps, rt.est_config.rest_current_amps) | clamped,
-        soc_counted_unclamped: None,
-    });
+        Figures {
+            cell_volts_used: ev.thermo.cell_volts,
+            soc_model: ev.soc,
+            soc_fused: ev.soc,
+            charge_ah: rt.est.charge_ah,
+            energy_wh: rt.est.energy_wh,
+            flags: flags::OUT_OF_ORDER
+                | mode_flags(amps, rt.est_config.rest_current_amps)
+                | clamped,
+            soc_counted_unclamped: None,
+        },
+    ));
     Ok(())
 }
 
@@ -363,7 +363,37 @@ fn derive_fresh(
         &rule_input,
     ));
     parts.cycles.extend(est.cycle_closed.clone());
-    parts.rows.push(ReadingRow {
+    parts.rows.push(row_of(
+        rt,
+        r,
+        amps,
+        Figures {
+            cell_volts_used: est.cell_volts_used,
+            soc_model: est.soc_model,
+            soc_fused: est.soc_fused,
+            charge_ah: est.charge_ah,
+            energy_wh: est.energy_wh,
+            flags: fresh_flags(&est, amps, deadband),
+            soc_counted_unclamped: est.soc_counted_unclamped,
+        },
+    ));
+    Ok(())
+}
+
+/// What derivation adds to a raw reading before it is stored.
+struct Figures {
+    cell_volts_used: f64,
+    soc_model: Option<f64>,
+    soc_fused: Option<f64>,
+    charge_ah: f64,
+    energy_wh: f64,
+    flags: i64,
+    soc_counted_unclamped: Option<f64>,
+}
+
+/// The one place a stored row is built, fresh or late.
+fn row_of(rt: &ChannelRuntime, r: &RawReading, amps: Option<f64>, f: Figures) -> ReadingRow {
+    ReadingRow {
         channel_key: rt.key,
         seq: r.seq,
         run_id: rt.run_id,
@@ -371,15 +401,14 @@ fn derive_fresh(
         volts: r.volts,
         amps,
         temp_c: r.temp_c,
-        cell_volts_used: est.cell_volts_used,
-        soc_model: est.soc_model,
-        soc_fused: est.soc_fused,
-        charge_ah: est.charge_ah,
-        energy_wh: est.energy_wh,
-        flags: fresh_flags(&est, amps, deadband),
-        soc_counted_unclamped: est.soc_counted_unclamped,
-    });
-    Ok(())
+        cell_volts_used: f.cell_volts_used,
+        soc_model: f.soc_model,
+        soc_fused: f.soc_fused,
+        charge_ah: f.charge_ah,
+        energy_wh: f.energy_wh,
+        flags: f.flags,
+        soc_counted_unclamped: f.soc_counted_unclamped,
+    }
 }
 
 /// The front moves to a fresh reading; the usual interval follows it.
