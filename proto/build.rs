@@ -26,6 +26,9 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         .codec_path("crate::grpc::codec::StrictCodec")
         .build_server(true)
         .build_client(true)
+        // The CLI prints these as they come off the wire, so its JSON and
+        // CSV carry the proto's field names and nothing to keep in step.
+        .type_attribute("gibbsline.v1.Cycle", "#[derive(serde::Serialize)]")
         .compile_fds(fds)?;
     Ok(())
 }

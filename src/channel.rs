@@ -248,6 +248,31 @@ impl ChannelDef {
         cfg
     }
 
+    /// One cell of `chemistry` with every optional field at the default a
+    /// channels file would give it (charge-positive current, 25 °C, the
+    /// default plausibility window, no capacity); callers set what differs.
+    pub fn of_chemistry(channel_id: impl Into<String>, chemistry: &Chemistry) -> ChannelDef {
+        let (min_volts, max_volts) = ChannelDef::default_window(chemistry);
+        ChannelDef {
+            channel_id: channel_id.into(),
+            chemistry_id: chemistry.id.clone(),
+            cells_in_series: 1,
+            capacity_ah: 0.0,
+            current_sign: CurrentSign::ChargePositive,
+            default_temp_c: default_temp_c(),
+            min_volts,
+            max_volts,
+            e_standard_override_v: None,
+            resistance_ohm: None,
+            equilibrium_tolerance_mv: default_tolerance_mv(),
+            coulombic_efficiency: one(),
+            faradaic_efficiency: one(),
+            description: String::new(),
+            gas: None,
+            active_area_cm2: None,
+        }
+    }
+
     /// Plausibility window when the caller gave none: the chemistry's
     /// window widened by 0.5 V each side.
     pub fn default_window(chemistry: &Chemistry) -> (f64, f64) {

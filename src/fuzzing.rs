@@ -202,24 +202,12 @@ fn fuzz_channels(registry: &Registry) -> Vec<ChannelRuntime> {
                 let chemistry = registry
                     .get(chemistry_id)
                     .unwrap_or_else(|e| panic!("fuzz channel {chemistry_id}: {e}"));
-                let (min_volts, max_volts) = ChannelDef::default_window(&chemistry);
                 let def = ChannelDef {
-                    channel_id: format!("fuzz-{i}"),
-                    chemistry_id: chemistry_id.into(),
                     cells_in_series: cells,
                     capacity_ah,
                     current_sign: sign,
-                    default_temp_c: 25.0,
-                    min_volts,
-                    max_volts,
-                    e_standard_override_v: None,
                     resistance_ohm: resistance,
-                    equilibrium_tolerance_mv: 1.0,
-                    coulombic_efficiency: 1.0,
-                    faradaic_efficiency: 1.0,
-                    description: String::new(),
-                    gas: None,
-                    active_area_cm2: None,
+                    ..ChannelDef::of_chemistry(format!("fuzz-{i}"), &chemistry)
                 };
                 let chemistry = def
                     .validate(registry)

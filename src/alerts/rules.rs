@@ -505,45 +505,91 @@ fn driving_force_check(
     })
 }
 
-/// End of charge: SOC target (with lead time) or the charge cutoff, while
-/// charging. Without an anchored SOC only the cutoff decides.
+/// One end of a cycle: an SOC target or a cell-voltage cutoff, judged
+/// only while current flows toward that end. Without an anchored SOC only
+/// the cutoff decides.
+struct CycleEnd {
+    kind: AlertKind,
+    label: &'static str,
+    side: Side,
+    soc_rule: Threshold,
+    volts_rule: Threshold,
+    /// Raise this many seconds before the SOC target (end of charge only:
+    /// `None` makes no time-to-target estimate).
+    lead_s: Option<f64>,
+    flowing: bool,
+}
+
 fn end_of_charge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
-    let (soc_rule, volts_rule) = (rules.end_of_charge_soc, rules.end_of_charge_cell_volts);
+    cycle_end_check(
+        CycleEnd {
+            kind: AlertKind::EndOfCharge,
+            label: "end of charge",
+            side: Side::AtOrAbove,
+            soc_rule: rules.end_of_charge_soc,
+            volts_rule: rules.end_of_charge_cell_volts,
+            lead_s: Some(rules.end_of_charge_lead_s),
+            flowing: input.charging,
+        },
+        input,
+    )
+}
+
+fn end_of_discharge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+    cycle_end_check(
+        CycleEnd {
+            kind: AlertKind::EndOfDischarge,
+            label: "end of discharge",
+            side: Side::AtOrBelow,
+            soc_rule: rules.end_of_discharge_soc,
+            volts_rule: rules.end_of_discharge_cell_volts,
+            lead_s: None,
+            flowing: input.discharging,
+        },
+        input,
+    )
+}
+
+fn cycle_end_check(end: CycleEnd, input: &RuleInput) -> Option<Check> {
+    let (soc_rule, volts_rule) = (end.soc_rule, end.volts_rule);
     if !(soc_rule.enabled || volts_rule.enabled) {
         return None;
     }
     let mut past = false;
     let mut clear = true;
-    let mut value = input.cell_volts_terminal;
-    let mut threshold = volts_rule.raise_at;
-    let mut unit = "V";
-    let mut hold_s = volts_rule.hold_s;
+    let (mut value, mut threshold, mut unit, mut hold_s) = (
+        input.cell_volts_terminal,
+        volts_rule.raise_at,
+        "V",
+        volts_rule.hold_s,
+    );
     let mut eta = None;
     if let Some(soc) = input.soc.filter(|_| soc_rule.enabled) {
-        let (raise, below_clear) = compare(&soc_rule, Side::AtOrAbove, soc);
-        if let Some(rate) = input.soc_rate_per_s.filter(|r| *r > 0.0) {
-            eta = Some(((soc_rule.raise_at - soc) / rate).max(0.0));
+        let (raise, soc_clear) = compare(&soc_rule, end.side, soc);
+        if end.lead_s.is_some() {
+            eta = input
+                .soc_rate_per_s
+                .filter(|r| *r > 0.0)
+                .map(|rate| ((soc_rule.raise_at - soc) / rate).max(0.0));
         }
-        let early = rules.end_of_charge_lead_s > 0.0
-            && eta.is_some_and(|e| e <= rules.end_of_charge_lead_s);
-        past |= input.charging && (raise || early);
-        clear &= below_clear && !early;
+        let lead_s = end.lead_s.unwrap_or(0.0);
+        let early = lead_s > 0.0 && eta.is_some_and(|e| e <= lead_s);
+        past |= end.flowing && (raise || early);
+        clear &= soc_clear && !early;
         if raise || early {
             (value, threshold, unit, hold_s) = (soc, soc_rule.raise_at, "SOC", soc_rule.hold_s);
         }
     }
     if volts_rule.enabled {
-        let (raise, below_clear) = compare(&volts_rule, Side::AtOrAbove, input.cell_volts_terminal);
-        if input.charging && raise && !past {
-            (value, threshold, unit) = (input.cell_volts_terminal, volts_rule.raise_at, "V");
-        }
-        past |= input.charging && raise;
-        // At rest the terminal voltage relaxes below the cutoff by itself;
-        // only SOC decides clearing once current has stopped.
-        clear &= below_clear || !input.charging;
+        let (raise, volts_clear) = compare(&volts_rule, end.side, input.cell_volts_terminal);
+        past |= end.flowing && raise;
+        // At rest the terminal voltage relaxes back past the cutoff by
+        // itself; only SOC decides clearing once current has stopped.
+        clear &= volts_clear || !end.flowing;
     }
+    let label = end.label;
     Some(Check {
-        kind: AlertKind::EndOfCharge,
+        kind: end.kind,
         past_raise: past,
         past_clear: clear && !past,
         hold_s,
@@ -552,53 +598,11 @@ fn end_of_charge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
         unit,
         message: Box::new(move || match eta {
             Some(e) if unit == "SOC" && e > 0.0 => {
-                format!("end of charge in about {e:.0} s (SOC {value:.3}, target {threshold:.3})")
+                format!("{label} in about {e:.0} s (SOC {value:.3}, target {threshold:.3})")
             }
-            _ => format!("end of charge: {unit} {value:.4} reached {threshold:.4}"),
+            _ => format!("{label}: {unit} {value:.4} reached {threshold:.4}"),
         }),
         seconds_to_target: eta,
-    })
-}
-
-fn end_of_discharge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
-    let (soc_rule, volts_rule) = (
-        rules.end_of_discharge_soc,
-        rules.end_of_discharge_cell_volts,
-    );
-    if !(soc_rule.enabled || volts_rule.enabled) {
-        return None;
-    }
-    let mut past = false;
-    let mut clear = true;
-    let mut value = input.cell_volts_terminal;
-    let mut threshold = volts_rule.raise_at;
-    let mut unit = "V";
-    let mut hold_s = volts_rule.hold_s;
-    if let Some(soc) = input.soc.filter(|_| soc_rule.enabled) {
-        let (raise, above_clear) = compare(&soc_rule, Side::AtOrBelow, soc);
-        past |= input.discharging && raise;
-        clear &= above_clear;
-        if raise {
-            (value, threshold, unit, hold_s) = (soc, soc_rule.raise_at, "SOC", soc_rule.hold_s);
-        }
-    }
-    if volts_rule.enabled {
-        let (raise, above_clear) = compare(&volts_rule, Side::AtOrBelow, input.cell_volts_terminal);
-        past |= input.discharging && raise;
-        clear &= above_clear || !input.discharging;
-    }
-    Some(Check {
-        kind: AlertKind::EndOfDischarge,
-        past_raise: past,
-        past_clear: clear && !past,
-        hold_s,
-        trigger_value: value,
-        threshold,
-        unit,
-        message: Box::new(move || {
-            format!("end of discharge: {unit} {value:.4} reached {threshold:.4}")
-        }),
-        seconds_to_target: None,
     })
 }
 

@@ -4,7 +4,7 @@
 use super::client;
 use super::names::{event_name, kind_id, kind_label, severity_id, severity_label};
 use super::output::{self, Col, Format, Row, RowStream};
-use super::{DEFAULT_ADDR, UsageError};
+use super::{DEFAULT_ADDR, Signed, UsageError};
 use gibbsline::pb;
 use gibbsline::pb::alert_service_client::AlertServiceClient;
 use serde::Serialize;
@@ -31,10 +31,8 @@ pub enum AlertsCommand {
     /// Acknowledge an alert.
     Ack {
         id: u64,
-        #[arg(long)]
-        by: String,
-        #[arg(long, default_value = "")]
-        note: String,
+        #[command(flatten)]
+        signed: Signed,
         #[arg(long, default_value = DEFAULT_ADDR)]
         connect: String,
     },
@@ -164,34 +162,12 @@ pub struct EventOut {
     alert: AlertOut,
 }
 
-const EVENT_HEADER: [&str; 15] = [
-    "event",
-    "event_id",
-    "alert_id",
-    "channel_id",
-    "kind",
-    "severity",
-    "raised_unix_ns",
-    "raised_seq",
-    "trigger_value",
-    "threshold",
-    "unit",
-    "message",
-    "seconds_to_target",
-    "cleared_unix_ns",
-    "acknowledged_by",
-];
+const EVENT_HEADER: [&str; 15] = output::concat(["event", "event_id"], ALERT_HEADER);
 
-const EVENT_COLUMNS: [Col; 8] = [
-    Col::left("event", 12),
-    Col::right("event_id", 8),
-    Col::left("alert", 6),
-    Col::left("severity", 8),
-    Col::left("channel", 14),
-    Col::left("kind", 19),
-    Col::right("seq", 8),
-    Col::left("message", 0),
-];
+const EVENT_COLUMNS: [Col; 8] = output::concat(
+    [Col::left("event", 12), Col::right("event_id", 8)],
+    ALERT_COLUMNS,
+);
 
 impl Row for EventOut {
     const CSV_HEADER: &'static [&'static str] = &EVENT_HEADER;
@@ -207,10 +183,9 @@ pub async fn run(cmd: &AlertsCommand) -> anyhow::Result<()> {
     match cmd {
         AlertsCommand::Ack {
             id,
-            by,
-            note,
+            signed,
             connect,
-        } => acknowledge(connect, *id, by, note).await,
+        } => acknowledge(connect, *id, &signed.by, &signed.note).await,
         AlertsCommand::List {
             connect,
             channel,

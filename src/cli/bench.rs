@@ -527,25 +527,9 @@ pub fn derive(args: &BenchDeriveArgs) -> anyhow::Result<()> {
 }
 
 fn derive_channel(chem: &gibbsline::electrochem::Chemistry) -> gibbsline::channel::ChannelDef {
-    use gibbsline::channel::ChannelDef;
-    let (min_volts, max_volts) = ChannelDef::default_window(chem);
-    ChannelDef {
-        channel_id: "bench".into(),
-        chemistry_id: chem.id.clone(),
-        cells_in_series: 1,
+    gibbsline::channel::ChannelDef {
         capacity_ah: 2.0,
-        current_sign: gibbsline::estimator::CurrentSign::ChargePositive,
-        default_temp_c: 25.0,
-        min_volts,
-        max_volts,
-        e_standard_override_v: None,
-        resistance_ohm: None,
-        equilibrium_tolerance_mv: 1.0,
-        coulombic_efficiency: 1.0,
-        faradaic_efficiency: 1.0,
-        description: String::new(),
-        gas: None,
-        active_area_cm2: None,
+        ..gibbsline::channel::ChannelDef::of_chemistry("bench", chem)
     }
 }
 

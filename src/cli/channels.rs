@@ -3,7 +3,7 @@
 
 use super::client;
 use super::output::{self, Col, Format, Row};
-use super::{DEFAULT_ADDR, UsageError};
+use super::{DEFAULT_ADDR, Signed, UsageError};
 use gibbsline::grpc::convert::{channel_to_pb, rules_to_pb};
 use gibbsline::pb;
 use gibbsline::pb::alert_service_client::AlertServiceClient;
@@ -38,10 +38,8 @@ pub enum ChannelsCommand {
         /// 0–1.
         #[arg(long)]
         soc: f64,
-        #[arg(long)]
-        by: String,
-        #[arg(long, default_value = "")]
-        note: String,
+        #[command(flatten)]
+        signed: Signed,
         #[arg(long, default_value = DEFAULT_ADDR)]
         connect: String,
     },
@@ -141,10 +139,9 @@ pub async fn run(cmd: &ChannelsCommand) -> anyhow::Result<()> {
         ChannelsCommand::SetSoc {
             id,
             soc,
-            by,
-            note,
+            signed,
             connect,
-        } => set_soc(connect, id, *soc, by, note).await,
+        } => set_soc(connect, id, *soc, &signed.by, &signed.note).await,
         ChannelsCommand::ResetTimeline {
             id,
             after_seq,

@@ -6,7 +6,6 @@ use super::client;
 use super::output::{self, Col, Format, Row, fixed, percent};
 use gibbsline::pb;
 use gibbsline::pb::history_service_client::HistoryServiceClient;
-use serde::Serialize;
 
 #[derive(Debug, clap::Args)]
 pub struct CyclesArgs {
@@ -18,45 +17,14 @@ pub struct CyclesArgs {
     pub format: Format,
 }
 
-#[derive(Serialize)]
-struct CycleOut {
-    run_id: u64,
-    index: u64,
-    charge_in_ah: f64,
-    charge_out_ah: f64,
-    energy_in_wh: f64,
-    energy_out_wh: f64,
-    coulombic_efficiency: Option<f64>,
-    energy_efficiency: Option<f64>,
-    voltage_efficiency: Option<f64>,
-    open: bool,
-    partial: bool,
-    discharge_only: bool,
-}
-
-impl From<&pb::Cycle> for CycleOut {
-    fn from(c: &pb::Cycle) -> CycleOut {
-        CycleOut {
-            run_id: c.run_id,
-            index: u64::from(c.index),
-            charge_in_ah: c.charge_in_ah,
-            charge_out_ah: c.charge_out_ah,
-            energy_in_wh: c.energy_in_wh,
-            energy_out_wh: c.energy_out_wh,
-            coulombic_efficiency: c.coulombic_efficiency,
-            energy_efficiency: c.energy_efficiency,
-            voltage_efficiency: c.voltage_efficiency,
-            open: c.open,
-            partial: c.partial,
-            discharge_only: c.discharge_only,
-        }
-    }
-}
-
-impl Row for CycleOut {
+/// Cycles print as the wire has them: one name for each quantity in
+/// gRPC, JSON and CSV.
+impl Row for pb::Cycle {
     const CSV_HEADER: &'static [&'static str] = &[
         "run_id",
         "index",
+        "start_unix_ns",
+        "end_unix_ns",
         "charge_in_ah",
         "charge_out_ah",
         "energy_in_wh",
@@ -64,6 +32,10 @@ impl Row for CycleOut {
         "coulombic_efficiency",
         "energy_efficiency",
         "voltage_efficiency",
+        "mean_delta_g_charge_kj_per_mol",
+        "mean_delta_g_discharge_kj_per_mol",
+        "start_soc",
+        "end_soc",
         "open",
         "partial",
         "discharge_only",
@@ -113,6 +85,18 @@ pub async fn run(args: &CyclesArgs) -> anyhow::Result<()> {
         .await
         .map_err(client::status_error)?
         .into_inner();
-    let rows: Vec<CycleOut> = r.cycles.iter().map(CycleOut::from).collect();
-    output::print_all(&rows, args.format)
+    output::print_all(&r.cycles, args.format)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn csv_header_names_every_field_in_order() {
+        assert_eq!(
+            output::derived_csv_header(&pb::Cycle::default()),
+            <pb::Cycle as Row>::CSV_HEADER
+        );
+    }
 }

@@ -17,6 +17,16 @@ pub mod state;
 /// Where the client commands look for a server unless told.
 pub const DEFAULT_ADDR: &str = "127.0.0.1:50051";
 
+/// Who did an operator action and why, as every such command takes it.
+#[derive(Debug, clap::Args)]
+pub struct Signed {
+    /// Your name, stored with the action.
+    #[arg(long)]
+    pub by: String,
+    #[arg(long, default_value = "")]
+    pub note: String,
+}
+
 use clap::{Args, Parser, Subcommand};
 use std::path::PathBuf;
 

@@ -32,6 +32,7 @@ impl From<TableOrJson> for Format {
 }
 
 /// One table column: heading and width; numbers align right.
+#[derive(Clone, Copy)]
 pub struct Col {
     pub heading: &'static str,
     pub width: usize,
@@ -65,6 +66,28 @@ pub trait Row: Serialize {
     const TABLE: &'static [Col];
     /// The row for people: one cell per table column (or prose lines).
     fn table_cells(&self) -> Vec<String>;
+}
+
+/// `a` then `b`, at compile time: a row that embeds another (a watched
+/// event around its alert) names its own columns first and then the
+/// embedded row's, without spelling them twice. `N` must be `A + B`, and
+/// `b` not empty.
+pub const fn concat<T: Copy, const A: usize, const B: usize, const N: usize>(
+    a: [T; A],
+    b: [T; B],
+) -> [T; N] {
+    assert!(A + B == N, "length is the sum of its parts");
+    let mut out = [b[0]; N];
+    let mut i = 0;
+    while i < A {
+        out[i] = a[i];
+        i += 1;
+    }
+    while i < N {
+        out[i] = b[i - A];
+        i += 1;
+    }
+    out
 }
 
 /// Prints rows as a whole list: a JSON array, CSV with its header, or a
@@ -209,6 +232,19 @@ pub fn fixed(v: Option<f64>, digits: usize) -> String {
 /// A fraction as a percentage for tables.
 pub fn percent(v: Option<f64>, digits: usize) -> String {
     fixed(v.map(|x| x * 100.0), digits)
+}
+
+/// The header the csv crate derives from a flat row's field names, to
+/// hold a row's `CSV_HEADER` to its fields in tests.
+#[cfg(test)]
+pub fn derived_csv_header<R: Row>(row: &R) -> Vec<String> {
+    let mut w = csv::WriterBuilder::new()
+        .has_headers(true)
+        .from_writer(Vec::new());
+    w.serialize(row).unwrap();
+    let text = String::from_utf8(w.into_inner().unwrap()).unwrap();
+    let header = text.lines().next().unwrap_or_default();
+    header.split(',').map(str::to_string).collect()
 }
 
 #[cfg(test)]

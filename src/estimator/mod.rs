@@ -455,13 +455,27 @@ fn advance_counts(
     if gap {
         state.gaps += 1;
     }
-    if let Some(dt) = dt_s {
-        sample_resistance(config, state, input, dt);
-        if dt > 0.0 && !gap {
-            integrate(config, state, input, dt);
-        }
+    let (Some(dt_s), Some(amps), Some(last_amps)) = (dt_s, input.amps, state.last_amps) else {
+        return gap;
+    };
+    let step = Interval {
+        dt_s,
+        amps,
+        last_amps,
+    };
+    sample_resistance(config, state, input, step);
+    if dt_s > 0.0 && !gap {
+        integrate(config, state, input, step);
     }
     gap
+}
+
+/// Since the last reading, when both it and this one carry a current.
+#[derive(Clone, Copy)]
+struct Interval {
+    dt_s: f64,
+    amps: f64,
+    last_amps: f64,
 }
 
 /// The model's OCV at the counted SOC, when the count is what SOC rests on.
@@ -598,12 +612,9 @@ fn sample_resistance(
     config: &EstimatorConfig,
     state: &mut EstimatorState,
     input: EstimatorInput,
-    dt_s: f64,
+    step: Interval,
 ) {
-    let (Some(i_now), Some(i_prev)) = (input.amps, state.last_amps) else {
-        return;
-    };
-    let di = i_now - i_prev;
+    let (dt_s, di) = (step.dt_s, step.amps - step.last_amps);
     if !(dt_s > 0.0 && dt_s <= config.step_window_s && di.abs() >= config.step_min_amps) {
         return;
     }
@@ -633,11 +644,9 @@ fn integrate(
     config: &EstimatorConfig,
     state: &mut EstimatorState,
     input: EstimatorInput,
-    dt_s: f64,
+    step: Interval,
 ) {
-    let (Some(i_now), Some(i_prev)) = (input.amps, state.last_amps) else {
-        return;
-    };
+    let (dt_s, i_now, i_prev) = (step.dt_s, step.amps, step.last_amps);
     let dq_ah = 0.5 * (i_now + i_prev) * dt_s / 3600.0;
     let de_wh = 0.5 * (input.stack_volts * i_now + state.last_stack_volts * i_prev) * dt_s / 3600.0;
     state.charge_ah += dq_ah;

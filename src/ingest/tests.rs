@@ -16,24 +16,10 @@ const T0: i64 = 1_767_225_600 * S;
 fn runtime(chemistry_id: &str, capacity_ah: f64, resistance_ohm: Option<f64>) -> ChannelRuntime {
     let registry = Registry::builtin();
     let chemistry = registry.get(chemistry_id).unwrap();
-    let (min_volts, max_volts) = ChannelDef::default_window(&chemistry);
     let def = ChannelDef {
-        channel_id: "truth".into(),
-        chemistry_id: chemistry_id.into(),
-        cells_in_series: 1,
         capacity_ah,
-        current_sign: CurrentSign::ChargePositive,
-        default_temp_c: 25.0,
-        min_volts,
-        max_volts,
-        e_standard_override_v: None,
         resistance_ohm,
-        equilibrium_tolerance_mv: 1.0,
-        coulombic_efficiency: 1.0,
-        faradaic_efficiency: 1.0,
-        description: String::new(),
-        gas: None,
-        active_area_cm2: None,
+        ..ChannelDef::of_chemistry("truth", &chemistry)
     };
     let chemistry = def.validate(&registry).unwrap();
     ChannelRuntime::fresh(1, def, chemistry, 1)
