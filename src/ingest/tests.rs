@@ -5,7 +5,6 @@ use crate::alerts::{AlertChange, AlertKind};
 use crate::channel::ChannelDef;
 use crate::electrochem::Registry;
 use crate::estimator;
-use crate::estimator::CurrentSign;
 use crate::sim::{SimCell, SimCellParams};
 use crate::store::flags;
 
