@@ -4,31 +4,35 @@
 //! close the pool).
 
 use crate::alerts::rules as alert_rules;
+use crate::config::ServerConfig;
 use crate::electrochem::{Registry, chemistry::ChemistrySpec};
 use crate::grpc;
 use crate::ingest::{self, Hub, Job, hub::HubHandles, writer};
 use crate::pb;
-use crate::store::{self, Durability, Store};
+use crate::store::{self, Store};
 use std::future::Future;
 use std::path::PathBuf;
 use std::sync::{Arc, Mutex};
 use std::time::Duration;
 use tokio::net::TcpListener;
 
+/// The sockets a server answers on, bound by the caller (so a test can
+/// bind port 0 and know the address, and a bad address fails before any
+/// database is opened).
 #[derive(Debug)]
-pub struct Config {
-    pub db_path: PathBuf,
-    pub durability: Durability,
-    pub extra_chemistries: Vec<crate::electrochem::Chemistry>,
-    /// Channels (and rules) from the config file, put at every start.
-    pub channels: Vec<crate::config::ChannelEntry>,
-    /// Prometheus text endpoint.
-    pub metrics_listener: Option<TcpListener>,
-    /// Bearer tokens; none means an open server (loopback use).
-    pub tokens: Vec<crate::auth::TokenSpec>,
-    /// PEM certificate, key and optional client CA.
-    pub tls: Option<TlsPem>,
-    pub limits: crate::config::Limits,
+pub struct Listeners {
+    pub grpc: TcpListener,
+    /// Prometheus text endpoint (`metrics_listen`); none means off.
+    pub metrics: Option<TcpListener>,
+}
+
+impl Listeners {
+    pub fn grpc_only(grpc: TcpListener) -> Listeners {
+        Listeners {
+            grpc,
+            metrics: None,
+        }
+    }
 }
 
 #[derive(Debug, Clone)]
@@ -36,21 +40,6 @@ pub struct TlsPem {
     pub cert: Vec<u8>,
     pub key: Vec<u8>,
     pub client_ca: Option<Vec<u8>>,
-}
-
-impl Config {
-    pub fn new(db_path: PathBuf, durability: Durability) -> Config {
-        Config {
-            db_path,
-            durability,
-            extra_chemistries: vec![],
-            channels: vec![],
-            metrics_listener: None,
-            tokens: vec![],
-            tls: None,
-            limits: crate::config::Limits::default(),
-        }
-    }
 }
 
 /// HTTP/2 streams one connection may have open at once.
@@ -70,30 +59,35 @@ pub enum AppError {
 }
 
 pub async fn run(
-    config: Config,
-    listener: TcpListener,
+    config: ServerConfig,
+    listeners: Listeners,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> Result<(), AppError> {
-    let store = Store::open(&config.db_path, config.durability).await?;
+    let Listeners {
+        grpc: listener,
+        metrics: metrics_listener,
+    } = listeners;
+    let tls = config.read_tls().map_err(AppError::Config)?;
+    let db_path = PathBuf::from(&config.db);
+    let store = Store::open(&db_path, config.durability).await?;
     if let Ok(addr) = listener.local_addr() {
         store.note_holder(&addr.to_string());
     }
-    let registry = build_registry(&store, config.extra_chemistries).await?;
+    let registry = build_registry(&store, &config.chemistry).await?;
     let (hub, handles) = Hub::open(store.clone(), registry, config.limits.ingest()).await?;
     let HubHandles {
         jobs: writer_rx,
         shutdown: shutdown_tx,
     } = handles;
-    for entry in config.channels {
+    for entry in config.channel {
         let id = entry.def.channel_id.clone();
         hub.put_channel(entry.def).await?;
         if let Some(rules) = entry.rules {
             hub.put_rules(&id, rules).await?;
         }
     }
-    let metrics_task = config
-        .metrics_listener
-        .map(|l| tokio::spawn(crate::http::serve_metrics(l, hub.clone())));
+    let metrics_task =
+        metrics_listener.map(|l| tokio::spawn(crate::http::serve_metrics(l, hub.clone())));
     let (writer_stop_tx, writer_stop_rx) = tokio::sync::watch::channel(false);
     let writer_task = tokio::spawn(writer::run(
         store.clone(),
@@ -112,12 +106,12 @@ pub async fn run(
         hub.shutdown_signal(),
     ));
     let addr = listener.local_addr().ok();
-    tracing::info!(?addr, db = %config.db_path.display(), "serving");
+    tracing::info!(?addr, db = %db_path.display(), "serving");
     let connection_idle = Duration::from_secs(config.limits.connection_idle_timeout_s);
     let incoming = crate::listen::incoming(listener, connection_idle);
     let reporter = health_reporter.clone();
-    let builder = server_builder(&config.limits, config.tls.as_ref())?;
-    let tokens = crate::auth::TokenTable::new(&config.tokens).map_err(AppError::Config)?;
+    let builder = server_builder(&config.limits, tls.as_ref())?;
+    let tokens = crate::auth::TokenTable::new(&config.token).map_err(AppError::Config)?;
     let router = builder
         .layer(grpc::authz::AuthLayer::new(tokens))
         .add_service(health_service);
@@ -345,25 +339,13 @@ pub fn render_metrics(hub: &Hub) -> String {
     hub.metrics().render(hub.writer_queue_depth(), &ages)
 }
 
-/// The built-in chemistries, those stored by earlier runs, and the
-/// config's own (which must not clash with a built-in).
-async fn build_registry(
-    store: &Store,
-    extra: Vec<crate::electrochem::Chemistry>,
-) -> Result<Registry, AppError> {
-    let mut registry = Registry::builtin();
-    for spec_json in store::list_chemistry_specs(&store.writer).await? {
-        if let Ok(spec) = serde_json::from_str::<ChemistrySpec>(&spec_json)
-            && let Ok(chem) = spec.validate(false)
-        {
-            let _ = registry.insert_user(chem);
-        }
-    }
-    for chem in extra {
-        let id = chem.id.clone();
-        registry
-            .insert_user(chem)
-            .map_err(|e| AppError::Config(format!("chemistry {id}: {e}")))?;
-    }
-    Ok(registry)
+/// The built-ins, those stored by earlier runs, and the config's own.
+async fn build_registry(store: &Store, user: &[ChemistrySpec]) -> Result<Registry, AppError> {
+    let stored = store::list_chemistry_specs(&store.writer)
+        .await?
+        .iter()
+        .filter_map(|json| serde_json::from_str::<ChemistrySpec>(json).ok())
+        .collect::<Vec<_>>();
+    Registry::assemble(stored, user)
+        .map_err(|(i, e)| AppError::Config(format!("chemistry[{i}] ({:?}): {e}", user[i].id)))
 }

@@ -1,6 +1,7 @@
-//! Server configuration: TOML file + `GIBBSLINE_*` environment overrides →
-//! a validated [`ServerConfig`]. Parsing does no I/O beyond the text it is
-//! given, and overrides come from a map, so both are testable.
+//! Server configuration: TOML file, then `GIBBSLINE_*` environment, then
+//! command-line flags, resolved once into one validated [`ServerConfig`]
+//! that the server runs on. Parsing does no I/O beyond the texts it is
+//! given, and the layers come in as values, so all of it is testable.
 
 use crate::alerts::AlertRules;
 use crate::channel::ChannelDef;
@@ -163,6 +164,21 @@ fn line_of_offset(text: &str, offset: usize) -> usize {
     text[..offset.min(text.len())].matches('\n').count() + 1
 }
 
+/// Command-line flags: the last layer, over the environment and the file.
+/// Texts, not parsed values, so a bad one is refused by the same checks
+/// and with the same kind of message as a bad file entry.
+#[derive(Debug, Clone, Default)]
+pub struct Flags {
+    pub listen: Option<String>,
+    pub db: Option<String>,
+    pub durability: Option<String>,
+    pub metrics_listen: Option<String>,
+    pub allow_insecure: bool,
+    /// `--chemistry-file` files as (path, text): their chemistries join
+    /// the file's `[[chemistry]]` tables.
+    pub chemistry_files: Vec<(String, String)>,
+}
+
 /// Parses `text` (from `path`, for messages), applies `env` overrides and
 /// validates everything a server would refuse at start.
 pub fn load(
@@ -170,12 +186,54 @@ pub fn load(
     text: &str,
     env: &BTreeMap<String, String>,
 ) -> Result<ServerConfig, ConfigError> {
-    let file: ConfigFile = toml::from_str(text).map_err(|e| ConfigError {
+    load_with_flags(path, text, env, &Flags::default())
+}
+
+/// [`load`] with the command line's flags as the last layer.
+pub fn load_with_flags(
+    path: &str,
+    text: &str,
+    env: &BTreeMap<String, String>,
+    flags: &Flags,
+) -> Result<ServerConfig, ConfigError> {
+    let mut file: ConfigFile = toml::from_str(text).map_err(|e| ConfigError {
         path: path.into(),
         line: e.span().map(|s| line_of_offset(text, s.start)),
         message: e.message().to_string(),
     })?;
-    resolve(path, text, file, env)
+    let fail = |message: String| ConfigError {
+        path: path.into(),
+        line: None,
+        message,
+    };
+    // A flag outranks the environment, so it goes in as the top of that
+    // layer and meets the same checks.
+    let mut env = env.clone();
+    for (key, flag) in [
+        ("GIBBSLINE_LISTEN", &flags.listen),
+        ("GIBBSLINE_DB", &flags.db),
+        ("GIBBSLINE_METRICS_LISTEN", &flags.metrics_listen),
+    ] {
+        if let Some(v) = flag {
+            env.insert(key.into(), v.clone());
+        }
+    }
+    if let Some(d) = &flags.durability {
+        file.durability = Some(d.parse().map_err(|e| fail(format!("--durability {e}")))?);
+        env.remove("GIBBSLINE_DURABILITY");
+    }
+    if flags.allow_insecure {
+        env.insert("GIBBSLINE_ALLOW_INSECURE".into(), "true".into());
+    }
+    for (file_path, file_text) in &flags.chemistry_files {
+        // Each file is checked on its own first, so an error names it.
+        crate::electrochem::chemistry::parse_chemistry_file(file_path, file_text)
+            .map_err(|e| fail(format!("--chemistry-file {e}")))?;
+        let specs = crate::electrochem::chemistry::read_chemistry_specs(file_path, file_text)
+            .map_err(|e| fail(format!("--chemistry-file {e}")))?;
+        file.chemistry.extend(specs);
+    }
+    resolve(path, text, file, &env)
 }
 
 /// Where in the file a problem is (a line, if one can be named) and what it is.
@@ -263,16 +321,13 @@ fn addresses(
 /// The file's chemistries, channels and their rules, each against the
 /// registry the server will have; errors name the table's line.
 fn check_definitions(text: &str, file: &ConfigFile) -> Result<(), Problem> {
-    let mut registry = Registry::builtin();
-    for (i, spec) in file.chemistry.iter().enumerate() {
-        let line = table_line(text, "[[chemistry]]", i);
-        let chem = spec
-            .validate(false)
-            .map_err(|e| (line, format!("chemistry[{i}] ({:?}): {e}", spec.id)))?;
-        registry
-            .insert_user(chem)
-            .map_err(|e| (line, format!("chemistry[{i}]: {e}")))?;
-    }
+    let registry = Registry::assemble([], &file.chemistry).map_err(|(i, e)| {
+        let id = &file.chemistry[i].id;
+        (
+            table_line(text, "[[chemistry]]", i),
+            format!("chemistry[{i}] ({id:?}): {e}"),
+        )
+    })?;
     let mut seen = std::collections::BTreeSet::new();
     for (i, entry) in file.channel.iter().enumerate() {
         let line = table_line(text, "[[channel]]", i);
@@ -297,6 +352,16 @@ fn check_definitions(text: &str, file: &ConfigFile) -> Result<(), Problem> {
 }
 
 impl ServerConfig {
+    /// Every default, on the database at `db`: what a server started by
+    /// code (tests, `bench`, `demo`) runs on before it sets what differs.
+    pub fn for_db(db: &std::path::Path, durability: Durability) -> ServerConfig {
+        let mut config =
+            load("(defaults)", "", &BTreeMap::new()).expect("the empty configuration is valid");
+        config.db = db.display().to_string();
+        config.durability = durability;
+        config
+    }
+
     /// Refuses to serve beyond loopback without transport security.
     pub fn check_exposure(&self) -> Result<(), String> {
         let addr: std::net::SocketAddr = self
@@ -395,6 +460,55 @@ max_volts = 2.0
             (c.db.as_str(), c.durability),
             ("/var/lib/x.db", Durability::Full)
         );
+    }
+
+    #[test]
+    fn flags_outrank_the_environment_and_meet_the_same_checks() {
+        let over = env(&[("GIBBSLINE_DB", "env.db"), ("GIBBSLINE_DURABILITY", "full")]);
+        let flags = Flags {
+            db: Some("flag.db".into()),
+            durability: Some("off".into()),
+            listen: Some("127.0.0.1:50123".into()),
+            ..Flags::default()
+        };
+        let c = load_with_flags("lab.toml", GOOD, &over, &flags).unwrap();
+        assert_eq!(
+            (c.db.as_str(), c.durability, c.listen.as_str()),
+            ("flag.db", Durability::Off, "127.0.0.1:50123")
+        );
+        let bad_listen = Flags {
+            listen: Some("everywhere".into()),
+            ..Flags::default()
+        };
+        let e = load_with_flags("lab.toml", GOOD, &over, &bad_listen).unwrap_err();
+        assert!(e.to_string().contains(r#"listen = "everywhere""#), "{e}");
+        let bad_durability = Flags {
+            durability: Some("sometimes".into()),
+            ..Flags::default()
+        };
+        let e = load_with_flags("lab.toml", GOOD, &over, &bad_durability).unwrap_err();
+        assert!(e.to_string().contains("--durability"), "{e}");
+    }
+
+    #[test]
+    fn chemistry_files_join_the_config_and_may_not_take_a_builtin_id() {
+        let builtin = crate::electrochem::builtin::builtin_files()
+            .next()
+            .map(|(_, text)| text.to_string())
+            .unwrap();
+        let flags = Flags {
+            chemistry_files: vec![("lab-chem.toml".into(), builtin)],
+            ..Flags::default()
+        };
+        let e = load_with_flags("lab.toml", GOOD, &env(&[]), &flags).unwrap_err();
+        assert!(e.to_string().contains("duplicate chemistry id"), "{e}");
+        let own = "[[chemistry]]\nid = \"lab-cell\"\n";
+        let flags = Flags {
+            chemistry_files: vec![("lab-chem.toml".into(), own.into())],
+            ..Flags::default()
+        };
+        let e = load_with_flags("lab.toml", GOOD, &env(&[]), &flags).unwrap_err();
+        assert!(e.to_string().contains("lab-chem.toml"), "{e}");
     }
 
     fn error_for(from: &str, to: &str) -> String {

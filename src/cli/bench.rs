@@ -174,14 +174,15 @@ impl LocalServer {
             .parse()
             .map_err(|e| super::UsageError(format!("--durability {e}")))?;
         let (stop, stop_rx) = tokio::sync::oneshot::channel::<()>();
-        let mut config = gibbsline::app::Config::new(db.clone(), durability);
+        let mut config = gibbsline::config::ServerConfig::for_db(&db, durability);
         // One client opens a stream per channel here: the per-client bound
         // (meant to stop one rig PC taking every slot) must let it.
         config.limits.max_streams_per_client = config
             .limits
             .max_streams_per_client
             .max(u64::from(channels));
-        let task = tokio::spawn(gibbsline::app::run(config, listener, async move {
+        let listeners = gibbsline::app::Listeners::grpc_only(listener);
+        let task = tokio::spawn(gibbsline::app::run(config, listeners, async move {
             let _ = stop_rx.await;
         }));
         Ok(LocalServer {

@@ -49,8 +49,10 @@ pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
         })?;
     let addr = listener.local_addr()?.to_string();
     let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
-    let config = gibbsline::app::Config::new(args.db.clone(), gibbsline::store::Durability::Normal);
-    let server = tokio::spawn(gibbsline::app::run(config, listener, async move {
+    let config =
+        gibbsline::config::ServerConfig::for_db(&args.db, gibbsline::store::Durability::Normal);
+    let listeners = gibbsline::app::Listeners::grpc_only(listener);
+    let server = tokio::spawn(gibbsline::app::run(config, listeners, async move {
         let _ = stop_rx.await;
     }));
 

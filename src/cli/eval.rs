@@ -1,25 +1,30 @@
 //! `gibbsline eval` and `gibbsline chemistries`: the core on the command line.
 
 use super::{ChemistriesArgs, EvalArgs, UsageError};
-use gibbsline::electrochem::chemistry::parse_chemistry_file;
+use gibbsline::electrochem::chemistry::read_chemistry_specs;
 use gibbsline::electrochem::constants::ZERO_CELSIUS_K;
 use gibbsline::electrochem::report::EvalReport;
 use gibbsline::electrochem::{self, EvalRequest, Registry};
 
 /// Built-ins plus the chemistries of `--chemistry-file` files.
 pub fn load_registry(files: &[std::path::PathBuf]) -> anyhow::Result<Registry> {
-    let mut registry = Registry::builtin();
+    let mut specs = Vec::new();
+    let mut labels = Vec::new();
     for path in files {
         let label = path.display().to_string();
         let text = std::fs::read_to_string(path)
             .map_err(|e| UsageError(format!("--chemistry-file {label}: {e}")))?;
-        for chem in parse_chemistry_file(&label, &text).map_err(|e| UsageError(e.to_string()))? {
-            registry
-                .insert_user(chem)
-                .map_err(|e| UsageError(format!("--chemistry-file {label}: {e}")))?;
-        }
+        let file_specs = read_chemistry_specs(&label, &text)
+            .map_err(|e| UsageError(format!("--chemistry-file {e}")))?;
+        labels.extend((0..file_specs.len()).map(|i| format!("{label}: chemistry[{i}]")));
+        specs.extend(file_specs);
     }
-    Ok(registry)
+    Ok(Registry::assemble([], &specs).map_err(|(i, e)| {
+        UsageError(format!(
+            "--chemistry-file {} ({:?}): {e}",
+            labels[i], specs[i].id
+        ))
+    })?)
 }
 
 pub fn temp_k_from_flag(temp_c: f64) -> Result<f64, UsageError> {

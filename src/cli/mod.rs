@@ -4,6 +4,7 @@ pub mod alerts;
 pub mod bench;
 pub mod channels;
 pub mod client;
+pub mod config_check;
 pub mod cycles;
 pub mod demo;
 pub mod eval;
@@ -11,8 +12,10 @@ pub mod names;
 pub mod output;
 pub mod readings;
 pub mod rig;
+pub mod serve;
 pub mod simulate;
 pub mod state;
+pub mod token;
 
 /// Where the client commands look for a server unless told.
 pub const DEFAULT_ADDR: &str = "127.0.0.1:50051";
@@ -194,7 +197,7 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
         Command::Eval(args) => eval::run_eval(&args),
         Command::Chemistries(args) => eval::run_chemistries(&args),
-        Command::Serve(args) => serve(&args),
+        Command::Serve(args) => serve::run(&args),
         Command::Bench(BenchCommand::Ingest(args)) => block_on(bench::run(&args)),
         Command::Bench(BenchCommand::Derive(args)) => bench::derive(&args),
         Command::Demo(args) => block_on(demo::run(&args)),
@@ -204,211 +207,10 @@ pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Alerts(cmd) => block_on(alerts::run(&cmd)),
         Command::Channels(cmd) => block_on(channels::run(&cmd)),
         Command::Cycles(args) => block_on(cycles::run(&args)),
-        Command::Token(cmd) => token(&cmd),
+        Command::Token(cmd) => token::run(&cmd),
         Command::Config(ConfigCommand::Check { file, no_files }) => {
-            let config = load_config(Some(&file), &std::collections::BTreeMap::new())?;
-            config
-                .check_exposure()
-                .map_err(|e| UsageError(format!("{}: {e}", file.display())))?;
-            if !no_files {
-                config
-                    .read_tls()
-                    .map_err(|e| UsageError(format!("{}: {e}", file.display())))?;
-            }
-            println!(
-                "{}: ok ({} channels, {} chemistries)",
-                file.display(),
-                config.channel.len(),
-                config.chemistry.len()
-            );
-            Ok(())
+            config_check::run(&file, no_files)
         }
-    }
-}
-
-fn token(cmd: &TokenCommand) -> anyhow::Result<()> {
-    use gibbsline::auth::{Role, TokenSpec, sha256_hex};
-    match cmd {
-        TokenCommand::New {
-            name,
-            role,
-            channel,
-        } => {
-            let role: Role = role
-                .parse()
-                .map_err(|e| UsageError(format!("--role {e}")))?;
-            if role != Role::Rig && !channel.is_empty() {
-                return Err(
-                    UsageError("--channel: only a rig token is held to channels".into()).into(),
-                );
-            }
-            // 32 bytes from the kernel's CSPRNG: 256 bits, beyond guessing.
-            let mut secret = [0u8; 32];
-            std::io::Read::read_exact(&mut std::fs::File::open("/dev/urandom")?, &mut secret)?;
-            let token: String = std::iter::once("gl_".to_string())
-                .chain(secret.iter().map(|b| format!("{b:02x}")))
-                .collect();
-            let spec = TokenSpec {
-                name: name.clone(),
-                role,
-                sha256: sha256_hex(&token),
-                channels: channel.clone(),
-            };
-            #[derive(serde::Serialize)]
-            struct Entry<'a> {
-                token: [&'a TokenSpec; 1],
-            }
-            println!(
-                "# Give this token to {name:?}; it is shown only now (the config keeps its SHA-256):"
-            );
-            println!("#   GIBBSLINE_TOKEN={token}");
-            print!("{}", toml::to_string(&Entry { token: [&spec] })?);
-            Ok(())
-        }
-        TokenCommand::Hash => {
-            let mut line = String::new();
-            std::io::stdin().read_line(&mut line)?;
-            let token = line.trim();
-            if token.is_empty() {
-                return Err(UsageError("standard input: no token given".into()).into());
-            }
-            println!("{}", sha256_hex(token));
-            Ok(())
-        }
-    }
-}
-
-/// Reads and validates a config file (or none) with environment overrides.
-pub fn load_config(
-    path: Option<&std::path::Path>,
-    env: &std::collections::BTreeMap<String, String>,
-) -> anyhow::Result<gibbsline::config::ServerConfig> {
-    let (label, text) = match path {
-        Some(p) => (
-            p.display().to_string(),
-            std::fs::read_to_string(p)
-                .map_err(|e| UsageError(format!("--config {}: {e}", p.display())))?,
-        ),
-        None => ("(defaults)".to_string(), String::new()),
-    };
-    Ok(gibbsline::config::load(&label, &text, env).map_err(|e| UsageError(e.to_string()))?)
-}
-
-fn serve(args: &ServeArgs) -> anyhow::Result<()> {
-    let config = resolve_serve_config(args)?;
-    if args.print_config {
-        print!("{}", toml::to_string(&config)?);
-        return Ok(());
-    }
-    config.check_exposure().map_err(UsageError)?;
-    tracing_subscriber::fmt()
-        .with_env_filter(
-            tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
-        )
-        .init();
-    let extra = user_chemistries(&args.chemistry_file, &config)?;
-    // Each connection is a descriptor; the common soft limit of 1024 would
-    // make a few hundred idle clients lock the rest out. Raised to the hard
-    // limit (the accept loop still backs off if even that runs out).
-    match rlimit::increase_nofile_limit(u64::MAX) {
-        Ok(n) => tracing::info!(nofile = n, "open-file limit"),
-        Err(e) => tracing::warn!(error = %e, "could not raise the open-file limit"),
-    }
-    let runtime = tokio::runtime::Builder::new_multi_thread()
-        .enable_all()
-        .build()?;
-    runtime.block_on(async {
-        let listener = tokio::net::TcpListener::bind(&config.listen)
-            .await
-            .map_err(|e| UsageError(format!("listen {}: {e}", config.listen)))?;
-        let metrics_listener = match &config.metrics_listen {
-            Some(m) => Some(
-                tokio::net::TcpListener::bind(m)
-                    .await
-                    .map_err(|e| UsageError(format!("metrics_listen {m}: {e}")))?,
-            ),
-            None => None,
-        };
-        let app_config = gibbsline::app::Config {
-            db_path: config.db.clone().into(),
-            durability: config.durability,
-            extra_chemistries: extra,
-            channels: config.channel.clone(),
-            metrics_listener,
-            tokens: config.token.clone(),
-            tls: config.read_tls().map_err(UsageError)?,
-            limits: config.limits,
-        };
-        gibbsline::app::run(app_config, listener, shutdown_signal()).await?;
-        Ok(())
-    })
-}
-
-/// File, then environment, then flags: the one validated server config.
-fn resolve_serve_config(args: &ServeArgs) -> anyhow::Result<gibbsline::config::ServerConfig> {
-    let env: std::collections::BTreeMap<String, String> = std::env::vars()
-        .filter(|(k, _)| k.starts_with("GIBBSLINE_"))
-        .collect();
-    let mut config = load_config(args.config.as_deref(), &env)?;
-    if let Some(l) = &args.listen {
-        config.listen = l.clone();
-    }
-    if let Some(db) = &args.db {
-        config.db = db.display().to_string();
-    }
-    if let Some(d) = &args.durability {
-        config.durability = d
-            .parse()
-            .map_err(|e| UsageError(format!("--durability {e}")))?;
-    }
-    if let Some(m) = &args.metrics_listen {
-        config.metrics_listen = Some(m.clone());
-    }
-    config.allow_insecure |= args.allow_insecure;
-    Ok(config)
-}
-
-/// The chemistries of `--chemistry-file` files and of the config file.
-fn user_chemistries(
-    files: &[PathBuf],
-    config: &gibbsline::config::ServerConfig,
-) -> anyhow::Result<Vec<gibbsline::electrochem::Chemistry>> {
-    let mut registry = eval::load_registry(files)?;
-    for spec in &config.chemistry {
-        let chem = spec
-            .validate(false)
-            .map_err(|e| UsageError(e.to_string()))?;
-        registry
-            .insert_user(chem)
-            .map_err(|e| UsageError(e.to_string()))?;
-    }
-    Ok(registry
-        .iter()
-        .filter(|c| !c.builtin)
-        .map(|c| (**c).clone())
-        .collect())
-}
-
-async fn shutdown_signal() {
-    let ctrl_c = tokio::signal::ctrl_c();
-    #[cfg(unix)]
-    {
-        let mut term =
-            match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
-                Ok(s) => s,
-                Err(_) => {
-                    let _ = ctrl_c.await;
-                    return;
-                }
-            };
-        tokio::select! {
-            _ = ctrl_c => {}
-            _ = term.recv() => {}
-        }
-    }
-    #[cfg(not(unix))]
-    {
-        let _ = ctrl_c.await;
     }
 }
 

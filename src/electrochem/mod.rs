@@ -182,6 +182,29 @@ impl Registry {
         Registry { by_id }
     }
 
+    /// The one way a process's registry is put together: the built-ins,
+    /// then chemistries an earlier run stored (one that no longer
+    /// validates is passed over: a stricter server must still start on an
+    /// old database), then the user's own, which must validate and must
+    /// not take a built-in's id. A user error names the spec's index in
+    /// `user`, so the caller can say which file and line it came from.
+    pub fn assemble<'a>(
+        stored: impl IntoIterator<Item = ChemistrySpec>,
+        user: impl IntoIterator<Item = &'a ChemistrySpec>,
+    ) -> Result<Registry, (usize, ChemistryError)> {
+        let mut registry = Registry::builtin();
+        for spec in stored {
+            if let Ok(chem) = spec.validate(false) {
+                let _ = registry.insert_user(chem);
+            }
+        }
+        for (i, spec) in user.into_iter().enumerate() {
+            let chem = spec.validate(false).map_err(|e| (i, e))?;
+            registry.insert_user(chem).map_err(|e| (i, e))?;
+        }
+        Ok(registry)
+    }
+
     /// Adds a user chemistry. Built-in ids cannot be replaced (stored data
     /// refers to them); a user id can be replaced by a new definition.
     pub fn insert_user(&mut self, chemistry: Chemistry) -> Result<(), ChemistryError> {

@@ -202,10 +202,13 @@ async fn a_second_server_on_one_file_is_refused_naming_the_holder() {
     let ch = first.channel().await;
     assert_eq!(health_of(&ch).await, SERVING);
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
-    let config = gibbsline::app::Config::new(db.clone(), gibbsline::store::Durability::Normal);
     let second = tokio::time::timeout(
         Duration::from_secs(10),
-        gibbsline::app::run(config, listener, std::future::pending()),
+        gibbsline::app::run(
+            config_for(&db),
+            gibbsline::app::Listeners::grpc_only(listener),
+            std::future::pending(),
+        ),
     )
     .await
     .expect("the second server must refuse at once, not serve");
@@ -438,9 +441,8 @@ async fn a_reset_timeline_brings_real_readings_back_to_the_rules() {
     server.stop().await;
 }
 
-fn tight_limits(db: &Path) -> gibbsline::app::Config {
-    let mut config =
-        gibbsline::app::Config::new(db.to_path_buf(), gibbsline::store::Durability::Normal);
+fn tight_limits(db: &Path) -> gibbsline::config::ServerConfig {
+    let mut config = config_for(db);
     config.limits.stream_idle_timeout_s = 1;
     config.limits.connection_idle_timeout_s = 1;
     config.limits.max_streams_per_client = 2;

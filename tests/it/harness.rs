@@ -1,8 +1,14 @@
 use gibbsline::app;
+use gibbsline::config::ServerConfig;
 use gibbsline::pb;
 use std::path::{Path, PathBuf};
 use tokio::sync::oneshot;
 use tonic::transport::Channel;
+
+/// Every default, on `db`, with the durability the tests run at.
+pub fn config_for(db: &Path) -> ServerConfig {
+    ServerConfig::for_db(db, gibbsline::store::Durability::Normal)
+}
 
 pub struct Server {
     pub addr: std::net::SocketAddr,
@@ -16,15 +22,18 @@ impl Server {
     }
 
     pub async fn start_on(db: &Path, addr: &str) -> Server {
-        let config = app::Config::new(db.to_path_buf(), gibbsline::store::Durability::Normal);
-        Server::start_with(config, addr).await
+        Server::start_with(config_for(db), addr).await
     }
 
-    pub async fn start_with(config: app::Config, addr: &str) -> Server {
+    pub async fn start_with(config: ServerConfig, addr: &str) -> Server {
         let listener = tokio::net::TcpListener::bind(addr).await.unwrap();
-        let addr = listener.local_addr().unwrap();
+        Server::start_with_listeners(config, app::Listeners::grpc_only(listener)).await
+    }
+
+    pub async fn start_with_listeners(config: ServerConfig, listeners: app::Listeners) -> Server {
+        let addr = listeners.grpc.local_addr().unwrap();
         let (tx, rx) = oneshot::channel::<()>();
-        let task = tokio::spawn(app::run(config, listener, async move {
+        let task = tokio::spawn(app::run(config, listeners, async move {
             let _ = rx.await;
         }));
         Server {

@@ -33,9 +33,11 @@ async fn metrics_count_what_ingest_did() {
     let (_dir, db) = temp_db();
     let metrics_listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
     let metrics_addr = metrics_listener.local_addr().unwrap();
-    let mut config = gibbsline::app::Config::new(db, gibbsline::store::Durability::Normal);
-    config.metrics_listener = Some(metrics_listener);
-    let server = Server::start_with(config, "127.0.0.1:0").await;
+    let listeners = gibbsline::app::Listeners {
+        grpc: tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap(),
+        metrics: Some(metrics_listener),
+    };
+    let server = Server::start_with_listeners(config_for(&db), listeners).await;
     let ch = server.channel().await;
     put_channel(&ch, channel_def("met-1", "daniell")).await;
     let t0 = now_ns() - 60_000_000_000;

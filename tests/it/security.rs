@@ -51,22 +51,33 @@ async fn start_secure(
 ) {
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
     let addr = listener.local_addr().unwrap();
-    let mut config = app::Config::new(db.to_path_buf(), gibbsline::store::Durability::Normal);
-    config.tls = Some(app::TlsPem {
-        cert: pki.server.0.clone().into_bytes(),
-        key: pki.server.1.clone().into_bytes(),
-        client_ca: Some(pki.ca_pem.clone().into_bytes()),
+    let mut config = config_for(db);
+    // The server reads PEM files, as a deployment's config names them.
+    let dir = db.parent().unwrap();
+    let write = |name: &str, pem: &str| {
+        let path = dir.join(name);
+        std::fs::write(&path, pem).unwrap();
+        path.display().to_string()
+    };
+    config.tls = Some(gibbsline::config::TlsSpec {
+        cert: write("server.crt", &pki.server.0),
+        key: write("server.key", &pki.server.1),
+        client_ca: Some(write("clients-ca.crt", &pki.ca_pem)),
     });
-    config.tokens = vec![
+    config.token = vec![
         token("bench-rig", Role::Rig, "rig-secret", &["granted-1"]),
         token("wall-screen", Role::Viewer, "viewer-secret", &[]),
         token("night-shift", Role::Operator, "operator-secret", &[]),
         token("lab-lead", Role::Admin, "admin-secret", &[]),
     ];
     let (tx, rx) = tokio::sync::oneshot::channel::<()>();
-    let task = tokio::spawn(app::run(config, listener, async move {
-        let _ = rx.await;
-    }));
+    let task = tokio::spawn(app::run(
+        config,
+        app::Listeners::grpc_only(listener),
+        async move {
+            let _ = rx.await;
+        },
+    ));
     (addr, tx, task)
 }
 

@@ -1,0 +1,32 @@
+//! `gibbsline config check`: validate a configuration file as a start
+//! would, without starting anything.
+
+use super::UsageError;
+use std::path::Path;
+
+/// The file alone: this machine's environment is not the one the file is
+/// meant for, so `GIBBSLINE_*` variables are not applied.
+pub fn run(file: &Path, no_files: bool) -> anyhow::Result<()> {
+    let label = file.display().to_string();
+    let text = std::fs::read_to_string(file).map_err(|e| UsageError(format!("{label}: {e}")))?;
+    let config = gibbsline::config::load(&label, &text, &Default::default())
+        .map_err(|e| UsageError(e.to_string()))?;
+    config
+        .check_exposure()
+        .map_err(|e| UsageError(format!("{}: {e}", file.display())))?;
+    if !no_files {
+        config
+            .read_tls()
+            .map_err(|e| UsageError(format!("{}: {e}", file.display())))?;
+    }
+    let chemistries = match config.chemistry.len() {
+        1 => "1 chemistry".to_string(),
+        n => format!("{n} chemistries"),
+    };
+    let channels = match config.channel.len() {
+        1 => "1 channel".to_string(),
+        n => format!("{n} channels"),
+    };
+    println!("{}: ok ({channels}, {chemistries})", file.display());
+    Ok(())
+}
