@@ -4,7 +4,7 @@
 //! close the pool).
 
 use crate::alerts::rules as alert_rules;
-use crate::config::ServerConfig;
+use crate::config::{ServerConfig, TlsPem};
 use crate::electrochem::{Registry, chemistry::ChemistrySpec};
 use crate::grpc;
 use crate::ingest::{self, Hub, Job, hub::HubHandles, writer};
@@ -35,13 +35,6 @@ impl Listeners {
     }
 }
 
-#[derive(Debug, Clone)]
-pub struct TlsPem {
-    pub cert: Vec<u8>,
-    pub key: Vec<u8>,
-    pub client_ca: Option<Vec<u8>>,
-}
-
 /// HTTP/2 streams one connection may have open at once.
 const MAX_STREAMS_PER_CONNECTION: u32 = 128;
 #[derive(Debug, thiserror::Error)]
@@ -55,7 +48,12 @@ pub enum AppError {
     #[error("reflection: {0}")]
     Reflection(String),
     #[error("config: {0}")]
-    Config(String),
+    Config(#[from] crate::error::FieldError),
+    #[error("config: chemistry[{index}]: {source}")]
+    Chemistry {
+        index: usize,
+        source: crate::electrochem::ChemistryError,
+    },
 }
 
 pub async fn run(
@@ -67,7 +65,7 @@ pub async fn run(
         grpc: listener,
         metrics: metrics_listener,
     } = listeners;
-    let tls = config.read_tls().map_err(AppError::Config)?;
+    let tls = config.read_tls()?;
     let db_path = PathBuf::from(&config.db);
     let store = Store::open(&db_path, config.durability).await?;
     if let Ok(addr) = listener.local_addr() {
@@ -111,7 +109,7 @@ pub async fn run(
     let incoming = crate::listen::incoming(listener, connection_idle);
     let reporter = health_reporter.clone();
     let builder = server_builder(&config.limits, tls.as_ref())?;
-    let tokens = crate::auth::TokenTable::new(&config.token).map_err(AppError::Config)?;
+    let tokens = crate::auth::TokenTable::new(&config.token)?;
     let router = builder
         .layer(grpc::authz::AuthLayer::new(tokens))
         .add_service(health_service);
@@ -347,5 +345,5 @@ async fn build_registry(store: &Store, user: &[ChemistrySpec]) -> Result<Registr
         .filter_map(|json| serde_json::from_str::<ChemistrySpec>(json).ok())
         .collect::<Vec<_>>();
     Registry::assemble(stored, user)
-        .map_err(|(i, e)| AppError::Config(format!("chemistry[{i}] ({:?}): {e}", user[i].id)))
+        .map_err(|(index, source)| AppError::Chemistry { index, source })
 }

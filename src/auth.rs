@@ -5,6 +5,7 @@
 //! time, so neither the config file nor a timing side channel gives one
 //! away. Callers log denials with the role and the RPC, never the token.
 
+use crate::error::{FieldError, UnknownChoice};
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
 
@@ -33,12 +34,15 @@ impl Role {
 }
 
 impl std::str::FromStr for Role {
-    type Err = String;
-    fn from_str(text: &str) -> Result<Role, String> {
+    type Err = UnknownChoice;
+    fn from_str(text: &str) -> Result<Role, UnknownChoice> {
         [Role::Rig, Role::Viewer, Role::Operator, Role::Admin]
             .into_iter()
             .find(|r| r.as_str() == text)
-            .ok_or_else(|| format!("{text:?}: must be rig, viewer, operator or admin"))
+            .ok_or_else(|| UnknownChoice {
+                value: text.into(),
+                expected: "rig, viewer, operator or admin",
+            })
     }
 }
 
@@ -140,15 +144,17 @@ fn ct_eq(a: &[u8; 32], b: &[u8; 32]) -> bool {
 }
 
 impl TokenTable {
-    pub fn new(specs: &[TokenSpec]) -> Result<TokenTable, String> {
+    pub fn new(specs: &[TokenSpec]) -> Result<TokenTable, FieldError> {
         let entries = specs
             .iter()
             .enumerate()
             .map(|(i, s)| {
                 let digest = parse_hex32(&s.sha256.to_ascii_lowercase()).ok_or_else(|| {
-                    format!(
-                        "token[{i}] ({:?}).sha256: must be 64 hex digits (a SHA-256 digest)",
-                        s.name
+                    let shown: String = s.sha256.chars().take(80).collect();
+                    FieldError::new(
+                        format!("token[{i}] ({:?}).sha256", s.name),
+                        format!("{shown:?}"),
+                        "must be 64 hex digits (a SHA-256 digest)",
                     )
                 })?;
                 Ok(Entry {
@@ -158,7 +164,7 @@ impl TokenTable {
                     channels: s.channels.clone(),
                 })
             })
-            .collect::<Result<Vec<_>, String>>()?;
+            .collect::<Result<Vec<_>, FieldError>>()?;
         Ok(TokenTable { entries })
     }
 
@@ -265,7 +271,7 @@ mod tests {
         for role in [Role::Rig, Role::Viewer, Role::Operator, Role::Admin] {
             assert_eq!(role.as_str().parse::<Role>(), Ok(role));
         }
-        let e = "janitor".parse::<Role>().unwrap_err();
+        let e = "janitor".parse::<Role>().unwrap_err().to_string();
         assert!(e.contains("\"janitor\"") && e.contains("operator"), "{e}");
     }
 
@@ -329,7 +335,8 @@ mod tests {
             sha256: "abc".into(),
             channels: vec![],
         }])
-        .unwrap_err();
+        .unwrap_err()
+        .to_string();
         assert!(e.contains("token[0]") && e.contains("sha256"));
     }
 }

@@ -75,13 +75,8 @@ pub struct RunKey {
     water: Option<[String; 3]>,
 }
 
-#[derive(Debug, Clone, PartialEq, thiserror::Error)]
-#[error("{field} = {value}: {reason}")]
-pub struct ChannelError {
-    pub field: String,
-    pub value: String,
-    pub reason: String,
-}
+/// A channel definition that cannot work, naming the field and value.
+pub type ChannelError = crate::error::FieldError;
 
 /// Shows a value readably in an error, however large (f64's `Display`
 /// writes 1e300 as 301 digits).
@@ -94,11 +89,7 @@ pub fn shown(v: f64) -> String {
 }
 
 fn err(field: &str, value: impl std::fmt::Display, reason: impl Into<String>) -> ChannelError {
-    ChannelError {
-        field: field.into(),
-        value: value.to_string(),
-        reason: reason.into(),
-    }
+    ChannelError::new(field, value, reason)
 }
 
 /// Free text (a channel's description, an acknowledgement's note) at most,

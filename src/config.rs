@@ -6,6 +6,7 @@
 use crate::alerts::AlertRules;
 use crate::channel::ChannelDef;
 use crate::electrochem::{ChemistrySpec, Registry};
+use crate::error::FieldError;
 use crate::store::Durability;
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
@@ -78,7 +79,7 @@ impl Limits {
         }
     }
 
-    fn validate(&self) -> Result<(), String> {
+    fn validate(&self) -> Result<(), FieldError> {
         for (name, value, min) in [
             ("max_future_s", self.max_future_s, 0),
             ("max_seq_jump", self.max_seq_jump, 1),
@@ -93,13 +94,18 @@ impl Limits {
             ("max_query_rows", u64::from(self.max_query_rows), 1),
         ] {
             if value < min {
-                return Err(format!("limits.{name} = {value}: must be at least {min}"));
+                return Err(FieldError::new(
+                    format!("limits.{name}"),
+                    value,
+                    format!("must be at least {min}"),
+                ));
             }
         }
         if self.max_future_s > 86_400 {
-            return Err(format!(
-                "limits.max_future_s = {}: at most 86400 (a day)",
-                self.max_future_s
+            return Err(FieldError::new(
+                "limits.max_future_s",
+                self.max_future_s,
+                "at most 86400 (a day)",
             ));
         }
         Ok(())
@@ -114,6 +120,14 @@ pub struct TlsSpec {
     pub cert: String,
     pub key: String,
     pub client_ca: Option<String>,
+}
+
+/// The TLS files' contents, as read at start.
+#[derive(Debug, Clone)]
+pub struct TlsPem {
+    pub cert: Vec<u8>,
+    pub key: Vec<u8>,
+    pub client_ca: Option<Vec<u8>>,
 }
 
 /// A channel with optional rules.
@@ -267,12 +281,12 @@ pub fn resolve(
         .or(file.db.clone())
         .unwrap_or_else(|| DEFAULT_DB.into());
     crate::auth::TokenTable::new(&file.token)
-        .map_err(|e| fail((table_line(text, "[[token]]", 0), e)))?;
+        .map_err(|e| fail((table_line(text, "[[token]]", 0), e.to_string())))?;
     check_definitions(text, &file).map_err(fail)?;
     let limits = file.limits.unwrap_or_default();
     limits
         .validate()
-        .map_err(|e| fail((table_line(text, "[limits]", 0), e)))?;
+        .map_err(|e| fail((table_line(text, "[limits]", 0), e.to_string())))?;
     Ok(ServerConfig {
         limits,
         listen,
@@ -363,16 +377,16 @@ impl ServerConfig {
     }
 
     /// Refuses to serve beyond loopback without transport security.
-    pub fn check_exposure(&self) -> Result<(), String> {
-        let addr: std::net::SocketAddr = self
-            .listen
-            .parse()
-            .map_err(|_| format!("listen = {:?}", self.listen))?;
+    pub fn check_exposure(&self) -> Result<(), FieldError> {
+        let addr: std::net::SocketAddr = self.listen.parse().map_err(|_| {
+            FieldError::new("listen", format!("{:?}", self.listen), "not an address")
+        })?;
         if !addr.ip().is_loopback() && self.tls.is_none() && !self.allow_insecure {
-            return Err(format!(
-                "listen = {}: not a loopback address and no [tls] is configured; \
+            return Err(FieldError::new(
+                "listen",
+                &self.listen,
+                "not a loopback address and no [tls] is configured; \
                  set [tls] cert and key, or pass --allow-insecure (allow_insecure = true) if a proxy or mesh provides TLS",
-                self.listen
             ));
         }
         // The metrics page is plain HTTP and unauthenticated: beyond
@@ -382,21 +396,25 @@ impl ServerConfig {
             && !addr.ip().is_loopback()
             && !self.allow_insecure
         {
-            return Err(format!(
-                "metrics_listen = {m}: not a loopback address; the metrics page has no TLS or tokens: \
-                 pass --allow-insecure (allow_insecure = true) if the network in between is trusted"
+            return Err(FieldError::new(
+                "metrics_listen",
+                m,
+                "not a loopback address; the metrics page has no TLS or tokens: \
+                 pass --allow-insecure (allow_insecure = true) if the network in between is trusted",
             ));
         }
         Ok(())
     }
 
     /// Reads the TLS files the config names, as a start would.
-    pub fn read_tls(&self) -> Result<Option<crate::app::TlsPem>, String> {
+    pub fn read_tls(&self) -> Result<Option<TlsPem>, FieldError> {
         let Some(t) = &self.tls else { return Ok(None) };
         let read = |what: &str, path: &str| {
-            std::fs::read(path).map_err(|e| format!("tls.{what} = {path:?}: {e}"))
+            std::fs::read(path).map_err(|e| {
+                FieldError::new(format!("tls.{what}"), format!("{path:?}"), e.to_string())
+            })
         };
-        let pem = crate::app::TlsPem {
+        let pem = TlsPem {
             cert: read("cert", &t.cert)?,
             key: read("key", &t.key)?,
             client_ca: t
@@ -407,7 +425,11 @@ impl ServerConfig {
         };
         for (what, path, bytes) in [("cert", &t.cert, &pem.cert), ("key", &t.key, &pem.key)] {
             if !String::from_utf8_lossy(bytes).contains("-----BEGIN ") {
-                return Err(format!("tls.{what} = {path:?}: not a PEM file"));
+                return Err(FieldError::new(
+                    format!("tls.{what}"),
+                    format!("{path:?}"),
+                    "not a PEM file",
+                ));
             }
         }
         Ok(Some(pem))
@@ -550,7 +572,12 @@ max_volts = 2.0
             &env(&[]),
         )
         .unwrap();
-        assert!(c.check_exposure().unwrap_err().contains("--allow-insecure"));
+        assert!(
+            c.check_exposure()
+                .unwrap_err()
+                .to_string()
+                .contains("--allow-insecure")
+        );
         let c = load(
             "f",
             &GOOD.replace("127.0.0.1:50999", "0.0.0.0:50051"),

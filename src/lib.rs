@@ -10,6 +10,7 @@ pub mod auth;
 pub mod channel;
 pub mod config;
 pub mod electrochem;
+pub mod error;
 pub mod estimator;
 /// Fuzz-target bodies: built for tests and for `cargo fuzz` (which sets
 /// `--cfg fuzzing`), never into the release binary.

@@ -6,6 +6,7 @@
 //! gives one alert, not a storm. At most one alert per (channel, kind) is
 //! active at a time; the state here says which are.
 
+use crate::error::FieldError;
 use serde::{Deserialize, Serialize};
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, Serialize, Deserialize)]
@@ -192,13 +193,13 @@ impl AlertRules {
     }
 
     /// Rejects rules that cannot work, naming the field and value.
-    pub fn validate(&self) -> Result<(), String> {
+    pub fn validate(&self) -> Result<(), FieldError> {
         for (name, t, rising) in self.thresholds() {
             t.check(name, rising)?;
         }
         for (name, v) in self.scalars() {
             if !v.is_finite() {
-                return Err(format!("{name} = {v}: must be finite"));
+                return Err(FieldError::new(name, v, "must be finite"));
             }
         }
         below(
@@ -263,10 +264,12 @@ impl AlertRules {
 }
 
 /// A window's upper end must lie above its lower end.
-fn below(low_name: &str, low: f64, high_name: &str, high: f64) -> Result<(), String> {
+fn below(low_name: &str, low: f64, high_name: &str, high: f64) -> Result<(), FieldError> {
     if low >= high {
-        return Err(format!(
-            "{high_name} = {high}: must be above {low_name} ({low})"
+        return Err(FieldError::new(
+            high_name,
+            high,
+            format!("must be above {low_name} ({low})"),
         ));
     }
     Ok(())
@@ -275,20 +278,25 @@ fn below(low_name: &str, low: f64, high_name: &str, high: f64) -> Result<(), Str
 impl Threshold {
     /// Finite parts, a hold that is not negative, and a clear level on the
     /// safe side of the raise level (hysteresis).
-    fn check(&self, name: &str, rising: bool) -> Result<(), String> {
+    fn check(&self, name: &str, rising: bool) -> Result<(), FieldError> {
         for (part, v) in [
             ("raise_at", self.raise_at),
             ("clear_at", self.clear_at),
             ("hold_s", self.hold_s),
         ] {
             if !v.is_finite() {
-                return Err(format!("{name}.{part} = {v}: must be finite"));
+                return Err(FieldError::new(
+                    format!("{name}.{part}"),
+                    v,
+                    "must be finite",
+                ));
             }
         }
         if self.hold_s < 0.0 {
-            return Err(format!(
-                "{name}.hold_s = {}: must not be negative",
-                self.hold_s
+            return Err(FieldError::new(
+                format!("{name}.hold_s"),
+                self.hold_s,
+                "must not be negative",
             ));
         }
         let safe_side = if rising {
@@ -297,9 +305,13 @@ impl Threshold {
             self.clear_at >= self.raise_at
         };
         if !safe_side {
-            return Err(format!(
-                "{name}.clear_at = {}: must be on the safe side of raise_at ({}) for hysteresis",
-                self.clear_at, self.raise_at
+            return Err(FieldError::new(
+                format!("{name}.clear_at"),
+                self.clear_at,
+                format!(
+                    "must be on the safe side of raise_at ({}) for hysteresis",
+                    self.raise_at
+                ),
             ));
         }
         Ok(())

@@ -222,13 +222,13 @@ fn block_on<F: std::future::Future<Output = anyhow::Result<()>>>(f: F) -> anyhow
 }
 
 /// Parses durations like 90s, 5m, 2h, 1d, 250ms (a bare number is seconds).
-pub fn parse_duration(text: &str) -> Result<std::time::Duration, String> {
+pub fn parse_duration(text: &str) -> Result<std::time::Duration, UsageError> {
     let t = text.trim();
     let split = t.find(|c: char| c.is_ascii_alphabetic()).unwrap_or(t.len());
     let (num, unit) = t.split_at(split);
     let value: f64 = num
         .parse()
-        .map_err(|_| format!("{text:?} is not a duration like 90s, 5m or 2h"))?;
+        .map_err(|_| UsageError(format!("{text:?} is not a duration like 90s, 5m or 2h")))?;
     let scale = match unit {
         "" | "s" => 1.0,
         "ms" => 1e-3,
@@ -236,14 +236,14 @@ pub fn parse_duration(text: &str) -> Result<std::time::Duration, String> {
         "h" => 3600.0,
         "d" => 86_400.0,
         other => {
-            return Err(format!(
+            return Err(UsageError(format!(
                 "unknown unit {other:?} in {text:?} (use ms, s, m, h or d)"
-            ));
+            )));
         }
     };
     let secs = value * scale;
     if !(secs.is_finite() && (0.0..1e9).contains(&secs)) {
-        return Err(format!("{text:?} is out of range"));
+        return Err(UsageError(format!("{text:?} is out of range")));
     }
     Ok(std::time::Duration::from_secs_f64(secs))
 }

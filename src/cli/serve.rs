@@ -11,7 +11,9 @@ pub fn run(args: &ServeArgs) -> anyhow::Result<()> {
         print!("{}", toml::to_string(&config)?);
         return Ok(());
     }
-    config.check_exposure().map_err(UsageError)?;
+    config
+        .check_exposure()
+        .map_err(|e| UsageError(e.to_string()))?;
     tracing_subscriber::fmt()
         .with_env_filter(
             tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),

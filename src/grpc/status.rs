@@ -16,6 +16,7 @@ impl From<IngestError> for Status {
             IngestError::Invalid { .. } => Status::invalid_argument(message),
             IngestError::BatchTooLarge(_) => Status::resource_exhausted(message),
             IngestError::ShuttingDown => Status::unavailable(message),
+            IngestError::StoredUnusable { .. } => Status::failed_precondition(message),
             IngestError::Store(StoreError::Unwritable { fault, .. }) => {
                 tracing::warn!(error = %message, "write refused by storage");
                 storage_status(fault, message)

@@ -9,7 +9,7 @@ use super::{
 };
 use crate::alerts::{self, AlertChange};
 use crate::channel::{MAX_READING_ABS_AMPS, MAX_READING_TEMP_C, MIN_READING_TEMP_C, shown};
-use crate::estimator::{self, EstimatorInput};
+use crate::estimator::{self, EstimatorError, EstimatorInput};
 use crate::store::{ReadingRow, flags};
 
 pub struct DerivedBatch {
@@ -278,7 +278,7 @@ fn derive_late(
     rt: &mut ChannelRuntime,
     r: &RawReading,
     parts: &mut BatchParts,
-) -> Result<(), String> {
+) -> Result<(), EstimatorError> {
     let amps = r.amps.map(|a| rt.def.current_sign.to_charge_positive(a));
     let temp_k = r
         .temp_c
@@ -291,8 +291,7 @@ fn derive_late(
             temp_k,
             equilibrium_tolerance_volts: rt.est_config.equilibrium_tolerance_volts,
         },
-    )
-    .map_err(|e| e.to_string())?;
+    )?;
     // A late reading can carry a seq above every fresh one (its clock went
     // back); it then raises the stored maximum, as the store's MAX(seq)
     // will after a restart, so both agree on what the next reading is.
@@ -329,7 +328,7 @@ fn derive_fresh(
     rt: &mut ChannelRuntime,
     r: &RawReading,
     parts: &mut BatchParts,
-) -> Result<(), String> {
+) -> Result<(), EstimatorError> {
     let amps = r.amps.map(|a| rt.def.current_sign.to_charge_positive(a));
     let input = EstimatorInput {
         time_ns: r.time_unix_ns,
@@ -337,8 +336,7 @@ fn derive_fresh(
         amps,
         temp_k: r.temp_c.map(|t| t + 273.15),
     };
-    let est = estimator::step(&rt.chemistry, &rt.est_config, &mut rt.est, input)
-        .map_err(|e| e.to_string())?;
+    let est = estimator::step(&rt.chemistry, &rt.est_config, &mut rt.est, input)?;
     advance_front(rt, r);
     parts.advanced = true;
     let deadband = rt.est_config.rest_current_amps;

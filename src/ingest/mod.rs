@@ -72,6 +72,16 @@ pub enum IngestError {
     AlertNotFound(u64),
     #[error("the server is shutting down; reconnect and resend from last_stored_seq")]
     ShuttingDown,
+    /// A stored channel that no longer loads: most often its chemistry
+    /// came from a config or file that no longer defines it.
+    #[error(
+        "channel {channel_id}: its stored {part} does not load ({reason}); give the server the chemistry it names again, or put the channel anew"
+    )]
+    StoredUnusable {
+        channel_id: String,
+        part: &'static str,
+        reason: String,
+    },
     #[error(transparent)]
     Store(#[from] StoreError),
 }

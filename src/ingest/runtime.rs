@@ -6,7 +6,7 @@ use crate::alerts::{AlertRules, ChannelRuleState};
 use crate::channel::ChannelDef;
 use crate::electrochem::{Chemistry, Registry};
 use crate::estimator::{EstimatorConfig, EstimatorState};
-use crate::store::{self, Store, StoreError};
+use crate::store::{self, Store};
 use std::sync::Arc;
 
 /// Live state of one channel.
@@ -92,14 +92,20 @@ pub async fn load_runtime(
     registry: &Registry,
     row: &store::ChannelRow,
 ) -> Result<ChannelRuntime, IngestError> {
+    let unusable = |part: &'static str, reason: String| IngestError::StoredUnusable {
+        channel_id: row.channel_id.clone(),
+        part,
+        reason,
+    };
     let def: ChannelDef = serde_json::from_str(&row.definition_json)
-        .map_err(|e| StoreError::Corrupt(format!("channel {}: {e}", row.channel_id)))?;
+        .map_err(|e| unusable("definition", e.to_string()))?;
     let chemistry = def
         .validate(registry)
-        .map_err(|e| StoreError::Corrupt(format!("channel {}: {e}", row.channel_id)))?;
+        .map_err(|e| unusable("definition", e.to_string()))?;
     let rules = match &row.rules_json {
-        Some(json) => serde_json::from_str(json)
-            .map_err(|e| StoreError::Corrupt(format!("rules of {}: {e}", row.channel_id)))?,
+        Some(json) => {
+            serde_json::from_str(json).map_err(|e| unusable("alert rules", e.to_string()))?
+        }
         None => AlertRules::for_chemistry(&chemistry),
     };
     let resume = store::load_resume_state(&store.writer, row.channel_key).await?;

@@ -93,13 +93,16 @@ pub enum Durability {
 }
 
 impl FromStr for Durability {
-    type Err = String;
-    fn from_str(s: &str) -> Result<Self, String> {
+    type Err = crate::error::UnknownChoice;
+    fn from_str(s: &str) -> Result<Self, Self::Err> {
         match s {
             "full" => Ok(Durability::Full),
             "normal" => Ok(Durability::Normal),
             "off" => Ok(Durability::Off),
-            other => Err(format!("{other:?}: expected full, normal or off")),
+            other => Err(crate::error::UnknownChoice {
+                value: other.into(),
+                expected: "full, normal or off",
+            }),
         }
     }
 }

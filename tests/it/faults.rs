@@ -699,3 +699,42 @@ async fn modes_follow_the_current_and_an_operator_soc_anchors_the_count() {
     assert!(refused.message().contains("soc = 1.5"), "{refused:?}");
     server.stop().await;
 }
+
+/// A channel whose chemistry came from the config: a restart without that
+/// chemistry must refuse to start and say which channel and why, not call
+/// the database corrupt.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_stored_channel_whose_chemistry_is_gone_is_named_at_start() {
+    let (_dir, db) = temp_db();
+    let daniell = gibbsline::electrochem::builtin::builtin_files()
+        .find(|(id, _)| *id == "daniell")
+        .map(|(_, text)| text.replace("id = \"daniell\"", "id = \"lab-zinc-copper\""))
+        .unwrap();
+    let mut config = config_for(&db);
+    config.chemistry =
+        gibbsline::electrochem::chemistry::read_chemistry_specs("lab.toml", &daniell).unwrap();
+    let server = Server::start_with(config, "127.0.0.1:0").await;
+    let ch = server.channel().await;
+    put_channel(&ch, channel_def("zc-1", "lab-zinc-copper")).await;
+    server.stop().await;
+
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+    let refused = tokio::time::timeout(
+        Duration::from_secs(10),
+        gibbsline::app::run(
+            config_for(&db),
+            gibbsline::app::Listeners::grpc_only(listener),
+            std::future::pending(),
+        ),
+    )
+    .await
+    .expect("a server that cannot load a channel must refuse at once")
+    .unwrap_err()
+    .to_string();
+    assert!(
+        refused.contains("channel zc-1")
+            && refused.contains("lab-zinc-copper")
+            && !refused.contains("corrupt"),
+        "{refused}"
+    );
+}

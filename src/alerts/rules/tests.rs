@@ -243,9 +243,15 @@ fn rules_validate_names_field() {
     assert!(
         r.validate()
             .unwrap_err()
+            .to_string()
             .contains("end_of_charge_soc.clear_at = 0.99")
     );
     let mut r = rules();
     r.max_temp_c = f64::NAN;
-    assert!(r.validate().unwrap_err().contains("max_temp_c = NaN"));
+    assert!(
+        r.validate()
+            .unwrap_err()
+            .to_string()
+            .contains("max_temp_c = NaN")
+    );
 }
