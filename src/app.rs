@@ -21,12 +21,14 @@ use tokio::net::TcpListener;
 /// database is opened).
 #[derive(Debug)]
 pub struct Listeners {
+    /// The gRPC services, health and reflection.
     pub grpc: TcpListener,
     /// Prometheus text endpoint (`metrics_listen`); none means off.
     pub metrics: Option<TcpListener>,
 }
 
 impl Listeners {
+    /// gRPC alone: no metrics endpoint.
     pub fn grpc_only(grpc: TcpListener) -> Listeners {
         Listeners {
             grpc,
@@ -37,25 +39,36 @@ impl Listeners {
 
 /// HTTP/2 streams one connection may have open at once.
 const MAX_STREAMS_PER_CONNECTION: u32 = 128;
+/// Why a server would not start or stopped serving.
 #[derive(Debug, thiserror::Error)]
 pub enum AppError {
+    /// The database could not be opened, migrated or written.
     #[error(transparent)]
     Store(#[from] store::StoreError),
+    /// Restoring a stored channel or putting a configured one failed.
     #[error(transparent)]
     Ingest(#[from] ingest::IngestError),
+    /// The gRPC transport (TLS set-up, accept) failed.
     #[error("serving: {0}")]
     Transport(#[from] tonic::transport::Error),
+    /// The reflection service could not read the descriptor sets.
     #[error("reflection: {0}")]
     Reflection(String),
+    /// A setting the server only checks as it starts (TLS files, tokens).
     #[error("config: {0}")]
     Config(#[from] crate::error::FieldError),
+    /// A configured chemistry did not validate.
     #[error("config: chemistry[{index}]: {source}")]
     Chemistry {
+        /// Its place among the config's `[[chemistry]]` tables.
         index: usize,
+        /// What is wrong with it.
         source: crate::electrochem::ChemistryError,
     },
 }
 
+/// Serves until `shutdown` resolves, then stops in order (see the module
+/// comment). Returns once the writer has flushed and the pool is closed.
 pub async fn run(
     config: ServerConfig,
     listeners: Listeners,
@@ -321,6 +334,7 @@ async fn raise_if_silent(hub: &Hub, rt: &Mutex<ingest::ChannelRuntime>, now: i64
     }
 }
 
+/// The metrics page's text for this hub, with each channel's last-seen age.
 pub fn render_metrics(hub: &Hub) -> String {
     let now = ingest::now_ns();
     let ages: Vec<(String, f64)> = hub

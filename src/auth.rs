@@ -9,6 +9,7 @@ use crate::error::{FieldError, UnknownChoice};
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
 
+/// What a token's holder may do; each role's calls are in `grpc::authz`.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Role {
@@ -23,6 +24,7 @@ pub enum Role {
 }
 
 impl Role {
+    /// The role's name as configs and messages spell it.
     pub fn as_str(self) -> &'static str {
         match self {
             Role::Rig => "rig",
@@ -49,9 +51,13 @@ impl std::str::FromStr for Role {
 /// What a call needs.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Permission {
+    /// Stream readings (StreamReadings, GetResumePoint).
     Ingest,
+    /// Read history, state, chemistries, alerts and channels.
     Read,
+    /// Acknowledge alerts, edit rules, anchor SOC, reset a timeline.
     Operate,
+    /// Define channels.
     Administer,
 }
 
@@ -73,6 +79,7 @@ impl Permission {
 pub struct TokenSpec {
     /// Who holds it (logged on denial).
     pub name: String,
+    /// What it may do.
     pub role: Role,
     /// Hex SHA-256 of the token (`gibbsline token hash` prints it).
     pub sha256: String,
@@ -89,33 +96,51 @@ struct Entry {
     channels: Vec<String>,
 }
 
+/// The configured tokens by digest; empty means an open server.
 #[derive(Debug, Clone, Default)]
 pub struct TokenTable {
     entries: Vec<Entry>,
 }
 
+/// Who a call comes from, handed to the handler by the auth layer.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Principal {
+    /// The token's `name`.
     pub name: String,
+    /// What it may do.
     pub role: Role,
+    /// For rigs: the channels granted; empty means all.
     pub channels: Vec<String>,
 }
 
+/// Why a call was refused before its handler ran.
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
 pub enum AuthError {
+    /// No `authorization` metadata on a server with tokens.
     #[error("a bearer token is required (metadata `authorization: Bearer …`)")]
     Missing,
+    /// A token no entry's digest matches.
     #[error("the bearer token is not recognised")]
     Unknown,
+    /// The role may not make this call.
     #[error("role {role} may not call {rpc}")]
     Forbidden {
+        /// The caller's role.
         role: &'static str,
+        /// The method called.
         rpc: &'static str,
     },
+    /// A rig token streaming to a channel it is not granted.
     #[error("role rig ({name}) is not granted channel {channel:?}")]
-    ChannelNotGranted { name: String, channel: String },
+    ChannelNotGranted {
+        /// The token's name.
+        name: String,
+        /// The channel it tried to stream to.
+        channel: String,
+    },
 }
 
+/// Lower-case hex SHA-256 of a token: what a config stores in its place.
 pub fn sha256_hex(token: &str) -> String {
     Sha256::digest(token.as_bytes())
         .iter()
@@ -144,6 +169,7 @@ fn ct_eq(a: &[u8; 32], b: &[u8; 32]) -> bool {
 }
 
 impl TokenTable {
+    /// The table of `specs`; a digest that is not 64 hex digits is refused.
     pub fn new(specs: &[TokenSpec]) -> Result<TokenTable, FieldError> {
         let entries = specs
             .iter()

@@ -9,30 +9,46 @@ use crate::estimator::{CurrentSign, EstimatorConfig};
 use serde::{Deserialize, Serialize};
 use std::sync::Arc;
 
+/// One channel as a rig or a channels file defines it: which cell, how
+/// many in series, how its instrument signs current, and what is plausible.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ChannelDef {
+    /// Stable id the rig streams under (letters, digits, `-`, `_`, `.`).
     pub channel_id: String,
+    /// A built-in or user chemistry's id.
     pub chemistry_id: String,
+    /// Cells in series: readings are stack volts, thermodynamics per cell.
     pub cells_in_series: u32,
+    /// Rated capacity for coulomb-counted SOC, Ah; 0 = no counting.
     #[serde(default)]
     pub capacity_ah: f64,
+    /// Which sign the instrument gives a charging current.
     pub current_sign: CurrentSign,
+    /// Temperature assumed for readings that carry none, °C.
     #[serde(default = "default_temp_c")]
     pub default_temp_c: f64,
     /// Per-cell plausibility window, V.
     pub min_volts: f64,
+    /// Upper end of the per-cell plausibility window, V.
     pub max_volts: f64,
+    /// E° at 298.15 K for this channel instead of the chemistry's, V.
     #[serde(default)]
     pub e_standard_override_v: Option<f64>,
+    /// Known stack resistance for V − I·R under load, Ω; unset: estimated
+    /// from current steps.
     #[serde(default)]
     pub resistance_ohm: Option<f64>,
+    /// Within this of E per cell counts as equilibrium, mV.
     #[serde(default = "default_tolerance_mv")]
     pub equilibrium_tolerance_mv: f64,
+    /// Fraction of charge-in the count credits as stored (0–1].
     #[serde(default = "one")]
     pub coulombic_efficiency: f64,
+    /// Fraction of an electrolyser's current that makes hydrogen (0–1].
     #[serde(default = "one")]
     pub faradaic_efficiency: f64,
+    /// Free text for people (at most 4,096 bytes).
     #[serde(default)]
     pub description: String,
     /// Hydrogen–oxygen cells: the gases that fix the reversible voltage
@@ -56,6 +72,7 @@ fn one() -> f64 {
 
 /// Readings outside [−100 °C, 200 °C] are broken sensors, not cells.
 pub const MIN_READING_TEMP_C: f64 = -100.0;
+/// Upper end of the plausible reading temperature, °C (see above).
 pub const MAX_READING_TEMP_C: f64 = 200.0;
 /// A current beyond ±1 MA is a broken shunt or a garbled value, not a cell:
 /// the largest electrolyser stacks run at tens of kA. Letting one through
@@ -216,6 +233,7 @@ impl ChannelDef {
         }
     }
 
+    /// Whether this is a hydrogen–oxygen (electrolyser or fuel-cell) channel.
     pub fn is_water_cell(&self) -> bool {
         self.chemistry_id == WATER_CELL_ID
     }
@@ -225,6 +243,7 @@ impl ChannelDef {
         self.gas.unwrap_or_default()
     }
 
+    /// The estimator's settings for this channel's cells, capacity and sign.
     pub fn estimator_config(&self) -> EstimatorConfig {
         let mut cfg = EstimatorConfig::for_channel(
             self.cells_in_series,

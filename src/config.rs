@@ -15,20 +15,29 @@ use std::collections::BTreeMap;
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
 #[serde(deny_unknown_fields)]
 pub struct ConfigFile {
+    /// gRPC address (see [`ServerConfig::listen`]).
     pub listen: Option<String>,
+    /// Database file (see [`ServerConfig::db`]).
     pub db: Option<String>,
+    /// Commit durability (see [`ServerConfig::durability`]).
     pub durability: Option<Durability>,
     /// Prometheus text endpoint, e.g. "127.0.0.1:9464"; unset = off.
     pub metrics_listen: Option<String>,
+    /// Confirms serving beyond loopback without TLS.
     #[serde(default)]
     pub allow_insecure: bool,
+    /// `[tls]`: certificate, key and optional client CA.
     pub tls: Option<TlsSpec>,
+    /// `[[token]]` tables.
     #[serde(default)]
     pub token: Vec<crate::auth::TokenSpec>,
+    /// `[[chemistry]]` tables: the site's own chemistries.
     #[serde(default)]
     pub chemistry: Vec<ChemistrySpec>,
+    /// `[[channel]]` tables, put at every start.
     #[serde(default)]
     pub channel: Vec<ChannelEntry>,
+    /// `[limits]`; unset fields take their defaults.
     pub limits: Option<Limits>,
 }
 
@@ -72,6 +81,7 @@ impl Default for Limits {
 }
 
 impl Limits {
+    /// The part of the limits ingest checks each reading against.
     pub fn ingest(&self) -> crate::ingest::IngestLimits {
         crate::ingest::IngestLimits {
             max_future_ns: (self.max_future_s.min(86_400 * 365) * 1_000_000_000) as i64,
@@ -117,16 +127,22 @@ impl Limits {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct TlsSpec {
+    /// The server's certificate chain, PEM file path.
     pub cert: String,
+    /// Its private key, PEM file path.
     pub key: String,
+    /// CA that signs client certificates, PEM file path.
     pub client_ca: Option<String>,
 }
 
 /// The TLS files' contents, as read at start.
 #[derive(Debug, Clone)]
 pub struct TlsPem {
+    /// Certificate chain, PEM.
     pub cert: Vec<u8>,
+    /// Private key, PEM.
     pub key: Vec<u8>,
+    /// Client CA, PEM.
     pub client_ca: Option<Vec<u8>>,
 }
 
@@ -134,34 +150,52 @@ pub struct TlsPem {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ChannelEntry {
+    /// The channel's fields, at the table's top level.
     #[serde(flatten)]
     pub def: ChannelDef,
+    /// `[channel.rules]`; unset: the chemistry's defaults.
     pub rules: Option<AlertRules>,
 }
 
 /// The effective, validated configuration.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ServerConfig {
+    /// gRPC address, `host:port`.
     pub listen: String,
+    /// SQLite database file, created and migrated on first start.
     pub db: String,
+    /// How hard each commit is pushed to disk.
     pub durability: Durability,
+    /// Prometheus text endpoint; none means off.
     pub metrics_listen: Option<String>,
+    /// Serving beyond loopback without TLS is confirmed.
     pub allow_insecure: bool,
+    /// TLS files; none means plain text (loopback, or behind a proxy).
     pub tls: Option<TlsSpec>,
+    /// Bearer tokens; none means an open server.
     pub token: Vec<crate::auth::TokenSpec>,
+    /// The site's own chemistries (file and `--chemistry-file`).
     pub chemistry: Vec<ChemistrySpec>,
+    /// Channels (with rules) put at every start.
     pub channel: Vec<ChannelEntry>,
+    /// What one client, reading or request may take.
     pub limits: Limits,
 }
 
+/// Where the server listens unless told.
 pub const DEFAULT_LISTEN: &str = "127.0.0.1:50051";
+/// The database file unless told, in the working directory.
 pub const DEFAULT_DB: &str = "gibbsline.db";
 
+/// A config that cannot be served, with the file and line it comes from.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 #[error("{path}{}: {message}", line.map(|l| format!(":{l}")).unwrap_or_default())]
 pub struct ConfigError {
+    /// The file (or `(defaults)`).
     pub path: String,
+    /// 1-based line of the entry, when one can be named.
     pub line: Option<usize>,
+    /// What is wrong, naming the field and value.
     pub message: String,
 }
 
@@ -183,10 +217,15 @@ fn line_of_offset(text: &str, offset: usize) -> usize {
 /// and with the same kind of message as a bad file entry.
 #[derive(Debug, Clone, Default)]
 pub struct Flags {
+    /// `--listen`.
     pub listen: Option<String>,
+    /// `--db`.
     pub db: Option<String>,
+    /// `--durability`, as typed.
     pub durability: Option<String>,
+    /// `--metrics-listen`.
     pub metrics_listen: Option<String>,
+    /// `--allow-insecure`.
     pub allow_insecure: bool,
     /// `--chemistry-file` files as (path, text): their chemistries join
     /// the file's `[[chemistry]]` tables.
@@ -253,6 +292,8 @@ pub fn load_with_flags(
 /// Where in the file a problem is (a line, if one can be named) and what it is.
 type Problem = (Option<usize>, String);
 
+/// The parsed file with the environment over it, validated; `text` only
+/// gives errors their line numbers.
 pub fn resolve(
     path: &str,
     text: &str,

@@ -9,12 +9,16 @@ use std::fmt::Display;
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
 #[error("{field} = {value}: {reason}")]
 pub struct FieldError {
+    /// The field as the user wrote it (`limits.max_query_rows`, `token[0].sha256`).
     pub field: String,
+    /// The value as given, shown readably (quoted when it is text).
     pub value: String,
+    /// What it must be instead.
     pub reason: String,
 }
 
 impl FieldError {
+    /// A refusal of `value` for `field`.
     pub fn new(field: impl Into<String>, value: impl Display, reason: impl Into<String>) -> Self {
         FieldError {
             field: field.into(),
@@ -30,6 +34,7 @@ impl FieldError {
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
 #[error("{value:?}: expected {expected}")]
 pub struct UnknownChoice {
+    /// The name as given.
     pub value: String,
     /// The names it takes, as a phrase: "full, normal or off".
     pub expected: &'static str,

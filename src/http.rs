@@ -46,6 +46,8 @@ pub struct Bounded {
 }
 
 impl Bounded {
+    /// At most `connections` open at once, each closed after `idle`
+    /// without a byte either way.
     pub fn new(inner: TcpListener, connections: usize, idle: Duration) -> Bounded {
         Bounded {
             inner,

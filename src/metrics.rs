@@ -23,18 +23,30 @@ const ALERT_KIND_NAMES: [&str; 10] = [
     "driving_force_spent",
 ];
 
+/// The server's counters and gauges, shared by every task and read by
+/// `/metrics`. Relaxed atomics: each figure is exact, their sum is a
+/// snapshot of moments a few microseconds apart.
 #[derive(Debug, Default)]
 pub struct Metrics {
+    /// Readings stored (fresh and late).
     pub readings_accepted: AtomicU64,
+    /// Readings already stored (a resend after a lost ack).
     pub readings_duplicate: AtomicU64,
+    /// Readings stored behind the channel's front.
     pub readings_out_of_order: AtomicU64,
+    /// Readings refused, by the field that was wrong (`REJECT_FIELDS`).
     pub rejected: [AtomicU64; 6],
+    /// Whole batches refused (unknown channel, too large, shutting down).
     pub batches_refused: AtomicU64,
+    /// Group commits done by the writer.
     pub commits: AtomicU64,
     commit_buckets: [AtomicU64; 10],
     commit_sum_us: AtomicU64,
+    /// Alerts raised, by kind (`ALERT_KIND_NAMES`).
     pub alerts_raised: [AtomicU64; 10],
+    /// `WatchAlerts` streams open now.
     pub subscribers: AtomicU64,
+    /// `StreamReadings` streams open now.
     pub ingest_streams: AtomicU64,
 }
 
@@ -66,6 +78,7 @@ impl Metrics {
         (previous < limit).then_some(slot)
     }
 
+    /// Counts one reading refused for `field` (unknown fields count as `other`).
     pub fn reject(&self, field: &str) {
         let i = REJECT_FIELDS
             .iter()
@@ -74,6 +87,7 @@ impl Metrics {
         self.rejected[i].fetch_add(1, Relaxed);
     }
 
+    /// Counts one commit and puts its duration in the histogram.
     pub fn observe_commit(&self, seconds: f64) {
         self.commits.fetch_add(1, Relaxed);
         self.commit_sum_us
@@ -85,6 +99,7 @@ impl Metrics {
         }
     }
 
+    /// Counts one raised alert of the kind with this wire code.
     pub fn alert_raised(&self, kind_code: i64) {
         if let Some(c) = usize::try_from(kind_code - 1)
             .ok()

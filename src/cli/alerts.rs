@@ -12,7 +12,7 @@ use std::time::Duration;
 use tokio_stream::StreamExt;
 
 #[derive(Debug, clap::Subcommand)]
-pub enum AlertsCommand {
+pub(crate) enum AlertsCommand {
     /// Stream alerts as they happen; reconnects and resumes by itself.
     Watch {
         #[arg(long, default_value = DEFAULT_ADDR)]
@@ -50,7 +50,7 @@ pub enum AlertsCommand {
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
-pub enum MinSeverity {
+pub(crate) enum MinSeverity {
     Info,
     Warning,
     Critical,
@@ -58,7 +58,7 @@ pub enum MinSeverity {
 
 /// One stored alert.
 #[derive(Serialize)]
-pub struct AlertOut {
+pub(crate) struct AlertOut {
     alert_id: u64,
     channel_id: String,
     kind: &'static str,
@@ -156,7 +156,7 @@ impl Row for AlertOut {
 /// One watched event: what happened, its event id (what `--after`
 /// resumes from) and the alert. CSV flattens the alert into the line.
 #[derive(Serialize)]
-pub struct EventOut {
+pub(crate) struct EventOut {
     event: &'static str,
     event_id: u64,
     alert: AlertOut,
@@ -179,7 +179,7 @@ impl Row for EventOut {
     }
 }
 
-pub async fn run(cmd: &AlertsCommand) -> anyhow::Result<()> {
+pub(crate) async fn run(cmd: &AlertsCommand) -> anyhow::Result<()> {
     match cmd {
         AlertsCommand::Ack {
             id,

@@ -13,7 +13,7 @@ use std::time::{Duration, Instant};
 use tokio_stream::StreamExt;
 
 #[derive(Debug, clap::Args)]
-pub struct BenchIngestArgs {
+pub(crate) struct BenchIngestArgs {
     /// Server to load; without it a server is started in this process on a
     /// temporary database (then peak RSS covers both ends).
     #[arg(long)]
@@ -43,7 +43,7 @@ pub struct BenchIngestArgs {
 }
 
 #[derive(Debug, Serialize)]
-pub struct BenchReport {
+pub(crate) struct BenchReport {
     pub readings: u64,
     pub channels: u32,
     pub batch: u32,
@@ -69,14 +69,14 @@ fn percentile(sorted: &[f64], p: f64) -> f64 {
 }
 
 /// Peak resident set of this process (Linux), MiB.
-pub fn peak_rss_mib() -> Option<f64> {
+pub(crate) fn peak_rss_mib() -> Option<f64> {
     let status = std::fs::read_to_string("/proc/self/status").ok()?;
     let line = status.lines().find(|l| l.starts_with("VmHWM:"))?;
     let kib: f64 = line.split_whitespace().nth(1)?.parse().ok()?;
     Some(kib / 1024.0)
 }
 
-pub async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
+pub(crate) async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
     if args.channels == 0 || args.batch == 0 || args.readings == 0 {
         return Err(super::UsageError(
             "--channels, --batch and --readings must be at least 1".into(),
@@ -468,7 +468,7 @@ fn tempfile_dir() -> anyhow::Result<std::path::PathBuf> {
 }
 
 #[derive(Debug, clap::Args)]
-pub struct BenchDeriveArgs {
+pub(crate) struct BenchDeriveArgs {
     /// Readings to derive.
     #[arg(long, default_value_t = 1_000_000)]
     pub readings: u64,
@@ -479,7 +479,7 @@ pub struct BenchDeriveArgs {
 }
 
 #[derive(Debug, Serialize)]
-pub struct DeriveReport {
+pub(crate) struct DeriveReport {
     pub readings: u64,
     pub thermo_only_ns_per_reading: f64,
     pub full_path_ns_per_reading: f64,
@@ -489,7 +489,7 @@ pub struct DeriveReport {
 /// The ingest path's pure work per reading, measured two ways in one run:
 /// thermodynamics and SOC alone (what ingest did before the estimator),
 /// and the full path (estimator, rules, row building) as ingest runs it.
-pub fn derive(args: &BenchDeriveArgs) -> anyhow::Result<()> {
+pub(crate) fn derive(args: &BenchDeriveArgs) -> anyhow::Result<()> {
     use gibbsline::electrochem::Registry;
     use gibbsline::ingest::ChannelRuntime;
     let registry = Registry::builtin();

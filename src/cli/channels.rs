@@ -12,7 +12,7 @@ use serde::Serialize;
 use std::path::{Path, PathBuf};
 
 #[derive(Debug, clap::Subcommand)]
-pub enum ChannelsCommand {
+pub(crate) enum ChannelsCommand {
     /// Create or replace the channels of a TOML file ([[channel]] tables).
     Put {
         file: PathBuf,
@@ -123,7 +123,7 @@ impl Row for ChannelOut {
     }
 }
 
-pub async fn run(cmd: &ChannelsCommand) -> anyhow::Result<()> {
+pub(crate) async fn run(cmd: &ChannelsCommand) -> anyhow::Result<()> {
     match cmd {
         ChannelsCommand::Put { file, connect } => put(file, connect).await,
         ChannelsCommand::List { connect, format } => {

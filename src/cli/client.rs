@@ -9,14 +9,14 @@ use tonic::transport::{Certificate, Channel, ClientTlsConfig, Endpoint, Identity
 /// The server could not be reached: exit code 3.
 #[derive(Debug, thiserror::Error)]
 #[error("cannot reach the server at {addr}: {reason} (is `gibbsline serve` running there?)")]
-pub struct Unreachable {
+pub(crate) struct Unreachable {
     pub addr: String,
     pub reason: String,
 }
 
 /// Adds the bearer token, if any, to each request.
 #[derive(Clone)]
-pub struct Token(Option<tonic::metadata::MetadataValue<tonic::metadata::Ascii>>);
+pub(crate) struct Token(Option<tonic::metadata::MetadataValue<tonic::metadata::Ascii>>);
 
 impl tonic::service::Interceptor for Token {
     fn call(
@@ -30,7 +30,7 @@ impl tonic::service::Interceptor for Token {
     }
 }
 
-pub type Conn = InterceptedService<Channel, Token>;
+pub(crate) type Conn = InterceptedService<Channel, Token>;
 
 fn read_env_file(var: &str) -> anyhow::Result<Option<Vec<u8>>> {
     match std::env::var(var) {
@@ -43,7 +43,7 @@ fn read_env_file(var: &str) -> anyhow::Result<Option<Vec<u8>>> {
     }
 }
 
-pub async fn connect(addr: &str) -> anyhow::Result<Conn> {
+pub(crate) async fn connect(addr: &str) -> anyhow::Result<Conn> {
     let url = if addr.starts_with("http://") || addr.starts_with("https://") {
         addr.to_string()
     } else {
@@ -81,14 +81,14 @@ pub async fn connect(addr: &str) -> anyhow::Result<Conn> {
     Ok(InterceptedService::new(channel, Token(token)))
 }
 
-pub fn now_ns() -> i64 {
+pub(crate) fn now_ns() -> i64 {
     gibbsline::ingest::now_ns()
 }
 
 /// A refused call as the CLI reports it: what the caller got wrong (an
 /// unknown channel, a bad argument) is a usage error, exit 2, in one
 /// line; the rest keep their status.
-pub fn status_error(status: tonic::Status) -> anyhow::Error {
+pub(crate) fn status_error(status: tonic::Status) -> anyhow::Error {
     match status.code() {
         tonic::Code::NotFound | tonic::Code::InvalidArgument | tonic::Code::FailedPrecondition => {
             super::UsageError(status.message().to_string()).into()
@@ -98,7 +98,7 @@ pub fn status_error(status: tonic::Status) -> anyhow::Error {
 }
 
 /// Every channel, following ListChannels pages.
-pub async fn all_channels(conn: &Conn) -> anyhow::Result<Vec<gibbsline::pb::Channel>> {
+pub(crate) async fn all_channels(conn: &Conn) -> anyhow::Result<Vec<gibbsline::pb::Channel>> {
     use gibbsline::pb;
     let mut client = pb::channel_service_client::ChannelServiceClient::new(conn.clone());
     let mut out = Vec::new();

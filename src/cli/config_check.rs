@@ -6,7 +6,7 @@ use std::path::Path;
 
 /// The file alone: this machine's environment is not the one the file is
 /// meant for, so `GIBBSLINE_*` variables are not applied.
-pub fn run(file: &Path, no_files: bool) -> anyhow::Result<()> {
+pub(crate) fn run(file: &Path, no_files: bool) -> anyhow::Result<()> {
     let label = file.display().to_string();
     let text = std::fs::read_to_string(file).map_err(|e| UsageError(format!("{label}: {e}")))?;
     let config = gibbsline::config::load(&label, &text, &Default::default())

@@ -8,7 +8,7 @@ use gibbsline::pb;
 use gibbsline::pb::history_service_client::HistoryServiceClient;
 
 #[derive(Debug, clap::Args)]
-pub struct CyclesArgs {
+pub(crate) struct CyclesArgs {
     #[arg(long, default_value = DEFAULT_ADDR)]
     pub connect: String,
     #[arg(long)]
@@ -76,7 +76,7 @@ impl Row for pb::Cycle {
     }
 }
 
-pub async fn run(args: &CyclesArgs) -> anyhow::Result<()> {
+pub(crate) async fn run(args: &CyclesArgs) -> anyhow::Result<()> {
     let request = pb::ListCyclesRequest {
         channel_id: args.channel.clone(),
     };

@@ -16,7 +16,7 @@ use std::time::Duration;
 use tokio_stream::StreamExt;
 
 #[derive(Debug, clap::Args)]
-pub struct DemoArgs {
+pub(crate) struct DemoArgs {
     /// How long to run, e.g. 60s, 5m; Ctrl-C ends it sooner.
     #[arg(long, default_value = "60s", value_parser = super::parse_duration)]
     pub duration: Duration,
@@ -31,7 +31,7 @@ pub struct DemoArgs {
     pub listen: String,
 }
 
-pub async fn run(args: &DemoArgs) -> anyhow::Result<()> {
+pub(crate) async fn run(args: &DemoArgs) -> anyhow::Result<()> {
     if !(args.speed.is_finite() && args.speed > 0.0 && args.speed <= 10_000.0) {
         return Err(super::UsageError(format!(
             "--speed {}: must be above 0 and at most 10000",

@@ -7,7 +7,7 @@ use gibbsline::electrochem::report::EvalReport;
 use gibbsline::electrochem::{self, EvalRequest, Registry};
 
 /// Built-ins plus the chemistries of `--chemistry-file` files.
-pub fn load_registry(files: &[std::path::PathBuf]) -> anyhow::Result<Registry> {
+pub(crate) fn load_registry(files: &[std::path::PathBuf]) -> anyhow::Result<Registry> {
     let mut specs = Vec::new();
     let mut labels = Vec::new();
     for path in files {
@@ -27,7 +27,7 @@ pub fn load_registry(files: &[std::path::PathBuf]) -> anyhow::Result<Registry> {
     })?)
 }
 
-pub fn temp_k_from_flag(temp_c: f64) -> Result<f64, UsageError> {
+pub(crate) fn temp_k_from_flag(temp_c: f64) -> Result<f64, UsageError> {
     if temp_c.is_finite() && temp_c > -ZERO_CELSIUS_K {
         Ok(temp_c + ZERO_CELSIUS_K)
     } else {
@@ -37,7 +37,7 @@ pub fn temp_k_from_flag(temp_c: f64) -> Result<f64, UsageError> {
     }
 }
 
-pub fn run_eval(args: &EvalArgs) -> anyhow::Result<()> {
+pub(crate) fn run_eval(args: &EvalArgs) -> anyhow::Result<()> {
     let registry = load_registry(&args.chemistry_file)?;
     let chem = registry.get(&args.chemistry).map_err(|_| {
         UsageError(format!(
@@ -143,7 +143,7 @@ fn print_report(chem: &electrochem::Chemistry, r: &EvalReport) {
     }
 }
 
-pub fn run_chemistries(args: &ChemistriesArgs) -> anyhow::Result<()> {
+pub(crate) fn run_chemistries(args: &ChemistriesArgs) -> anyhow::Result<()> {
     let registry = load_registry(&args.chemistry_file)?;
     if args.json {
         let all: Vec<_> = registry.iter().map(|c| c.as_ref()).collect();

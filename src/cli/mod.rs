@@ -1,28 +1,28 @@
 //! Command-line definitions (stage one: flags only, no I/O) and dispatch.
 
-pub mod alerts;
-pub mod bench;
-pub mod channels;
-pub mod client;
-pub mod config_check;
-pub mod cycles;
-pub mod demo;
-pub mod eval;
-pub mod names;
-pub mod output;
-pub mod readings;
-pub mod rig;
-pub mod serve;
-pub mod simulate;
-pub mod state;
-pub mod token;
+pub(crate) mod alerts;
+pub(crate) mod bench;
+pub(crate) mod channels;
+pub(crate) mod client;
+pub(crate) mod config_check;
+pub(crate) mod cycles;
+pub(crate) mod demo;
+pub(crate) mod eval;
+pub(crate) mod names;
+pub(crate) mod output;
+pub(crate) mod readings;
+pub(crate) mod rig;
+pub(crate) mod serve;
+pub(crate) mod simulate;
+pub(crate) mod state;
+pub(crate) mod token;
 
 /// Where the client commands look for a server unless told.
-pub const DEFAULT_ADDR: &str = "127.0.0.1:50051";
+pub(crate) const DEFAULT_ADDR: &str = "127.0.0.1:50051";
 
 /// Who did an operator action and why, as every such command takes it.
 #[derive(Debug, clap::Args)]
-pub struct Signed {
+pub(crate) struct Signed {
     /// Your name, stored with the action.
     #[arg(long)]
     pub by: String,
@@ -36,7 +36,7 @@ use std::path::PathBuf;
 /// An error in what the user typed: exit code 2, one line naming the flag.
 #[derive(Debug, thiserror::Error)]
 #[error("{0}")]
-pub struct UsageError(pub String);
+pub(crate) struct UsageError(pub String);
 
 #[derive(Debug, Parser)]
 #[command(
@@ -44,13 +44,13 @@ pub struct UsageError(pub String);
     version,
     about = "Electrochemical cell readings in, thermodynamic state, SOC and alerts out"
 )]
-pub struct Cli {
+pub(crate) struct Cli {
     #[command(subcommand)]
     pub command: Command,
 }
 
 #[derive(Debug, Subcommand)]
-pub enum Command {
+pub(crate) enum Command {
     /// Thermodynamic state of one cell from a voltage, or the OCV at an SOC.
     Eval(EvalArgs),
     /// List the known chemistries with their parameters and sources.
@@ -86,7 +86,7 @@ pub enum Command {
 }
 
 #[derive(Debug, Subcommand)]
-pub enum TokenCommand {
+pub(crate) enum TokenCommand {
     /// Make a new random token; prints it once, with the [[token]] entry to paste into the config.
     New {
         /// Who will hold it (logged on denial), e.g. "bench-3 rig PC".
@@ -104,7 +104,7 @@ pub enum TokenCommand {
 }
 
 #[derive(Debug, Subcommand)]
-pub enum BenchCommand {
+pub(crate) enum BenchCommand {
     /// Sustained ingest rate, ack latency and alert latency.
     Ingest(bench::BenchIngestArgs),
     /// Per-reading cost of the pure ingest work, with and without the estimator.
@@ -112,7 +112,7 @@ pub enum BenchCommand {
 }
 
 #[derive(Debug, Args)]
-pub struct ServeArgs {
+pub(crate) struct ServeArgs {
     /// Configuration file (TOML); flags and GIBBSLINE_* variables override it.
     #[arg(long)]
     pub config: Option<PathBuf>,
@@ -140,7 +140,7 @@ pub struct ServeArgs {
 }
 
 #[derive(Debug, Subcommand)]
-pub enum ConfigCommand {
+pub(crate) enum ConfigCommand {
     /// Validate a configuration file without starting anything; the TLS
     /// files it names are read too, as a start would.
     Check {
@@ -153,7 +153,7 @@ pub enum ConfigCommand {
 }
 
 #[derive(Debug, Args)]
-pub struct EvalArgs {
+pub(crate) struct EvalArgs {
     /// Chemistry id (see `gibbsline chemistries`).
     #[arg(long)]
     pub chemistry: String,
@@ -184,7 +184,7 @@ pub struct EvalArgs {
 }
 
 #[derive(Debug, Args)]
-pub struct ChemistriesArgs {
+pub(crate) struct ChemistriesArgs {
     /// Extra chemistry definitions (TOML), may repeat.
     #[arg(long)]
     pub chemistry_file: Vec<PathBuf>,
@@ -193,7 +193,7 @@ pub struct ChemistriesArgs {
     pub json: bool,
 }
 
-pub fn dispatch(cli: Cli) -> anyhow::Result<()> {
+pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
         Command::Eval(args) => eval::run_eval(&args),
         Command::Chemistries(args) => eval::run_chemistries(&args),
@@ -222,7 +222,7 @@ fn block_on<F: std::future::Future<Output = anyhow::Result<()>>>(f: F) -> anyhow
 }
 
 /// Parses durations like 90s, 5m, 2h, 1d, 250ms (a bare number is seconds).
-pub fn parse_duration(text: &str) -> Result<std::time::Duration, UsageError> {
+pub(crate) fn parse_duration(text: &str) -> Result<std::time::Duration, UsageError> {
     let t = text.trim();
     let split = t.find(|c: char| c.is_ascii_alphabetic()).unwrap_or(t.len());
     let (num, unit) = t.split_at(split);

@@ -4,7 +4,7 @@
 use gibbsline::pb;
 
 /// An alert kind as machine outputs spell it (`end_of_charge`).
-pub fn kind_id(code: i32) -> &'static str {
+pub(crate) fn kind_id(code: i32) -> &'static str {
     match pb::AlertKind::try_from(code) {
         Ok(pb::AlertKind::EquilibriumApproach) => "equilibrium_approach",
         Ok(pb::AlertKind::EndOfCharge) => "end_of_charge",
@@ -21,12 +21,12 @@ pub fn kind_id(code: i32) -> &'static str {
 }
 
 /// An alert kind for people (`end of charge`).
-pub fn kind_label(code: i32) -> String {
+pub(crate) fn kind_label(code: i32) -> String {
     kind_id(code).replace('_', " ")
 }
 
 /// A severity as machine outputs spell it: `info`, `warning`, `critical`.
-pub fn severity_id(code: i32) -> &'static str {
+pub(crate) fn severity_id(code: i32) -> &'static str {
     match pb::Severity::try_from(code) {
         Ok(pb::Severity::Info) => "info",
         Ok(pb::Severity::Warning) => "warning",
@@ -36,7 +36,7 @@ pub fn severity_id(code: i32) -> &'static str {
 }
 
 /// A severity for people: the serious ones stand out in capitals.
-pub fn severity_label(code: i32) -> String {
+pub(crate) fn severity_label(code: i32) -> String {
     match pb::Severity::try_from(code) {
         Ok(pb::Severity::Info) => "info".into(),
         Ok(_) => severity_id(code).to_uppercase(),
@@ -44,7 +44,7 @@ pub fn severity_label(code: i32) -> String {
     }
 }
 
-pub fn state_name(code: i32) -> &'static str {
+pub(crate) fn state_name(code: i32) -> &'static str {
     match pb::ReactionState::try_from(code) {
         Ok(pb::ReactionState::Spontaneous) => "spontaneous",
         Ok(pb::ReactionState::Driven) => "driven",
@@ -54,7 +54,7 @@ pub fn state_name(code: i32) -> &'static str {
 }
 
 /// The operating mode's name, as JSON and tables show it.
-pub fn mode_name(code: i32) -> &'static str {
+pub(crate) fn mode_name(code: i32) -> &'static str {
     match pb::OperatingMode::try_from(code) {
         Ok(pb::OperatingMode::Charge) => "charge",
         Ok(pb::OperatingMode::Discharge) => "discharge",
@@ -66,7 +66,7 @@ pub fn mode_name(code: i32) -> &'static str {
     }
 }
 
-pub fn ocv_source_name(code: i32) -> &'static str {
+pub(crate) fn ocv_source_name(code: i32) -> &'static str {
     match pb::OcvSource::try_from(code) {
         Ok(pb::OcvSource::Terminal) => "terminal",
         Ok(pb::OcvSource::Rest) => "rest",
@@ -78,7 +78,7 @@ pub fn ocv_source_name(code: i32) -> &'static str {
     }
 }
 
-pub fn breach_name(code: i32) -> Option<&'static str> {
+pub(crate) fn breach_name(code: i32) -> Option<&'static str> {
     match pb::BoundBreach::try_from(code) {
         Ok(pb::BoundBreach::Reversible) => Some("reversible"),
         Ok(pb::BoundBreach::Thermoneutral) => Some("thermoneutral"),
@@ -86,7 +86,7 @@ pub fn breach_name(code: i32) -> Option<&'static str> {
     }
 }
 
-pub fn event_name(code: i32) -> &'static str {
+pub(crate) fn event_name(code: i32) -> &'static str {
     match pb::AlertEventKind::try_from(code) {
         Ok(pb::AlertEventKind::Raised) => "raised",
         Ok(pb::AlertEventKind::Cleared) => "cleared",

@@ -9,7 +9,7 @@ use serde::Serialize;
 use std::io::Write;
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
-pub enum Format {
+pub(crate) enum Format {
     Table,
     Csv,
     Json,
@@ -17,7 +17,7 @@ pub enum Format {
 
 /// For commands whose rows do not fit CSV's one flat line (prose state).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
-pub enum TableOrJson {
+pub(crate) enum TableOrJson {
     Table,
     Json,
 }
@@ -33,21 +33,21 @@ impl From<TableOrJson> for Format {
 
 /// One table column: heading and width; numbers align right.
 #[derive(Clone, Copy)]
-pub struct Col {
+pub(crate) struct Col {
     pub heading: &'static str,
     pub width: usize,
     pub right: bool,
 }
 
 impl Col {
-    pub const fn left(heading: &'static str, width: usize) -> Col {
+    pub(crate) const fn left(heading: &'static str, width: usize) -> Col {
         Col {
             heading,
             width,
             right: false,
         }
     }
-    pub const fn right(heading: &'static str, width: usize) -> Col {
+    pub(crate) const fn right(heading: &'static str, width: usize) -> Col {
         Col {
             heading,
             width,
@@ -57,7 +57,7 @@ impl Col {
 }
 
 /// A row any format can render.
-pub trait Row: Serialize {
+pub(crate) trait Row: Serialize {
     /// CSV column names, in the order the row serializes its fields
     /// (nested structs flatten in field order). Columns are only ever
     /// added at the end: scripts index them.
@@ -72,7 +72,7 @@ pub trait Row: Serialize {
 /// event around its alert) names its own columns first and then the
 /// embedded row's, without spelling them twice. `N` must be `A + B`, and
 /// `b` not empty.
-pub const fn concat<T: Copy, const A: usize, const B: usize, const N: usize>(
+pub(crate) const fn concat<T: Copy, const A: usize, const B: usize, const N: usize>(
     a: [T; A],
     b: [T; B],
 ) -> [T; N] {
@@ -92,7 +92,7 @@ pub const fn concat<T: Copy, const A: usize, const B: usize, const N: usize>(
 
 /// Prints rows as a whole list: a JSON array, CSV with its header, or a
 /// table with its heading line.
-pub fn print_all<R: Row>(rows: &[R], format: Format) -> anyhow::Result<()> {
+pub(crate) fn print_all<R: Row>(rows: &[R], format: Format) -> anyhow::Result<()> {
     let stdout = std::io::stdout();
     let mut out = stdout.lock();
     match format {
@@ -122,20 +122,20 @@ pub fn print_all<R: Row>(rows: &[R], format: Format) -> anyhow::Result<()> {
 
 /// Prints rows one at a time as they come (JSON Lines for JSON); the
 /// header or heading goes before the first.
-pub struct RowStream {
+pub(crate) struct RowStream {
     format: Format,
     started: bool,
 }
 
 impl RowStream {
-    pub fn new(format: Format) -> RowStream {
+    pub(crate) fn new(format: Format) -> RowStream {
         RowStream {
             format,
             started: false,
         }
     }
 
-    pub fn row<R: Row>(&mut self, row: &R) -> anyhow::Result<()> {
+    pub(crate) fn row<R: Row>(&mut self, row: &R) -> anyhow::Result<()> {
         let stdout = std::io::stdout();
         let mut out = stdout.lock();
         let first = !std::mem::replace(&mut self.started, true);
@@ -224,20 +224,20 @@ fn aligned(cols: &[Col], cells: &[String]) -> String {
 }
 
 /// `-` for an unset value in a table; `digits` after the point.
-pub fn fixed(v: Option<f64>, digits: usize) -> String {
+pub(crate) fn fixed(v: Option<f64>, digits: usize) -> String {
     v.map(|x| format!("{x:.digits$}"))
         .unwrap_or_else(|| "-".into())
 }
 
 /// A fraction as a percentage for tables.
-pub fn percent(v: Option<f64>, digits: usize) -> String {
+pub(crate) fn percent(v: Option<f64>, digits: usize) -> String {
     fixed(v.map(|x| x * 100.0), digits)
 }
 
 /// The header the csv crate derives from a flat row's field names, to
 /// hold a row's `CSV_HEADER` to its fields in tests.
 #[cfg(test)]
-pub fn derived_csv_header<R: Row>(row: &R) -> Vec<String> {
+pub(crate) fn derived_csv_header<R: Row>(row: &R) -> Vec<String> {
     let mut w = csv::WriterBuilder::new()
         .has_headers(true)
         .from_writer(Vec::new());

@@ -12,7 +12,7 @@ use std::time::Duration;
 use tokio_stream::StreamExt;
 
 #[derive(Debug, clap::Args)]
-pub struct ReadingsArgs {
+pub(crate) struct ReadingsArgs {
     #[arg(long, default_value = DEFAULT_ADDR)]
     pub connect: String,
     #[arg(long)]
@@ -36,7 +36,7 @@ pub struct ReadingsArgs {
 const DAY_NS: i64 = 86_400_000_000_000;
 
 /// Parses `--since`/`--until`: unix seconds (may be fractional) or an age.
-pub fn parse_time(flag: &str, text: &str, now_ns: i64) -> Result<i64, UsageError> {
+pub(crate) fn parse_time(flag: &str, text: &str, now_ns: i64) -> Result<i64, UsageError> {
     if let Ok(secs) = text.parse::<f64>()
         && secs.is_finite()
         && secs >= 0.0
@@ -55,7 +55,7 @@ pub fn parse_time(flag: &str, text: &str, now_ns: i64) -> Result<i64, UsageError
 /// One stored reading; the JSON names are the field names, the CSV header
 /// carries units.
 #[derive(Serialize)]
-pub struct ReadingOut {
+pub(crate) struct ReadingOut {
     seq: u64,
     time_unix_ns: i64,
     volts: f64,
@@ -164,7 +164,7 @@ impl Row for ReadingOut {
 
 /// One bucket of readings.
 #[derive(Serialize)]
-pub struct BucketOut {
+pub(crate) struct BucketOut {
     start_unix_ns: i64,
     count: u64,
     volts_min: f64,
@@ -238,7 +238,7 @@ fn window(args: &ReadingsArgs, now: i64) -> Result<(i64, i64), UsageError> {
     Ok((at("--since", &args.since)?, at("--until", &args.until)?))
 }
 
-pub async fn run(args: &ReadingsArgs) -> anyhow::Result<()> {
+pub(crate) async fn run(args: &ReadingsArgs) -> anyhow::Result<()> {
     let now = client::now_ns();
     let (start, end) = window(args, now)?;
     let mut history = HistoryServiceClient::new(client::connect(&args.connect).await?)

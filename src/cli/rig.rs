@@ -17,13 +17,13 @@ use tokio_stream::StreamExt;
 
 /// How a simulated channel is driven.
 #[derive(Debug, Clone)]
-pub enum Drive {
+pub(crate) enum Drive {
     Cycling(CycleSchedule),
     /// Constant charge-positive current (an electrolyser held at load).
     Constant(f64),
 }
 
-pub struct SimChannel {
+pub(crate) struct SimChannel {
     pub def: pb::Channel,
     pub chemistry: Arc<Chemistry>,
     pub cell: SimCell,
@@ -36,7 +36,7 @@ pub struct SimChannel {
 
 /// The Harbour Lane bench: an invented teaching-and-test bench with three
 /// flow and battery cells and a two-cell electrolyser stack.
-pub fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
+pub(crate) fn harbour_lane(count: usize, seed: u64) -> Vec<SimChannel> {
     let registry = Registry::builtin();
     harbour_lane_specs()
         .into_iter()
@@ -177,7 +177,7 @@ fn sim_channel_def(
 /// clock of that channel pauses, so a long outage makes no gap.
 const MAX_PENDING: usize = 200_000;
 
-pub struct RigOptions {
+pub(crate) struct RigOptions {
     pub speed: f64,
     pub readings_per_sim_s: f64,
     /// Stop after this much wall time.
@@ -187,14 +187,14 @@ pub struct RigOptions {
 
 /// Counters the caller can watch.
 #[derive(Default)]
-pub struct RigStats {
+pub(crate) struct RigStats {
     pub sent: AtomicU64,
     pub acked: AtomicU64,
     pub reconnects: AtomicU64,
     pub stop: AtomicBool,
 }
 
-pub async fn define_channels(addr: &str, channels: &[SimChannel]) -> anyhow::Result<()> {
+pub(crate) async fn define_channels(addr: &str, channels: &[SimChannel]) -> anyhow::Result<()> {
     let mut client = ChannelServiceClient::new(client::connect(addr).await?);
     for ch in channels {
         client
@@ -207,7 +207,7 @@ pub async fn define_channels(addr: &str, channels: &[SimChannel]) -> anyhow::Res
 }
 
 /// Streams until the duration passes or `stats.stop` is set.
-pub async fn run(
+pub(crate) async fn run(
     addr: String,
     mut channels: Vec<SimChannel>,
     opts: RigOptions,

@@ -5,7 +5,7 @@ use super::{ServeArgs, UsageError};
 use gibbsline::config::{Flags, ServerConfig};
 use std::path::Path;
 
-pub fn run(args: &ServeArgs) -> anyhow::Result<()> {
+pub(crate) fn run(args: &ServeArgs) -> anyhow::Result<()> {
     let config = load_config(args.config.as_deref(), &flags_of(args)?)?;
     if args.print_config {
         print!("{}", toml::to_string(&config)?);
@@ -38,7 +38,7 @@ pub fn run(args: &ServeArgs) -> anyhow::Result<()> {
 
 /// Reads a config file (or none) and resolves it with the environment's
 /// `GIBBSLINE_*` variables and the given flags: the one validated config.
-pub fn load_config(path: Option<&Path>, flags: &Flags) -> anyhow::Result<ServerConfig> {
+pub(crate) fn load_config(path: Option<&Path>, flags: &Flags) -> anyhow::Result<ServerConfig> {
     let env: std::collections::BTreeMap<String, String> = std::env::vars()
         .filter(|(k, _)| k.starts_with("GIBBSLINE_"))
         .collect();

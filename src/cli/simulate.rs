@@ -5,7 +5,7 @@ use super::{DEFAULT_ADDR, UsageError, rig};
 use std::time::Duration;
 
 #[derive(Debug, clap::Subcommand)]
-pub enum RigCommand {
+pub(crate) enum RigCommand {
     /// Stream the simulated bench to a server; resumes after restarts.
     Simulate {
         #[arg(long, default_value = DEFAULT_ADDR)]
@@ -21,7 +21,7 @@ pub enum RigCommand {
     },
 }
 
-pub async fn run(cmd: &RigCommand) -> anyhow::Result<()> {
+pub(crate) async fn run(cmd: &RigCommand) -> anyhow::Result<()> {
     let RigCommand::Simulate {
         connect,
         channels,

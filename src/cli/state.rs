@@ -10,7 +10,7 @@ use gibbsline::pb::history_service_client::HistoryServiceClient;
 use serde::Serialize;
 
 #[derive(Debug, clap::Args)]
-pub struct StateArgs {
+pub(crate) struct StateArgs {
     #[arg(long, default_value = DEFAULT_ADDR)]
     pub connect: String,
     /// One channel; all when omitted.
@@ -240,7 +240,7 @@ fn hydrogen_text(h: &pb::HydrogenFigures) -> String {
     )
 }
 
-pub async fn run(args: &StateArgs) -> anyhow::Result<()> {
+pub(crate) async fn run(args: &StateArgs) -> anyhow::Result<()> {
     let conn = client::connect(&args.connect).await?;
     let ids = match &args.channel {
         Some(id) => vec![id.clone()],

@@ -3,7 +3,7 @@
 
 use super::{TokenCommand, UsageError};
 
-pub fn run(cmd: &TokenCommand) -> anyhow::Result<()> {
+pub(crate) fn run(cmd: &TokenCommand) -> anyhow::Result<()> {
     use gibbsline::auth::{Role, TokenSpec, sha256_hex};
     match cmd {
         TokenCommand::New {

@@ -53,6 +53,7 @@ pub fn builtin_files() -> impl Iterator<Item = (&'static str, &'static str)> {
     FILES.into_iter()
 }
 
+/// Every built-in chemistry as written in its file, not yet validated.
 pub fn builtin_specs() -> Vec<ChemistrySpec> {
     FILES
         .iter()

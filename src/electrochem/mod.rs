@@ -4,6 +4,8 @@
 //! definitions and SOC models. It performs no I/O, holds no clock and never
 //! touches async code; the server, the store and the CLI all call in here so
 //! that one reading gives the same answer everywhere.
+// Item docs here are still being written (DEVELOPERS.md, "Documentation").
+#![allow(missing_docs)]
 
 pub mod builtin;
 pub mod chemistry;

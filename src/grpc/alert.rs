@@ -12,8 +12,9 @@ use std::sync::Arc;
 use tokio_stream::StreamExt;
 use tonic::{Request, Response, Status};
 
+/// `AlertService`: live alerts with replay, the stored list, acknowledgement.
 pub struct AlertApi {
-    pub hub: Arc<Hub>,
+    pub(super) hub: Arc<Hub>,
 }
 
 #[tonic::async_trait]

@@ -131,6 +131,7 @@ pub struct AuthLayer {
 }
 
 impl AuthLayer {
+    /// Checks every call against `tokens` (an empty table: an open server).
     pub fn new(tokens: TokenTable) -> AuthLayer {
         AuthLayer {
             tokens: Arc::new(tokens),
@@ -148,6 +149,8 @@ impl<S> tower_layer::Layer<S> for AuthLayer {
     }
 }
 
+/// The service [`AuthLayer`] wraps: refuses or passes each call, with the
+/// caller attached to the request for the handler.
 #[derive(Clone)]
 pub struct Authorize<S> {
     inner: S,

@@ -11,8 +11,9 @@ use tonic::{Request, Response, Status};
 /// stays well inside the 16 MiB message limit.
 const MAX_CHANNELS_PER_PAGE: usize = 1000;
 
+/// `ChannelService`: define channels and their rules, anchor SOC, reset a timeline.
 pub struct ChannelApi {
-    pub hub: Arc<Hub>,
+    pub(super) hub: Arc<Hub>,
 }
 
 #[tonic::async_trait]

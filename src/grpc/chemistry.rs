@@ -8,8 +8,9 @@ use crate::pb;
 use std::sync::Arc;
 use tonic::{Request, Response, Status};
 
+/// `ChemistryService`: the chemistries this server knows, and one-off evaluation.
 pub struct ChemistryApi {
-    pub hub: Arc<Hub>,
+    pub(super) hub: Arc<Hub>,
 }
 
 #[tonic::async_trait]

@@ -8,6 +8,8 @@ use tonic::Status;
 use tonic::codec::{BufferSettings, Codec, DecodeBuf, Decoder};
 use tonic_prost::{ProstCodec, ProstDecoder, ProstEncoder};
 
+/// prost's codec with a decoder that answers a malformed message with
+/// INVALID_ARGUMENT (prost's own says INTERNAL).
 pub struct StrictCodec<T, U> {
     inner: ProstCodec<T, U>,
 }
@@ -42,6 +44,7 @@ where
     }
 }
 
+/// The decoding half of [`StrictCodec`].
 pub struct StrictDecoder<U> {
     inner: ProstDecoder<U>,
     _message: PhantomData<U>,

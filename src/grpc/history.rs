@@ -17,15 +17,18 @@ use tonic::{Request, Response, Status};
 /// QueryReadings calls producing pages at once; more wait their turn.
 pub const MAX_CONCURRENT_QUERIES: usize = 32;
 
+/// `HistoryService`: stored readings, buckets, a channel's state and its cycles.
 pub struct HistoryApi {
-    pub hub: Arc<Hub>,
-    pub max_query_rows: u32,
+    pub(super) hub: Arc<Hub>,
+    pub(super) max_query_rows: u32,
     /// QueryReadings responses being produced at once, server-wide: with
     /// each holding at most a few pages, this bounds query memory.
-    pub queries: Arc<tokio::sync::Semaphore>,
+    queries: Arc<tokio::sync::Semaphore>,
 }
 
 impl HistoryApi {
+    /// Answers from `hub`'s store; one QueryReadings call returns at most
+    /// `max_query_rows` rows.
     pub fn new(hub: Arc<Hub>, max_query_rows: u32) -> HistoryApi {
         HistoryApi {
             hub,

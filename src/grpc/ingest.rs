@@ -12,10 +12,11 @@ use std::sync::Arc;
 use tokio_stream::StreamExt;
 use tonic::{Request, Response, Status, Streaming};
 
+/// `IngestService`: the rigs' readings stream and its resume point.
 pub struct IngestApi {
-    pub hub: Arc<Hub>,
-    pub limits: Limits,
-    pub slots: ClientSlots,
+    pub(super) hub: Arc<Hub>,
+    pub(super) limits: Limits,
+    pub(super) slots: ClientSlots,
 }
 
 #[tonic::async_trait]

@@ -52,6 +52,7 @@ impl From<StoreError> for Status {
     }
 }
 
+/// INVALID_ARGUMENT saying `field = value: reason`, as every refusal does.
 pub fn invalid(field: &str, value: impl std::fmt::Display, reason: &str) -> Status {
     Status::invalid_argument(format!("{field} = {value}: {reason}"))
 }

@@ -12,13 +12,21 @@ use crate::channel::{MAX_READING_ABS_AMPS, MAX_READING_TEMP_C, MIN_READING_TEMP_
 use crate::estimator::{self, EstimatorError, EstimatorInput};
 use crate::store::{ReadingRow, flags};
 
+/// What one batch adds to the store, all of it written in one transaction.
 pub struct DerivedBatch {
+    /// The channel's row key in the store.
     pub channel_key: i64,
+    /// The run its readings belong to.
     pub run_id: i64,
+    /// Fresh readings (past the front): inserted.
     pub rows: Vec<ReadingRow>,
+    /// Late readings and resends: inserted unless already stored.
     pub maybe_dup: Vec<ReadingRow>,
+    /// Alerts raised and cleared by these readings.
     pub changes: Vec<AlertChange>,
+    /// Cycles that closed (or changed) with these readings.
     pub cycles: Vec<estimator::CycleRecord>,
+    /// The estimator after the batch, when the front moved.
     pub estimator: Option<writer::EstimatorSnapshot>,
 }
 

@@ -33,7 +33,9 @@ pub struct Hub {
 /// The other ends of a hub's queues, for the wiring: the writer takes the
 /// jobs, and sending `true` on `shutdown` begins the ordered stop.
 pub struct HubHandles {
+    /// Write jobs, for the one writer task.
     pub jobs: mpsc::Receiver<Job>,
+    /// Send `true` to begin the ordered stop.
     pub shutdown: watch::Sender<bool>,
 }
 
@@ -53,6 +55,7 @@ pub async fn stopped(mut stop: watch::Receiver<bool>) {
     }
 }
 
+/// Wall-clock time, ns since the Unix epoch (0 if the clock is before it).
 pub fn now_ns() -> i64 {
     std::time::SystemTime::now()
         .duration_since(std::time::UNIX_EPOCH)
@@ -93,6 +96,7 @@ impl Hub {
         Ok((Arc::new(hub), handles))
     }
 
+    /// The database every channel is stored in.
     pub fn store(&self) -> &Store {
         &self.store
     }
@@ -102,6 +106,7 @@ impl Hub {
         self.registry.read().expect("registry poisoned").clone()
     }
 
+    /// The server's counters.
     pub fn metrics(&self) -> &Arc<Metrics> {
         &self.metrics
     }
@@ -121,6 +126,7 @@ impl Hub {
         self.shutdown.clone()
     }
 
+    /// Whether the server has begun to stop (new streams are refused).
     pub fn is_shutting_down(&self) -> bool {
         *self.shutdown.borrow()
     }
@@ -193,6 +199,7 @@ impl Hub {
             .committed_seq)
     }
 
+    /// A defined channel's live state; unknown ids are NOT_FOUND.
     pub fn channel(&self, channel_id: &str) -> Result<Arc<Mutex<ChannelRuntime>>, IngestError> {
         self.channels
             .read()

@@ -9,6 +9,8 @@
 //!
 //! Per-channel state sits behind a std `Mutex`: it is held only for the
 //! pure computation of one batch, never across an `.await`.
+// Item docs here are still being written (DEVELOPERS.md, "Documentation").
+#![allow(missing_docs)]
 
 pub mod derive;
 pub mod hub;

@@ -4,6 +4,7 @@
 
 use std::path::Path;
 
+/// Why the database would not take a write, as far as SQLite says.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum StorageFault {
     /// SQLITE_FULL: the disk or the file system quota has no room.
@@ -65,7 +66,7 @@ impl StorageFault {
 
 /// The fault behind a sqlx error, if it is one of the storage kind (a
 /// constraint or a malformed statement is not: those are bugs or input).
-pub fn of_sqlx(e: &sqlx::Error) -> Option<StorageFault> {
+pub(crate) fn of_sqlx(e: &sqlx::Error) -> Option<StorageFault> {
     match e {
         sqlx::Error::Database(db) => {
             let code: i64 = db.code()?.parse().ok()?;
@@ -87,7 +88,7 @@ pub fn of_sqlx(e: &sqlx::Error) -> Option<StorageFault> {
 }
 
 /// (device, inode) of a file, where the platform has them.
-pub fn file_identity(path: &Path) -> Option<(u64, u64)> {
+pub(crate) fn file_identity(path: &Path) -> Option<(u64, u64)> {
     #[cfg(unix)]
     {
         use std::os::unix::fs::MetadataExt;
@@ -101,7 +102,7 @@ pub fn file_identity(path: &Path) -> Option<(u64, u64)> {
 }
 
 /// Fails with `Missing` when the file at `path` is not the one opened.
-pub fn check_identity(path: &Path, opened: Option<(u64, u64)>) -> Result<(), StorageFault> {
+pub(crate) fn check_identity(path: &Path, opened: Option<(u64, u64)>) -> Result<(), StorageFault> {
     match (opened, file_identity(path)) {
         (Some(was), Some(now)) if was != now => Err(StorageFault::Missing),
         (Some(_), None) => Err(StorageFault::Missing),

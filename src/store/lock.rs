@@ -10,7 +10,7 @@ use std::path::{Path, PathBuf};
 use std::sync::Mutex;
 
 #[derive(Debug)]
-pub struct DbLock {
+pub(crate) struct DbLock {
     path: PathBuf,
     file: Mutex<Option<File>>,
 }
@@ -22,7 +22,7 @@ fn lock_path(db: &Path) -> PathBuf {
 }
 
 impl DbLock {
-    pub fn acquire(db: &Path) -> Result<DbLock, StoreError> {
+    pub(crate) fn acquire(db: &Path) -> Result<DbLock, StoreError> {
         let path = lock_path(db);
         let mut file = File::options()
             .read(true)
@@ -57,7 +57,7 @@ impl DbLock {
     }
 
     /// Rewrites the holder line: pid, and the address once known.
-    pub fn note(&self, listen: &str) {
+    pub(crate) fn note(&self, listen: &str) {
         let mut guard = self.file.lock().expect("lock file mutex poisoned");
         let Some(file) = guard.as_mut() else { return };
         let mut text = format!("pid {}", std::process::id());
@@ -74,7 +74,7 @@ impl DbLock {
     }
 
     /// Drops the lock (closing the file releases it).
-    pub fn release(&self) {
+    pub(crate) fn release(&self) {
         self.file.lock().expect("lock file mutex poisoned").take();
     }
 }

@@ -13,12 +13,12 @@ use std::process::{Child, Command, Stdio};
 use std::time::Duration;
 use tokio_stream::StreamExt;
 
-pub fn free_addr() -> String {
+pub(crate) fn free_addr() -> String {
     let l = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
     l.local_addr().unwrap().to_string()
 }
 
-pub fn spawn_server(db: &Path, addr: &str) -> Child {
+pub(crate) fn spawn_server(db: &Path, addr: &str) -> Child {
     Command::new(env!("CARGO_BIN_EXE_gibbsline"))
         .args(["serve", "--listen", addr, "--durability", "full", "--db"])
         .arg(db)
@@ -29,7 +29,7 @@ pub fn spawn_server(db: &Path, addr: &str) -> Child {
         .unwrap()
 }
 
-pub async fn connect(addr: &str) -> tonic::transport::Channel {
+pub(crate) async fn connect(addr: &str) -> tonic::transport::Channel {
     for _ in 0..200 {
         if let Ok(c) = tonic::transport::Channel::from_shared(format!("http://{addr}"))
             .unwrap()

@@ -10,7 +10,7 @@ use std::sync::atomic::{AtomicU64, Ordering};
 use std::time::{Duration, Instant};
 use tokio_stream::StreamExt;
 
-pub fn peak_rss_mib(pid: u32) -> f64 {
+pub(crate) fn peak_rss_mib(pid: u32) -> f64 {
     let status = std::fs::read_to_string(format!("/proc/{pid}/status")).unwrap();
     let kib: f64 = status
         .lines()

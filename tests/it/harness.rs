@@ -6,31 +6,34 @@ use tokio::sync::oneshot;
 use tonic::transport::Channel;
 
 /// Every default, on `db`, with the durability the tests run at.
-pub fn config_for(db: &Path) -> ServerConfig {
+pub(crate) fn config_for(db: &Path) -> ServerConfig {
     ServerConfig::for_db(db, gibbsline::store::Durability::Normal)
 }
 
-pub struct Server {
+pub(crate) struct Server {
     pub addr: std::net::SocketAddr,
     stop: Option<oneshot::Sender<()>>,
     task: tokio::task::JoinHandle<Result<(), app::AppError>>,
 }
 
 impl Server {
-    pub async fn start(db: &Path) -> Server {
+    pub(crate) async fn start(db: &Path) -> Server {
         Server::start_on(db, "127.0.0.1:0").await
     }
 
-    pub async fn start_on(db: &Path, addr: &str) -> Server {
+    pub(crate) async fn start_on(db: &Path, addr: &str) -> Server {
         Server::start_with(config_for(db), addr).await
     }
 
-    pub async fn start_with(config: ServerConfig, addr: &str) -> Server {
+    pub(crate) async fn start_with(config: ServerConfig, addr: &str) -> Server {
         let listener = tokio::net::TcpListener::bind(addr).await.unwrap();
         Server::start_with_listeners(config, app::Listeners::grpc_only(listener)).await
     }
 
-    pub async fn start_with_listeners(config: ServerConfig, listeners: app::Listeners) -> Server {
+    pub(crate) async fn start_with_listeners(
+        config: ServerConfig,
+        listeners: app::Listeners,
+    ) -> Server {
         let addr = listeners.grpc.local_addr().unwrap();
         let (tx, rx) = oneshot::channel::<()>();
         let task = tokio::spawn(app::run(config, listeners, async move {
@@ -43,7 +46,7 @@ impl Server {
         }
     }
 
-    pub async fn channel(&self) -> Channel {
+    pub(crate) async fn channel(&self) -> Channel {
         for _ in 0..100 {
             if let Ok(c) = Channel::from_shared(format!("http://{}", self.addr))
                 .unwrap()
@@ -57,26 +60,26 @@ impl Server {
         panic!("server did not come up");
     }
 
-    pub async fn stop(mut self) {
+    pub(crate) async fn stop(mut self) {
         let _ = self.stop.take().unwrap().send(());
         self.task.await.unwrap().unwrap();
     }
 }
 
-pub fn temp_db() -> (tempfile::TempDir, PathBuf) {
+pub(crate) fn temp_db() -> (tempfile::TempDir, PathBuf) {
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("test.db");
     (dir, path)
 }
 
-pub fn now_ns() -> i64 {
+pub(crate) fn now_ns() -> i64 {
     std::time::SystemTime::now()
         .duration_since(std::time::UNIX_EPOCH)
         .unwrap()
         .as_nanos() as i64
 }
 
-pub fn channel_def(id: &str, chemistry: &str) -> pb::Channel {
+pub(crate) fn channel_def(id: &str, chemistry: &str) -> pb::Channel {
     pb::Channel {
         channel_id: id.into(),
         chemistry_id: chemistry.into(),
@@ -88,7 +91,7 @@ pub fn channel_def(id: &str, chemistry: &str) -> pb::Channel {
     }
 }
 
-pub fn reading(seq: u64, time_unix_ns: i64, volts: f64, amps: Option<f64>) -> pb::Reading {
+pub(crate) fn reading(seq: u64, time_unix_ns: i64, volts: f64, amps: Option<f64>) -> pb::Reading {
     pb::Reading {
         seq,
         time_unix_ns,
@@ -99,7 +102,7 @@ pub fn reading(seq: u64, time_unix_ns: i64, volts: f64, amps: Option<f64>) -> pb
 }
 
 /// Every stored reading of a channel (up to ten million), all pages, in time order.
-pub async fn stored_readings(
+pub(crate) async fn stored_readings(
     history: &mut pb::history_service_client::HistoryServiceClient<Channel>,
     channel: &str,
 ) -> Vec<pb::StoredReading> {
@@ -121,7 +124,7 @@ pub async fn stored_readings(
 }
 
 /// Sends batches on one stream and returns their acks, in order.
-pub async fn send_batches(
+pub(crate) async fn send_batches(
     client: &mut pb::ingest_service_client::IngestServiceClient<Channel>,
     batches: Vec<pb::ReadingBatch>,
 ) -> Vec<pb::BatchAck> {
@@ -141,7 +144,7 @@ pub async fn send_batches(
 }
 
 /// Defines a channel (see [`channel_def`]) through the real API.
-pub async fn put_channel(ch: &Channel, def: pb::Channel) {
+pub(crate) async fn put_channel(ch: &Channel, def: pb::Channel) {
     pb::channel_service_client::ChannelServiceClient::new(ch.clone())
         .put_channel(pb::PutChannelRequest { channel: Some(def) })
         .await

@@ -21,6 +21,7 @@ fn kind_to_pb(k: AlertKind) -> i32 {
     }) as i32
 }
 
+/// A stored alert as the wire has it.
 pub fn alert_to_pb(a: &AlertRow) -> pb::Alert {
     pb::Alert {
         alert_id: a.alert_id,
@@ -42,6 +43,7 @@ pub fn alert_to_pb(a: &AlertRow) -> pb::Alert {
     }
 }
 
+/// One feed event (raised, cleared, acknowledged) as WatchAlerts sends it.
 pub fn event_to_pb(e: &AlertEvent) -> pb::WatchAlertsResponse {
     pb::WatchAlertsResponse {
         event: match e.kind {
@@ -79,6 +81,7 @@ fn threshold_from_pb(name: &str, t: Option<pb::Threshold>) -> Result<Threshold, 
     })
 }
 
+/// A channel's alert rules as the wire has them.
 pub fn rules_to_pb(r: &AlertRules) -> pb::AlertRules {
     pb::AlertRules {
         equilibrium_delta_g_kj_per_mol: Some(threshold_to_pb(&r.equilibrium_delta_g_kj_per_mol)),
@@ -100,6 +103,8 @@ pub fn rules_to_pb(r: &AlertRules) -> pb::AlertRules {
     }
 }
 
+/// Rules off the wire, validated; a missing threshold is refused naming it,
+/// a missing newer rule takes its default.
 pub fn rules_from_pb(r: pb::AlertRules) -> Result<AlertRules, Status> {
     let rules = AlertRules {
         equilibrium_delta_g_kj_per_mol: threshold_from_pb(

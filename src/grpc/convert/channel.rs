@@ -21,6 +21,7 @@ impl From<&pb::Reading> for RawReading {
     }
 }
 
+/// The instrument's sign convention; UNSPECIFIED is refused, not guessed.
 pub fn sign_from_pb(code: i32) -> Result<CurrentSign, Status> {
     match pb::CurrentSign::try_from(code) {
         Ok(pb::CurrentSign::ChargePositive) => Ok(CurrentSign::ChargePositive),
@@ -65,6 +66,7 @@ pub fn channel_from_pb(
     })
 }
 
+/// A channel definition as the wire has it, with its current run.
 pub fn channel_to_pb(def: &ChannelDef, run_id: i64) -> pb::Channel {
     pb::Channel {
         channel_id: def.channel_id.clone(),

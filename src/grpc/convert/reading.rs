@@ -8,6 +8,7 @@ use crate::estimator::{CycleRecord, OcvSource};
 use crate::pb;
 use crate::store::{ReadingRow, RunRow, flags};
 
+/// Spontaneous, driven or at equilibrium, as the wire's enum code.
 pub fn state_to_pb(s: electrochem::ReactionState) -> i32 {
     match s {
         electrochem::ReactionState::Spontaneous => pb::ReactionState::Spontaneous as i32,
@@ -174,6 +175,7 @@ pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading
     }
 }
 
+/// One charge–discharge cycle of run `run_id` as the wire has it.
 pub fn cycle_to_pb(run_id: i64, c: &CycleRecord) -> pb::Cycle {
     pb::Cycle {
         run_id: run_id as u64,
