@@ -90,13 +90,7 @@ pub async fn run(
         jobs: writer_rx,
         shutdown: shutdown_tx,
     } = handles;
-    for entry in config.channel {
-        let id = entry.def.channel_id.clone();
-        hub.put_channel(entry.def).await?;
-        if let Some(rules) = entry.rules {
-            hub.put_rules(&id, rules).await?;
-        }
-    }
+    put_configured(&hub, config.channel).await?;
     let metrics_task =
         metrics_listener.map(|l| tokio::spawn(crate::http::serve_metrics(l, hub.clone())));
     let (writer_stop_tx, writer_stop_rx) = tokio::sync::watch::channel(false);
@@ -150,6 +144,22 @@ pub async fn run(
     drop(hub);
     flush_and_close(writer_task, store, shutdown_budget / 2).await;
     result.map_err(AppError::from)
+}
+
+/// The config's channels (and rules), put at every start: the file is
+/// the truth for what it defines.
+async fn put_configured(
+    hub: &Hub,
+    channels: Vec<crate::config::ChannelEntry>,
+) -> Result<(), AppError> {
+    for entry in channels {
+        let id = entry.def.channel_id.clone();
+        hub.put_channel(entry.def).await?;
+        if let Some(rules) = entry.rules {
+            hub.put_rules(&id, rules).await?;
+        }
+    }
+    Ok(())
 }
 
 /// The whole server's health and the ingest service's, together.

@@ -31,14 +31,13 @@ pub(crate) struct DemoArgs {
     pub listen: String,
 }
 
-pub(crate) async fn run(args: &DemoArgs) -> anyhow::Result<()> {
-    if !(args.speed.is_finite() && args.speed > 0.0 && args.speed <= 10_000.0) {
-        return Err(super::UsageError(format!(
-            "--speed {}: must be above 0 and at most 10000",
-            args.speed
-        ))
-        .into());
-    }
+type ServerTask = tokio::task::JoinHandle<Result<(), gibbsline::app::AppError>>;
+
+/// The demo's own server on embedded SQLite: its address, what stops it,
+/// and its task.
+async fn start_server(
+    args: &DemoArgs,
+) -> anyhow::Result<(String, tokio::sync::oneshot::Sender<()>, ServerTask)> {
     let listener = tokio::net::TcpListener::bind(&args.listen)
         .await
         .map_err(|e| {
@@ -55,6 +54,18 @@ pub(crate) async fn run(args: &DemoArgs) -> anyhow::Result<()> {
     let server = tokio::spawn(gibbsline::app::run(config, listeners, async move {
         let _ = stop_rx.await;
     }));
+    Ok((addr, stop_tx, server))
+}
+
+pub(crate) async fn run(args: &DemoArgs) -> anyhow::Result<()> {
+    if !(args.speed.is_finite() && args.speed > 0.0 && args.speed <= 10_000.0) {
+        return Err(super::UsageError(format!(
+            "--speed {}: must be above 0 and at most 10000",
+            args.speed
+        ))
+        .into());
+    }
+    let (addr, stop_tx, server) = start_server(args).await?;
 
     let channels = rig::harbour_lane(4, 11);
     let ids: Vec<String> = channels.iter().map(|c| c.def.channel_id.clone()).collect();
