@@ -29,6 +29,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         // The CLI prints these as they come off the wire, so its JSON and
         // CSV carry the proto's field names and nothing to keep in step.
         .type_attribute("gibbsline.v1.Cycle", "#[derive(serde::Serialize)]")
+        .type_attribute("gibbsline.v1.ChemistryInfo", "#[derive(serde::Serialize)]")
         .compile_fds(fds)?;
     Ok(())
 }

@@ -28,13 +28,17 @@ pub struct ChannelDef {
     /// Temperature assumed for readings that carry none, °C.
     #[serde(default = "default_temp_c")]
     pub default_temp_c: f64,
-    /// Per-cell plausibility window, V.
-    pub min_volts: f64,
+    /// Lower end of the per-cell plausibility window, V: a reading below
+    /// it is a broken input and refused. (`min_volts` is read for one
+    /// release.)
+    #[serde(alias = "min_volts")]
+    pub plausible_min_cell_volts: f64,
     /// Upper end of the per-cell plausibility window, V.
-    pub max_volts: f64,
+    #[serde(alias = "max_volts")]
+    pub plausible_max_cell_volts: f64,
     /// E° at 298.15 K for this channel instead of the chemistry's, V.
-    #[serde(default)]
-    pub e_standard_override_v: Option<f64>,
+    #[serde(default, alias = "e_standard_override_v")]
+    pub e_standard_298_override_v: Option<f64>,
     /// Known stack resistance for V − I·R under load, Ω; unset: estimated
     /// from current steps.
     #[serde(default)]
@@ -135,8 +139,8 @@ impl ChannelDef {
             gas.validate()
                 .map_err(|(field, v, reason)| err(&format!("gas.{field}"), shown(v), reason))?;
         }
-        match self.e_standard_override_v {
-            Some(e) if !e.is_finite() => Err(err("e_standard_override_v", e, "must be finite")),
+        match self.e_standard_298_override_v {
+            Some(e) if !e.is_finite() => Err(err("e_standard_298_override_v", e, "must be finite")),
             Some(e) => Ok(Arc::new(chemistry.with_e_standard_override(e))),
             None => Ok(chemistry),
         }
@@ -197,7 +201,10 @@ impl ChannelDef {
 
     /// The per-cell plausibility window.
     fn check_window(&self) -> Result<(), ChannelError> {
-        for (name, v) in [("min_volts", self.min_volts), ("max_volts", self.max_volts)] {
+        for (name, v) in [
+            ("plausible_min_cell_volts", self.plausible_min_cell_volts),
+            ("plausible_max_cell_volts", self.plausible_max_cell_volts),
+        ] {
             if !(v.is_finite() && v.abs() <= MAX_WINDOW_ABS_CELL_VOLTS) {
                 return Err(err(
                     name,
@@ -206,11 +213,14 @@ impl ChannelDef {
                 ));
             }
         }
-        if self.min_volts >= self.max_volts {
+        if self.plausible_min_cell_volts >= self.plausible_max_cell_volts {
             return Err(err(
-                "max_volts",
-                self.max_volts,
-                format!("must be above min_volts ({})", self.min_volts),
+                "plausible_max_cell_volts",
+                self.plausible_max_cell_volts,
+                format!(
+                    "must be above plausible_min_cell_volts ({})",
+                    self.plausible_min_cell_volts
+                ),
             ));
         }
         Ok(())
@@ -221,7 +231,7 @@ impl ChannelDef {
         RunKey {
             chemistry_id: self.chemistry_id.clone(),
             cells_in_series: self.cells_in_series,
-            e_standard_override_bits: self.e_standard_override_v.map(f64::to_bits),
+            e_standard_override_bits: self.e_standard_298_override_v.map(f64::to_bits),
             // History recomputes an electrolyser's figures with these.
             water: self.is_water_cell().then(|| {
                 [
@@ -262,7 +272,8 @@ impl ChannelDef {
     /// channels file would give it (charge-positive current, 25 °C, the
     /// default plausibility window, no capacity); callers set what differs.
     pub fn of_chemistry(channel_id: impl Into<String>, chemistry: &Chemistry) -> ChannelDef {
-        let (min_volts, max_volts) = ChannelDef::default_window(chemistry);
+        let (plausible_min_cell_volts, plausible_max_cell_volts) =
+            ChannelDef::default_window(chemistry);
         ChannelDef {
             channel_id: channel_id.into(),
             chemistry_id: chemistry.id.clone(),
@@ -270,9 +281,9 @@ impl ChannelDef {
             capacity_ah: 0.0,
             current_sign: CurrentSign::ChargePositive,
             default_temp_c: default_temp_c(),
-            min_volts,
-            max_volts,
-            e_standard_override_v: None,
+            plausible_min_cell_volts,
+            plausible_max_cell_volts,
+            e_standard_298_override_v: None,
             resistance_ohm: None,
             equilibrium_tolerance_mv: default_tolerance_mv(),
             coulombic_efficiency: one(),

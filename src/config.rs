@@ -492,8 +492,8 @@ chemistry_id = "vanadium-redox"
 cells_in_series = 1
 capacity_ah = 2.0
 current_sign = "charge_positive"
-min_volts = 0.5
-max_volts = 2.0
+plausible_min_cell_volts = 0.5
+plausible_max_cell_volts = 2.0
 "#;
 
     fn env(pairs: &[(&str, &str)]) -> BTreeMap<String, String> {
@@ -601,8 +601,11 @@ max_volts = 2.0
         );
         let e = error_for("listen = \"127.0.0.1:50999\"", "listen = \"nowhere\"");
         assert!(e.contains("listen = \"nowhere\""), "{e}");
-        let e = error_for("max_volts = 2.0", "max_volts = 0.1");
-        assert!(e.contains("max_volts = 0.1"), "{e}");
+        let e = error_for(
+            "plausible_max_cell_volts = 2.0",
+            "plausible_max_cell_volts = 0.1",
+        );
+        assert!(e.contains("plausible_max_cell_volts = 0.1"), "{e}");
     }
 
     #[test]

@@ -116,8 +116,13 @@ pub struct AlertRules {
     pub end_of_discharge_soc: Threshold,
     pub end_of_discharge_cell_volts: Threshold,
     pub rest_settled_mv_per_min: Threshold,
-    pub min_cell_volts: f64,
-    pub max_cell_volts: f64,
+    /// The safe window per cell, V: outside it a voltage-limit alert is
+    /// raised (`min_cell_volts` is read for one release).
+    #[serde(alias = "min_cell_volts")]
+    pub safe_min_cell_volts: f64,
+    /// Upper end of the safe window per cell, V.
+    #[serde(alias = "max_cell_volts")]
+    pub safe_max_cell_volts: f64,
     pub max_abs_amps: f64,
     pub min_temp_c: f64,
     pub max_temp_c: f64,
@@ -155,8 +160,8 @@ impl AlertRules {
             end_of_discharge_soc: Threshold::new(0.05, 0.10, 5.0),
             end_of_discharge_cell_volts: Threshold::new(min_cell_volts, min_cell_volts + 0.02, 2.0),
             rest_settled_mv_per_min: Threshold::new(1.0, 3.0, 60.0),
-            min_cell_volts: min_cell_volts - 0.05,
-            max_cell_volts: max_cell_volts + 0.05,
+            safe_min_cell_volts: min_cell_volts - 0.05,
+            safe_max_cell_volts: max_cell_volts + 0.05,
             max_abs_amps: 0.0,
             min_temp_c: -20.0,
             max_temp_c: 70.0,
@@ -177,8 +182,8 @@ impl AlertRules {
             chemistry.discharge_cutoff_cell_volts,
             chemistry.charge_cutoff_cell_volts,
         );
-        rules.min_cell_volts = rules.min_cell_volts.min(chemistry.min_cell_volts);
-        rules.max_cell_volts = rules.max_cell_volts.max(chemistry.max_cell_volts);
+        rules.safe_min_cell_volts = rules.safe_min_cell_volts.min(chemistry.min_cell_volts);
+        rules.safe_max_cell_volts = rules.safe_max_cell_volts.max(chemistry.max_cell_volts);
         rules.min_temp_c = chemistry.min_temp_c;
         rules.max_temp_c = chemistry.max_temp_c;
         if chemistry.soc_model.name() == "none" {
@@ -205,10 +210,10 @@ impl AlertRules {
             }
         }
         below(
-            "min_cell_volts",
-            self.min_cell_volts,
-            "max_cell_volts",
-            self.max_cell_volts,
+            "safe_min_cell_volts",
+            self.safe_min_cell_volts,
+            "safe_max_cell_volts",
+            self.safe_max_cell_volts,
         )?;
         below("min_temp_c", self.min_temp_c, "max_temp_c", self.max_temp_c)
     }
@@ -250,8 +255,8 @@ impl AlertRules {
     fn scalars(&self) -> [(&'static str, f64); 9] {
         [
             ("end_of_charge_lead_s", self.end_of_charge_lead_s),
-            ("min_cell_volts", self.min_cell_volts),
-            ("max_cell_volts", self.max_cell_volts),
+            ("safe_min_cell_volts", self.safe_min_cell_volts),
+            ("safe_max_cell_volts", self.safe_max_cell_volts),
             ("max_abs_amps", self.max_abs_amps),
             ("min_temp_c", self.min_temp_c),
             ("max_temp_c", self.max_temp_c),
@@ -650,7 +655,7 @@ fn rest_settled_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
 
 /// Limits: raised at once, cleared once back inside by a small margin.
 fn voltage_limit_check(rules: &AlertRules, input: &RuleInput) -> Check {
-    let (min, max) = (rules.min_cell_volts, rules.max_cell_volts);
+    let (min, max) = (rules.safe_min_cell_volts, rules.safe_max_cell_volts);
     let v = input.cell_volts_terminal;
     let v_margin = 0.01 * (max - min);
     Check {

@@ -44,6 +44,8 @@ pub(crate) enum AlertsCommand {
         channel: Option<String>,
         #[arg(long)]
         active: bool,
+        #[arg(long, value_enum, default_value_t = MinSeverity::Info)]
+        min_severity: MinSeverity,
         #[arg(long, value_enum, default_value_t = Format::Table)]
         format: Format,
     },
@@ -54,6 +56,17 @@ pub(crate) enum MinSeverity {
     Info,
     Warning,
     Critical,
+}
+
+impl MinSeverity {
+    fn code(self) -> i32 {
+        let severity = match self {
+            MinSeverity::Info => pb::Severity::Info,
+            MinSeverity::Warning => pb::Severity::Warning,
+            MinSeverity::Critical => pb::Severity::Critical,
+        };
+        severity as i32
+    }
 }
 
 /// One stored alert.
@@ -72,6 +85,10 @@ pub(crate) struct AlertOut {
     seconds_to_target: Option<f64>,
     cleared_unix_ns: Option<i64>,
     acknowledged_by: Option<String>,
+    run_id: u64,
+    acknowledged_unix_ns: Option<i64>,
+    acknowledge_note: Option<String>,
+    raised_utc: String,
     #[serde(skip)]
     codes: (i32, i32),
 }
@@ -92,12 +109,16 @@ impl From<&pb::Alert> for AlertOut {
             seconds_to_target: a.seconds_to_target,
             cleared_unix_ns: a.cleared_unix_ns,
             acknowledged_by: a.acknowledged_by.clone(),
+            run_id: a.run_id,
+            acknowledged_unix_ns: a.acknowledged_unix_ns,
+            acknowledge_note: a.acknowledge_note.clone(),
+            raised_utc: super::time::iso_utc(a.raised_unix_ns),
             codes: (a.kind, a.severity),
         }
     }
 }
 
-const ALERT_HEADER: [&str; 13] = [
+const ALERT_HEADER: [&str; 17] = [
     "alert_id",
     "channel_id",
     "kind",
@@ -111,10 +132,15 @@ const ALERT_HEADER: [&str; 13] = [
     "seconds_to_target",
     "cleared_unix_ns",
     "acknowledged_by",
+    "run_id",
+    "acknowledged_unix_ns",
+    "acknowledge_note",
+    "raised_utc",
 ];
 
-const ALERT_COLUMNS: [Col; 6] = [
+const ALERT_COLUMNS: [Col; 7] = [
     Col::left("alert", 6),
+    Col::left("raised", 29),
     Col::left("severity", 8),
     Col::left("channel", 14),
     Col::left("kind", 19),
@@ -132,10 +158,11 @@ impl AlertOut {
         let ack = self
             .acknowledged_by
             .as_ref()
-            .map(|b| format!(" [ack: {b}]"))
+            .map(|b| format!(" [acknowledged by {b}]"))
             .unwrap_or_default();
         vec![
             format!("#{}", self.alert_id),
+            super::time::iso(self.raised_unix_ns),
             severity_label(self.codes.1),
             self.channel_id.clone(),
             kind_label(self.codes.0),
@@ -162,9 +189,9 @@ pub(crate) struct EventOut {
     alert: AlertOut,
 }
 
-const EVENT_HEADER: [&str; 15] = output::concat(["event", "event_id"], ALERT_HEADER);
+const EVENT_HEADER: [&str; 19] = output::concat(["event", "event_id"], ALERT_HEADER);
 
-const EVENT_COLUMNS: [Col; 8] = output::concat(
+const EVENT_COLUMNS: [Col; 9] = output::concat(
     [Col::left("event", 12), Col::right("event_id", 8)],
     ALERT_COLUMNS,
 );
@@ -190,12 +217,14 @@ pub(crate) async fn run(cmd: &AlertsCommand) -> anyhow::Result<()> {
             connect,
             channel,
             active,
+            min_severity,
             format,
         } => {
             list(
                 connect,
                 channel.clone().unwrap_or_default(),
                 *active,
+                *min_severity,
                 *format,
             )
             .await
@@ -207,15 +236,10 @@ pub(crate) async fn run(cmd: &AlertsCommand) -> anyhow::Result<()> {
             min_severity,
             format,
         } => {
-            let severity = match min_severity {
-                MinSeverity::Info => pb::Severity::Info,
-                MinSeverity::Warning => pb::Severity::Warning,
-                MinSeverity::Critical => pb::Severity::Critical,
-            } as i32;
             let request = pb::WatchAlertsRequest {
-                after_id: *after,
+                after_event_id: *after,
                 channel_id: channel.clone().unwrap_or_default(),
-                min_severity: severity,
+                min_severity: min_severity.code(),
             };
             watch(connect, request, *format).await
         }
@@ -243,6 +267,7 @@ async fn list(
     connect: &str,
     channel_id: String,
     active: bool,
+    min_severity: MinSeverity,
     format: Format,
 ) -> anyhow::Result<()> {
     let mut c = AlertServiceClient::new(client::connect(connect).await?);
@@ -252,9 +277,9 @@ async fn list(
         let request = pb::ListAlertsRequest {
             channel_id: channel_id.clone(),
             active_only: active,
-            after_id: after,
+            after_alert_id: after,
             limit: 1000,
-            ..Default::default()
+            min_severity: min_severity.code(),
         };
         let page = c
             .list_alerts(request)
@@ -262,10 +287,10 @@ async fn list(
             .map_err(client::status_error)?
             .into_inner();
         rows.extend(page.alerts.iter().map(AlertOut::from));
-        if page.next_after_id == 0 {
+        if page.next_after_alert_id == 0 {
             return output::print_all(&rows, format);
         }
-        after = page.next_after_id;
+        after = page.next_after_alert_id;
     }
 }
 
@@ -302,12 +327,12 @@ async fn watch(
         };
         while let Some(m) = stream.next().await {
             match m {
-                Ok(m) => show_event(&mut out, &mut request.after_id, m, format)?,
+                Ok(m) => show_event(&mut out, &mut request.after_event_id, m, format)?,
                 Err(s) => {
                     eprintln!(
                         "watch: {}; resuming after {}",
                         s.message(),
-                        request.after_id
+                        request.after_event_id
                     );
                     break;
                 }
@@ -323,8 +348,8 @@ fn show_event(
     m: pb::WatchAlertsResponse,
     format: Format,
 ) -> anyhow::Result<()> {
-    if m.resume_after_id > 0 {
-        *last = m.resume_after_id;
+    if m.resume_after_event_id > 0 {
+        *last = m.resume_after_event_id;
     }
     let event = event_name(m.event);
     match (event, m.alert) {
@@ -333,10 +358,24 @@ fn show_event(
         }
         ("raised" | "cleared" | "acknowledged", Some(a)) => out.row(&EventOut {
             event,
-            event_id: m.resume_after_id,
+            event_id: m.resume_after_event_id,
             alert: AlertOut::from(&a),
         })?,
         _ => {}
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn csv_headers_name_every_field_in_order() {
+        let alert = AlertOut::from(&pb::Alert::default());
+        assert_eq!(output::derived_csv_header(&alert), ALERT_HEADER);
+        let columns = EVENT_COLUMNS.map(|c| c.heading);
+        assert_eq!(&columns[..3], ["event", "event_id", "alert"]);
+        assert_eq!(EVENT_HEADER[2..], ALERT_HEADER);
+    }
 }

@@ -262,7 +262,7 @@ struct AlertClock {
 impl AlertClock {
     async fn watch(&self, conn: &client::Conn) -> anyhow::Result<tokio::task::JoinHandle<()>> {
         let request = pb::WatchAlertsRequest {
-            after_id: u64::MAX >> 1,
+            after_event_id: u64::MAX >> 1,
             ..Default::default()
         };
         let mut watch = AlertServiceClient::new(conn.clone())

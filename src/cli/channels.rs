@@ -69,8 +69,8 @@ struct ChannelOut {
     chemistry_id: String,
     cells_in_series: u32,
     capacity_ah: f64,
-    min_volts: f64,
-    max_volts: f64,
+    plausible_min_cell_volts: f64,
+    plausible_max_cell_volts: f64,
     run_id: u64,
     description: String,
 }
@@ -82,8 +82,8 @@ impl From<pb::Channel> for ChannelOut {
             chemistry_id: c.chemistry_id,
             cells_in_series: c.cells_in_series,
             capacity_ah: c.capacity_ah,
-            min_volts: c.min_volts,
-            max_volts: c.max_volts,
+            plausible_min_cell_volts: c.plausible_min_cell_volts,
+            plausible_max_cell_volts: c.plausible_max_cell_volts,
             run_id: c.run_id,
             description: c.description,
         }
@@ -96,8 +96,8 @@ impl Row for ChannelOut {
         "chemistry_id",
         "cells_in_series",
         "capacity_ah",
-        "min_cell_volts_v",
-        "max_cell_volts_v",
+        "plausible_min_cell_volts",
+        "plausible_max_cell_volts",
         "run_id",
         "description",
     ];
@@ -106,7 +106,7 @@ impl Row for ChannelOut {
         Col::left("chemistry", 16),
         Col::right("cells", 5),
         Col::right("Ah", 8),
-        Col::left("window V/cell", 13),
+        Col::left("plausible V/cell", 16),
         Col::right("run", 5),
         Col::left("description", 0),
     ];
@@ -116,7 +116,10 @@ impl Row for ChannelOut {
             self.chemistry_id.clone(),
             self.cells_in_series.to_string(),
             format!("{:.2}", self.capacity_ah),
-            format!("{:.3}–{:.3}", self.min_volts, self.max_volts),
+            format!(
+                "{:.3}–{:.3}",
+                self.plausible_min_cell_volts, self.plausible_max_cell_volts
+            ),
             self.run_id.to_string(),
             self.description.clone(),
         ]
@@ -248,4 +251,15 @@ async fn reset_timeline(connect: &str, id: &str, after_seq: Option<u64>) -> anyh
         r.last_stored_seq, r.time_unix_ns
     );
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn csv_header_names_every_field_in_order() {
+        let row = ChannelOut::from(pb::Channel::default());
+        assert_eq!(output::derived_csv_header(&row), ChannelOut::CSV_HEADER);
+    }
 }

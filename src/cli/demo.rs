@@ -133,7 +133,7 @@ async fn watch_alert_lines(channel: client::Conn) -> anyhow::Result<AlertLines> 
     let mut alerts = AlertServiceClient::new(channel);
     let mut watch = alerts
         .watch_alerts(pb::WatchAlertsRequest {
-            after_id: u64::MAX >> 1,
+            after_event_id: u64::MAX >> 1,
             ..Default::default()
         })
         .await?
@@ -191,7 +191,7 @@ async fn bench_table(history: &mut HistoryServiceClient<client::Conn>, ids: &[St
                     chem,
                     mode_name(d.operating_mode),
                     r.volts,
-                    r.amps.unwrap_or(0.0),
+                    r.amps_charge_positive.unwrap_or(0.0),
                     r.temp_c.unwrap_or(f64::NAN),
                     d.soc_fused
                         .map(|s| format!("{:.1}", s * 100.0))

@@ -45,10 +45,12 @@ pub(crate) fn run_eval(args: &EvalArgs) -> anyhow::Result<()> {
             args.chemistry
         ))
     })?;
-    let chem = match args.e_standard_v {
+    let chem = match args.e_standard_298_v {
         Some(e) if e.is_finite() => std::sync::Arc::new(chem.with_e_standard_override(e)),
         Some(e) => {
-            return Err(UsageError(format!("--e-standard-v {e}: must be a finite number")).into());
+            return Err(
+                UsageError(format!("--e-standard-298-v {e}: must be a finite number")).into(),
+            );
         }
         None => chem,
     };
@@ -110,9 +112,10 @@ fn print_report(chem: &electrochem::Chemistry, r: &EvalReport) {
     println!("  cells in series      {}", r.cells_in_series);
     println!(
         "  voltage              {:.6} V per cell ({:.6} V stack)",
-        r.cell_volts, r.stack_volts
+        r.equilibrium_cell_volts, r.stack_volts
     );
-    println!("  E° at temperature    {:.6} V", r.e_standard_v);
+    println!("  E° at 298.15 K       {:.6} V", r.e_standard_298_v);
+    println!("  E° at temperature    {:.6} V", r.e_standard_at_temp_v);
     if let Some(tn) = r.thermoneutral_v {
         println!("  thermoneutral        {tn:.4} V");
     }
@@ -128,35 +131,40 @@ fn print_report(chem: &electrochem::Chemistry, r: &EvalReport) {
     println!("  log10 K              {:.4}", r.log10_k);
     println!("  ln(K/Q)              {:.4}", r.affinity_ln_k_over_q);
     println!("  state                {}", r.state);
-    match r.soc {
+    match r.soc_from_model {
         Some(soc) => println!(
             "  SOC                  {:.2} % ({}{})",
             soc * 100.0,
-            r.soc_model,
+            r.soc_model_name,
             if r.soc_clamped {
                 ", clamped: voltage outside the model's range"
             } else {
                 ""
             }
         ),
-        None => println!("  SOC                  none (model: {})", r.soc_model),
+        None => println!("  SOC                  none (model: {})", r.soc_model_name),
     }
 }
 
 pub(crate) fn run_chemistries(args: &ChemistriesArgs) -> anyhow::Result<()> {
     let registry = load_registry(&args.chemistry_file)?;
     if args.json {
-        let all: Vec<_> = registry.iter().map(|c| c.as_ref()).collect();
+        // The wire's ChemistryInfo: the same names and units as
+        // ListChemistries (dE°/dT in mV/K).
+        let all: Vec<_> = registry
+            .iter()
+            .map(|c| gibbsline::grpc::convert::chemistry_to_pb(c))
+            .collect();
         println!("{}", serde_json::to_string_pretty(&all)?);
         return Ok(());
     }
     println!(
-        "{:<18} {:>2} {:>9} {:>10} {:>15}  {:<10} name",
+        "{:<18} {:>2} {:>9} {:>11} {:>15}  {:<10} name",
         "id", "n", "E°/V", "dE°/dT", "window/V", "soc model"
     );
     for c in registry.iter() {
         println!(
-            "{:<18} {:>2} {:>9.4} {:>7.3}mV/K {:>7.3}–{:<7.3}  {:<10} {}{}",
+            "{:<18} {:>2} {:>9.4} {:>6.3} mV/K {:>7.3}–{:<7.3}  {:<10} {}{}",
             c.id,
             c.n_electrons,
             c.e_standard_298_volts,

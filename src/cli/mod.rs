@@ -15,6 +15,7 @@ pub(crate) mod rig;
 pub(crate) mod serve;
 pub(crate) mod simulate;
 pub(crate) mod state;
+pub(crate) mod time;
 pub(crate) mod token;
 
 /// Where the client commands look for a server unless told.
@@ -47,6 +48,9 @@ pub(crate) struct UsageError(pub String);
 pub(crate) struct Cli {
     #[command(subcommand)]
     pub command: Command,
+    /// Show times in tables and lines in UTC instead of the local zone.
+    #[arg(long, global = true)]
+    pub utc: bool,
 }
 
 #[derive(Debug, Subcommand)]
@@ -170,8 +174,8 @@ pub(crate) struct EvalArgs {
     #[arg(long, default_value_t = 1)]
     pub cells: u32,
     /// Replace E° at 298.15 K (e.g. with a fitted formal potential), V.
-    #[arg(long, allow_negative_numbers = true)]
-    pub e_standard_v: Option<f64>,
+    #[arg(long, allow_negative_numbers = true, alias = "e-standard-v")]
+    pub e_standard_298_v: Option<f64>,
     /// Band around 0 V per cell treated as equilibrium, mV.
     #[arg(long, default_value_t = 1.0)]
     pub equilibrium_tolerance_mv: f64,
@@ -194,6 +198,7 @@ pub(crate) struct ChemistriesArgs {
 }
 
 pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<()> {
+    time::show_utc(cli.utc);
     match cli.command {
         Command::Eval(args) => eval::run_eval(&args),
         Command::Chemistries(args) => eval::run_chemistries(&args),

@@ -4,6 +4,7 @@
 use super::client;
 use super::names::{mode_name, ocv_source_name, state_name};
 use super::output::{self, Col, Format, Row, fixed, percent};
+use super::time::{iso, iso_utc};
 use super::{DEFAULT_ADDR, UsageError};
 use gibbsline::pb;
 use gibbsline::pb::history_service_client::HistoryServiceClient;
@@ -52,17 +53,17 @@ pub(crate) fn parse_time(flag: &str, text: &str, now_ns: i64) -> Result<i64, Usa
         })
 }
 
-/// One stored reading; the JSON names are the field names, the CSV header
-/// carries units.
+/// One stored reading: the wire's names (`StoredReading`, `DerivedState`)
+/// flattened, each with its unit in it; the same names in JSON and CSV.
 #[derive(Serialize)]
 pub(crate) struct ReadingOut {
     seq: u64,
     time_unix_ns: i64,
     volts: f64,
-    amps: Option<f64>,
+    amps_charge_positive: Option<f64>,
     temp_c: Option<f64>,
-    cell_volts_used: f64,
-    soc_model: Option<f64>,
+    equilibrium_cell_volts: f64,
+    soc_from_model: Option<f64>,
     soc_fused: Option<f64>,
     delta_g_kj_per_mol: Option<f64>,
     ln_q: Option<f64>,
@@ -77,6 +78,7 @@ pub(crate) struct ReadingOut {
     operating_mode: &'static str,
     ocv_source: &'static str,
     driving_force_v: Option<f64>,
+    time_utc: String,
 }
 
 impl From<pb::StoredReading> for ReadingOut {
@@ -86,10 +88,10 @@ impl From<pb::StoredReading> for ReadingOut {
             seq: r.seq,
             time_unix_ns: r.time_unix_ns,
             volts: r.volts,
-            amps: r.amps,
+            amps_charge_positive: r.amps_charge_positive,
             temp_c: r.temp_c,
-            cell_volts_used: d.cell_volts,
-            soc_model: d.soc_model,
+            equilibrium_cell_volts: d.equilibrium_cell_volts,
+            soc_from_model: d.soc_from_model,
             soc_fused: d.soc_fused,
             delta_g_kj_per_mol: d.delta_g_kj_per_mol,
             ln_q: d.ln_q,
@@ -104,6 +106,7 @@ impl From<pb::StoredReading> for ReadingOut {
             operating_mode: mode_name(d.operating_mode),
             ocv_source: ocv_source_name(d.ocv_source),
             driving_force_v: d.driving_force_v,
+            time_utc: iso_utc(r.time_unix_ns),
         }
     }
 }
@@ -112,11 +115,11 @@ impl Row for ReadingOut {
     const CSV_HEADER: &'static [&'static str] = &[
         "seq",
         "time_unix_ns",
-        "volts_v",
-        "amps_a",
+        "volts",
+        "amps_charge_positive",
         "temp_c",
-        "cell_volts_used_v",
-        "soc_model",
+        "equilibrium_cell_volts",
+        "soc_from_model",
         "soc_fused",
         "delta_g_kj_per_mol",
         "ln_q",
@@ -131,12 +134,13 @@ impl Row for ReadingOut {
         "operating_mode",
         "ocv_source",
         "driving_force_v",
+        "time_utc",
     ];
     const TABLE: &'static [Col] = &[
         Col::right("seq", 8),
-        Col::right("time_unix_ns", 19),
-        Col::right("volts", 9),
-        Col::right("amps", 8),
+        Col::left("time", 29),
+        Col::right("V", 9),
+        Col::right("A (chg +)", 9),
         Col::right("°C", 7),
         Col::right("SOC %", 7),
         Col::right("ΔG kJ/mol", 11),
@@ -148,9 +152,9 @@ impl Row for ReadingOut {
     fn table_cells(&self) -> Vec<String> {
         vec![
             self.seq.to_string(),
-            self.time_unix_ns.to_string(),
+            iso(self.time_unix_ns),
             format!("{:.4}", self.volts),
-            fixed(self.amps, 3),
+            fixed(self.amps_charge_positive, 3),
             fixed(self.temp_c, 2),
             percent(self.soc_fused, 2),
             fixed(self.delta_g_kj_per_mol, 3),
@@ -162,7 +166,9 @@ impl Row for ReadingOut {
     }
 }
 
-/// One bucket of readings.
+/// One bucket of readings: each statistic named `<quantity>_<stat>`, the
+/// quantity as the wire's `Bucket` names it, in the wire's order
+/// (min, max, mean, last).
 #[derive(Serialize)]
 pub(crate) struct BucketOut {
     start_unix_ns: i64,
@@ -171,14 +177,21 @@ pub(crate) struct BucketOut {
     volts_max: f64,
     volts_mean: f64,
     volts_last: f64,
+    soc_min: Option<f64>,
+    soc_max: Option<f64>,
     soc_mean: Option<f64>,
     soc_last: Option<f64>,
-    delta_g_mean_kj_per_mol: f64,
+    delta_g_kj_per_mol_min: f64,
+    delta_g_kj_per_mol_max: f64,
+    delta_g_kj_per_mol_mean: f64,
+    delta_g_kj_per_mol_last: f64,
+    start_utc: String,
 }
 
 impl From<&pb::Bucket> for BucketOut {
     fn from(b: &pb::Bucket) -> BucketOut {
         let v = b.volts.unwrap_or_default();
+        let g = b.delta_g_kj_per_mol.unwrap_or_default();
         BucketOut {
             start_unix_ns: b.start_unix_ns,
             count: b.count,
@@ -186,9 +199,15 @@ impl From<&pb::Bucket> for BucketOut {
             volts_max: v.max,
             volts_mean: v.mean,
             volts_last: v.last,
+            soc_min: b.soc.map(|s| s.min),
+            soc_max: b.soc.map(|s| s.max),
             soc_mean: b.soc.map(|s| s.mean),
             soc_last: b.soc.map(|s| s.last),
-            delta_g_mean_kj_per_mol: b.delta_g_kj_per_mol.unwrap_or_default().mean,
+            delta_g_kj_per_mol_min: g.min,
+            delta_g_kj_per_mol_max: g.max,
+            delta_g_kj_per_mol_mean: g.mean,
+            delta_g_kj_per_mol_last: g.last,
+            start_utc: iso_utc(b.start_unix_ns),
         }
     }
 }
@@ -197,32 +216,38 @@ impl Row for BucketOut {
     const CSV_HEADER: &'static [&'static str] = &[
         "start_unix_ns",
         "count",
-        "volts_min_v",
-        "volts_max_v",
-        "volts_mean_v",
-        "volts_last_v",
+        "volts_min",
+        "volts_max",
+        "volts_mean",
+        "volts_last",
+        "soc_min",
+        "soc_max",
         "soc_mean",
         "soc_last",
-        "delta_g_mean_kj_per_mol",
+        "delta_g_kj_per_mol_min",
+        "delta_g_kj_per_mol_max",
+        "delta_g_kj_per_mol_mean",
+        "delta_g_kj_per_mol_last",
+        "start_utc",
     ];
     const TABLE: &'static [Col] = &[
-        Col::right("start_unix_ns", 19),
+        Col::left("start", 29),
         Col::right("count", 6),
         Col::right("V min", 9),
-        Col::right("V mean", 9),
         Col::right("V max", 9),
-        Col::right("SOC %", 7),
-        Col::right("ΔG kJ/mol", 11),
+        Col::right("V mean", 9),
+        Col::right("SOC % mean", 10),
+        Col::right("ΔG kJ/mol mean", 14),
     ];
     fn table_cells(&self) -> Vec<String> {
         vec![
-            self.start_unix_ns.to_string(),
+            iso(self.start_unix_ns),
             self.count.to_string(),
             format!("{:.4}", self.volts_min),
-            format!("{:.4}", self.volts_mean),
             format!("{:.4}", self.volts_max),
+            format!("{:.4}", self.volts_mean),
             percent(self.soc_mean, 1),
-            format!("{:.3}", self.delta_g_mean_kj_per_mol),
+            format!("{:.3}", self.delta_g_kj_per_mol_mean),
         ]
     }
 }
@@ -283,4 +308,18 @@ pub(crate) async fn run(args: &ReadingsArgs) -> anyhow::Result<()> {
         eprintln!("{} readings", rows.len());
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::cli::output::derived_csv_header;
+
+    #[test]
+    fn csv_headers_name_every_field_in_order() {
+        let reading = ReadingOut::from(pb::StoredReading::default());
+        assert_eq!(derived_csv_header(&reading), ReadingOut::CSV_HEADER);
+        let bucket = BucketOut::from(&pb::Bucket::default());
+        assert_eq!(derived_csv_header(&bucket), BucketOut::CSV_HEADER);
+    }
 }

@@ -71,10 +71,10 @@ struct StateOut {
     seq: Option<u64>,
     time_unix_ns: Option<i64>,
     volts: Option<f64>,
-    amps: Option<f64>,
+    amps_charge_positive: Option<f64>,
     temp_c: Option<f64>,
     soc_fused: Option<f64>,
-    soc_model: Option<f64>,
+    soc_from_model: Option<f64>,
     delta_g_kj_per_mol: Option<f64>,
     log10_q: Option<f64>,
     ocv_source: Option<&'static str>,
@@ -102,10 +102,10 @@ impl StateOut {
             seq: latest.map(|r| r.seq),
             time_unix_ns: latest.map(|r| r.time_unix_ns),
             volts: latest.map(|r| r.volts),
-            amps: latest.and_then(|r| r.amps),
+            amps_charge_positive: latest.and_then(|r| r.amps_charge_positive),
             temp_c: latest.and_then(|r| r.temp_c),
             soc_fused: d.and_then(|d| d.soc_fused),
-            soc_model: d.and_then(|d| d.soc_model),
+            soc_from_model: d.and_then(|d| d.soc_from_model),
             delta_g_kj_per_mol: d.and_then(|d| d.delta_g_kj_per_mol),
             log10_q: d.and_then(|d| d.log10_q),
             ocv_source: d.map(|d| ocv_source_name(d.ocv_source)),
@@ -145,11 +145,12 @@ fn prose(id: &str, s: &pb::GetChannelStateResponse) -> Vec<String> {
     };
     let d = r.derived.clone().unwrap_or_default();
     let mut lines = vec![format!(
-        "{id} ({chem}) seq {}: {}; {:.4} V, {} A, {} °C; SOC {}; {}; reaction {}",
+        "{id} ({chem}) seq {} at {}: {}; {:.4} V, {} A, {} °C; SOC {}; {}; reaction {}",
         r.seq,
+        super::time::iso(r.time_unix_ns),
         mode_name(d.operating_mode),
         r.volts,
-        output::fixed(r.amps, 3),
+        output::fixed(r.amps_charge_positive, 3),
         output::fixed(r.temp_c, 2),
         d.soc_fused
             .map(|_| format!("{} %", percent(d.soc_fused, 1)))
@@ -197,7 +198,7 @@ fn thermo_text(d: &pb::DerivedState) -> String {
     match (d.delta_g_kj_per_mol, d.log10_q) {
         (Some(dg), Some(q)) => format!(
             "ΔG {dg:.3} kJ/mol at E_eq {:.4} V ({}); log10 Q {q:.3} vs log10 K {:.3}{eta}",
-            d.cell_volts,
+            d.equilibrium_cell_volts,
             ocv_source_name(d.ocv_source),
             d.log10_k
         ),

@@ -77,8 +77,10 @@ pub struct ChemistrySpec {
     pub name: String,
     pub reaction: String,
     pub n_electrons: i64,
-    /// E° at 298.15 K (or a fitted formal potential E°′), volts.
-    pub e_standard_v: f64,
+    /// E° at 298.15 K (or a fitted formal potential E°′), volts
+    /// (`e_standard_v` is read for one release).
+    #[serde(alias = "e_standard_v")]
+    pub e_standard_298_v: f64,
     /// ΔS° of the reaction, J/(mol·K); gives dE°/dT = ΔS°/nF.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub delta_s_j_per_mol_k: Option<f64>,
@@ -207,7 +209,7 @@ impl ChemistrySpec {
             ));
         }
         let n_electrons = self.n_electrons as u32;
-        let e_standard = finite("e_standard_v", self.e_standard_v)?;
+        let e_standard = finite("e_standard_298_v", self.e_standard_298_v)?;
         let de_dt_volts_per_k = match (self.delta_s_j_per_mol_k, self.de_dt_mv_per_k) {
             (Some(_), Some(_)) => {
                 return Err(ChemistryError::invalid(
@@ -409,8 +411,10 @@ species = [
             e.contains("lab.toml") && e.contains("n_electrons = 0"),
             "{e}"
         );
+        // GOOD spells E° the old way (`e_standard_v`): still read, and the
+        // error names the field as it is now called.
         let e = error_for("e_standard_v = -0.028", "e_standard_v = nan");
-        assert!(e.contains("e_standard_v = NaN"), "{e}");
+        assert!(e.contains("e_standard_298_v = NaN"), "{e}");
         let e = error_for("id = \"teaching-fe\"", "id = \"Bad Id\"");
         assert!(e.contains("id = \"Bad Id\""), "{e}");
         let e = error_for("at_zero_soc = 0.01", "at_zero_soc = -0.01");

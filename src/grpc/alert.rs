@@ -33,7 +33,7 @@ impl pb::alert_service_server::AlertService for AlertApi {
             channel_id: q.channel_id,
             min_severity: i64::from(q.min_severity),
         };
-        let items = feed::watch(&self.hub, filter, q.after_id)?;
+        let items = feed::watch(&self.hub, filter, q.after_event_id)?;
         Ok(Response::new(Box::pin(
             items.map(|item| item.map(item_to_pb).map_err(Status::from)),
         )))
@@ -59,18 +59,18 @@ impl pb::alert_service_server::AlertService for AlertApi {
             key,
             i64::from(q.min_severity),
             q.active_only,
-            q.after_id,
+            q.after_alert_id,
             limit,
         )
         .await?;
-        let next_after_id = if rows.len() == limit as usize {
+        let next_after_alert_id = if rows.len() == limit as usize {
             rows.last().map(|a| a.alert_id).unwrap_or(0)
         } else {
             0
         };
         Ok(Response::new(pb::ListAlertsResponse {
             alerts: rows.iter().map(alert_to_pb).collect(),
-            next_after_id,
+            next_after_alert_id,
         }))
     }
 
@@ -134,12 +134,12 @@ fn item_to_pb(item: FeedItem) -> pb::WatchAlertsResponse {
         FeedItem::Live { resume_after_id } => pb::WatchAlertsResponse {
             event: pb::AlertEventKind::Live as i32,
             alert: None,
-            resume_after_id,
+            resume_after_event_id: resume_after_id,
         },
         FeedItem::Overflow { resume_after_id } => pb::WatchAlertsResponse {
             event: pb::AlertEventKind::Overflow as i32,
             alert: None,
-            resume_after_id,
+            resume_after_event_id: resume_after_id,
         },
     }
 }

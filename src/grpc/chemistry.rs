@@ -1,6 +1,6 @@
 //! `ChemistryService`: the chemistries known, and one-off evaluations.
 
-use super::convert::state_to_pb;
+use super::convert::{chemistry_to_pb, state_to_pb};
 use super::status::invalid;
 use crate::electrochem::{self, EvalRequest};
 use crate::ingest::Hub;
@@ -20,25 +20,7 @@ impl pb::chemistry_service_server::ChemistryService for ChemistryApi {
         _request: Request<pb::ListChemistriesRequest>,
     ) -> Result<Response<pb::ListChemistriesResponse>, Status> {
         let registry = self.hub.registry();
-        let chemistries = registry
-            .iter()
-            .map(|c| pb::ChemistryInfo {
-                chemistry_id: c.id.clone(),
-                name: c.name.clone(),
-                reaction: c.reaction.clone(),
-                n_electrons: c.n_electrons,
-                e_standard_298_v: c.e_standard_298_volts,
-                de_dt_mv_per_k: c.de_dt_volts_per_k * 1e3,
-                delta_h_kj_per_mol: c.delta_h_kj_per_mol,
-                thermoneutral_v: c.thermoneutral_volts(),
-                min_cell_volts: c.min_cell_volts,
-                max_cell_volts: c.max_cell_volts,
-                soc_model: c.soc_model.name().into(),
-                sources: c.sources.clone(),
-                notes: c.notes.clone(),
-                builtin: c.builtin,
-            })
-            .collect();
+        let chemistries = registry.iter().map(|c| chemistry_to_pb(c)).collect();
         Ok(Response::new(pb::ListChemistriesResponse { chemistries }))
     }
 
@@ -51,9 +33,9 @@ impl pb::chemistry_service_server::ChemistryService for ChemistryApi {
         let chem = registry
             .get(&q.chemistry_id)
             .map_err(|e| Status::not_found(format!("chemistry_id: {e}")))?;
-        let chem = match q.e_standard_override_v {
+        let chem = match q.e_standard_298_override_v {
             Some(e) if e.is_finite() => Arc::new(chem.with_e_standard_override(e)),
-            Some(e) => return Err(invalid("e_standard_override_v", e, "must be finite")),
+            Some(e) => return Err(invalid("e_standard_298_override_v", e, "must be finite")),
             None => chem,
         };
         let temp_c = q.temp_c.unwrap_or(25.0);
@@ -92,8 +74,8 @@ impl pb::chemistry_service_server::ChemistryService for ChemistryApi {
             chemistry_id: r.chemistry_id,
             n_electrons: r.n_electrons,
             temp_k: r.temp_k,
-            cell_volts: r.cell_volts,
-            e_standard_v: r.e_standard_v,
+            equilibrium_cell_volts: r.equilibrium_cell_volts,
+            e_standard_at_temp_v: r.e_standard_at_temp_v,
             delta_g_kj_per_mol: r.delta_g_kj_per_mol,
             delta_g_standard_kj_per_mol: r.delta_g_standard_kj_per_mol,
             ln_q: r.ln_q,
@@ -101,8 +83,8 @@ impl pb::chemistry_service_server::ChemistryService for ChemistryApi {
             log10_k: r.log10_k,
             affinity_ln_k_over_q: r.affinity_ln_k_over_q,
             state: state_to_pb(ev.thermo.state),
-            soc: r.soc,
-            soc_model: r.soc_model.into(),
+            soc_from_model: r.soc_from_model,
+            soc_model_name: r.soc_model_name.into(),
             soc_clamped: r.soc_clamped,
             thermoneutral_v: r.thermoneutral_v,
         }))

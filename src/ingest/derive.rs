@@ -38,15 +38,15 @@ fn check_reading(rt: &ChannelRuntime, r: &RawReading) -> Result<(), (&'static st
         ));
     }
     let cell = r.volts / f64::from(rt.def.cells_in_series);
-    if cell < rt.def.min_volts || cell > rt.def.max_volts {
+    if cell < rt.def.plausible_min_cell_volts || cell > rt.def.plausible_max_cell_volts {
         return Err((
             "volts",
             format!(
                 "volts = {}: {} V per cell is outside the channel's plausibility window {}–{} V",
                 shown(r.volts),
                 shown((cell * 1e4).round() / 1e4),
-                rt.def.min_volts,
-                rt.def.max_volts
+                rt.def.plausible_min_cell_volts,
+                rt.def.plausible_max_cell_volts
             ),
         ));
     }

@@ -60,7 +60,7 @@ async fn raise_watch_acknowledge_restart_replay() {
     let mut alerts = AlertServiceClient::new(ch.clone());
     let mut watch = alerts
         .watch_alerts(pb::WatchAlertsRequest {
-            after_id: 0,
+            after_event_id: 0,
             ..Default::default()
         })
         .await
@@ -105,7 +105,7 @@ async fn raise_watch_acknowledge_restart_replay() {
     assert_eq!(acked.acknowledged_by.as_deref(), Some("night shift"));
     let update = watch.next().await.unwrap().unwrap();
     assert_eq!(update.event, pb::AlertEventKind::Acknowledged as i32);
-    let last_seen = update.resume_after_id;
+    let last_seen = update.resume_after_event_id;
     let missing = alerts
         .acknowledge_alert(pb::AcknowledgeAlertRequest {
             alert_id: 999_999,
@@ -136,7 +136,7 @@ async fn raise_watch_acknowledge_restart_replay() {
     assert_eq!(list.alerts.len(), 2);
     let mut watch = alerts
         .watch_alerts(pb::WatchAlertsRequest {
-            after_id: last_seen,
+            after_event_id: last_seen,
             ..Default::default()
         })
         .await
@@ -145,7 +145,7 @@ async fn raise_watch_acknowledge_restart_replay() {
     let replay = collect_until_live(&mut watch).await;
     assert_eq!(replay.len(), 1, "{replay:?}");
     assert_eq!(replay[0].alert.as_ref().unwrap().raised_seq, 7);
-    assert!(replay[0].resume_after_id > last_seen);
+    assert!(replay[0].resume_after_event_id > last_seen);
     send_one(&mut ingest, limit_batch("teach-1", t0, 9..11, |_| true)).await;
     let active = alerts
         .list_alerts(pb::ListAlertsRequest {
@@ -183,7 +183,7 @@ async fn raise_watch_acknowledge_restart_replay() {
         s.message()
     );
     let mut tighter = rules;
-    tighter.max_cell_volts = 1.40;
+    tighter.safe_max_cell_volts = 1.40;
     alerts
         .put_alert_rules(pb::PutAlertRulesRequest {
             channel_id: "teach-1".into(),
@@ -200,7 +200,7 @@ async fn raise_watch_acknowledge_restart_replay() {
         .into_inner()
         .rules
         .unwrap();
-    assert_eq!(back.max_cell_volts, 1.40);
+    assert_eq!(back.safe_max_cell_volts, 1.40);
     server.stop().await;
 }
 
@@ -251,7 +251,7 @@ async fn stalled_subscriber_never_slows_ingest() {
     let mut alerts = AlertServiceClient::new(server.channel().await);
     let mut stalled = alerts
         .watch_alerts(pb::WatchAlertsRequest {
-            after_id: 0,
+            after_event_id: 0,
             channel_id: "watched-run".into(),
             ..Default::default()
         })

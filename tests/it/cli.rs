@@ -128,7 +128,7 @@ async fn csv_parses_back_to_stored_values() {
     let text = String::from_utf8(out.stdout).unwrap();
     let mut lines = text.lines();
     let header: Vec<_> = lines.next().unwrap().split(',').collect();
-    assert!(header.contains(&"volts_v") && header.contains(&"delta_g_kj_per_mol"));
+    assert!(header.contains(&"volts") && header.contains(&"delta_g_kj_per_mol"));
     let col = |name: &str| header.iter().position(|h| *h == name).unwrap();
     let rows: Vec<Vec<String>> = lines
         .map(|l| l.split(',').map(String::from).collect())
@@ -137,12 +137,15 @@ async fn csv_parses_back_to_stored_values() {
     assert_eq!(rows.len(), stored.len());
     for (row, s) in rows.iter().zip(&stored) {
         assert_eq!(row[col("seq")].parse::<u64>().unwrap(), s.seq);
-        assert_eq!(row[col("volts_v")].parse::<f64>().unwrap(), s.volts);
+        assert_eq!(row[col("volts")].parse::<f64>().unwrap(), s.volts);
         assert_eq!(
             row[col("delta_g_kj_per_mol")].parse::<f64>().ok(),
             s.derived.as_ref().unwrap().delta_g_kj_per_mol
         );
-        assert_eq!(row[col("amps_a")].parse::<f64>().ok(), s.amps);
+        assert_eq!(
+            row[col("amps_charge_positive")].parse::<f64>().ok(),
+            s.amps_charge_positive
+        );
     }
     server.stop().await;
 }
@@ -157,8 +160,8 @@ channel_id = "hl-vrb-1"
 chemistry_id = "vanadium-redox"
 cells_in_series = 1
 current_sign = "charge_positive"
-min_volts = 0.5
-max_volts = 2.0
+plausible_min_cell_volts = 0.5
+plausible_max_cell_volts = 2.0
 "#;
     let check = |text: &str| {
         let path = dir.path().join("c.toml");
@@ -182,7 +185,11 @@ max_volts = 2.0
             "chemistry_id = \"marmite\"",
             "chemistry_id",
         ),
-        ("min_volts = 0.5", "min_volts = 0.5\nflavour = 1", "flavour"),
+        (
+            "plausible_min_cell_volts = 0.5",
+            "plausible_min_cell_volts = 0.5\nflavour = 1",
+            "flavour",
+        ),
         (
             "current_sign = \"charge_positive\"",
             "current_sign = \"upside_down\"",
@@ -193,7 +200,11 @@ max_volts = 2.0
             "listen = \"0.0.0.0:50999\"",
             "--allow-insecure",
         ),
-        ("max_volts = 2.0", "max_volts = 0.2", "max_volts = 0.2"),
+        (
+            "plausible_max_cell_volts = 2.0",
+            "plausible_max_cell_volts = 0.2",
+            "plausible_max_cell_volts = 0.2",
+        ),
         (
             "listen = \"127.0.0.1:50999\"",
             "listen = \"127.0.0.1:50999\"\ndurability = \"maybe\"",
@@ -305,8 +316,9 @@ fn unreachable_server_exits_3_and_bad_flags_exit_2() {
         "chemistry_id",
         "n_electrons",
         "temp_k",
-        "cell_volts",
-        "e_standard_v",
+        "equilibrium_cell_volts",
+        "e_standard_298_v",
+        "e_standard_at_temp_v",
         "delta_g_kj_per_mol",
         "delta_g_standard_kj_per_mol",
         "ln_q",
@@ -314,8 +326,8 @@ fn unreachable_server_exits_3_and_bad_flags_exit_2() {
         "log10_k",
         "affinity_ln_k_over_q",
         "state",
-        "soc",
-        "soc_model",
+        "soc_from_model",
+        "soc_model_name",
         "soc_clamped",
     ] {
         assert!(v.get(field).is_some(), "missing {field}");
@@ -417,15 +429,15 @@ async fn example_channels_file_puts_every_channel() {
                 got.chemistry_id.as_str(),
                 got.cells_in_series,
                 got.capacity_ah,
-                got.min_volts,
-                got.max_volts
+                got.plausible_min_cell_volts,
+                got.plausible_max_cell_volts
             ),
             (
                 def.chemistry_id.as_str(),
                 def.cells_in_series,
                 def.capacity_ah,
-                def.min_volts,
-                def.max_volts
+                def.plausible_min_cell_volts,
+                def.plausible_max_cell_volts
             ),
             "{}",
             def.channel_id

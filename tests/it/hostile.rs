@@ -267,22 +267,22 @@ async fn hostile_corpus_gets_specific_answers() {
             "resistance_ohm",
         ),
         (
-            Box::new(|c: &mut pb::Channel| c.e_standard_override_v = Some(f64::INFINITY)),
-            "e_standard_override_v",
+            Box::new(|c: &mut pb::Channel| c.e_standard_298_override_v = Some(f64::INFINITY)),
+            "e_standard_298_override_v",
         ),
         (
             Box::new(|c: &mut pb::Channel| {
-                c.min_volts = 2.0;
-                c.max_volts = 1.0;
+                c.plausible_min_cell_volts = 2.0;
+                c.plausible_max_cell_volts = 1.0;
             }),
-            "max_volts",
+            "plausible_max_cell_volts",
         ),
         (
             Box::new(|c: &mut pb::Channel| {
-                c.min_volts = 0.0;
-                c.max_volts = 1e300;
+                c.plausible_min_cell_volts = 0.0;
+                c.plausible_max_cell_volts = 1e300;
             }),
-            "max_volts = 1.000e300",
+            "plausible_max_cell_volts = 1.000e300",
         ),
     ] {
         let mut c = channel_def("good-2", "daniell");

@@ -72,7 +72,7 @@ async fn stream_store_query_restart_resend() {
     assert_eq!(d.ocv_source, pb::OcvSource::Rest as i32);
     assert!((d.delta_g_kj_per_mol.unwrap() - core.thermo.delta_g_kj_per_mol).abs() < 1e-9);
     assert!((d.log10_k - core.thermo.log10_k()).abs() < 1e-9);
-    assert_eq!(d.soc_model, core.soc);
+    assert_eq!(d.soc_from_model, core.soc);
 
     // Buckets: 100 readings at 1 s into 10 s buckets.
     let b = history

@@ -116,7 +116,7 @@ async fn an_electrolyser_reports_its_reversible_voltage_efficiency_and_hydrogen_
     // Cantera 3.2, saturated gases at 1 atm, 60 °C: E_rev 1.1950 V, E_tn
     // (HHV) 1.4752 V (tests/reference/water_cell_cantera.py).
     assert!((h.reversible_v - 1.1950).abs() < 1e-3, "{}", h.reversible_v);
-    assert!((d.cell_volts - h.reversible_v).abs() < 1e-12);
+    assert!((d.equilibrium_cell_volts - h.reversible_v).abs() < 1e-12);
     assert!((h.thermoneutral_hhv_v - 1.4752).abs() < 1e-3);
     assert!((d.driving_force_v.unwrap() - (1.7 - h.reversible_v)).abs() < 1e-9);
     // Faraday's law: 2 cells · 20 A / (2F) = 2.07285e-4 mol/s.

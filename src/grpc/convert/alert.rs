@@ -52,7 +52,7 @@ pub fn event_to_pb(e: &AlertEvent) -> pb::WatchAlertsResponse {
             EventKind::Acknowledged => pb::AlertEventKind::Acknowledged,
         } as i32,
         alert: Some(alert_to_pb(&e.alert)),
-        resume_after_id: e.event_id,
+        resume_after_event_id: e.event_id,
     }
 }
 
@@ -91,8 +91,8 @@ pub fn rules_to_pb(r: &AlertRules) -> pb::AlertRules {
         end_of_discharge_soc: Some(threshold_to_pb(&r.end_of_discharge_soc)),
         end_of_discharge_cell_volts: Some(threshold_to_pb(&r.end_of_discharge_cell_volts)),
         rest_settled_mv_per_min: Some(threshold_to_pb(&r.rest_settled_mv_per_min)),
-        min_cell_volts: r.min_cell_volts,
-        max_cell_volts: r.max_cell_volts,
+        safe_min_cell_volts: r.safe_min_cell_volts,
+        safe_max_cell_volts: r.safe_max_cell_volts,
         max_abs_amps: r.max_abs_amps,
         min_temp_c: r.min_temp_c,
         max_temp_c: r.max_temp_c,
@@ -126,8 +126,8 @@ pub fn rules_from_pb(r: pb::AlertRules) -> Result<AlertRules, Status> {
             "rest_settled_mv_per_min",
             r.rest_settled_mv_per_min,
         )?,
-        min_cell_volts: r.min_cell_volts,
-        max_cell_volts: r.max_cell_volts,
+        safe_min_cell_volts: r.safe_min_cell_volts,
+        safe_max_cell_volts: r.safe_max_cell_volts,
         max_abs_amps: r.max_abs_amps,
         min_temp_c: r.min_temp_c,
         max_temp_c: r.max_temp_c,

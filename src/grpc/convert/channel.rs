@@ -41,7 +41,11 @@ pub fn channel_from_pb(
     registry: &electrochem::Registry,
 ) -> Result<ChannelDef, Status> {
     let current_sign = sign_from_pb(c.current_sign)?;
-    let (min_volts, max_volts) = match (c.min_volts, c.max_volts, registry.get(&c.chemistry_id)) {
+    let (plausible_min_cell_volts, plausible_max_cell_volts) = match (
+        c.plausible_min_cell_volts,
+        c.plausible_max_cell_volts,
+        registry.get(&c.chemistry_id),
+    ) {
         (0.0, 0.0, Ok(chem)) => ChannelDef::default_window(&chem),
         (lo, hi, _) => (lo, hi),
     };
@@ -53,9 +57,9 @@ pub fn channel_from_pb(
         capacity_ah: c.capacity_ah,
         current_sign,
         default_temp_c: c.default_temp_c,
-        min_volts,
-        max_volts,
-        e_standard_override_v: c.e_standard_override_v,
+        plausible_min_cell_volts,
+        plausible_max_cell_volts,
+        e_standard_298_override_v: c.e_standard_298_override_v,
         resistance_ohm: c.resistance_ohm,
         equilibrium_tolerance_mv: or_default(c.equilibrium_tolerance_mv, 1.0),
         coulombic_efficiency: or_default(c.coulombic_efficiency, 1.0),
@@ -78,9 +82,9 @@ pub fn channel_to_pb(def: &ChannelDef, run_id: i64) -> pb::Channel {
             CurrentSign::DischargePositive => pb::CurrentSign::DischargePositive as i32,
         },
         default_temp_c: def.default_temp_c,
-        min_volts: def.min_volts,
-        max_volts: def.max_volts,
-        e_standard_override_v: def.e_standard_override_v,
+        plausible_min_cell_volts: def.plausible_min_cell_volts,
+        plausible_max_cell_volts: def.plausible_max_cell_volts,
+        e_standard_298_override_v: def.e_standard_298_override_v,
         resistance_ohm: def.resistance_ohm,
         equilibrium_tolerance_mv: def.equilibrium_tolerance_mv,
         coulombic_efficiency: def.coulombic_efficiency,
@@ -108,5 +112,29 @@ pub fn gas_from_pb(g: &pb::GasConditions) -> GasConditions {
         o2_dry_fraction: or(g.o2_dry_fraction, d.o2_dry_fraction),
         saturated: g.saturated,
         water_activity: or(g.water_activity, d.water_activity),
+    }
+}
+
+/// A chemistry as ListChemistries (and `chemistries --json`) shows it.
+pub fn chemistry_to_pb(c: &electrochem::Chemistry) -> pb::ChemistryInfo {
+    pb::ChemistryInfo {
+        chemistry_id: c.id.clone(),
+        name: c.name.clone(),
+        reaction: c.reaction.clone(),
+        n_electrons: c.n_electrons,
+        e_standard_298_v: c.e_standard_298_volts,
+        de_dt_mv_per_k: c.de_dt_volts_per_k * 1e3,
+        delta_h_kj_per_mol: c.delta_h_kj_per_mol,
+        thermoneutral_v: c.thermoneutral_volts(),
+        min_cell_volts: c.min_cell_volts,
+        max_cell_volts: c.max_cell_volts,
+        soc_model_name: c.soc_model.name().into(),
+        sources: c.sources.clone(),
+        notes: c.notes.clone(),
+        builtin: c.builtin,
+        charge_cutoff_cell_volts: c.charge_cutoff_cell_volts,
+        discharge_cutoff_cell_volts: c.discharge_cutoff_cell_volts,
+        min_temp_c: c.min_temp_c,
+        max_temp_c: c.max_temp_c,
     }
 }

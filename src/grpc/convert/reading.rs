@@ -126,13 +126,13 @@ pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading
         )
         .then(|| cell_terminal - row.cell_volts_used);
         pb::DerivedState {
-            cell_volts: row.cell_volts_used,
+            equilibrium_cell_volts: row.cell_volts_used,
             ohmic_compensated: !matches!(
                 source,
                 OcvSource::Terminal | OcvSource::Rest | OcvSource::None
             ),
             temp_k,
-            e_standard_v: t.e_standard_volts,
+            e_standard_at_temp_v: t.e_standard_volts,
             delta_g_kj_per_mol: known.then_some(t.delta_g_kj_per_mol),
             delta_g_standard_kj_per_mol: t.delta_g_standard_kj_per_mol,
             ln_q: known.then_some(t.ln_q),
@@ -144,7 +144,7 @@ pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading
             } else {
                 pb::ReactionState::Unspecified as i32
             },
-            soc_model: row.soc_model,
+            soc_from_model: row.soc_model,
             soc_clamped: row.flags & flags::SOC_CLAMPED != 0,
             soc_fused: row.soc_fused,
             charge_ah: row.charge_ah,
@@ -168,7 +168,7 @@ pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading
         seq: row.seq,
         time_unix_ns: row.time_ns,
         volts: row.volts,
-        amps: row.amps,
+        amps_charge_positive: row.amps,
         temp_c: row.temp_c,
         run_id: row.run_id as u64,
         derived,
