@@ -596,7 +596,9 @@ fn cycle_end_check(end: CycleEnd, input: &RuleInput) -> Option<Check> {
         past |= end.flowing && (raise || early);
         clear &= soc_clear && !early;
         if raise || early {
-            (value, threshold, unit, hold_s) = (soc, soc_rule.raise_at, "SOC", soc_rule.hold_s);
+            // SOC is reported in percent: a real unit people read at once.
+            (value, threshold, unit, hold_s) =
+                (soc * 100.0, soc_rule.raise_at * 100.0, "%", soc_rule.hold_s);
         }
     }
     if volts_rule.enabled {
@@ -615,11 +617,12 @@ fn cycle_end_check(end: CycleEnd, input: &RuleInput) -> Option<Check> {
         trigger_value: value,
         threshold,
         unit,
-        message: Box::new(move || match eta {
-            Some(e) if unit == "SOC" && e > 0.0 => {
-                format!("{label} in about {e:.0} s (SOC {value:.3}, target {threshold:.3})")
+        message: Box::new(move || match (unit, eta) {
+            ("%", Some(e)) if e > 0.0 => {
+                format!("{label} in about {e:.0} s (SOC {value:.1} %, target {threshold:.1} %)")
             }
-            _ => format!("{label}: {unit} {value:.4} reached {threshold:.4}"),
+            ("%", _) => format!("{label}: SOC {value:.1} % reached {threshold:.1} %"),
+            _ => format!("{label}: cell voltage {value:.4} V reached {threshold:.4} V"),
         }),
         seconds_to_target: eta,
     })
@@ -667,7 +670,12 @@ fn voltage_limit_check(rules: &AlertRules, input: &RuleInput) -> Check {
         threshold: if v < min { min } else { max },
         unit: "V",
         message: Box::new(move || {
-            format!("cell voltage {v:.4} V outside the safe window {min:.3}–{max:.3} V")
+            let (v, min, max) = (
+                distinct(v, min, 3),
+                distinct(min, v, 3),
+                distinct(max, v, 3),
+            );
+            format!("cell voltage {v} V outside the safe window {min}–{max} V")
         }),
         seconds_to_target: None,
     }
@@ -700,9 +708,27 @@ fn temperature_limit_check(rules: &AlertRules, input: &RuleInput) -> Option<Chec
         trigger_value: temp,
         threshold: if temp < min { min } else { max },
         unit: "°C",
-        message: Box::new(move || format!("temperature {temp:.2} °C outside {min:.1}–{max:.1} °C")),
+        message: Box::new(move || {
+            let (t, lo, hi) = (
+                distinct(temp, min, 1),
+                distinct(min, temp, 1),
+                distinct(max, temp, 1),
+            );
+            format!("temperature {t} °C outside {lo}–{hi} °C")
+        }),
         seconds_to_target: None,
     })
+}
+
+/// `v` with at least `digits` decimals, and more (up to 6) until it reads
+/// differently from `other`: 70.004 °C against a 70 °C limit must not be
+/// shown as "70.0 outside −20.0–70.0".
+fn distinct(v: f64, other: f64, digits: usize) -> String {
+    let mut d = digits;
+    while d < 6 && v != other && format!("{v:.d$}") == format!("{other:.d$}") {
+        d += 1;
+    }
+    format!("{v:.d$}")
 }
 
 fn apply(state: &mut ChannelRuleState, check: Check, input: &RuleInput) -> Option<AlertChange> {

@@ -230,7 +230,8 @@ fn print_frame(
     }
     out.push_str(&format!(
         "gibbsline demo — {:.0}/{:.0} s, {} readings stored, {} alert events (Ctrl-C to stop)\n\n",
-        elapsed,
+        // The last redraw comes after the run's end: never "20/15 s".
+        elapsed.min(args.duration.as_secs_f64()),
         args.duration.as_secs_f64(),
         stats.acked.load(Ordering::Relaxed),
         total_alerts

@@ -170,7 +170,13 @@ fn prose(id: &str, s: &pb::GetChannelStateResponse) -> Vec<String> {
 fn estimator_lines(d: &pb::DerivedState, e: &pb::EstimatorState) -> Vec<String> {
     let r_text = e
         .resistance_ohm
-        .map(|r| format!("{:.4} Ω ({})", r, e.resistance_source))
+        .map(|r| {
+            format!(
+                "{:.4} Ω ({})",
+                r,
+                resistance_source_text(&e.resistance_source)
+            )
+        })
         .unwrap_or_else(|| "unknown".into());
     let mut lines = vec![format!(
         "    charge {:.4} Ah, energy {:.4} Wh, R {r_text}, gaps {}",
@@ -187,6 +193,15 @@ fn estimator_lines(d: &pb::DerivedState, e: &pb::EstimatorState) -> Vec<String> 
         ));
     }
     lines
+}
+
+/// Where the resistance in use came from, in words.
+fn resistance_source_text(source: &str) -> &str {
+    match source {
+        "current_step" => "measured from current steps",
+        "configured" => "configured",
+        other => other,
+    }
 }
 
 /// ΔG, Q and the driving force of one reading, or why they are absent.

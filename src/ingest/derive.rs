@@ -123,7 +123,7 @@ fn check_timeline(
         return Err((
             "seq",
             format!(
-                "seq = {}: jumps {} past the channel's last seq {front} (limit {}); quarantined, not stored: if the rig renumbered, reset the channel's timeline",
+                "seq = {}: jumps {} past the channel's last seq {front} (limit {}); quarantined, not stored: if the rig renumbered, reset the channel's timeline (`gibbsline channels reset-timeline`)",
                 r.seq,
                 r.seq - front,
                 rt.limits.max_seq_jump

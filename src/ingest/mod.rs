@@ -60,7 +60,9 @@ pub const MIN_TIME_NS: i64 = 946_684_800 * 1_000_000_000;
 
 #[derive(Debug, thiserror::Error)]
 pub enum IngestError {
-    #[error("channel_id {0:?}: unknown channel (define it with PutChannel first)")]
+    #[error(
+        "channel_id {0:?}: unknown channel (define it first: `gibbsline channels put FILE`, or the PutChannel RPC)"
+    )]
     UnknownChannel(String),
     #[error("{field} = {value}: {reason}")]
     Invalid {

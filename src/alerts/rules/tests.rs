@@ -139,6 +139,13 @@ fn end_of_charge_lead_time() {
     let a = raised(&changes, AlertKind::EndOfCharge);
     assert_eq!(a.len(), 1);
     assert!((a[0].seconds_to_target.unwrap() - 500.0).abs() < 1e-6);
+    // SOC is reported in percent, in the fields and in the words.
+    assert_eq!(a[0].unit, "%");
+    assert!((a[0].trigger_value - 90.0).abs() < 1e-9 && (a[0].threshold - 95.0).abs() < 1e-9);
+    assert_eq!(
+        a[0].message,
+        "end of charge in about 500 s (SOC 90.0 %, target 95.0 %)"
+    );
 }
 
 #[test]
@@ -254,4 +261,12 @@ fn rules_validate_names_field() {
             .to_string()
             .contains("max_temp_c = NaN")
     );
+}
+
+#[test]
+fn distinct_shows_enough_digits_to_tell_a_value_from_its_limit() {
+    assert_eq!(distinct(70.004, 70.0, 1), "70.004");
+    assert_eq!(distinct(70.0, 70.004, 1), "70.000");
+    assert_eq!(distinct(71.5, 70.0, 1), "71.5");
+    assert_eq!(distinct(-20.0, 71.5, 1), "-20.0");
 }
