@@ -154,8 +154,12 @@ async fn put_configured(
 ) -> Result<(), AppError> {
     for entry in channels {
         let id = entry.def.channel_id.clone();
+        let chemistry = hub.registry().get(&entry.def.chemistry_id).ok();
         hub.put_channel(entry.def).await?;
-        if let Some(rules) = entry.rules {
+        // The config was checked as it loaded: the chemistry is known and
+        // the patch applies.
+        if let (Some(patch), Some(chemistry)) = (entry.rules, chemistry) {
+            let rules = patch.over(&crate::alerts::AlertRules::for_chemistry(&chemistry))?;
             hub.put_rules(&id, rules).await?;
         }
     }

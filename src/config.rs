@@ -146,6 +146,40 @@ pub struct TlsPem {
     pub client_ca: Option<Vec<u8>>,
 }
 
+/// `[channel.rules]` as the user wrote it: any subset of the rules, a
+/// threshold's table in part (`end_of_charge_soc = { raise_at = 0.9 }`).
+/// What is not written takes the chemistry's default.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
+#[serde(transparent)]
+pub struct RulesPatch(pub toml::Table);
+
+impl RulesPatch {
+    /// The whole rules: `base` (the chemistry's defaults) with this patch
+    /// over it, checked; an unknown key or a bad value is refused naming it.
+    pub fn over(&self, base: &AlertRules) -> Result<AlertRules, FieldError> {
+        let mut merged = toml::Table::try_from(base)
+            .map_err(|e| FieldError::new("rules", "(defaults)", e.to_string()))?;
+        for (key, value) in &self.0 {
+            match (merged.get_mut(key), value) {
+                (Some(toml::Value::Table(into)), toml::Value::Table(part)) => {
+                    into.extend(part.iter().map(|(k, v)| (k.clone(), v.clone())));
+                }
+                _ => {
+                    merged.insert(key.clone(), value.clone());
+                }
+            }
+        }
+        let rules: AlertRules =
+            toml::Value::Table(merged)
+                .try_into()
+                .map_err(|e: toml::de::Error| {
+                    FieldError::new("rules", "(as written)", e.message().trim().to_string())
+                })?;
+        rules.validate()?;
+        Ok(rules)
+    }
+}
+
 /// A channel with optional rules.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -153,8 +187,9 @@ pub struct ChannelEntry {
     /// The channel's fields, at the table's top level.
     #[serde(flatten)]
     pub def: ChannelDef,
-    /// `[channel.rules]`; unset: the chemistry's defaults.
-    pub rules: Option<AlertRules>,
+    /// `[channel.rules]` as written: only what differs from the
+    /// chemistry's defaults (see [`RulesPatch`]); unset: all defaults.
+    pub rules: Option<RulesPatch>,
 }
 
 /// The effective, validated configuration.
@@ -397,9 +432,12 @@ fn check_definitions(text: &str, file: &ConfigFile) -> Result<(), Problem> {
                 format!("channel[{i}]: channel_id = {id:?} is defined twice"),
             ));
         }
-        if let Some(rules) = &entry.rules {
-            rules
-                .validate()
+        if let Some(patch) = &entry.rules {
+            let chemistry = registry
+                .get(&entry.def.chemistry_id)
+                .map_err(|e| (line, format!("channel[{i}] ({id:?}): {e}")))?;
+            patch
+                .over(&AlertRules::for_chemistry(&chemistry))
                 .map_err(|e| (line, format!("channel[{i}] ({id:?}): rules.{e}")))?;
         }
     }
@@ -572,6 +610,36 @@ plausible_max_cell_volts = 2.0
         };
         let e = load_with_flags("lab.toml", GOOD, &env(&[]), &flags).unwrap_err();
         assert!(e.to_string().contains("lab-chem.toml"), "{e}");
+    }
+
+    #[test]
+    fn a_partial_rules_table_takes_the_chemistry_defaults_for_the_rest() {
+        let text = format!(
+            "{GOOD}\n[channel.rules]\nmax_abs_amps = 40.0\nend_of_charge_soc = {{ raise_at = 0.9 }}\n"
+        );
+        let c = load("lab.toml", &text, &env(&[])).unwrap();
+        let chemistry = Registry::builtin().get("vanadium-redox").unwrap();
+        let defaults = AlertRules::for_chemistry(&chemistry);
+        let rules = c.channel[0]
+            .rules
+            .as_ref()
+            .unwrap()
+            .over(&defaults)
+            .unwrap();
+        assert_eq!(rules.max_abs_amps, 40.0);
+        assert_eq!(rules.end_of_charge_soc.raise_at, 0.9);
+        // The rest of that threshold, and every other rule, as the chemistry has them.
+        assert_eq!(
+            rules.end_of_charge_soc.clear_at,
+            defaults.end_of_charge_soc.clear_at
+        );
+        assert_eq!(rules.safe_max_cell_volts, defaults.safe_max_cell_volts);
+        let typo = format!("{GOOD}\n[channel.rules]\nmax_abs_amp = 40.0\n");
+        let e = load("lab.toml", &typo, &env(&[])).unwrap_err().to_string();
+        assert!(e.contains("max_abs_amp") && e.contains("lab.toml:"), "{e}");
+        let bad = format!("{GOOD}\n[channel.rules]\nend_of_charge_soc = {{ clear_at = 0.99 }}\n");
+        let e = load("lab.toml", &bad, &env(&[])).unwrap_err().to_string();
+        assert!(e.contains("end_of_charge_soc.clear_at = 0.99"), "{e}");
     }
 
     fn error_for(from: &str, to: &str) -> String {

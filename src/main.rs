@@ -29,10 +29,29 @@ fn main() -> ExitCode {
             if let Some(status) = err.downcast_ref::<tonic::Status>() {
                 return report_status(status);
             }
-            eprintln!("error: {err:#}");
+            eprintln!("error: {}", said_once(&err));
             ExitCode::from(1)
         }
     }
+}
+
+/// The error and its causes, each said once: most of our errors already
+/// print their cause in their own message (thiserror's `{0}` with
+/// `#[from]`), and sqlx's do too, so the plain chain would repeat the same
+/// words two or three times.
+fn said_once(err: &anyhow::Error) -> String {
+    let mut line = String::new();
+    for cause in err.chain() {
+        let text = cause.to_string();
+        if line.contains(&text) {
+            continue;
+        }
+        if !line.is_empty() {
+            line.push_str(": ");
+        }
+        line.push_str(&text);
+    }
+    line
 }
 
 /// One line for a failed call. A status that comes from the transport (the

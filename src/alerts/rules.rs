@@ -147,6 +147,40 @@ fn default_after_stop_s() -> f64 {
     60.0
 }
 
+/// What a chemistry's default rules are made from.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct RuleBasis {
+    /// Per-cell voltage that ends a charge under current, V.
+    pub charge_cutoff_cell_volts: f64,
+    /// Per-cell voltage that ends a discharge under current, V.
+    pub discharge_cutoff_cell_volts: f64,
+    /// The chemistry's per-cell range, V.
+    pub min_cell_volts: f64,
+    /// Upper end of that range, V.
+    pub max_cell_volts: f64,
+    /// Temperatures its data hold for, °C.
+    pub min_temp_c: f64,
+    /// Upper end of those, °C.
+    pub max_temp_c: f64,
+    /// Whether it has a state of charge at all.
+    pub has_soc_model: bool,
+}
+
+impl RuleBasis {
+    /// The basis of `chemistry`'s defaults.
+    pub fn of(chemistry: &crate::electrochem::Chemistry) -> RuleBasis {
+        RuleBasis {
+            charge_cutoff_cell_volts: chemistry.charge_cutoff_cell_volts,
+            discharge_cutoff_cell_volts: chemistry.discharge_cutoff_cell_volts,
+            min_cell_volts: chemistry.min_cell_volts,
+            max_cell_volts: chemistry.max_cell_volts,
+            min_temp_c: chemistry.min_temp_c,
+            max_temp_c: chemistry.max_temp_c,
+            has_soc_model: chemistry.soc_model.name() != "none",
+        }
+    }
+}
+
 impl AlertRules {
     /// Defaults from the chemistry's per-cell window (common practice:
     /// end of charge at SOC 0.95 or the charge cutoff, end of discharge at
@@ -178,15 +212,19 @@ impl AlertRules {
     /// them, and its operating temperatures. A cell with no state of
     /// charge (the water cell) has no end of charge or discharge.
     pub fn for_chemistry(chemistry: &crate::electrochem::Chemistry) -> AlertRules {
-        let mut rules = AlertRules::defaults_for(
-            chemistry.discharge_cutoff_cell_volts,
-            chemistry.charge_cutoff_cell_volts,
-        );
-        rules.safe_min_cell_volts = rules.safe_min_cell_volts.min(chemistry.min_cell_volts);
-        rules.safe_max_cell_volts = rules.safe_max_cell_volts.max(chemistry.max_cell_volts);
-        rules.min_temp_c = chemistry.min_temp_c;
-        rules.max_temp_c = chemistry.max_temp_c;
-        if chemistry.soc_model.name() == "none" {
+        AlertRules::for_basis(&RuleBasis::of(chemistry))
+    }
+
+    /// [`AlertRules::for_chemistry`] from the figures it needs, which a
+    /// client also has from `ListChemistries`.
+    pub fn for_basis(b: &RuleBasis) -> AlertRules {
+        let mut rules =
+            AlertRules::defaults_for(b.discharge_cutoff_cell_volts, b.charge_cutoff_cell_volts);
+        rules.safe_min_cell_volts = rules.safe_min_cell_volts.min(b.min_cell_volts);
+        rules.safe_max_cell_volts = rules.safe_max_cell_volts.max(b.max_cell_volts);
+        rules.min_temp_c = b.min_temp_c;
+        rules.max_temp_c = b.max_temp_c;
+        if !b.has_soc_model {
             for t in [
                 &mut rules.end_of_charge_soc,
                 &mut rules.end_of_charge_cell_volts,

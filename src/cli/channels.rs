@@ -4,10 +4,13 @@
 use super::client;
 use super::output::{self, Col, Format, Row};
 use super::{DEFAULT_ADDR, Signed, UsageError};
+use gibbsline::alerts::AlertRules;
+use gibbsline::alerts::rules::RuleBasis;
 use gibbsline::grpc::convert::{channel_to_pb, rules_to_pb};
 use gibbsline::pb;
 use gibbsline::pb::alert_service_client::AlertServiceClient;
 use gibbsline::pb::channel_service_client::ChannelServiceClient;
+use gibbsline::pb::chemistry_service_client::ChemistryServiceClient;
 use serde::Serialize;
 use std::path::{Path, PathBuf};
 
@@ -165,10 +168,39 @@ fn read_file(file: &Path) -> Result<ChannelsFile, UsageError> {
     })
 }
 
+/// What each of the server's chemistries makes its default rules from:
+/// rules in a channels file are written as differences from those.
+async fn rule_bases(
+    conn: &client::Conn,
+) -> anyhow::Result<std::collections::BTreeMap<String, RuleBasis>> {
+    let list = ChemistryServiceClient::new(conn.clone())
+        .list_chemistries(pb::ListChemistriesRequest {})
+        .await
+        .map_err(client::status_error)?
+        .into_inner();
+    Ok(list
+        .chemistries
+        .into_iter()
+        .map(|c| {
+            let basis = RuleBasis {
+                charge_cutoff_cell_volts: c.charge_cutoff_cell_volts,
+                discharge_cutoff_cell_volts: c.discharge_cutoff_cell_volts,
+                min_cell_volts: c.min_cell_volts,
+                max_cell_volts: c.max_cell_volts,
+                min_temp_c: c.min_temp_c,
+                max_temp_c: c.max_temp_c,
+                has_soc_model: c.soc_model_name != "none",
+            };
+            (c.chemistry_id, basis)
+        })
+        .collect())
+}
+
 async fn put(file: &Path, connect: &str) -> anyhow::Result<()> {
     let parsed = read_file(file)?;
     let conn = client::connect(connect).await?;
     let mut channels = ChannelServiceClient::new(conn.clone());
+    let bases = rule_bases(&conn).await?;
     let mut alerts = AlertServiceClient::new(conn);
     for entry in parsed.channel {
         let id = entry.def.channel_id.clone();
@@ -187,7 +219,17 @@ async fn put(file: &Path, connect: &str) -> anyhow::Result<()> {
             .await
             .map_err(|s| refused("channel", s))?
             .into_inner();
-        if let Some(rules) = entry.rules {
+        if let Some(patch) = entry.rules {
+            let basis = bases.get(&entry.def.chemistry_id).ok_or_else(|| {
+                UsageError(format!(
+                    "{}: rules of {id:?}: the server knows no chemistry {:?}",
+                    file.display(),
+                    entry.def.chemistry_id
+                ))
+            })?;
+            let rules = patch
+                .over(&AlertRules::for_basis(basis))
+                .map_err(|e| UsageError(format!("{}: rules of {id:?}: {e}", file.display())))?;
             let request = pb::PutAlertRulesRequest {
                 channel_id: id.clone(),
                 rules: Some(rules_to_pb(&rules)),

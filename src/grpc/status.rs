@@ -21,7 +21,9 @@ impl From<IngestError> for Status {
                 tracing::warn!(error = %message, "write refused by storage");
                 storage_status(fault, message)
             }
-            IngestError::Store(StoreError::InUse { .. }) => Status::failed_precondition(message),
+            IngestError::Store(StoreError::InUse { .. } | StoreError::Open { .. }) => {
+                Status::failed_precondition(message)
+            }
             IngestError::Store(
                 StoreError::Database(_)
                 | StoreError::Migrate(_)

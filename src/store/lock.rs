@@ -30,7 +30,10 @@ impl DbLock {
             .create(true)
             .truncate(false)
             .open(&path)
-            .map_err(|e| StoreError::Database(sqlx::Error::Io(e)))?;
+            .map_err(|e| StoreError::Open {
+                path: db.to_path_buf(),
+                reason: format!("lock file {}: {e}", path.display()),
+            })?;
         if let Err(e) = file.try_lock() {
             let mut holder = String::new();
             let _ = file.read_to_string(&mut holder);

@@ -36,6 +36,9 @@ pub enum StoreError {
     Migrate(#[from] sqlx::migrate::MigrateError),
     #[error("stored data is corrupt: {0}")]
     Corrupt(String),
+    /// The database file could not be opened or created at all.
+    #[error("database {}: cannot open it ({reason}); does its directory exist and may this user write there?", path.display())]
+    Open { path: PathBuf, reason: String },
     /// A write the database could not take, classified (see [`StorageFault`]).
     #[error("{}", fault.describe(path, detail))]
     Unwritable {
@@ -147,7 +150,11 @@ impl Store {
         let writer = SqlitePoolOptions::new()
             .max_connections(1)
             .connect_with(base.clone().create_if_missing(true))
-            .await?;
+            .await
+            .map_err(|e| StoreError::Open {
+                path: path.to_path_buf(),
+                reason: e.to_string(),
+            })?;
         sqlx::migrate!("./migrations").run(&writer).await?;
         let reader = SqlitePoolOptions::new()
             .max_connections(4)
