@@ -11,4 +11,5 @@ mod hostile;
 mod metrics;
 mod security;
 mod service;
+mod surface;
 mod truth;
