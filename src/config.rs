@@ -159,24 +159,40 @@ impl RulesPatch {
     pub fn over(&self, base: &AlertRules) -> Result<AlertRules, FieldError> {
         let mut merged = toml::Table::try_from(base)
             .map_err(|e| FieldError::new("rules", "(defaults)", e.to_string()))?;
-        for (key, value) in &self.0 {
+        for (written, value) in &self.0 {
+            // Names read for one release under their new names, so a
+            // patch in the old spelling replaces the default, not joins it.
+            let key = match written.as_str() {
+                "min_cell_volts" => "safe_min_cell_volts",
+                "max_cell_volts" => "safe_max_cell_volts",
+                other => other,
+            };
             match (merged.get_mut(key), value) {
                 (Some(toml::Value::Table(into)), toml::Value::Table(part)) => {
                     into.extend(part.iter().map(|(k, v)| (k.clone(), v.clone())));
                 }
                 _ => {
-                    merged.insert(key.clone(), value.clone());
+                    merged.insert(key.to_string(), value.clone());
                 }
             }
         }
-        let rules: AlertRules =
-            toml::Value::Table(merged)
-                .try_into()
-                .map_err(|e: toml::de::Error| {
-                    FieldError::new("rules", "(as written)", e.message().trim().to_string())
-                })?;
+        let rules: AlertRules = toml::Value::Table(merged)
+            .try_into()
+            .map_err(|e: toml::de::Error| self.refusal(e.message().trim()))?;
         rules.validate()?;
         Ok(rules)
+    }
+
+    /// A refusal from the rules' own parser, naming the key it names
+    /// (`unknown field `x``) and the value written for it.
+    fn refusal(&self, message: &str) -> FieldError {
+        let key = message.split('`').nth(1).unwrap_or("(table)");
+        let value = self
+            .0
+            .get(key)
+            .map(|v| v.to_string())
+            .unwrap_or_else(|| "(as written)".into());
+        FieldError::new(key, value, message)
     }
 }
 
@@ -634,6 +650,16 @@ plausible_max_cell_volts = 2.0
             defaults.end_of_charge_soc.clear_at
         );
         assert_eq!(rules.safe_max_cell_volts, defaults.safe_max_cell_volts);
+        // The old name of the safe window still reads, and replaces the default.
+        let old = format!("{GOOD}\n[channel.rules]\nmax_cell_volts = 1.9\n");
+        let c = load("lab.toml", &old, &env(&[])).unwrap();
+        let rules = c.channel[0]
+            .rules
+            .as_ref()
+            .unwrap()
+            .over(&defaults)
+            .unwrap();
+        assert_eq!(rules.safe_max_cell_volts, 1.9);
         let typo = format!("{GOOD}\n[channel.rules]\nmax_abs_amp = 40.0\n");
         let e = load("lab.toml", &typo, &env(&[])).unwrap_err().to_string();
         assert!(e.contains("max_abs_amp") && e.contains("lab.toml:"), "{e}");

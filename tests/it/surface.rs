@@ -184,7 +184,10 @@ async fn every_command_prints_every_format_it_accepts_under_one_set_of_names() {
         for (args, format) in [
             (s(&["chemistries"]), "table"),
             (s(&["chemistries", "--json"]), "json"),
-            (s(&["eval", "--chemistry", "daniell", "--volts", "1.1"]), "table"),
+            (
+                s(&["eval", "--chemistry", "daniell", "--volts", "1.1"]),
+                "table",
+            ),
             (
                 s(&["eval", "--chemistry", "daniell", "--volts", "1.1", "--json"]),
                 "json",
@@ -202,8 +205,14 @@ async fn every_command_prints_every_format_it_accepts_under_one_set_of_names() {
 
     let proto = proto_field_names();
     for retired in RETIRED {
-        assert!(!proto.contains(*retired), "proto field {retired} is retired");
-        assert!(!names.contains(*retired), "CLI prints retired name {retired}");
+        assert!(
+            !proto.contains(*retired),
+            "proto field {retired} is retired"
+        );
+        assert!(
+            !names.contains(*retired),
+            "CLI prints retired name {retired}"
+        );
     }
     for name in SHARED {
         assert!(proto.contains(*name), "{name} is no proto field");
