@@ -630,18 +630,22 @@ plausible_max_cell_volts = 2.0
 
     #[test]
     fn a_partial_rules_table_takes_the_chemistry_defaults_for_the_rest() {
-        let text = format!(
-            "{GOOD}\n[channel.rules]\nmax_abs_amps = 40.0\nend_of_charge_soc = {{ raise_at = 0.9 }}\n"
-        );
-        let c = load("lab.toml", &text, &env(&[])).unwrap();
         let chemistry = Registry::builtin().get("vanadium-redox").unwrap();
         let defaults = AlertRules::for_chemistry(&chemistry);
-        let rules = c.channel[0]
-            .rules
-            .as_ref()
-            .unwrap()
-            .over(&defaults)
-            .unwrap();
+        let rules_of = |rules: &str| {
+            let c = load(
+                "lab.toml",
+                &format!("{GOOD}\n[channel.rules]\n{rules}"),
+                &env(&[]),
+            );
+            c.unwrap().channel[0]
+                .rules
+                .as_ref()
+                .unwrap()
+                .over(&defaults)
+                .unwrap()
+        };
+        let rules = rules_of("max_abs_amps = 40.0\nend_of_charge_soc = { raise_at = 0.9 }\n");
         assert_eq!(rules.max_abs_amps, 40.0);
         assert_eq!(rules.end_of_charge_soc.raise_at, 0.9);
         // The rest of that threshold, and every other rule, as the chemistry has them.
@@ -651,15 +655,7 @@ plausible_max_cell_volts = 2.0
         );
         assert_eq!(rules.safe_max_cell_volts, defaults.safe_max_cell_volts);
         // The old name of the safe window still reads, and replaces the default.
-        let old = format!("{GOOD}\n[channel.rules]\nmax_cell_volts = 1.9\n");
-        let c = load("lab.toml", &old, &env(&[])).unwrap();
-        let rules = c.channel[0]
-            .rules
-            .as_ref()
-            .unwrap()
-            .over(&defaults)
-            .unwrap();
-        assert_eq!(rules.safe_max_cell_volts, 1.9);
+        assert_eq!(rules_of("max_cell_volts = 1.9\n").safe_max_cell_volts, 1.9);
         let typo = format!("{GOOD}\n[channel.rules]\nmax_abs_amp = 40.0\n");
         let e = load("lab.toml", &typo, &env(&[])).unwrap_err().to_string();
         assert!(e.contains("max_abs_amp") && e.contains("lab.toml:"), "{e}");
