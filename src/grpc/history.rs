@@ -206,10 +206,15 @@ impl pb::history_service_server::HistoryService for HistoryApi {
                 "gives more than 100,000 buckets; widen it",
             ));
         }
+        // Buckets sit on whole multiples of their width since the epoch, so
+        // the same query gives the same buckets whenever it is asked (a
+        // dashboard's "last hour" moves its start every second); the first
+        // one is whole, starting at or before the asked start.
+        let start = q.start_unix_ns.div_euclid(q.bucket_width_ns) * q.bucket_width_ns;
         let rows = store::query_buckets(
             &self.hub.store().reader,
             key,
-            q.start_unix_ns,
+            start,
             end,
             q.bucket_width_ns,
         )
@@ -217,7 +222,7 @@ impl pb::history_service_server::HistoryService for HistoryApi {
         let runs = self.runs_of(key).await?;
         let buckets = rows
             .iter()
-            .map(|b| convert::bucket_to_pb(b, q.start_unix_ns, q.bucket_width_ns, &runs))
+            .map(|b| convert::bucket_to_pb(b, start, q.bucket_width_ns, &runs))
             .collect();
         Ok(Response::new(pb::QueryBucketsResponse { buckets }))
     }

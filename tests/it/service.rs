@@ -91,6 +91,20 @@ async fn stream_store_query_restart_resend() {
             .iter()
             .all(|b| (b.volts.as_ref().unwrap().mean - 1.35).abs() < 1e-12)
     );
+    // Aligned: every bucket starts on a whole multiple of its width, and
+    // asking from another start inside the first bucket gives the same ones.
+    assert!(b.buckets.iter().all(|b| b.start_unix_ns % 10_000_000_000 == 0));
+    let later = history
+        .query_buckets(pb::QueryBucketsRequest {
+            channel_id: "bench-a".into(),
+            start_unix_ns: b.buckets[0].start_unix_ns + 3_000_000_000,
+            end_unix_ns: t0 + 200_000_000_000,
+            bucket_width_ns: 10_000_000_000,
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(later.buckets, b.buckets);
 
     // Restart on the same file; everything acknowledged is there, and a
     // resend from an earlier seq counts duplicates and stores only the new.
