@@ -362,7 +362,11 @@ pub fn render_metrics(hub: &Hub) -> String {
             (last > 0).then(|| (id, (now - last) as f64 / 1e9))
         })
         .collect();
-    hub.metrics().render(hub.writer_queue_depth(), &ages)
+    let mut page = hub.metrics().render(hub.writer_queue_depth(), &ages);
+    let db = hub.store().path();
+    let file_bytes = std::fs::metadata(db).map(|m| m.len()).unwrap_or(0);
+    crate::metrics::render_storage(&mut page, file_bytes, store::report::wal_bytes(db));
+    page
 }
 
 /// The built-ins, those stored by earlier runs, and the config's own.

@@ -203,6 +203,26 @@ impl Metrics {
 }
 
 /// A metric family's HELP and TYPE lines.
+/// The database's size on disk: file and write-ahead log, bytes. Row
+/// counts cost a scan and are left to `gibbsline db stats`.
+pub fn render_storage(o: &mut String, file_bytes: u64, wal_bytes: u64) {
+    for (name, help, v) in [
+        (
+            "gibbsline_db_file_bytes",
+            "Size of the database file.",
+            file_bytes,
+        ),
+        (
+            "gibbsline_db_wal_bytes",
+            "Size of its write-ahead log.",
+            wal_bytes,
+        ),
+    ] {
+        family(o, name, help, "gauge");
+        let _ = writeln!(o, "{name} {v}");
+    }
+}
+
 fn family(o: &mut String, name: &str, help: &str, kind: &str) {
     let _ = writeln!(o, "# HELP {name} {help}\n# TYPE {name} {kind}");
 }

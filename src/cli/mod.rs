@@ -6,6 +6,7 @@ pub(crate) mod channels;
 pub(crate) mod client;
 pub(crate) mod config_check;
 pub(crate) mod cycles;
+pub(crate) mod db;
 pub(crate) mod demo;
 pub(crate) mod eval;
 pub(crate) mod names;
@@ -67,6 +68,9 @@ pub(crate) enum Command {
     /// Configuration files.
     #[command(subcommand)]
     Config(ConfigCommand),
+    /// The database: what it holds and what it costs on disk.
+    #[command(subcommand)]
+    Db(db::DbCommand),
     /// The whole job in one process: server, simulated bench, live table, alerts.
     Demo(demo::DemoArgs),
     /// Simulated rigs.
@@ -213,6 +217,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Channels(cmd) => block_on(channels::run(&cmd)),
         Command::Cycles(args) => block_on(cycles::run(&args)),
         Command::Token(cmd) => token::run(&cmd),
+        Command::Db(cmd) => block_on(db::run(&cmd)),
         Command::Config(ConfigCommand::Check { file, no_files }) => {
             config_check::run(&file, no_files)
         }

@@ -90,6 +90,15 @@ pub(crate) const fn concat<T: Copy, const A: usize, const B: usize, const N: usi
     out
 }
 
+/// Prints one report (not a list) as one JSON object.
+pub(crate) fn print_one<T: Serialize>(value: &T) -> anyhow::Result<()> {
+    let stdout = std::io::stdout();
+    let mut out = stdout.lock();
+    serde_json::to_writer(&mut out, value).map_err(from_json)?;
+    writeln!(out)?;
+    Ok(())
+}
+
 /// Prints rows as a whole list: a JSON array, CSV with its header, or a
 /// table with its heading line.
 pub(crate) fn print_all<R: Row>(rows: &[R], format: Format) -> anyhow::Result<()> {

@@ -211,14 +211,9 @@ impl pb::history_service_server::HistoryService for HistoryApi {
         // dashboard's "last hour" moves its start every second); the first
         // one is whole, starting at or before the asked start.
         let start = q.start_unix_ns.div_euclid(q.bucket_width_ns) * q.bucket_width_ns;
-        let rows = store::query_buckets(
-            &self.hub.store().reader,
-            key,
-            start,
-            end,
-            q.bucket_width_ns,
-        )
-        .await?;
+        let rows =
+            store::query_buckets(&self.hub.store().reader, key, start, end, q.bucket_width_ns)
+                .await?;
         let runs = self.runs_of(key).await?;
         let buckets = rows
             .iter()

@@ -18,6 +18,7 @@
 
 mod fault;
 mod lock;
+pub mod report;
 
 use crate::alerts::{AlertKind, RaisedAlert, Severity};
 pub use fault::StorageFault;

@@ -98,5 +98,10 @@ async fn metrics_count_what_ingest_did() {
     );
     assert!((0.0..60.0).contains(&age), "last seen {age} s ago");
     assert!(sample(&text, "gibbsline_writer_queue_depth") >= 0.0);
+    // The database's size, as the file system has it (WAL mode: the file
+    // holds at least the schema's pages, the log the recent commits).
+    let file_bytes = sample(&text, "gibbsline_db_file_bytes");
+    assert!(file_bytes >= 4096.0, "{file_bytes}");
+    assert!(sample(&text, "gibbsline_db_wal_bytes") >= 0.0);
     server.stop().await;
 }

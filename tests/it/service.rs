@@ -93,7 +93,11 @@ async fn stream_store_query_restart_resend() {
     );
     // Aligned: every bucket starts on a whole multiple of its width, and
     // asking from another start inside the first bucket gives the same ones.
-    assert!(b.buckets.iter().all(|b| b.start_unix_ns % 10_000_000_000 == 0));
+    assert!(
+        b.buckets
+            .iter()
+            .all(|b| b.start_unix_ns % 10_000_000_000 == 0)
+    );
     let later = history
         .query_buckets(pb::QueryBucketsRequest {
             channel_id: "bench-a".into(),

@@ -173,6 +173,8 @@ async fn every_command_prints_every_format_it_accepts_under_one_set_of_names() {
         commands.push(([s(&cmd), s(&connect)].concat(), all));
     }
     commands.push(([s(&["state"]), s(&connect)].concat(), table_json));
+    let db_path = db.display().to_string();
+    commands.push((s(&["db", "stats", "--db", db_path.as_str()]), table_json));
     let mut printed = BTreeSet::new();
     let machine_names = tokio::task::spawn_blocking(move || {
         for (args, formats) in &commands {
@@ -242,4 +244,41 @@ async fn first_watch_line(addr: &str) -> String {
     })
     .await
     .unwrap()
+}
+
+/// `db stats` beside a running server: every table, and each channel's
+/// readings with their span, as the store has them.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn db_stats_reports_rows_and_bytes_beside_a_running_server() {
+    let (_dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    bench_with_history(&server).await;
+    let path = db.display().to_string();
+    let text = tokio::task::spawn_blocking(move || {
+        run(&[
+            "db".into(),
+            "stats".into(),
+            "--db".into(),
+            path,
+            "--format".into(),
+            "json".into(),
+        ])
+    })
+    .await
+    .unwrap();
+    let v: serde_json::Value = serde_json::from_str(&text).unwrap();
+    let readings = v["tables"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|t| t["table"] == "readings")
+        .unwrap();
+    assert_eq!(readings["rows"], 300);
+    assert!(readings["bytes"].as_u64().unwrap() > 0);
+    let channel = &v["channels"][0];
+    assert_eq!(channel["channel_id"], "face-1");
+    assert_eq!(channel["readings"], 300);
+    assert!(channel["oldest_unix_ns"].as_i64() < channel["newest_unix_ns"].as_i64());
+    assert!(v["file_bytes"].as_u64().unwrap() + v["wal_bytes"].as_u64().unwrap() > 0);
+    server.stop().await;
 }
