@@ -245,13 +245,18 @@ async fn write_readings(
     // A fresh row can only collide if two streams raced on a channel;
     // count it as the duplicate it is.
     out.duplicates += r.rows.len() as u64 - out.fresh_inserted;
+    let mut written: Vec<i64> = r.rows.iter().map(|row| row.time_ns).collect();
     for row in &r.maybe_dup {
         if store::insert_if_new(tx, row).await? {
             out.late_inserted += 1;
+            written.push(row.time_ns);
         } else {
             out.duplicates += 1;
         }
     }
+    // In the same transaction: a crash can't leave the rollups out of
+    // step with the readings they summarise.
+    store::rollup::refresh(tx, r.channel_key, &written).await?;
     for change in &r.changes {
         let event = match change {
             AlertChange::Raise(a) => Some(raise(tx, ids, r.channel_key, r.run_id, a).await?),

@@ -19,6 +19,7 @@
 mod fault;
 mod lock;
 pub mod report;
+pub mod rollup;
 
 use crate::alerts::{AlertKind, RaisedAlert, Severity};
 pub use fault::StorageFault;
@@ -1066,9 +1067,9 @@ pub struct BucketRow {
     pub last_run_id: i64,
 }
 
-/// Downsampled history. `last` uses SQLite's rule that bare columns in an
-/// aggregate query with MAX() come from the row holding the maximum (a
-/// PostgreSQL store would use a window function instead).
+/// Downsampled history: from the rollups when a tier tiles the width
+/// ([`rollup::tier_for`]), from the readings otherwise. `last` is the
+/// reading with the latest time (the highest seq among equal times).
 pub async fn query_buckets(
     pool: &SqlitePool,
     channel_key: i64,
@@ -1076,14 +1077,22 @@ pub async fn query_buckets(
     end_ns: i64,
     width_ns: i64,
 ) -> Result<Vec<BucketRow>, StoreError> {
+    if let Some(tier_s) = rollup::tier_for(width_ns) {
+        return rollup::query(pool, channel_key, start_ns, end_ns, width_ns, tier_s).await;
+    }
     let rows = sqlx::query(
-        "SELECT (time_ns - ?1) / ?2 AS bucket, COUNT(*) AS n, \
-         MIN(volts) AS v_min, MAX(volts) AS v_max, AVG(volts) AS v_mean, \
-         MIN(soc_fused) AS s_min, MAX(soc_fused) AS s_max, AVG(soc_fused) AS s_mean, COUNT(soc_fused) AS s_n, \
-         MIN(cell_volts_used) AS e_min, MAX(cell_volts_used) AS e_max, AVG(cell_volts_used) AS e_mean, \
-         MAX(time_ns) AS t_last, volts AS v_last, soc_fused AS s_last, cell_volts_used AS e_last, run_id \
-         FROM readings WHERE channel_key = ?3 AND time_ns >= ?1 AND time_ns < ?4 \
-         GROUP BY bucket ORDER BY bucket",
+        "WITH agg AS ( \
+           SELECT (time_ns - ?1) / ?2 AS bucket, COUNT(*) AS n, MAX(time_ns) AS last_ns, \
+                  MIN(volts) AS v_min, MAX(volts) AS v_max, SUM(volts) AS v_sum, \
+                  COUNT(soc_fused) AS s_n, MIN(soc_fused) AS s_min, MAX(soc_fused) AS s_max, SUM(soc_fused) AS s_sum, \
+                  MIN(cell_volts_used) AS e_min, MAX(cell_volts_used) AS e_max, SUM(cell_volts_used) AS e_sum \
+           FROM readings WHERE channel_key = ?3 AND time_ns >= ?1 AND time_ns < ?4 GROUP BY bucket \
+         ), tagged AS ( \
+           SELECT agg.*, (SELECT seq FROM readings r WHERE r.channel_key = ?3 AND r.time_ns = agg.last_ns \
+                          ORDER BY seq DESC LIMIT 1) AS last_seq FROM agg \
+         ) \
+         SELECT t.*, r.volts AS v_last, r.soc_fused AS s_last, r.cell_volts_used AS e_last, r.run_id \
+         FROM tagged t JOIN readings r ON r.channel_key = ?3 AND r.seq = t.last_seq ORDER BY t.bucket",
     )
     .bind(start_ns)
     .bind(width_ns)
@@ -1091,38 +1100,7 @@ pub async fn query_buckets(
     .bind(end_ns)
     .fetch_all(pool)
     .await?;
-    rows.iter()
-        .map(|r| {
-            let s_n: i64 = r.try_get("s_n")?;
-            Ok(BucketRow {
-                bucket: r.try_get("bucket")?,
-                count: r.try_get::<i64, _>("n")? as u64,
-                volts: [
-                    r.try_get("v_min")?,
-                    r.try_get("v_max")?,
-                    r.try_get("v_mean")?,
-                    r.try_get("v_last")?,
-                ],
-                soc: if s_n > 0 {
-                    Some([
-                        r.try_get("s_min")?,
-                        r.try_get("s_max")?,
-                        r.try_get("s_mean")?,
-                        r.try_get::<Option<f64>, _>("s_last")?.unwrap_or(f64::NAN),
-                    ])
-                } else {
-                    None
-                },
-                cell_volts_used: [
-                    r.try_get("e_min")?,
-                    r.try_get("e_max")?,
-                    r.try_get("e_mean")?,
-                    r.try_get("e_last")?,
-                ],
-                last_run_id: r.try_get("run_id")?,
-            })
-        })
-        .collect()
+    rows.iter().map(rollup::bucket_of).collect()
 }
 
 pub async fn list_alerts(

@@ -1,0 +1,247 @@
+//! Rollups: readings summarised per channel on fixed tiers, kept in the
+//! same transaction as the readings, so history at any zoom reads a few
+//! hundred rows instead of millions.
+//!
+//! Tiers are 10 s, 1 min and 1 h. A bucket is never patched, always
+//! recomputed whole: the 10 s tier from the readings it covers, each tier
+//! above from the one below. That keeps late readings, resends and
+//! restarts exact at the cost of re-reading a bucket's rows (a 10 s bucket
+//! is at most a few hundred readings; a 1 h bucket is 60 rows of 1 min).
+
+use super::{BucketRow, StoreError, Tx};
+use sqlx::{Row, SqlitePool};
+
+/// The tiers, seconds, finest first.
+pub const TIERS_S: [i64; 3] = [10, 60, 3600];
+
+const NS_PER_S: i64 = 1_000_000_000;
+
+/// The coarsest tier whose buckets tile a bucket of `width_ns` exactly
+/// (a tier no wider than it and dividing it); none means raw readings.
+pub fn tier_for(width_ns: i64) -> Option<i64> {
+    TIERS_S
+        .iter()
+        .rev()
+        .copied()
+        .find(|t| width_ns >= t * NS_PER_S && width_ns % (t * NS_PER_S) == 0)
+}
+
+/// The spans `[lo, hi)` of whole buckets of `width_ns` that hold `times`,
+/// neighbours merged: one statement per span, and a late reading far back
+/// costs its own bucket, not everything in between.
+pub fn spans(times: impl IntoIterator<Item = i64>, width_ns: i64) -> Vec<(i64, i64)> {
+    let mut starts: Vec<i64> = times
+        .into_iter()
+        .map(|t| t.div_euclid(width_ns) * width_ns)
+        .collect();
+    starts.sort_unstable();
+    starts.dedup();
+    let mut out: Vec<(i64, i64)> = Vec::new();
+    for s in starts {
+        match out.last_mut() {
+            Some((_, hi)) if *hi == s => *hi = s + width_ns,
+            _ => out.push((s, s + width_ns)),
+        }
+    }
+    out
+}
+
+/// The spans of whole buckets of `width_ns` that cover `spans`, merged.
+pub fn widen(spans: &[(i64, i64)], width_ns: i64) -> Vec<(i64, i64)> {
+    let mut out: Vec<(i64, i64)> = Vec::new();
+    for &(lo, hi) in spans {
+        let lo = lo.div_euclid(width_ns) * width_ns;
+        let hi = (hi - 1).div_euclid(width_ns) * width_ns + width_ns;
+        match out.last_mut() {
+            Some((_, last_hi)) if *last_hi >= lo => *last_hi = (*last_hi).max(hi),
+            _ => out.push((lo, hi)),
+        }
+    }
+    out
+}
+
+/// Recomputes every bucket, on every tier, that holds one of `times`
+/// (the readings this transaction wrote for the channel).
+pub async fn refresh(tx: &mut Tx<'_>, channel_key: i64, times: &[i64]) -> Result<(), StoreError> {
+    if times.is_empty() {
+        return Ok(());
+    }
+    let finest = TIERS_S[0] * NS_PER_S;
+    let mut touched = spans(times.iter().copied(), finest);
+    for &(lo, hi) in &touched {
+        from_readings(tx, channel_key, lo, hi).await?;
+    }
+    for pair in TIERS_S.windows(2) {
+        let (child_s, parent_s) = (pair[0], pair[1]);
+        let width = parent_s * NS_PER_S;
+        touched = widen(&touched, width);
+        for &(lo, hi) in &touched {
+            from_child(tx, channel_key, child_s, parent_s, lo, hi).await?;
+        }
+    }
+    Ok(())
+}
+
+async fn from_readings(tx: &mut Tx<'_>, key: i64, lo: i64, hi: i64) -> Result<(), StoreError> {
+    let width = TIERS_S[0] * NS_PER_S;
+    sqlx::query(
+        "INSERT OR REPLACE INTO rollups \
+         WITH agg AS ( \
+           SELECT (time_ns / ?4) * ?4 AS b, COUNT(*) AS n, MAX(time_ns) AS last_ns, \
+                  MIN(volts) AS v_min, MAX(volts) AS v_max, SUM(volts) AS v_sum, \
+                  COUNT(soc_fused) AS s_n, MIN(soc_fused) AS s_min, MAX(soc_fused) AS s_max, SUM(soc_fused) AS s_sum, \
+                  MIN(cell_volts_used) AS e_min, MAX(cell_volts_used) AS e_max, SUM(cell_volts_used) AS e_sum \
+           FROM readings WHERE channel_key = ?1 AND time_ns >= ?2 AND time_ns < ?3 GROUP BY b \
+         ), tagged AS ( \
+           SELECT agg.*, (SELECT seq FROM readings r WHERE r.channel_key = ?1 AND r.time_ns = agg.last_ns \
+                          ORDER BY seq DESC LIMIT 1) AS last_seq FROM agg \
+         ) \
+         SELECT ?1, ?5, t.b, r.run_id, t.n, t.last_ns, t.v_min, t.v_max, t.v_sum, r.volts, \
+                t.s_n, t.s_min, t.s_max, t.s_sum, r.soc_fused, t.e_min, t.e_max, t.e_sum, r.cell_volts_used \
+         FROM tagged t JOIN readings r ON r.channel_key = ?1 AND r.seq = t.last_seq",
+    )
+    .bind(key)
+    .bind(lo)
+    .bind(hi)
+    .bind(width)
+    .bind(TIERS_S[0])
+    .execute(&mut **tx)
+    .await?;
+    Ok(())
+}
+
+async fn from_child(
+    tx: &mut Tx<'_>,
+    key: i64,
+    child_s: i64,
+    parent_s: i64,
+    lo: i64,
+    hi: i64,
+) -> Result<(), StoreError> {
+    sqlx::query(
+        "INSERT OR REPLACE INTO rollups \
+         WITH agg AS ( \
+           SELECT (start_ns / ?5) * ?5 AS b, SUM(n) AS n, MAX(last_ns) AS last_ns, \
+                  MIN(v_min) AS v_min, MAX(v_max) AS v_max, SUM(v_sum) AS v_sum, \
+                  SUM(s_n) AS s_n, MIN(s_min) AS s_min, MAX(s_max) AS s_max, SUM(s_sum) AS s_sum, \
+                  MIN(e_min) AS e_min, MAX(e_max) AS e_max, SUM(e_sum) AS e_sum \
+           FROM rollups WHERE channel_key = ?1 AND width_s = ?4 AND start_ns >= ?2 AND start_ns < ?3 \
+           GROUP BY b \
+         ) \
+         SELECT ?1, ?6, a.b, c.run_id, a.n, a.last_ns, a.v_min, a.v_max, a.v_sum, c.v_last, \
+                a.s_n, a.s_min, a.s_max, a.s_sum, c.s_last, a.e_min, a.e_max, a.e_sum, c.e_last \
+         FROM agg a JOIN rollups c ON c.channel_key = ?1 AND c.width_s = ?4 \
+           AND c.start_ns >= a.b AND c.start_ns < a.b + ?5 AND c.last_ns = a.last_ns",
+    )
+    .bind(key)
+    .bind(lo)
+    .bind(hi)
+    .bind(child_s)
+    .bind(parent_s * NS_PER_S)
+    .bind(parent_s)
+    .execute(&mut **tx)
+    .await?;
+    Ok(())
+}
+
+/// Buckets of `width_ns` from `start_ns` (aligned) to `end_ns`, merged
+/// from the rollups of tier `tier_s` (see [`tier_for`]).
+pub async fn query(
+    pool: &SqlitePool,
+    key: i64,
+    start_ns: i64,
+    end_ns: i64,
+    width_ns: i64,
+    tier_s: i64,
+) -> Result<Vec<BucketRow>, StoreError> {
+    let rows = sqlx::query(
+        "WITH agg AS ( \
+           SELECT (start_ns - ?2) / ?4 AS bucket, SUM(n) AS n, MAX(last_ns) AS last_ns, \
+                  MIN(v_min) AS v_min, MAX(v_max) AS v_max, SUM(v_sum) AS v_sum, \
+                  SUM(s_n) AS s_n, MIN(s_min) AS s_min, MAX(s_max) AS s_max, SUM(s_sum) AS s_sum, \
+                  MIN(e_min) AS e_min, MAX(e_max) AS e_max, SUM(e_sum) AS e_sum \
+           FROM rollups WHERE channel_key = ?1 AND width_s = ?5 AND start_ns >= ?2 AND start_ns < ?3 \
+           GROUP BY bucket \
+         ) \
+         SELECT a.*, c.v_last, c.s_last, c.e_last, c.run_id FROM agg a JOIN rollups c \
+           ON c.channel_key = ?1 AND c.width_s = ?5 AND c.last_ns = a.last_ns \
+           AND c.start_ns >= ?2 + a.bucket * ?4 AND c.start_ns < ?2 + (a.bucket + 1) * ?4 \
+         ORDER BY a.bucket",
+    )
+    .bind(key)
+    .bind(start_ns)
+    .bind(end_ns)
+    .bind(width_ns)
+    .bind(tier_s)
+    .fetch_all(pool)
+    .await?;
+    rows.iter().map(bucket_of).collect()
+}
+
+/// One merged bucket; means from sums, so every tier gives the same mean.
+pub(super) fn bucket_of(r: &sqlx::sqlite::SqliteRow) -> Result<BucketRow, StoreError> {
+    let n: i64 = r.try_get("n")?;
+    let s_n: i64 = r.try_get("s_n")?;
+    let mean = |sum: f64, count: i64| sum / count as f64;
+    Ok(BucketRow {
+        bucket: r.try_get("bucket")?,
+        count: n as u64,
+        volts: [
+            r.try_get("v_min")?,
+            r.try_get("v_max")?,
+            mean(r.try_get("v_sum")?, n),
+            r.try_get("v_last")?,
+        ],
+        soc: if s_n > 0 {
+            Some([
+                r.try_get("s_min")?,
+                r.try_get("s_max")?,
+                mean(r.try_get("s_sum")?, s_n),
+                r.try_get::<Option<f64>, _>("s_last")?.unwrap_or(f64::NAN),
+            ])
+        } else {
+            None
+        },
+        cell_volts_used: [
+            r.try_get("e_min")?,
+            r.try_get("e_max")?,
+            mean(r.try_get("e_sum")?, n),
+            r.try_get("e_last")?,
+        ],
+        last_run_id: r.try_get("run_id")?,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_coarsest_tier_that_tiles_the_width() {
+        let s = NS_PER_S;
+        assert_eq!(tier_for(5 * s), None);
+        assert_eq!(tier_for(15 * s), None);
+        assert_eq!(tier_for(10 * s), Some(10));
+        assert_eq!(tier_for(30 * s), Some(10));
+        assert_eq!(tier_for(120 * s), Some(60));
+        assert_eq!(tier_for(86_400 * s), Some(3600));
+        assert_eq!(tier_for(90 * 60 * s), Some(60));
+    }
+
+    #[test]
+    fn spans_merge_neighbours_and_keep_far_buckets_apart() {
+        assert_eq!(spans([25, 5, 12, 19], 10), vec![(0, 30)]);
+        assert_eq!(spans([5, 95, -3], 10), vec![(-10, 10), (90, 100)]);
+        assert!(spans([], 10).is_empty());
+    }
+
+    #[test]
+    fn widened_spans_cover_every_parent_bucket_in_between() {
+        assert_eq!(widen(&[(0, 600)], 60), vec![(0, 600)]);
+        assert_eq!(widen(&[(10, 130)], 60), vec![(0, 180)]);
+        assert_eq!(
+            widen(&[(0, 10), (50, 70), (500, 510)], 60),
+            vec![(0, 120), (480, 540)]
+        );
+    }
+}
