@@ -245,18 +245,24 @@ async fn write_readings(
     // A fresh row can only collide if two streams raced on a channel;
     // count it as the duplicate it is.
     out.duplicates += r.rows.len() as u64 - out.fresh_inserted;
-    let mut written: Vec<i64> = r.rows.iter().map(|row| row.time_ns).collect();
+    // Rollups in the same transaction: a crash can't leave them out of
+    // step with the readings they summarise. Fresh rows add to their
+    // buckets; if one met a stored row, its buckets are recomputed.
+    let mut recompute: Vec<i64> = Vec::new();
+    if out.fresh_inserted == r.rows.len() as u64 {
+        store::rollup::add_fresh(tx, r.channel_key, &r.rows).await?;
+    } else {
+        recompute.extend(r.rows.iter().map(|row| row.time_ns));
+    }
     for row in &r.maybe_dup {
         if store::insert_if_new(tx, row).await? {
             out.late_inserted += 1;
-            written.push(row.time_ns);
+            recompute.push(row.time_ns);
         } else {
             out.duplicates += 1;
         }
     }
-    // In the same transaction: a crash can't leave the rollups out of
-    // step with the readings they summarise.
-    store::rollup::refresh(tx, r.channel_key, &written).await?;
+    store::rollup::refresh(tx, r.channel_key, &recompute).await?;
     for change in &r.changes {
         let event = match change {
             AlertChange::Raise(a) => Some(raise(tx, ids, r.channel_key, r.run_id, a).await?),

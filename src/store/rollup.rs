@@ -2,14 +2,18 @@
 //! same transaction as the readings, so history at any zoom reads a few
 //! hundred rows instead of millions.
 //!
-//! Tiers are 10 s, 1 min and 1 h. A bucket is never patched, always
-//! recomputed whole: the 10 s tier from the readings it covers, each tier
-//! above from the one below. That keeps late readings, resends and
-//! restarts exact at the cost of re-reading a bucket's rows (a 10 s bucket
-//! is at most a few hundred readings; a 1 h bucket is 60 rows of 1 min).
+//! Tiers are 10 s, 1 min and 1 h. Fresh readings (past the channel's
+//! front, each stored for the first time) are added to their buckets on
+//! every tier: counts and sums add, min and max widen, `last` goes to the
+//! later time. Anything else (late readings, a fresh row that met a
+//! stored one) makes its buckets be recomputed whole: the 10 s tier from
+//! the readings it covers, each tier above from the one below. Adding is
+//! what keeps ingest fast at 1 kHz, where a 10 s bucket holds 10,000
+//! readings; recomputing is what keeps the rare cases exact.
 
-use super::{BucketRow, StoreError, Tx};
-use sqlx::{Row, SqlitePool};
+use super::{BucketRow, ReadingRow, StoreError, Tx};
+use sqlx::{QueryBuilder, Row, Sqlite, SqlitePool};
+use std::collections::BTreeMap;
 
 /// The tiers, seconds, finest first.
 pub const TIERS_S: [i64; 3] = [10, 60, 3600];
@@ -58,6 +62,148 @@ pub fn widen(spans: &[(i64, i64)], width_ns: i64) -> Vec<(i64, i64)> {
         }
     }
     out
+}
+
+/// One bucket's summary of some readings, as the table holds it.
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct Summary {
+    n: i64,
+    last_ns: i64,
+    last_seq: u64,
+    run_id: i64,
+    volts: [f64; 4],
+    soc_n: i64,
+    soc: [Option<f64>; 4],
+    cell: [f64; 4],
+}
+
+impl Summary {
+    fn of(r: &ReadingRow) -> Summary {
+        let s = r.soc_fused;
+        Summary {
+            n: 1,
+            last_ns: r.time_ns,
+            last_seq: r.seq,
+            run_id: r.run_id,
+            volts: [r.volts; 4],
+            soc_n: i64::from(s.is_some()),
+            soc: [s; 4],
+            cell: [r.cell_volts_used; 4],
+        }
+    }
+
+    fn add(&mut self, r: &ReadingRow) {
+        let o = Summary::of(r);
+        let later = (o.last_ns, o.last_seq) > (self.last_ns, self.last_seq);
+        let pick = |a: Option<f64>, b: Option<f64>, f: fn(f64, f64) -> f64| match (a, b) {
+            (Some(a), Some(b)) => Some(f(a, b)),
+            (a, b) => a.or(b),
+        };
+        self.n += 1;
+        self.volts = merge(self.volts, o.volts, later);
+        self.cell = merge(self.cell, o.cell, later);
+        self.soc_n += o.soc_n;
+        self.soc = [
+            pick(self.soc[0], o.soc[0], f64::min),
+            pick(self.soc[1], o.soc[1], f64::max),
+            pick(self.soc[2], o.soc[2], |a, b| a + b),
+            if later { o.soc[3] } else { self.soc[3] },
+        ];
+        if later {
+            (self.last_ns, self.last_seq, self.run_id) = (o.last_ns, o.last_seq, o.run_id);
+        }
+    }
+}
+
+/// min, max, sum, last of two summaries; `later` says whose last wins.
+fn merge(a: [f64; 4], b: [f64; 4], later: bool) -> [f64; 4] {
+    [
+        a[0].min(b[0]),
+        a[1].max(b[1]),
+        a[2] + b[2],
+        if later { b[3] } else { a[3] },
+    ]
+}
+
+/// Summaries of `rows` per bucket of `width_ns`.
+fn summarise(rows: &[ReadingRow], width_ns: i64) -> BTreeMap<i64, Summary> {
+    let mut out: BTreeMap<i64, Summary> = BTreeMap::new();
+    for r in rows {
+        let start = r.time_ns.div_euclid(width_ns) * width_ns;
+        out.entry(start)
+            .and_modify(|s| s.add(r))
+            .or_insert_with(|| Summary::of(r));
+    }
+    out
+}
+
+/// Adds fresh readings, each stored just now for the first time, to their
+/// buckets on every tier.
+pub async fn add_fresh(
+    tx: &mut Tx<'_>,
+    channel_key: i64,
+    rows: &[ReadingRow],
+) -> Result<(), StoreError> {
+    for tier_s in TIERS_S {
+        let summaries = summarise(rows, tier_s * NS_PER_S);
+        let list: Vec<_> = summaries.into_iter().collect();
+        for chunk in list.chunks(200) {
+            upsert(tx, channel_key, tier_s, chunk).await?;
+        }
+    }
+    Ok(())
+}
+
+async fn upsert(
+    tx: &mut Tx<'_>,
+    key: i64,
+    tier_s: i64,
+    buckets: &[(i64, Summary)],
+) -> Result<(), StoreError> {
+    let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
+        "INSERT INTO rollups (channel_key, width_s, start_ns, run_id, n, last_ns, \
+         v_min, v_max, v_sum, v_last, s_n, s_min, s_max, s_sum, s_last, e_min, e_max, e_sum, e_last) ",
+    );
+    qb.push_values(buckets, |mut b, (start, s)| {
+        b.push_bind(key)
+            .push_bind(tier_s)
+            .push_bind(*start)
+            .push_bind(s.run_id)
+            .push_bind(s.n)
+            .push_bind(s.last_ns);
+        for v in s.volts {
+            b.push_bind(v);
+        }
+        b.push_bind(s.soc_n);
+        for v in s.soc {
+            b.push_bind(v);
+        }
+        for v in s.cell {
+            b.push_bind(v);
+        }
+    });
+    // SET expressions read the row as it was: `last_ns` on the right is
+    // the stored one. SQLite's two-argument MIN/MAX return NULL if either
+    // is NULL, hence the COALESCEs for SOC, which may be unknown.
+    qb.push(
+        " ON CONFLICT (channel_key, width_s, start_ns) DO UPDATE SET \
+         n = n + excluded.n, \
+         run_id = CASE WHEN excluded.last_ns >= last_ns THEN excluded.run_id ELSE run_id END, \
+         v_min = MIN(v_min, excluded.v_min), v_max = MAX(v_max, excluded.v_max), \
+         v_sum = v_sum + excluded.v_sum, \
+         v_last = CASE WHEN excluded.last_ns >= last_ns THEN excluded.v_last ELSE v_last END, \
+         s_n = s_n + excluded.s_n, \
+         s_min = COALESCE(MIN(s_min, excluded.s_min), s_min, excluded.s_min), \
+         s_max = COALESCE(MAX(s_max, excluded.s_max), s_max, excluded.s_max), \
+         s_sum = COALESCE(s_sum + excluded.s_sum, s_sum, excluded.s_sum), \
+         s_last = CASE WHEN excluded.last_ns >= last_ns THEN excluded.s_last ELSE s_last END, \
+         e_min = MIN(e_min, excluded.e_min), e_max = MAX(e_max, excluded.e_max), \
+         e_sum = e_sum + excluded.e_sum, \
+         e_last = CASE WHEN excluded.last_ns >= last_ns THEN excluded.e_last ELSE e_last END, \
+         last_ns = MAX(last_ns, excluded.last_ns)",
+    );
+    qb.build().execute(&mut **tx).await?;
+    Ok(())
 }
 
 /// Recomputes every bucket, on every tier, that holds one of `times`

@@ -151,7 +151,13 @@ async fn rollups_equal_a_recomputation_from_the_readings() {
     let t0 = now_ns() - 3 * 3_600_000_000_000;
     let at = |s: u64| t0 + (s as i64) * 700_000_000;
     let volts = |s: u64| 1.30 + 0.1 * ((s as f64) * 0.37).sin().abs();
-    let amps = |s: u64| Some(if (s / 500).is_multiple_of(2) { 1.5 } else { -1.5 });
+    let amps = |s: u64| {
+        Some(if (s / 500).is_multiple_of(2) {
+            1.5
+        } else {
+            -1.5
+        })
+    };
     // Seqs in order except a gap filled later (late readings), then resent.
     let mut order: Vec<u64> = (1..=6000).filter(|s| !(2000..2100).contains(s)).collect();
     order.extend(2000..2100);
