@@ -1080,12 +1080,9 @@ pub async fn query_buckets(
     if let Some(tier_s) = rollup::tier_for(width_ns) {
         return rollup::query(pool, channel_key, start_ns, end_ns, width_ns, tier_s).await;
     }
-    let rows = sqlx::query(
+    let rows = sqlx::query(concat!(
         "WITH agg AS ( \
-           SELECT (time_ns - ?1) / ?2 AS bucket, COUNT(*) AS n, MAX(time_ns) AS last_ns, \
-                  MIN(volts) AS v_min, MAX(volts) AS v_max, SUM(volts) AS v_sum, \
-                  COUNT(soc_fused) AS s_n, MIN(soc_fused) AS s_min, MAX(soc_fused) AS s_max, SUM(soc_fused) AS s_sum, \
-                  MIN(cell_volts_used) AS e_min, MAX(cell_volts_used) AS e_max, SUM(cell_volts_used) AS e_sum \
+           SELECT (time_ns - ?1) / ?2 AS bucket, ", rollup::readings_summary!(), " \
            FROM readings WHERE channel_key = ?3 AND time_ns >= ?1 AND time_ns < ?4 GROUP BY bucket \
          ), tagged AS ( \
            SELECT agg.*, (SELECT seq FROM readings r WHERE r.channel_key = ?3 AND r.time_ns = agg.last_ns \
@@ -1093,7 +1090,7 @@ pub async fn query_buckets(
          ) \
          SELECT t.*, r.volts AS v_last, r.soc_fused AS s_last, r.cell_volts_used AS e_last, r.run_id \
          FROM tagged t JOIN readings r ON r.channel_key = ?3 AND r.seq = t.last_seq ORDER BY t.bucket",
-    )
+    ))
     .bind(start_ns)
     .bind(width_ns)
     .bind(channel_key)

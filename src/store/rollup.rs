@@ -20,6 +20,28 @@ pub const TIERS_S: [i64; 3] = [10, 60, 3600];
 
 const NS_PER_S: i64 = 1_000_000_000;
 
+/// The summary columns of a bucket of readings, as SQL: one text for the
+/// 10 s tier, the raw bucket query and (by hand) the migration.
+macro_rules! readings_summary {
+    () => {
+        "COUNT(*) AS n, MAX(time_ns) AS last_ns, \
+         MIN(volts) AS v_min, MAX(volts) AS v_max, SUM(volts) AS v_sum, \
+         COUNT(soc_fused) AS s_n, MIN(soc_fused) AS s_min, MAX(soc_fused) AS s_max, SUM(soc_fused) AS s_sum, \
+         MIN(cell_volts_used) AS e_min, MAX(cell_volts_used) AS e_max, SUM(cell_volts_used) AS e_sum"
+    };
+}
+pub(super) use readings_summary;
+
+/// The same columns merged from rollup rows of a finer tier.
+macro_rules! rollups_summary {
+    () => {
+        "SUM(n) AS n, MAX(last_ns) AS last_ns, \
+         MIN(v_min) AS v_min, MAX(v_max) AS v_max, SUM(v_sum) AS v_sum, \
+         SUM(s_n) AS s_n, MIN(s_min) AS s_min, MAX(s_max) AS s_max, SUM(s_sum) AS s_sum, \
+         MIN(e_min) AS e_min, MAX(e_max) AS e_max, SUM(e_sum) AS e_sum"
+    };
+}
+
 /// The coarsest tier whose buckets tile a bucket of `width_ns` exactly
 /// (a tier no wider than it and dividing it); none means raw readings.
 pub fn tier_for(width_ns: i64) -> Option<i64> {
@@ -230,13 +252,10 @@ pub async fn refresh(tx: &mut Tx<'_>, channel_key: i64, times: &[i64]) -> Result
 
 async fn from_readings(tx: &mut Tx<'_>, key: i64, lo: i64, hi: i64) -> Result<(), StoreError> {
     let width = TIERS_S[0] * NS_PER_S;
-    sqlx::query(
+    sqlx::query(concat!(
         "INSERT OR REPLACE INTO rollups \
          WITH agg AS ( \
-           SELECT (time_ns / ?4) * ?4 AS b, COUNT(*) AS n, MAX(time_ns) AS last_ns, \
-                  MIN(volts) AS v_min, MAX(volts) AS v_max, SUM(volts) AS v_sum, \
-                  COUNT(soc_fused) AS s_n, MIN(soc_fused) AS s_min, MAX(soc_fused) AS s_max, SUM(soc_fused) AS s_sum, \
-                  MIN(cell_volts_used) AS e_min, MAX(cell_volts_used) AS e_max, SUM(cell_volts_used) AS e_sum \
+           SELECT (time_ns / ?4) * ?4 AS b, ", readings_summary!(), " \
            FROM readings WHERE channel_key = ?1 AND time_ns >= ?2 AND time_ns < ?3 GROUP BY b \
          ), tagged AS ( \
            SELECT agg.*, (SELECT seq FROM readings r WHERE r.channel_key = ?1 AND r.time_ns = agg.last_ns \
@@ -245,7 +264,7 @@ async fn from_readings(tx: &mut Tx<'_>, key: i64, lo: i64, hi: i64) -> Result<()
          SELECT ?1, ?5, t.b, r.run_id, t.n, t.last_ns, t.v_min, t.v_max, t.v_sum, r.volts, \
                 t.s_n, t.s_min, t.s_max, t.s_sum, r.soc_fused, t.e_min, t.e_max, t.e_sum, r.cell_volts_used \
          FROM tagged t JOIN readings r ON r.channel_key = ?1 AND r.seq = t.last_seq",
-    )
+    ))
     .bind(key)
     .bind(lo)
     .bind(hi)
@@ -264,13 +283,10 @@ async fn from_child(
     lo: i64,
     hi: i64,
 ) -> Result<(), StoreError> {
-    sqlx::query(
+    sqlx::query(concat!(
         "INSERT OR REPLACE INTO rollups \
          WITH agg AS ( \
-           SELECT (start_ns / ?5) * ?5 AS b, SUM(n) AS n, MAX(last_ns) AS last_ns, \
-                  MIN(v_min) AS v_min, MAX(v_max) AS v_max, SUM(v_sum) AS v_sum, \
-                  SUM(s_n) AS s_n, MIN(s_min) AS s_min, MAX(s_max) AS s_max, SUM(s_sum) AS s_sum, \
-                  MIN(e_min) AS e_min, MAX(e_max) AS e_max, SUM(e_sum) AS e_sum \
+           SELECT (start_ns / ?5) * ?5 AS b, ", rollups_summary!(), " \
            FROM rollups WHERE channel_key = ?1 AND width_s = ?4 AND start_ns >= ?2 AND start_ns < ?3 \
            GROUP BY b \
          ) \
@@ -278,7 +294,7 @@ async fn from_child(
                 a.s_n, a.s_min, a.s_max, a.s_sum, c.s_last, a.e_min, a.e_max, a.e_sum, c.e_last \
          FROM agg a JOIN rollups c ON c.channel_key = ?1 AND c.width_s = ?4 \
            AND c.start_ns >= a.b AND c.start_ns < a.b + ?5 AND c.last_ns = a.last_ns",
-    )
+    ))
     .bind(key)
     .bind(lo)
     .bind(hi)
@@ -300,12 +316,9 @@ pub async fn query(
     width_ns: i64,
     tier_s: i64,
 ) -> Result<Vec<BucketRow>, StoreError> {
-    let rows = sqlx::query(
+    let rows = sqlx::query(concat!(
         "WITH agg AS ( \
-           SELECT (start_ns - ?2) / ?4 AS bucket, SUM(n) AS n, MAX(last_ns) AS last_ns, \
-                  MIN(v_min) AS v_min, MAX(v_max) AS v_max, SUM(v_sum) AS v_sum, \
-                  SUM(s_n) AS s_n, MIN(s_min) AS s_min, MAX(s_max) AS s_max, SUM(s_sum) AS s_sum, \
-                  MIN(e_min) AS e_min, MAX(e_max) AS e_max, SUM(e_sum) AS e_sum \
+           SELECT (start_ns - ?2) / ?4 AS bucket, ", rollups_summary!(), " \
            FROM rollups WHERE channel_key = ?1 AND width_s = ?5 AND start_ns >= ?2 AND start_ns < ?3 \
            GROUP BY bucket \
          ) \
@@ -313,7 +326,7 @@ pub async fn query(
            ON c.channel_key = ?1 AND c.width_s = ?5 AND c.last_ns = a.last_ns \
            AND c.start_ns >= ?2 + a.bucket * ?4 AND c.start_ns < ?2 + (a.bucket + 1) * ?4 \
          ORDER BY a.bucket",
-    )
+    ))
     .bind(key)
     .bind(start_ns)
     .bind(end_ns)
