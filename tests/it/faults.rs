@@ -201,18 +201,7 @@ async fn a_second_server_on_one_file_is_refused_naming_the_holder() {
     let first = Server::start(&db).await;
     let ch = first.channel().await;
     assert_eq!(health_of(&ch).await, SERVING);
-    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
-    let second = tokio::time::timeout(
-        Duration::from_secs(10),
-        gibbsline::app::run(
-            config_for(&db),
-            gibbsline::app::Listeners::grpc_only(listener),
-            std::future::pending(),
-        ),
-    )
-    .await
-    .expect("the second server must refuse at once, not serve");
-    let message = second.unwrap_err().to_string();
+    let message = refusal_at_start(&db).await;
     assert!(
         message.contains("in use by another gibbsline server"),
         "{message}"
@@ -718,23 +707,29 @@ async fn a_stored_channel_whose_chemistry_is_gone_is_named_at_start() {
     put_channel(&ch, channel_def("zc-1", "lab-zinc-copper")).await;
     server.stop().await;
 
-    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
-    let refused = tokio::time::timeout(
-        Duration::from_secs(10),
-        gibbsline::app::run(
-            config_for(&db),
-            gibbsline::app::Listeners::grpc_only(listener),
-            std::future::pending(),
-        ),
-    )
-    .await
-    .expect("a server that cannot load a channel must refuse at once")
-    .unwrap_err()
-    .to_string();
+    let refused = refusal_at_start(&db).await;
     assert!(
         refused.contains("channel zc-1")
             && refused.contains("lab-zinc-copper")
             && !refused.contains("corrupt"),
         "{refused}"
     );
+}
+
+/// Why a server on `db` refuses to start; it must refuse within 10 s,
+/// not serve.
+async fn refusal_at_start(db: &Path) -> String {
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+    tokio::time::timeout(
+        Duration::from_secs(10),
+        gibbsline::app::run(
+            config_for(db),
+            gibbsline::app::Listeners::grpc_only(listener),
+            std::future::pending(),
+        ),
+    )
+    .await
+    .expect("the server must refuse at once, not serve")
+    .unwrap_err()
+    .to_string()
 }
