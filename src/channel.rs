@@ -6,6 +6,7 @@ use crate::electrochem::chemistry::validate_id;
 use crate::electrochem::hydrogen::GasConditions;
 use crate::electrochem::{Chemistry, Registry};
 use crate::estimator::{CurrentSign, EstimatorConfig};
+use crate::retention::RetentionPolicy;
 use serde::{Deserialize, Serialize};
 use std::sync::Arc;
 
@@ -62,6 +63,10 @@ pub struct ChannelDef {
     /// Active area of one cell, cm².
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub active_area_cm2: Option<f64>,
+    /// How long this channel's history is kept; unset fields take the
+    /// server's `[retention]`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub retention: Option<RetentionPolicy>,
 }
 
 fn default_temp_c() -> f64 {
@@ -135,6 +140,9 @@ impl ChannelDef {
         }
         self.check_numbers()?;
         self.check_window()?;
+        if let Some(retention) = &self.retention {
+            retention.validate("retention")?;
+        }
         if let Some(gas) = &self.gas {
             gas.validate()
                 .map_err(|(field, v, reason)| err(&format!("gas.{field}"), shown(v), reason))?;
@@ -291,6 +299,7 @@ impl ChannelDef {
             description: String::new(),
             gas: None,
             active_area_cm2: None,
+            retention: None,
         }
     }
 

@@ -7,6 +7,7 @@ use crate::alerts::AlertRules;
 use crate::channel::ChannelDef;
 use crate::electrochem::{ChemistrySpec, Registry};
 use crate::error::FieldError;
+use crate::retention::RetentionPolicy;
 use crate::store::Durability;
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
@@ -39,6 +40,60 @@ pub struct ConfigFile {
     pub channel: Vec<ChannelEntry>,
     /// `[limits]`; unset fields take their defaults.
     pub limits: Option<Limits>,
+    /// `[retention]`: the default for every channel; unset keeps all.
+    pub retention: Option<RetentionSettings>,
+}
+
+/// `[retention]`: how long history is kept unless a channel says
+/// otherwise, and how often the pruning task looks (see `crate::retention`).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RetentionSettings {
+    /// Days of raw readings kept behind each channel's newest; unset: for ever.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub raw_days: Option<f64>,
+    /// Days of 10 s and 1 min rollups (at least `raw_days`); unset: for ever.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub rollup_days: Option<f64>,
+    /// Seconds between pruning passes.
+    #[serde(default = "default_prune_interval_s")]
+    pub prune_interval_s: u64,
+}
+
+fn default_prune_interval_s() -> u64 {
+    60
+}
+
+impl Default for RetentionSettings {
+    fn default() -> RetentionSettings {
+        RetentionSettings {
+            raw_days: None,
+            rollup_days: None,
+            prune_interval_s: default_prune_interval_s(),
+        }
+    }
+}
+
+impl RetentionSettings {
+    /// The policy every channel falls back to.
+    pub fn policy(&self) -> RetentionPolicy {
+        RetentionPolicy {
+            raw_days: self.raw_days,
+            rollup_days: self.rollup_days,
+        }
+    }
+
+    fn validate(&self) -> Result<(), FieldError> {
+        self.policy().validate("retention")?;
+        if !(1..=86_400).contains(&self.prune_interval_s) {
+            return Err(FieldError::new(
+                "retention.prune_interval_s",
+                self.prune_interval_s,
+                "must be from 1 to 86400 s",
+            ));
+        }
+        Ok(())
+    }
 }
 
 /// What one client, one reading or one request may take of the server.
@@ -231,6 +286,8 @@ pub struct ServerConfig {
     pub channel: Vec<ChannelEntry>,
     /// What one client, reading or request may take.
     pub limits: Limits,
+    /// How long history is kept unless a channel says otherwise.
+    pub retention: RetentionSettings,
 }
 
 /// Where the server listens unless told.
@@ -379,8 +436,13 @@ pub fn resolve(
     limits
         .validate()
         .map_err(|e| fail((table_line(text, "[limits]", 0), e.to_string())))?;
+    let retention = file.retention.unwrap_or_default();
+    retention
+        .validate()
+        .map_err(|e| fail((table_line(text, "[retention]", 0), e.to_string())))?;
     Ok(ServerConfig {
         limits,
+        retention,
         listen,
         db,
         durability,

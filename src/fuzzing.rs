@@ -389,6 +389,7 @@ pub fn ingest_restart(data: &[u8]) {
                         )
                     }),
                     active_kinds: active.iter().copied().collect(),
+                    marks: restarted.retention,
                 },
             );
         }

@@ -22,5 +22,6 @@ pub mod ingest;
 pub mod listen;
 pub mod metrics;
 pub mod pb;
+pub mod retention;
 pub mod sim;
 pub mod store;

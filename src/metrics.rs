@@ -48,6 +48,14 @@ pub struct Metrics {
     pub subscribers: AtomicU64,
     /// `StreamReadings` streams open now.
     pub ingest_streams: AtomicU64,
+    /// Raw readings deleted by retention.
+    pub pruned_readings: AtomicU64,
+    /// 10 s and 1 min rollups deleted by retention.
+    pub pruned_rollups: AtomicU64,
+    /// Free pages handed back to the file system after pruning.
+    pub released_pages: AtomicU64,
+    /// Pruning passes finished.
+    pub prune_passes: AtomicU64,
 }
 
 /// One taken place of a bounded gauge (open streams, subscribers), given
@@ -132,6 +140,26 @@ impl Metrics {
                 "gibbsline_batches_refused_total",
                 "Batches refused whole (unknown channel, empty, too large).",
                 &self.batches_refused,
+            ),
+            (
+                "gibbsline_pruned_readings_total",
+                "Raw readings deleted by retention.",
+                &self.pruned_readings,
+            ),
+            (
+                "gibbsline_pruned_rollups_total",
+                "10 s and 1 min rollups deleted by retention.",
+                &self.pruned_rollups,
+            ),
+            (
+                "gibbsline_released_pages_total",
+                "Free database pages handed back to the file system after pruning.",
+                &self.released_pages,
+            ),
+            (
+                "gibbsline_prune_passes_total",
+                "Retention passes finished.",
+                &self.prune_passes,
             ),
         ] {
             family(&mut o, name, help, "counter");

@@ -210,16 +210,20 @@ impl pb::history_service_server::HistoryService for HistoryApi {
         // the same query gives the same buckets whenever it is asked (a
         // dashboard's "last hour" moves its start every second); the first
         // one is whole, starting at or before the asked start.
-        let start = q.start_unix_ns.div_euclid(q.bucket_width_ns) * q.bucket_width_ns;
-        let rows =
-            store::query_buckets(&self.hub.store().reader, key, start, end, q.bucket_width_ns)
-                .await?;
+        // A width no rollup tier tiles is answered on the nearest one that
+        // does (within 5 %), and the response says which.
+        let width = store::rollup::answered_width(q.bucket_width_ns);
+        let start = q.start_unix_ns.div_euclid(width) * width;
+        let rows = store::query_buckets(&self.hub.store().reader, key, start, end, width).await?;
         let runs = self.runs_of(key).await?;
         let buckets = rows
             .iter()
-            .map(|b| convert::bucket_to_pb(b, start, q.bucket_width_ns, &runs))
+            .map(|b| convert::bucket_to_pb(b, start, width, &runs))
             .collect();
-        Ok(Response::new(pb::QueryBucketsResponse { buckets }))
+        Ok(Response::new(pb::QueryBucketsResponse {
+            buckets,
+            bucket_width_ns: width,
+        }))
     }
 
     async fn get_channel_state(

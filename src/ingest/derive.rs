@@ -81,6 +81,15 @@ fn check_reading(rt: &ChannelRuntime, r: &RawReading) -> Result<(), (&'static st
             ),
         ));
     }
+    if rt.retention.refuses(r.time_unix_ns) {
+        return Err((
+            "time_unix_ns",
+            format!(
+                "time_unix_ns = {}: before {} ns, where the channel's raw history was removed by retention",
+                r.time_unix_ns, rt.retention.raw_before_ns
+            ),
+        ));
+    }
     if r.seq > i64::MAX as u64 {
         return Err(("seq", format!("seq = {}: must be below 2^63", r.seq)));
     }

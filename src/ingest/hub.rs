@@ -11,6 +11,7 @@ use crate::channel::ChannelDef;
 use crate::electrochem::Registry;
 use crate::estimator::{self, EstimatorState};
 use crate::metrics::Metrics;
+use crate::retention::{RetentionMarks, RetentionPolicy};
 use crate::store::{self, AlertEvent, Store, StoreError};
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex, RwLock};
@@ -432,6 +433,35 @@ impl Hub {
         }
         tracing::info!(channel_id, soc, by, "soc entered by an operator");
         Ok(time_ns)
+    }
+
+    /// Raises a channel's retention marks as its policy (over `default`)
+    /// asks at its current front, stored before the runtime refuses
+    /// anything by them. Returns the channel's key and marks in force.
+    pub async fn raise_retention(
+        &self,
+        channel_id: &str,
+        default: &RetentionPolicy,
+    ) -> Result<(i64, RetentionMarks), IngestError> {
+        let (runtime, _turn) = self.take_turn(channel_id).await?;
+        let (key, current, wanted) = {
+            let rt = runtime.lock().expect("channel state poisoned");
+            let policy = rt.def.retention.unwrap_or_default().over(default);
+            let wanted = rt.retention.advanced(&policy, rt.last_time_ns);
+            (rt.key, rt.retention, wanted)
+        };
+        if wanted == current {
+            return Ok((key, current));
+        }
+        store::retention::raise_marks(&self.store, key, wanted).await?;
+        runtime.lock().expect("channel state poisoned").retention = wanted;
+        tracing::info!(
+            channel_id,
+            raw_before_ns = wanted.raw_before_ns,
+            rollup_before_ns = wanted.rollup_before_ns,
+            "retention marks raised"
+        );
+        Ok((key, wanted))
     }
 
     fn count(&self, outcome: &WriteOutcome, rejected: &[Rejection]) {

@@ -6,6 +6,7 @@
 //! - [`hub`]: the shared service state every shell calls into.
 //! - [`session`]: one rig's ingest stream, batch after batch.
 //! - [`writer`]: the single batching writer.
+//! - [`prune`]: the retention task (small deletions beside the writer).
 //!
 //! Per-channel state sits behind a std `Mutex`: it is held only for the
 //! pure computation of one batch, never across an `.await`.
@@ -14,6 +15,7 @@
 
 pub mod derive;
 pub mod hub;
+pub mod prune;
 pub mod runtime;
 pub mod session;
 pub mod writer;

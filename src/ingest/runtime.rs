@@ -8,6 +8,7 @@ use crate::alerts::{AlertRules, ChannelRuleState};
 use crate::channel::ChannelDef;
 use crate::electrochem::{Chemistry, Registry};
 use crate::estimator::{EstimatorConfig, EstimatorState};
+use crate::retention::RetentionMarks;
 use crate::store::{self, Store};
 use std::sync::Arc;
 
@@ -43,6 +44,9 @@ pub struct ChannelRuntime {
     /// replayed or accelerated; the server's clock is what "silent" means).
     pub last_arrival_wall_ns: i64,
     pub usual_arrival_interval_s: f64,
+    /// Where the channel's kept history begins: readings stamped before
+    /// the raw mark are refused (their bucket could not be recomputed).
+    pub retention: RetentionMarks,
 }
 
 impl ChannelRuntime {
@@ -71,6 +75,7 @@ impl ChannelRuntime {
             usual_interval_s: 0.0,
             last_arrival_wall_ns: 0,
             usual_arrival_interval_s: 0.0,
+            retention: RetentionMarks::default(),
         }
     }
 
@@ -163,5 +168,6 @@ pub fn restore_runtime(
         usual_interval_s,
         last_arrival_wall_ns: 0,
         usual_arrival_interval_s: 0.0,
+        retention: resume.marks,
     }
 }

@@ -19,11 +19,14 @@
 mod fault;
 mod lock;
 pub mod report;
+pub mod retention;
 pub mod rollup;
 
 use crate::alerts::{AlertKind, RaisedAlert, Severity};
 pub use fault::StorageFault;
-use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
+use sqlx::sqlite::{
+    SqliteAutoVacuum, SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous,
+};
 use sqlx::{Connection, QueryBuilder, Row, Sqlite, SqlitePool};
 use std::path::{Path, PathBuf};
 use std::str::FromStr;
@@ -130,6 +133,10 @@ pub struct Store {
     health: Arc<tokio::sync::watch::Sender<Option<StorageFault>>>,
 }
 
+/// The WAL is truncated to this after a checkpoint (SQLite's
+/// `journal_size_limit`), bytes.
+const WAL_LIMIT_BYTES: u64 = 64 * 1024 * 1024;
+
 /// Rows per multi-row INSERT: 13 parameters each stays far below SQLite's
 /// 32,766-parameter limit, and one fixed size keeps one cached statement.
 const INSERT_CHUNK_ROWS: usize = 500;
@@ -149,9 +156,18 @@ impl Store {
             .journal_mode(SqliteJournalMode::Wal)
             .synchronous(sync)
             .busy_timeout(Duration::from_secs(10));
+        // A new file is made with incremental auto-vacuum, so pages freed by
+        // retention can be handed back (an older file only reuses them);
+        // the WAL is cut back to 64 MiB after each checkpoint instead of
+        // keeping its largest size for ever.
+        let writer_options = base
+            .clone()
+            .create_if_missing(true)
+            .auto_vacuum(SqliteAutoVacuum::Incremental)
+            .pragma("journal_size_limit", WAL_LIMIT_BYTES.to_string());
         let writer = SqlitePoolOptions::new()
             .max_connections(1)
-            .connect_with(base.clone().create_if_missing(true))
+            .connect_with(writer_options)
             .await
             .map_err(|e| StoreError::Open {
                 path: path.to_path_buf(),
@@ -657,6 +673,8 @@ pub struct ResumeState {
     pub max_seq: Option<u64>,
     pub estimator: Option<(i64, i64, f64, String)>,
     pub active_kinds: Vec<AlertKind>,
+    /// Where the channel's kept history begins.
+    pub marks: crate::retention::RetentionMarks,
 }
 
 pub async fn load_resume_state(
@@ -704,6 +722,7 @@ pub async fn load_resume_state(
         max_seq: max_seq.map(|m| m as u64),
         estimator,
         active_kinds,
+        marks: retention::load_marks(pool, channel_key).await?,
     })
 }
 

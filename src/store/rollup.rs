@@ -52,6 +52,26 @@ pub fn tier_for(width_ns: i64) -> Option<i64> {
         .find(|t| width_ns >= t * NS_PER_S && width_ns % (t * NS_PER_S) == 0)
 }
 
+/// The bucket width a query for `width_ns` is answered with: the asked
+/// width when a tier tiles it or none is at least ten times finer (then
+/// raw readings answer it), otherwise the nearest multiple of the coarsest
+/// such tier, which differs from the asked width by at most 5 %. A
+/// dashboard asking for "span / 1000" gets rollups, not millions of rows.
+pub fn answered_width(width_ns: i64) -> i64 {
+    if tier_for(width_ns).is_some() {
+        return width_ns;
+    }
+    match TIERS_S
+        .iter()
+        .rev()
+        .map(|t| t * NS_PER_S)
+        .find(|t| width_ns / 10 >= *t)
+    {
+        Some(tier_ns) => ((width_ns + tier_ns / 2) / tier_ns).max(1) * tier_ns,
+        None => width_ns,
+    }
+}
+
 /// The spans `[lo, hi)` of whole buckets of `width_ns` that hold `times`,
 /// neighbours merged: one statement per span, and a late reading far back
 /// costs its own bucket, not everything in between.
@@ -385,6 +405,31 @@ mod tests {
         assert_eq!(tier_for(120 * s), Some(60));
         assert_eq!(tier_for(86_400 * s), Some(3600));
         assert_eq!(tier_for(90 * 60 * s), Some(60));
+    }
+
+    #[test]
+    fn odd_widths_are_answered_on_a_tier_within_five_percent() {
+        let s = NS_PER_S;
+        // Tiled widths and widths too fine for any tier stay as asked.
+        assert_eq!(answered_width(30 * s), 30 * s);
+        assert_eq!(answered_width(3 * s), 3 * s);
+        assert_eq!(answered_width(99 * s), 99 * s);
+        // A week over 1,000 buckets (604.8 s) goes to the 1 min tier.
+        assert_eq!(answered_width(604_800_000_000), 600 * s);
+        assert_eq!(answered_width(105 * s), 110 * s);
+        assert_eq!(answered_width(9 * 3600 * s + 1), 9 * 3600 * s);
+        for w in [
+            100 * s,
+            101 * s,
+            777 * s,
+            12_345 * s,
+            86_399 * s,
+            1_000_000 * s,
+        ] {
+            let a = answered_width(w);
+            assert!(tier_for(a).is_some(), "{w} -> {a}");
+            assert!(((a - w) as f64).abs() <= 0.05 * w as f64, "{w} -> {a}");
+        }
     }
 
     #[test]

@@ -7,6 +7,7 @@ mod crash;
 mod faults;
 mod flood;
 mod harness;
+mod history;
 mod hostile;
 mod metrics;
 mod security;

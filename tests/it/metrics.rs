@@ -20,7 +20,7 @@ async fn scrape(addr: std::net::SocketAddr) -> String {
 }
 
 /// The value of the sample line named exactly `series`.
-fn sample(text: &str, series: &str) -> f64 {
+pub(crate) fn sample(text: &str, series: &str) -> f64 {
     text.lines()
         .find_map(|l| l.strip_prefix(series)?.strip_prefix(' '))
         .unwrap_or_else(|| panic!("no {series} in\n{text}"))

@@ -7,6 +7,7 @@ use crate::electrochem::hydrogen::GasConditions;
 use crate::estimator::CurrentSign;
 use crate::ingest::RawReading;
 use crate::pb;
+use crate::retention::RetentionPolicy;
 use tonic::Status;
 
 impl From<&pb::Reading> for RawReading {
@@ -67,6 +68,10 @@ pub fn channel_from_pb(
         description: c.description,
         gas: c.gas.as_ref().map(gas_from_pb),
         active_area_cm2: c.active_area_cm2,
+        retention: c.retention.map(|r| RetentionPolicy {
+            raw_days: r.raw_days,
+            rollup_days: r.rollup_days,
+        }),
     })
 }
 
@@ -99,6 +104,10 @@ pub fn channel_to_pb(def: &ChannelDef, run_id: i64) -> pb::Channel {
             water_activity: g.water_activity,
         }),
         active_area_cm2: def.active_area_cm2,
+        retention: def.retention.map(|r| pb::Retention {
+            raw_days: r.raw_days,
+            rollup_days: r.rollup_days,
+        }),
     }
 }
 

@@ -1,0 +1,141 @@
+//! Retention in SQL: the marks, and deletions in small transactions
+//! (`ingest::prune` decides when; `crate::retention` decides where).
+//!
+//! Each deletion is one short transaction of at most a few thousand rows
+//! through [`Store::write`], so the ingest writer, which shares the one
+//! write connection, waits milliseconds for it, never a whole pass.
+
+use super::{Store, StoreError};
+use crate::retention::RetentionMarks;
+use sqlx::{Row, SqlitePool};
+
+/// A channel's stored marks; none stored means nothing pruned.
+pub async fn load_marks(pool: &SqlitePool, channel_key: i64) -> Result<RetentionMarks, StoreError> {
+    let row = sqlx::query(
+        "SELECT raw_before_ns, rollup_before_ns FROM retention_marks WHERE channel_key = ?",
+    )
+    .bind(channel_key)
+    .fetch_optional(pool)
+    .await?;
+    match row {
+        Some(r) => Ok(RetentionMarks {
+            raw_before_ns: r.try_get("raw_before_ns")?,
+            rollup_before_ns: r.try_get("rollup_before_ns")?,
+        }),
+        None => Ok(RetentionMarks::default()),
+    }
+}
+
+/// Stores raised marks (each only ever rises), before anything below them
+/// is deleted: a restart mid-pass refuses the same readings.
+pub async fn raise_marks(
+    store: &Store,
+    channel_key: i64,
+    marks: RetentionMarks,
+) -> Result<(), StoreError> {
+    store
+        .write(async |tx| {
+            sqlx::query(
+                "INSERT INTO retention_marks (channel_key, raw_before_ns, rollup_before_ns) VALUES (?, ?, ?) \
+                 ON CONFLICT (channel_key) DO UPDATE SET \
+                 raw_before_ns = MAX(raw_before_ns, excluded.raw_before_ns), \
+                 rollup_before_ns = MAX(rollup_before_ns, excluded.rollup_before_ns)",
+            )
+            .bind(channel_key)
+            .bind(marks.raw_before_ns)
+            .bind(marks.rollup_before_ns)
+            .execute(&mut **tx)
+            .await?;
+            Ok(())
+        })
+        .await
+}
+
+/// Deletes at most `limit` of a channel's readings stamped before
+/// `before_ns`, oldest first; returns how many went.
+pub async fn prune_readings(
+    store: &Store,
+    channel_key: i64,
+    before_ns: i64,
+    limit: u32,
+) -> Result<u64, StoreError> {
+    store
+        .write(async |tx| {
+            let done = sqlx::query(
+                "DELETE FROM readings WHERE channel_key = ?1 AND seq IN ( \
+                   SELECT seq FROM readings WHERE channel_key = ?1 AND time_ns < ?2 \
+                   ORDER BY time_ns LIMIT ?3)",
+            )
+            .bind(channel_key)
+            .bind(before_ns)
+            .bind(i64::from(limit))
+            .execute(&mut **tx)
+            .await?;
+            Ok(done.rows_affected())
+        })
+        .await
+}
+
+/// Deletes at most `limit` of a channel's 10 s and 1 min rollups that
+/// start before `before_ns`; the 1 h tier is kept. Returns how many went.
+pub async fn prune_rollups(
+    store: &Store,
+    channel_key: i64,
+    before_ns: i64,
+    limit: u32,
+) -> Result<u64, StoreError> {
+    let fine = &super::rollup::TIERS_S[..super::rollup::TIERS_S.len() - 1];
+    let (finest, coarsest_pruned) = (fine[0], fine[fine.len() - 1]);
+    store
+        .write(async |tx| {
+            let done = sqlx::query(
+                "DELETE FROM rollups WHERE channel_key = ?1 AND (width_s, start_ns) IN ( \
+                   SELECT width_s, start_ns FROM rollups WHERE channel_key = ?1 \
+                   AND width_s BETWEEN ?2 AND ?3 AND start_ns < ?4 LIMIT ?5)",
+            )
+            .bind(channel_key)
+            .bind(finest)
+            .bind(coarsest_pruned)
+            .bind(before_ns)
+            .bind(i64::from(limit))
+            .execute(&mut **tx)
+            .await?;
+            Ok(done.rows_affected())
+        })
+        .await
+}
+
+/// Pages of the file, and of them free (deleted rows' pages, reused by
+/// later inserts before the file grows).
+pub async fn page_counts(pool: &SqlitePool) -> Result<(i64, i64), StoreError> {
+    let pages: i64 = sqlx::query("PRAGMA page_count")
+        .fetch_one(pool)
+        .await?
+        .try_get(0)?;
+    let free: i64 = sqlx::query("PRAGMA freelist_count")
+        .fetch_one(pool)
+        .await?
+        .try_get(0)?;
+    Ok((pages, free))
+}
+
+/// Hands up to `pages` free pages back to the file system (SQLite's
+/// incremental vacuum: a database created with `auto_vacuum =
+/// INCREMENTAL`; on an older file it does nothing and freed pages are only
+/// reused). Returns the free pages left.
+pub async fn release_free_pages(store: &Store, pages: u32) -> Result<i64, StoreError> {
+    store
+        .write(async |tx| {
+            sqlx::query(sqlx::AssertSqlSafe(format!(
+                "PRAGMA incremental_vacuum({pages})"
+            )))
+            .execute(&mut **tx)
+            .await?;
+            let free: i64 = sqlx::query("PRAGMA freelist_count")
+                .fetch_one(&mut **tx)
+                .await?
+                .try_get(0)?;
+            Ok(free)
+        })
+        .await
+}
