@@ -60,7 +60,7 @@ pub(crate) struct BenchReport {
     pub db_bytes_per_reading: Option<f64>,
 }
 
-fn percentile(sorted: &[f64], p: f64) -> f64 {
+pub(crate) fn percentile(sorted: &[f64], p: f64) -> f64 {
     if sorted.is_empty() {
         return 0.0;
     }
@@ -93,7 +93,7 @@ pub(crate) async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
         (None, None) => unreachable!("a local server is started when none is given"),
     };
     let conn = client::connect(&addr).await?;
-    let ids = define_channels(&conn, args).await?;
+    let ids = define_channels(&conn, args.channels, &args.chemistry).await?;
     let clock = AlertClock::default();
     let watcher = clock.watch(&conn).await?;
     let (normal_volts, over_volts) = test_voltages(&args.chemistry);
@@ -103,6 +103,7 @@ pub(crate) async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
         batch: u64::from(args.batch),
         alert_every: args.alert_every,
         t0: client::now_ns() - (per_channel as i64 + 10) * 1_000_000,
+        step_ns: 1_000_000,
         normal_volts,
         over_volts,
         batch_interval: (args.rate > 0.0).then(|| {
@@ -156,8 +157,8 @@ pub(crate) async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
 }
 
 /// A server started in this process on a temporary database.
-struct LocalServer {
-    addr: String,
+pub(crate) struct LocalServer {
+    pub addr: String,
     stop: tokio::sync::oneshot::Sender<()>,
     task: tokio::task::JoinHandle<Result<(), gibbsline::app::AppError>>,
     dir: std::path::PathBuf,
@@ -166,6 +167,15 @@ struct LocalServer {
 
 impl LocalServer {
     async fn start(durability: &str, channels: u32) -> anyhow::Result<LocalServer> {
+        LocalServer::start_with(durability, channels, |_| {}).await
+    }
+
+    /// [`LocalServer::start`] with the config changed by `tune` first.
+    pub(crate) async fn start_with(
+        durability: &str,
+        channels: u32,
+        tune: impl FnOnce(&mut gibbsline::config::ServerConfig),
+    ) -> anyhow::Result<LocalServer> {
         let dir = tempfile_dir()?;
         let db = dir.join("bench.db");
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
@@ -181,6 +191,7 @@ impl LocalServer {
             .limits
             .max_streams_per_client
             .max(u64::from(channels));
+        tune(&mut config);
         let listeners = gibbsline::app::Listeners::grpc_only(listener);
         let task = tokio::spawn(gibbsline::app::run(config, listeners, async move {
             let _ = stop_rx.await;
@@ -195,16 +206,28 @@ impl LocalServer {
     }
 
     /// The database and its write-ahead log, per stored reading.
-    fn bytes_per_reading(&self, stored: u64) -> Option<f64> {
-        let size: u64 = ["", "-wal"]
-            .iter()
-            .filter_map(|s| std::fs::metadata(format!("{}{s}", self.db.display())).ok())
-            .map(|m| m.len())
-            .sum();
-        (stored > 0).then(|| size as f64 / stored as f64)
+    pub(crate) fn bytes_per_reading(&self, stored: u64) -> Option<f64> {
+        (stored > 0).then(|| self.disk_bytes() as f64 / stored as f64)
     }
 
-    async fn stop(self) {
+    /// The database file and its write-ahead log, bytes.
+    pub(crate) fn disk_bytes(&self) -> u64 {
+        (self.disk_probe())()
+    }
+
+    /// A probe of [`LocalServer::disk_bytes`] another task can keep.
+    pub(crate) fn disk_probe(&self) -> impl Fn() -> u64 + Send + 'static {
+        let db = self.db.display().to_string();
+        move || {
+            ["", "-wal"]
+                .iter()
+                .filter_map(|s| std::fs::metadata(format!("{db}{s}")).ok())
+                .map(|m| m.len())
+                .sum()
+        }
+    }
+
+    pub(crate) async fn stop(self) {
         let _ = self.stop.send(());
         let _ = self.task.await;
         let _ = std::fs::remove_dir_all(self.dir);
@@ -212,26 +235,27 @@ impl LocalServer {
 }
 
 /// One channel per stream, each with a fresh id so runs never collide.
-async fn define_channels(
+pub(crate) async fn define_channels(
     conn: &client::Conn,
-    args: &BenchIngestArgs,
+    channels: u32,
+    chemistry: &str,
 ) -> anyhow::Result<Vec<String>> {
-    let mut channels = ChannelServiceClient::new(conn.clone());
+    let mut client = ChannelServiceClient::new(conn.clone());
     let run_tag = client::now_ns() % 1_000_000;
-    let ids: Vec<String> = (0..args.channels)
+    let ids: Vec<String> = (0..channels)
         .map(|i| format!("bench-{run_tag}-{i:04}"))
         .collect();
     for id in &ids {
         let channel = pb::Channel {
             channel_id: id.clone(),
-            chemistry_id: args.chemistry.clone(),
+            chemistry_id: chemistry.to_string(),
             cells_in_series: 1,
             capacity_ah: 10.0,
             current_sign: pb::CurrentSign::ChargePositive as i32,
             default_temp_c: 25.0,
             ..Default::default()
         };
-        channels
+        client
             .put_channel(pb::PutChannelRequest {
                 channel: Some(channel),
             })
@@ -241,7 +265,7 @@ async fn define_channels(
 }
 
 /// A voltage inside the chemistry's window, and one over its limit.
-fn test_voltages(chemistry_id: &str) -> (f64, f64) {
+pub(crate) fn test_voltages(chemistry_id: &str) -> (f64, f64) {
     match gibbsline::electrochem::Registry::builtin().get(chemistry_id) {
         Ok(c) => (
             0.5 * (c.min_cell_volts + c.max_cell_volts),
@@ -254,7 +278,7 @@ fn test_voltages(chemistry_id: &str) -> (f64, f64) {
 /// Alert latency: from the ack of the batch holding the raising reading
 /// to the alert's arrival at a subscriber.
 #[derive(Clone, Default)]
-struct AlertClock {
+pub(crate) struct AlertClock {
     acked: Arc<Mutex<HashMap<(String, u64), Instant>>>,
     arrived: Arc<Mutex<Vec<(String, u64, Instant)>>>,
 }
@@ -313,15 +337,17 @@ impl AlertClock {
 
 /// What every channel's stream sends.
 #[derive(Clone)]
-struct Load {
-    per_channel: u64,
-    batch: u64,
-    alert_every: u64,
-    t0: i64,
-    normal_volts: f64,
-    over_volts: f64,
+pub(crate) struct Load {
+    pub per_channel: u64,
+    pub batch: u64,
+    pub alert_every: u64,
+    /// Rig time of reading 0; reading `s` is `s` steps later.
+    pub t0: i64,
+    pub step_ns: i64,
+    pub normal_volts: f64,
+    pub over_volts: f64,
     /// Paced: one batch per channel this often; `None`: as fast as acked.
-    batch_interval: Option<Duration>,
+    pub batch_interval: Option<Duration>,
 }
 
 /// Batches sent and not yet acknowledged: batch id → (sent at, last seq).
@@ -329,7 +355,7 @@ type Sent = Arc<Mutex<HashMap<u64, (Instant, u64)>>>;
 
 impl Load {
     /// One channel's stream: readings accepted and ack latencies (ms).
-    async fn stream(
+    pub(crate) async fn stream(
         self,
         conn: client::Conn,
         id: String,
@@ -416,7 +442,7 @@ impl Load {
         let over = self.alert_every > 0 && s.is_multiple_of(self.alert_every);
         pb::Reading {
             seq: s,
-            time_unix_ns: self.t0 + s as i64 * 1_000_000,
+            time_unix_ns: self.t0 + s as i64 * self.step_ns,
             volts: if over {
                 self.over_volts
             } else {
@@ -461,7 +487,7 @@ fn print_ingest_report(report: &BenchReport, json: bool) -> anyhow::Result<()> {
     Ok(())
 }
 
-fn tempfile_dir() -> anyhow::Result<std::path::PathBuf> {
+pub(crate) fn tempfile_dir() -> anyhow::Result<std::path::PathBuf> {
     let dir = std::env::temp_dir().join(format!("gibbsline-bench-{}", std::process::id()));
     std::fs::create_dir_all(&dir)?;
     Ok(dir)

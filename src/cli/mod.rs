@@ -2,6 +2,8 @@
 
 pub(crate) mod alerts;
 pub(crate) mod bench;
+pub(crate) mod bench_history;
+pub(crate) mod bench_retention;
 pub(crate) mod channels;
 pub(crate) mod client;
 pub(crate) mod config_check;
@@ -117,6 +119,10 @@ pub(crate) enum BenchCommand {
     Ingest(bench::BenchIngestArgs),
     /// Per-reading cost of the pure ingest work, with and without the estimator.
     Derive(bench::BenchDeriveArgs),
+    /// QueryBuckets over the whole span at several history lengths.
+    History(bench_history::BenchHistoryArgs),
+    /// A soak at constant load with retention on: disk over time, ack latency.
+    Retention(bench_retention::BenchRetentionArgs),
 }
 
 #[derive(Debug, Args)]
@@ -209,6 +215,8 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Serve(args) => serve::run(&args),
         Command::Bench(BenchCommand::Ingest(args)) => block_on(bench::run(&args)),
         Command::Bench(BenchCommand::Derive(args)) => bench::derive(&args),
+        Command::Bench(BenchCommand::History(args)) => block_on(bench_history::run(&args)),
+        Command::Bench(BenchCommand::Retention(args)) => block_on(bench_retention::run(&args)),
         Command::Demo(args) => block_on(demo::run(&args)),
         Command::Rig(cmd) => block_on(simulate::run(&cmd)),
         Command::Readings(args) => block_on(readings::run(&args)),

@@ -210,8 +210,8 @@ impl pb::history_service_server::HistoryService for HistoryApi {
         // the same query gives the same buckets whenever it is asked (a
         // dashboard's "last hour" moves its start every second); the first
         // one is whole, starting at or before the asked start.
-        // A width no rollup tier tiles is answered on the nearest one that
-        // does (within 5 %), and the response says which.
+        // A width no rollup tier tiles is answered on a multiple of the
+        // coarsest tier below it, and the response says which.
         let width = store::rollup::answered_width(q.bucket_width_ns);
         let start = q.start_unix_ns.div_euclid(width) * width;
         let rows = store::query_buckets(&self.hub.store().reader, key, start, end, width).await?;

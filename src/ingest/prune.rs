@@ -4,23 +4,26 @@
 //! deleted in small transactions, and free pages beyond a slack are handed
 //! back to the file system.
 //!
-//! Ingest never waits for a pass: each deletion is one transaction of at
-//! most [`ROWS_PER_TRANSACTION`] rows on the shared write connection, and
-//! the task yields between them, so the writer's next group commit goes
-//! in between. A crash mid-pass leaves the marks stored and some rows
-//! below them; the next pass deletes the rest.
+//! Ingest never waits for a pass: each deletion step of at most
+//! [`ROWS_PER_STEP`] rows is a job in the writer's queue, committed in a
+//! group with the readings queued beside it (one fsync for both), and the
+//! next step is sent only once that commit is answered. A crash mid-pass
+//! leaves the marks stored and some rows below them; the next pass
+//! deletes the rest.
 
-use super::{Hub, IngestError};
+use super::{Hub, IngestError, Job};
 use crate::config::RetentionSettings;
 use crate::retention::{RetentionMarks, RetentionPolicy};
+use crate::store::retention::Pruned;
 use crate::store::{self, StoreError};
 use std::sync::Arc;
 use std::sync::atomic::Ordering::Relaxed;
 use std::time::Duration;
 
-/// Rows one deletion transaction removes at most: a few milliseconds of
-/// the write connection (measured with `bench retention`).
-pub const ROWS_PER_TRANSACTION: u32 = 2_000;
+/// Rows one deletion step removes at most: it rides in one of the
+/// writer's group commits, so it adds its own few milliseconds to the
+/// acks of that commit (measured with `bench retention`).
+pub const ROWS_PER_STEP: u32 = 4_000;
 /// Free pages kept for reuse, as a fraction of the file: new readings
 /// fill them before the file grows, so at steady load the file stays
 /// flat without being shrunk and regrown.
@@ -97,48 +100,37 @@ async fn prune_channel(
     hub: &Hub,
     key: i64,
     marks: RetentionMarks,
-) -> Result<(u64, u64), StoreError> {
+) -> Result<(u64, u64), IngestError> {
     let readings = drain(hub, key, Pruned::Readings, marks.raw_before_ns).await?;
-    let rollups = drain(hub, key, Pruned::Rollups, marks.rollup_before_ns).await?;
+    let rollups = drain(hub, key, Pruned::FineRollups, marks.rollup_before_ns).await?;
     Ok((readings, rollups))
 }
 
-/// What a deletion step removes.
-#[derive(Debug, Clone, Copy)]
-enum Pruned {
-    Readings,
-    Rollups,
-}
-
-/// Deletes a channel's rows of one kind before `before_ns`, one small
-/// transaction at a time, yielding between them, until a step removes
-/// less than a full transaction's worth; stops early when the server
-/// begins to stop.
-async fn drain(hub: &Hub, key: i64, what: Pruned, before_ns: i64) -> Result<u64, StoreError> {
-    let store = hub.store();
+/// Deletes a channel's rows of one kind before `before_ns`, one writer
+/// job at a time (each rides in a group commit beside ingest), until a
+/// step removes less than a full job's worth; stops early when the
+/// server begins to stop.
+async fn drain(hub: &Hub, key: i64, what: Pruned, before_ns: i64) -> Result<u64, IngestError> {
+    let counter = match what {
+        Pruned::Readings => &hub.metrics().pruned_readings,
+        Pruned::FineRollups => &hub.metrics().pruned_rollups,
+    };
     let mut total = 0;
     loop {
-        let n = match what {
-            Pruned::Readings => {
-                let n =
-                    store::retention::prune_readings(store, key, before_ns, ROWS_PER_TRANSACTION)
-                        .await?;
-                hub.metrics().pruned_readings.fetch_add(n, Relaxed);
-                n
-            }
-            Pruned::Rollups => {
-                let n =
-                    store::retention::prune_rollups(store, key, before_ns, ROWS_PER_TRANSACTION)
-                        .await?;
-                hub.metrics().pruned_rollups.fetch_add(n, Relaxed);
-                n
-            }
-        };
-        total += n;
-        if n < u64::from(ROWS_PER_TRANSACTION) || hub.is_shutting_down() {
+        let outcome = hub
+            .submit(|reply| Job::Prune {
+                channel_key: key,
+                what,
+                before_ns,
+                limit: ROWS_PER_STEP,
+                reply,
+            })
+            .await?;
+        counter.fetch_add(outcome.pruned, Relaxed);
+        total += outcome.pruned;
+        if outcome.pruned < u64::from(ROWS_PER_STEP) || hub.is_shutting_down() {
             return Ok(total);
         }
-        tokio::task::yield_now().await;
     }
 }
 

@@ -68,6 +68,15 @@ pub enum Job {
         time_ns: i64,
         reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
     },
+    /// One retention step: at most `limit` rows below a mark (the count
+    /// comes back in `WriteOutcome::pruned`).
+    Prune {
+        channel_key: i64,
+        what: store::retention::Pruned,
+        before_ns: i64,
+        limit: u32,
+        reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
+    },
 }
 
 #[derive(Debug, Clone, Default)]
@@ -76,6 +85,8 @@ pub struct WriteOutcome {
     pub late_inserted: u64,
     pub duplicates: u64,
     pub events: Vec<AlertEvent>,
+    /// Rows a retention step deleted.
+    pub pruned: u64,
 }
 
 struct Ids {
@@ -167,6 +178,7 @@ async fn commit_and_answer(
 fn job_rows(job: &Job) -> usize {
     match job {
         Job::Readings(r) => r.rows.len() + r.maybe_dup.len(),
+        Job::Prune { limit, .. } => *limit as usize,
         _ => 1,
     }
 }
@@ -176,7 +188,8 @@ fn reply_of(job: Job) -> oneshot::Sender<Result<WriteOutcome, StoreError>> {
         Job::Readings(r) => r.reply,
         Job::Alerts { reply, .. }
         | Job::Acknowledge { reply, .. }
-        | Job::Operator { reply, .. } => reply,
+        | Job::Operator { reply, .. }
+        | Job::Prune { reply, .. } => reply,
     }
 }
 
@@ -227,6 +240,16 @@ async fn write_jobs(
                     ids.next_event_id += 1;
                     out.events.push(ev);
                 }
+            }
+            Job::Prune {
+                channel_key,
+                what,
+                before_ns,
+                limit,
+                ..
+            } => {
+                out.pruned =
+                    store::retention::prune(tx, *channel_key, *what, *before_ns, *limit).await?;
             }
         }
         outcomes.push(out);

@@ -1,11 +1,11 @@
 //! Retention in SQL: the marks, and deletions in small transactions
 //! (`ingest::prune` decides when; `crate::retention` decides where).
 //!
-//! Each deletion is one short transaction of at most a few thousand rows
-//! through [`Store::write`], so the ingest writer, which shares the one
-//! write connection, waits milliseconds for it, never a whole pass.
+//! Deletions run inside the ingest writer's group commits, a few thousand
+//! rows at a time, so they share its fsync and never hold the one write
+//! connection apart from it: a pass costs acks milliseconds, not seconds.
 
-use super::{Store, StoreError};
+use super::{Store, StoreError, Tx};
 use crate::retention::RetentionMarks;
 use sqlx::{Row, SqlitePool};
 
@@ -51,17 +51,28 @@ pub async fn raise_marks(
         .await
 }
 
-/// Deletes at most `limit` of a channel's readings stamped before
-/// `before_ns`, oldest first; returns how many went.
-pub async fn prune_readings(
-    store: &Store,
+/// What one retention deletion removes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Pruned {
+    /// Raw readings stamped before the mark.
+    Readings,
+    /// 10 s and 1 min rollups starting before the mark (1 h is kept).
+    FineRollups,
+}
+
+/// Deletes at most `limit` of a channel's rows of `what` before
+/// `before_ns`, oldest first, in the caller's transaction (the writer's
+/// group commit: the deletion shares its fsync); returns how many went.
+pub async fn prune(
+    tx: &mut Tx<'_>,
     channel_key: i64,
+    what: Pruned,
     before_ns: i64,
     limit: u32,
 ) -> Result<u64, StoreError> {
-    store
-        .write(async |tx| {
-            let done = sqlx::query(
+    let done = match what {
+        Pruned::Readings => {
+            sqlx::query(
                 "DELETE FROM readings WHERE channel_key = ?1 AND seq IN ( \
                    SELECT seq FROM readings WHERE channel_key = ?1 AND time_ns < ?2 \
                    ORDER BY time_ns LIMIT ?3)",
@@ -70,39 +81,25 @@ pub async fn prune_readings(
             .bind(before_ns)
             .bind(i64::from(limit))
             .execute(&mut **tx)
-            .await?;
-            Ok(done.rows_affected())
-        })
-        .await
-}
-
-/// Deletes at most `limit` of a channel's 10 s and 1 min rollups that
-/// start before `before_ns`; the 1 h tier is kept. Returns how many went.
-pub async fn prune_rollups(
-    store: &Store,
-    channel_key: i64,
-    before_ns: i64,
-    limit: u32,
-) -> Result<u64, StoreError> {
-    let fine = &super::rollup::TIERS_S[..super::rollup::TIERS_S.len() - 1];
-    let (finest, coarsest_pruned) = (fine[0], fine[fine.len() - 1]);
-    store
-        .write(async |tx| {
-            let done = sqlx::query(
+            .await?
+        }
+        Pruned::FineRollups => {
+            let fine = &super::rollup::TIERS_S[..super::rollup::TIERS_S.len() - 1];
+            sqlx::query(
                 "DELETE FROM rollups WHERE channel_key = ?1 AND (width_s, start_ns) IN ( \
                    SELECT width_s, start_ns FROM rollups WHERE channel_key = ?1 \
                    AND width_s BETWEEN ?2 AND ?3 AND start_ns < ?4 LIMIT ?5)",
             )
             .bind(channel_key)
-            .bind(finest)
-            .bind(coarsest_pruned)
+            .bind(fine[0])
+            .bind(fine[fine.len() - 1])
             .bind(before_ns)
             .bind(i64::from(limit))
             .execute(&mut **tx)
-            .await?;
-            Ok(done.rows_affected())
-        })
-        .await
+            .await?
+        }
+    };
+    Ok(done.rows_affected())
 }
 
 /// Pages of the file, and of them free (deleted rows' pages, reused by

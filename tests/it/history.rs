@@ -245,7 +245,7 @@ async fn an_odd_bucket_width_is_answered_on_a_rollup_tier_and_says_so() {
     let (t0, at) = timeline(n, 2_000_000_000);
     let seqs: Vec<u64> = (1..=n).collect();
     send_all(&ch, "odd-width", &seqs, &at).await;
-    // 4,000 s over ~38 buckets: 105.26 s asked, 110 s (11 × 10 s) answered.
+    // 4,000 s over ~38 buckets: 105.26 s asked, 120 s (2 × 1 min) answered.
     let response = HistoryServiceClient::new(ch.clone())
         .query_buckets(pb::QueryBucketsRequest {
             channel_id: "odd-width".into(),
@@ -257,7 +257,7 @@ async fn an_odd_bucket_width_is_answered_on_a_rollup_tier_and_says_so() {
         .unwrap()
         .into_inner();
     let width = response.bucket_width_ns;
-    assert_eq!(width, 110_000_000_000);
+    assert_eq!(width, 120_000_000_000);
     assert_eq!(
         bucket_counts(&response.buckets),
         counts(seqs.iter().map(|&s| at(s)), width),
