@@ -168,7 +168,7 @@ impl Row for ReadingOut {
 
 /// One bucket of readings: each statistic named `<quantity>_<stat>`, the
 /// quantity as the wire's `Bucket` names it, in the wire's order
-/// (min, max, mean, last).
+/// (min, max, mean, last); empty where no reading in the bucket had it.
 #[derive(Serialize)]
 pub(crate) struct BucketOut {
     start_unix_ns: i64,
@@ -181,17 +181,43 @@ pub(crate) struct BucketOut {
     soc_max: Option<f64>,
     soc_mean: Option<f64>,
     soc_last: Option<f64>,
-    delta_g_kj_per_mol_min: f64,
-    delta_g_kj_per_mol_max: f64,
-    delta_g_kj_per_mol_mean: f64,
-    delta_g_kj_per_mol_last: f64,
+    delta_g_kj_per_mol_min: Option<f64>,
+    delta_g_kj_per_mol_max: Option<f64>,
+    delta_g_kj_per_mol_mean: Option<f64>,
+    delta_g_kj_per_mol_last: Option<f64>,
+    equilibrium_cell_volts_min: Option<f64>,
+    equilibrium_cell_volts_max: Option<f64>,
+    equilibrium_cell_volts_mean: Option<f64>,
+    equilibrium_cell_volts_last: Option<f64>,
+    driving_force_v_min: Option<f64>,
+    driving_force_v_max: Option<f64>,
+    driving_force_v_mean: Option<f64>,
+    driving_force_v_last: Option<f64>,
+    charge_ah_last: f64,
+    energy_wh_last: f64,
+    charge_ah_delta: Option<f64>,
+    energy_wh_delta: Option<f64>,
+    run_id: u64,
     start_utc: String,
+}
+
+/// A statistic's four values, each none where the bucket has none (or
+/// its last reading lacked the value: NaN on the wire).
+fn four(s: Option<pb::Stats>) -> [Option<f64>; 4] {
+    let finite = |v: f64| v.is_finite().then_some(v);
+    match s {
+        Some(s) => [s.min, s.max, s.mean, s.last].map(finite),
+        None => [None; 4],
+    }
 }
 
 impl From<&pb::Bucket> for BucketOut {
     fn from(b: &pb::Bucket) -> BucketOut {
         let v = b.volts.unwrap_or_default();
-        let g = b.delta_g_kj_per_mol.unwrap_or_default();
+        let [soc_min, soc_max, soc_mean, soc_last] = four(b.soc);
+        let [g_min, g_max, g_mean, g_last] = four(b.delta_g_kj_per_mol);
+        let [e_min, e_max, e_mean, e_last] = four(b.equilibrium_cell_volts);
+        let [d_min, d_max, d_mean, d_last] = four(b.driving_force_v);
         BucketOut {
             start_unix_ns: b.start_unix_ns,
             count: b.count,
@@ -199,14 +225,27 @@ impl From<&pb::Bucket> for BucketOut {
             volts_max: v.max,
             volts_mean: v.mean,
             volts_last: v.last,
-            soc_min: b.soc.map(|s| s.min),
-            soc_max: b.soc.map(|s| s.max),
-            soc_mean: b.soc.map(|s| s.mean),
-            soc_last: b.soc.map(|s| s.last),
-            delta_g_kj_per_mol_min: g.min,
-            delta_g_kj_per_mol_max: g.max,
-            delta_g_kj_per_mol_mean: g.mean,
-            delta_g_kj_per_mol_last: g.last,
+            soc_min,
+            soc_max,
+            soc_mean,
+            soc_last,
+            delta_g_kj_per_mol_min: g_min,
+            delta_g_kj_per_mol_max: g_max,
+            delta_g_kj_per_mol_mean: g_mean,
+            delta_g_kj_per_mol_last: g_last,
+            equilibrium_cell_volts_min: e_min,
+            equilibrium_cell_volts_max: e_max,
+            equilibrium_cell_volts_mean: e_mean,
+            equilibrium_cell_volts_last: e_last,
+            driving_force_v_min: d_min,
+            driving_force_v_max: d_max,
+            driving_force_v_mean: d_mean,
+            driving_force_v_last: d_last,
+            charge_ah_last: b.charge_ah_last,
+            energy_wh_last: b.energy_wh_last,
+            charge_ah_delta: b.charge_ah_delta,
+            energy_wh_delta: b.energy_wh_delta,
+            run_id: b.run_id,
             start_utc: iso_utc(b.start_unix_ns),
         }
     }
@@ -228,6 +267,19 @@ impl Row for BucketOut {
         "delta_g_kj_per_mol_max",
         "delta_g_kj_per_mol_mean",
         "delta_g_kj_per_mol_last",
+        "equilibrium_cell_volts_min",
+        "equilibrium_cell_volts_max",
+        "equilibrium_cell_volts_mean",
+        "equilibrium_cell_volts_last",
+        "driving_force_v_min",
+        "driving_force_v_max",
+        "driving_force_v_mean",
+        "driving_force_v_last",
+        "charge_ah_last",
+        "energy_wh_last",
+        "charge_ah_delta",
+        "energy_wh_delta",
+        "run_id",
         "start_utc",
     ];
     const TABLE: &'static [Col] = &[
@@ -238,6 +290,8 @@ impl Row for BucketOut {
         Col::right("V mean", 9),
         Col::right("SOC % mean", 10),
         Col::right("ΔG kJ/mol mean", 14),
+        Col::right("η mV mean", 10),
+        Col::right("ΔQ Ah", 10),
     ];
     fn table_cells(&self) -> Vec<String> {
         vec![
@@ -247,7 +301,9 @@ impl Row for BucketOut {
             format!("{:.4}", self.volts_max),
             format!("{:.4}", self.volts_mean),
             percent(self.soc_mean, 1),
-            format!("{:.3}", self.delta_g_kj_per_mol_mean),
+            fixed(self.delta_g_kj_per_mol_mean, 3),
+            fixed(self.driving_force_v_mean.map(|v| v * 1e3), 1),
+            fixed(self.charge_ah_delta, 4),
         ]
     }
 }

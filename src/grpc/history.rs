@@ -214,12 +214,11 @@ impl pb::history_service_server::HistoryService for HistoryApi {
         // coarsest tier below it, and the response says which.
         let width = store::rollup::answered_width(q.bucket_width_ns);
         let start = q.start_unix_ns.div_euclid(width) * width;
-        let rows = store::query_buckets(&self.hub.store().reader, key, start, end, width).await?;
+        let reader = &self.hub.store().reader;
+        let rows = store::query_buckets(reader, key, start, end, width).await?;
+        let before = store::counts_before(reader, key, start).await?;
         let runs = self.runs_of(key).await?;
-        let buckets = rows
-            .iter()
-            .map(|b| convert::bucket_to_pb(b, start, width, &runs))
-            .collect();
+        let buckets = convert::buckets_to_pb(&rows, before, start, width, &runs);
         Ok(Response::new(pb::QueryBucketsResponse {
             buckets,
             bucket_width_ns: width,

@@ -18,6 +18,8 @@ pub struct DerivedBatch {
     pub channel_key: i64,
     /// The run its readings belong to.
     pub run_id: i64,
+    /// Cells in series of that run.
+    pub cells_in_series: u32,
     /// Fresh readings (past the front): inserted.
     pub rows: Vec<ReadingRow>,
     /// Late readings and resends: inserted unless already stored.
@@ -279,6 +281,7 @@ pub fn derive_batch(
         DerivedBatch {
             channel_key: rt.key,
             run_id: rt.run_id,
+            cells_in_series: rt.def.cells_in_series,
             rows: parts.rows,
             maybe_dup: parts.maybe_dup,
             changes: parts.changes,

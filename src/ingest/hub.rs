@@ -371,6 +371,7 @@ impl Hub {
             DerivedBatch {
                 channel_key: rt.key,
                 run_id: rt.run_id,
+                cells_in_series: rt.def.cells_in_series,
                 rows: vec![],
                 maybe_dup: vec![],
                 changes,
@@ -539,6 +540,7 @@ impl DerivedBatch {
         ReadingsJob {
             channel_key: self.channel_key,
             run_id: self.run_id,
+            cells_in_series: self.cells_in_series,
             rows: self.rows,
             maybe_dup: self.maybe_dup,
             changes: self.changes,

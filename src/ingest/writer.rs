@@ -28,6 +28,8 @@ pub struct EstimatorSnapshot {
 pub struct ReadingsJob {
     pub channel_key: i64,
     pub run_id: i64,
+    /// Cells in series of the run: the rollups' per-cell driving force.
+    pub cells_in_series: u32,
     pub rows: Vec<ReadingRow>,
     pub maybe_dup: Vec<ReadingRow>,
     pub changes: Vec<AlertChange>,
@@ -273,7 +275,7 @@ async fn write_readings(
     // buckets; if one met a stored row, its buckets are recomputed.
     let mut recompute: Vec<i64> = Vec::new();
     if out.fresh_inserted == r.rows.len() as u64 {
-        store::rollup::add_fresh(tx, r.channel_key, &r.rows).await?;
+        store::rollup::add_fresh(tx, r.channel_key, r.cells_in_series, &r.rows).await?;
     } else {
         recompute.extend(r.rows.iter().map(|row| row.time_ns));
     }

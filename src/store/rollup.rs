@@ -20,17 +20,52 @@ pub const TIERS_S: [i64; 3] = [10, 60, 3600];
 
 const NS_PER_S: i64 = 1_000_000_000;
 
-/// The summary columns of a bucket of readings, as SQL: one text for the
-/// 10 s tier, the raw bucket query and (by hand) the migration.
+/// Readings as rollups see them (binds: ?1 channel, ?2 from, ?3 to): the
+/// per-cell equilibrium voltage `e` only where the reading has an
+/// open-circuit estimate (not `flags::OCV_NONE`, 4096), the per-cell driving
+/// force `d` only where it has one (`OCV_OHMIC | OCV_COUNTED |
+/// OCV_REVERSIBLE`, 2096), as each reading on the wire shows them.
+macro_rules! readings_view {
+    () => {
+        "SELECT r.seq, r.run_id, r.time_ns, r.volts, r.soc_fused AS soc, \
+           CASE WHEN r.flags & 4096 = 0 THEN r.cell_volts_used END AS e, \
+           CASE WHEN r.flags & 2096 != 0 THEN r.volts / u.cells_in_series - r.cell_volts_used END AS d, \
+           r.charge_ah AS c, r.energy_wh AS w \
+         FROM readings r JOIN runs u ON u.run_id = r.run_id \
+         WHERE r.channel_key = ?1 AND r.time_ns >= ?2 AND r.time_ns < ?3"
+    };
+}
+
+/// The summary columns of a bucket of [`readings_view`] rows, in the
+/// table's order (after the bucket's start).
 macro_rules! readings_summary {
     () => {
         "COUNT(*) AS n, MAX(time_ns) AS last_ns, \
          MIN(volts) AS v_min, MAX(volts) AS v_max, SUM(volts) AS v_sum, \
-         COUNT(soc_fused) AS s_n, MIN(soc_fused) AS s_min, MAX(soc_fused) AS s_max, SUM(soc_fused) AS s_sum, \
-         MIN(cell_volts_used) AS e_min, MAX(cell_volts_used) AS e_max, SUM(cell_volts_used) AS e_sum"
+         COUNT(soc) AS s_n, MIN(soc) AS s_min, MAX(soc) AS s_max, SUM(soc) AS s_sum, \
+         COUNT(e) AS e_n, MIN(e) AS e_min, MAX(e) AS e_max, SUM(e) AS e_sum, \
+         COUNT(d) AS d_n, MIN(d) AS d_min, MAX(d) AS d_max, SUM(d) AS d_sum"
     };
 }
-pub(super) use readings_summary;
+
+/// The last reading's values for each bucket `a` of an aggregate over
+/// [`readings_view`]: the reading looked up by the time index (the view
+/// itself has none: correlating on it rescans it for every bucket), with
+/// the view's definitions of `e` and `d`. CROSS JOIN fixes the order:
+/// SQLite 3.51 otherwise puts the channel's readings outside the buckets
+/// and visits every reading once per bucket.
+macro_rules! readings_last {
+    () => {
+        "l.run_id, l.volts AS v_last, l.soc_fused AS s_last, \
+         CASE WHEN l.flags & 4096 = 0 THEN l.cell_volts_used END AS e_last, \
+         CASE WHEN l.flags & 2096 != 0 THEN l.volts / lu.cells_in_series - l.cell_volts_used END AS d_last, \
+         l.charge_ah AS c_last, l.energy_wh AS w_last \
+         FROM agg a CROSS JOIN readings l ON l.channel_key = ?1 AND l.seq = ( \
+           SELECT seq FROM readings x WHERE x.channel_key = ?1 AND x.time_ns = a.last_ns \
+           ORDER BY seq DESC LIMIT 1) \
+         CROSS JOIN runs lu ON lu.run_id = l.run_id"
+    };
+}
 
 /// The same columns merged from rollup rows of a finer tier.
 macro_rules! rollups_summary {
@@ -38,7 +73,24 @@ macro_rules! rollups_summary {
         "SUM(n) AS n, MAX(last_ns) AS last_ns, \
          MIN(v_min) AS v_min, MAX(v_max) AS v_max, SUM(v_sum) AS v_sum, \
          SUM(s_n) AS s_n, MIN(s_min) AS s_min, MAX(s_max) AS s_max, SUM(s_sum) AS s_sum, \
-         MIN(e_min) AS e_min, MAX(e_max) AS e_max, SUM(e_sum) AS e_sum"
+         SUM(e_n) AS e_n, MIN(e_min) AS e_min, MAX(e_max) AS e_max, SUM(e_sum) AS e_sum, \
+         SUM(d_n) AS d_n, MIN(d_min) AS d_min, MAX(d_max) AS d_max, SUM(d_sum) AS d_sum"
+    };
+}
+
+/// The last child's values, from a rollup row `c`.
+macro_rules! rollups_last {
+    () => {
+        "c.run_id, c.v_last, c.s_last, c.e_last, c.d_last, c.c_last, c.w_last"
+    };
+}
+
+/// The table's columns in the order the statements above produce them.
+macro_rules! rollup_columns {
+    () => {
+        "(channel_key, width_s, start_ns, n, last_ns, v_min, v_max, v_sum, \
+          s_n, s_min, s_max, s_sum, e_n, e_min, e_max, e_sum, d_n, d_min, d_max, d_sum, \
+          run_id, v_last, s_last, e_last, d_last, c_last, w_last)"
     };
 }
 
@@ -109,6 +161,42 @@ pub fn widen(spans: &[(i64, i64)], width_ns: i64) -> Vec<(i64, i64)> {
     out
 }
 
+/// Count, min, max, sum and last of a value some readings lack.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+struct Partial {
+    n: i64,
+    min: Option<f64>,
+    max: Option<f64>,
+    sum: Option<f64>,
+    last: Option<f64>,
+}
+
+impl Partial {
+    fn of(v: Option<f64>) -> Partial {
+        Partial {
+            n: i64::from(v.is_some()),
+            min: v,
+            max: v,
+            sum: v,
+            last: v,
+        }
+    }
+
+    fn add(&mut self, o: &Partial, later: bool) {
+        let pick = |a: Option<f64>, b: Option<f64>, f: fn(f64, f64) -> f64| match (a, b) {
+            (Some(a), Some(b)) => Some(f(a, b)),
+            (a, b) => a.or(b),
+        };
+        self.n += o.n;
+        self.min = pick(self.min, o.min, f64::min);
+        self.max = pick(self.max, o.max, f64::max);
+        self.sum = pick(self.sum, o.sum, |a, b| a + b);
+        if later {
+            self.last = o.last;
+        }
+    }
+}
+
 /// One bucket's summary of some readings, as the table holds it.
 #[derive(Debug, Clone, Copy, PartialEq)]
 struct Summary {
@@ -117,84 +205,79 @@ struct Summary {
     last_seq: u64,
     run_id: i64,
     volts: [f64; 4],
-    soc_n: i64,
-    soc: [Option<f64>; 4],
-    cell: [f64; 4],
+    soc: Partial,
+    equilibrium: Partial,
+    driving_force: Partial,
+    charge_ah_last: f64,
+    energy_wh_last: f64,
 }
 
 impl Summary {
-    fn of(r: &ReadingRow) -> Summary {
-        let s = r.soc_fused;
+    /// One reading of a stack of `cells` in series.
+    fn of(r: &ReadingRow, cells: u32) -> Summary {
+        let known = r.flags & super::flags::OCV_NONE == 0;
+        let pushed = r.flags & DRIVING_FORCE_SOURCES != 0;
         Summary {
             n: 1,
             last_ns: r.time_ns,
             last_seq: r.seq,
             run_id: r.run_id,
             volts: [r.volts; 4],
-            soc_n: i64::from(s.is_some()),
-            soc: [s; 4],
-            cell: [r.cell_volts_used; 4],
+            soc: Partial::of(r.soc_fused),
+            equilibrium: Partial::of(known.then_some(r.cell_volts_used)),
+            driving_force: Partial::of(
+                pushed.then(|| r.volts / f64::from(cells.max(1)) - r.cell_volts_used),
+            ),
+            charge_ah_last: r.charge_ah,
+            energy_wh_last: r.energy_wh,
         }
     }
 
-    fn add(&mut self, r: &ReadingRow) {
-        self.add_summary(&Summary::of(r));
-    }
-
-    /// Widens this summary by another of the same bucket.
-    fn add_summary(&mut self, o: &Summary) {
+    fn add(&mut self, o: &Summary) {
         let later = (o.last_ns, o.last_seq) > (self.last_ns, self.last_seq);
-        let pick = |a: Option<f64>, b: Option<f64>, f: fn(f64, f64) -> f64| match (a, b) {
-            (Some(a), Some(b)) => Some(f(a, b)),
-            (a, b) => a.or(b),
-        };
         self.n += o.n;
-        self.volts = merge(self.volts, o.volts, later);
-        self.cell = merge(self.cell, o.cell, later);
-        self.soc_n += o.soc_n;
-        self.soc = [
-            pick(self.soc[0], o.soc[0], f64::min),
-            pick(self.soc[1], o.soc[1], f64::max),
-            pick(self.soc[2], o.soc[2], |a, b| a + b),
-            if later { o.soc[3] } else { self.soc[3] },
+        self.volts = [
+            self.volts[0].min(o.volts[0]),
+            self.volts[1].max(o.volts[1]),
+            self.volts[2] + o.volts[2],
+            if later { o.volts[3] } else { self.volts[3] },
         ];
+        self.soc.add(&o.soc, later);
+        self.equilibrium.add(&o.equilibrium, later);
+        self.driving_force.add(&o.driving_force, later);
         if later {
             (self.last_ns, self.last_seq, self.run_id) = (o.last_ns, o.last_seq, o.run_id);
+            (self.charge_ah_last, self.energy_wh_last) = (o.charge_ah_last, o.energy_wh_last);
         }
     }
 }
 
-/// min, max, sum, last of two summaries; `later` says whose last wins.
-fn merge(a: [f64; 4], b: [f64; 4], later: bool) -> [f64; 4] {
-    [
-        a[0].min(b[0]),
-        a[1].max(b[1]),
-        a[2] + b[2],
-        if later { b[3] } else { a[3] },
-    ]
-}
+/// The open-circuit sources under which a reading has a driving force (the
+/// readings' `ocv_source`; `readings_view` spells the same bits as 2096).
+const DRIVING_FORCE_SOURCES: i64 =
+    super::flags::OCV_OHMIC | super::flags::OCV_COUNTED | super::flags::OCV_REVERSIBLE;
 
 /// Summaries of `rows` per bucket of `width_ns`.
-fn summarise(rows: &[ReadingRow], width_ns: i64) -> BTreeMap<i64, Summary> {
+fn summarise(rows: &[ReadingRow], cells: u32, width_ns: i64) -> BTreeMap<i64, Summary> {
     let mut out: BTreeMap<i64, Summary> = BTreeMap::new();
     for r in rows {
         let start = r.time_ns.div_euclid(width_ns) * width_ns;
-        out.entry(start)
-            .and_modify(|s| s.add(r))
-            .or_insert_with(|| Summary::of(r));
+        let one = Summary::of(r, cells);
+        out.entry(start).and_modify(|s| s.add(&one)).or_insert(one);
     }
     out
 }
 
-/// Adds fresh readings, each stored just now for the first time, to their
-/// buckets on every tier.
+/// Adds fresh readings of a stack of `cells`, each stored just now for the
+/// first time, to their buckets on every tier.
 pub async fn add_fresh(
     tx: &mut Tx<'_>,
     channel_key: i64,
+    cells: u32,
     rows: &[ReadingRow],
 ) -> Result<(), StoreError> {
     for tier_s in TIERS_S {
-        let summaries = summarise(rows, tier_s * NS_PER_S);
+        let summaries = summarise(rows, cells, tier_s * NS_PER_S);
         let list: Vec<_> = summaries.into_iter().collect();
         for chunk in list.chunks(200) {
             upsert(tx, channel_key, tier_s, chunk).await?;
@@ -209,50 +292,74 @@ async fn upsert(
     tier_s: i64,
     buckets: &[(i64, Summary)],
 ) -> Result<(), StoreError> {
-    let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
-        "INSERT INTO rollups (channel_key, width_s, start_ns, run_id, n, last_ns, \
-         v_min, v_max, v_sum, v_last, s_n, s_min, s_max, s_sum, s_last, e_min, e_max, e_sum, e_last) ",
-    );
+    let mut qb: QueryBuilder<Sqlite> =
+        QueryBuilder::new(concat!("INSERT INTO rollups ", rollup_columns!(), " "));
     qb.push_values(buckets, |mut b, (start, s)| {
         b.push_bind(key)
             .push_bind(tier_s)
             .push_bind(*start)
-            .push_bind(s.run_id)
             .push_bind(s.n)
             .push_bind(s.last_ns);
-        for v in s.volts {
-            b.push_bind(v);
+        for v in &s.volts[..3] {
+            b.push_bind(*v);
         }
-        b.push_bind(s.soc_n);
-        for v in s.soc {
-            b.push_bind(v);
+        for p in [&s.soc, &s.equilibrium, &s.driving_force] {
+            b.push_bind(p.n)
+                .push_bind(p.min)
+                .push_bind(p.max)
+                .push_bind(p.sum);
         }
-        for v in s.cell {
-            b.push_bind(v);
-        }
+        b.push_bind(s.run_id)
+            .push_bind(s.volts[3])
+            .push_bind(s.soc.last)
+            .push_bind(s.equilibrium.last)
+            .push_bind(s.driving_force.last)
+            .push_bind(s.charge_ah_last)
+            .push_bind(s.energy_wh_last);
     });
-    // SET expressions read the row as it was: `last_ns` on the right is
-    // the stored one. SQLite's two-argument MIN/MAX return NULL if either
-    // is NULL, hence the COALESCEs for SOC, which may be unknown.
-    qb.push(
-        " ON CONFLICT (channel_key, width_s, start_ns) DO UPDATE SET \
-         n = n + excluded.n, \
-         run_id = CASE WHEN excluded.last_ns >= last_ns THEN excluded.run_id ELSE run_id END, \
-         v_min = MIN(v_min, excluded.v_min), v_max = MAX(v_max, excluded.v_max), \
-         v_sum = v_sum + excluded.v_sum, \
-         v_last = CASE WHEN excluded.last_ns >= last_ns THEN excluded.v_last ELSE v_last END, \
-         s_n = s_n + excluded.s_n, \
-         s_min = COALESCE(MIN(s_min, excluded.s_min), s_min, excluded.s_min), \
-         s_max = COALESCE(MAX(s_max, excluded.s_max), s_max, excluded.s_max), \
-         s_sum = COALESCE(s_sum + excluded.s_sum, s_sum, excluded.s_sum), \
-         s_last = CASE WHEN excluded.last_ns >= last_ns THEN excluded.s_last ELSE s_last END, \
-         e_min = MIN(e_min, excluded.e_min), e_max = MAX(e_max, excluded.e_max), \
-         e_sum = e_sum + excluded.e_sum, \
-         e_last = CASE WHEN excluded.last_ns >= last_ns THEN excluded.e_last ELSE e_last END, \
-         last_ns = MAX(last_ns, excluded.last_ns)",
-    );
+    qb.push(merge_on_conflict());
     qb.build().execute(&mut **tx).await?;
     Ok(())
+}
+
+/// The `ON CONFLICT` clause that adds a new summary to a stored bucket.
+/// SET expressions read the row as it was (`last_ns` on the right is the
+/// stored one). SQLite's two-argument MIN/MAX return NULL if either is
+/// NULL, hence the COALESCEs for the values some readings lack.
+fn merge_on_conflict() -> &'static str {
+    static CLAUSE: std::sync::OnceLock<String> = std::sync::OnceLock::new();
+    CLAUSE.get_or_init(|| {
+        let later = |col: &str| {
+            format!("{col} = CASE WHEN excluded.last_ns >= last_ns THEN excluded.{col} ELSE {col} END")
+        };
+        let mut set = vec![
+            "n = n + excluded.n".to_string(),
+            later("run_id"),
+            "v_min = MIN(v_min, excluded.v_min)".into(),
+            "v_max = MAX(v_max, excluded.v_max)".into(),
+            "v_sum = v_sum + excluded.v_sum".into(),
+            later("v_last"),
+        ];
+        for x in ["s", "e", "d"] {
+            set.push(format!("{x}_n = {x}_n + excluded.{x}_n"));
+            for (stat, f) in [("min", "MIN"), ("max", "MAX")] {
+                set.push(format!(
+                    "{x}_{stat} = COALESCE({f}({x}_{stat}, excluded.{x}_{stat}), {x}_{stat}, excluded.{x}_{stat})"
+                ));
+            }
+            set.push(format!(
+                "{x}_sum = COALESCE({x}_sum + excluded.{x}_sum, {x}_sum, excluded.{x}_sum)"
+            ));
+            set.push(later(&format!("{x}_last")));
+        }
+        set.push(later("c_last"));
+        set.push(later("w_last"));
+        set.push("last_ns = MAX(last_ns, excluded.last_ns)".into());
+        format!(
+            " ON CONFLICT (channel_key, width_s, start_ns) DO UPDATE SET {}",
+            set.join(", ")
+        )
+    })
 }
 
 /// Recomputes every bucket, on every tier, that holds one of `times`
@@ -280,17 +387,17 @@ pub async fn refresh(tx: &mut Tx<'_>, channel_key: i64, times: &[i64]) -> Result
 async fn from_readings(tx: &mut Tx<'_>, key: i64, lo: i64, hi: i64) -> Result<(), StoreError> {
     let width = TIERS_S[0] * NS_PER_S;
     sqlx::query(concat!(
-        "INSERT OR REPLACE INTO rollups \
-         WITH agg AS ( \
-           SELECT (time_ns / ?4) * ?4 AS b, ", readings_summary!(), " \
-           FROM readings WHERE channel_key = ?1 AND time_ns >= ?2 AND time_ns < ?3 GROUP BY b \
-         ), tagged AS ( \
-           SELECT agg.*, (SELECT seq FROM readings r WHERE r.channel_key = ?1 AND r.time_ns = agg.last_ns \
-                          ORDER BY seq DESC LIMIT 1) AS last_seq FROM agg \
-         ) \
-         SELECT ?1, ?5, t.b, r.run_id, t.n, t.last_ns, t.v_min, t.v_max, t.v_sum, r.volts, \
-                t.s_n, t.s_min, t.s_max, t.s_sum, r.soc_fused, t.e_min, t.e_max, t.e_sum, r.cell_volts_used \
-         FROM tagged t JOIN readings r ON r.channel_key = ?1 AND r.seq = t.last_seq",
+        "INSERT OR REPLACE INTO rollups ",
+        rollup_columns!(),
+        " \
+         WITH v AS (",
+        readings_view!(),
+        "), \
+         agg AS (SELECT (time_ns / ?4) * ?4 AS b, ",
+        readings_summary!(),
+        " FROM v GROUP BY b) \
+         SELECT ?1, ?5, a.*, ",
+        readings_last!(),
     ))
     .bind(key)
     .bind(lo)
@@ -311,15 +418,14 @@ async fn from_child(
     hi: i64,
 ) -> Result<(), StoreError> {
     sqlx::query(concat!(
-        "INSERT OR REPLACE INTO rollups \
+        "INSERT OR REPLACE INTO rollups ", rollup_columns!(), " \
          WITH agg AS ( \
            SELECT (start_ns / ?5) * ?5 AS b, ", rollups_summary!(), " \
            FROM rollups WHERE channel_key = ?1 AND width_s = ?4 AND start_ns >= ?2 AND start_ns < ?3 \
            GROUP BY b \
          ) \
-         SELECT ?1, ?6, a.b, c.run_id, a.n, a.last_ns, a.v_min, a.v_max, a.v_sum, c.v_last, \
-                a.s_n, a.s_min, a.s_max, a.s_sum, c.s_last, a.e_min, a.e_max, a.e_sum, c.e_last \
-         FROM agg a JOIN rollups c ON c.channel_key = ?1 AND c.width_s = ?4 \
+         SELECT ?1, ?6, a.*, ", rollups_last!(), " \
+         FROM agg a CROSS JOIN rollups c ON c.channel_key = ?1 AND c.width_s = ?4 \
            AND c.start_ns >= a.b AND c.start_ns < a.b + ?5 AND c.last_ns = a.last_ns",
     ))
     .bind(key)
@@ -349,7 +455,7 @@ pub async fn query(
            FROM rollups WHERE channel_key = ?1 AND width_s = ?5 AND start_ns >= ?2 AND start_ns < ?3 \
            GROUP BY bucket \
          ) \
-         SELECT a.*, c.v_last, c.s_last, c.e_last, c.run_id FROM agg a JOIN rollups c \
+         SELECT a.*, ", rollups_last!(), " FROM agg a CROSS JOIN rollups c \
            ON c.channel_key = ?1 AND c.width_s = ?5 AND c.last_ns = a.last_ns \
            AND c.start_ns >= ?2 + a.bucket * ?4 AND c.start_ns < ?2 + (a.bucket + 1) * ?4 \
          ORDER BY a.bucket",
@@ -364,43 +470,90 @@ pub async fn query(
     rows.iter().map(bucket_of).collect()
 }
 
+/// Buckets straight from the readings, for widths no tier tiles (under
+/// 10 s); the same columns as [`query`].
+pub async fn query_readings(
+    pool: &SqlitePool,
+    key: i64,
+    start_ns: i64,
+    end_ns: i64,
+    width_ns: i64,
+) -> Result<Vec<BucketRow>, StoreError> {
+    let rows = sqlx::query(concat!(
+        "WITH v AS (",
+        readings_view!(),
+        "), \
+         agg AS (SELECT (time_ns - ?2) / ?4 AS bucket, ",
+        readings_summary!(),
+        " FROM v GROUP BY bucket) \
+         SELECT a.*, ",
+        readings_last!(),
+        " ORDER BY a.bucket",
+    ))
+    .bind(key)
+    .bind(start_ns)
+    .bind(end_ns)
+    .bind(width_ns)
+    .fetch_all(pool)
+    .await?;
+    rows.iter().map(bucket_of).collect()
+}
+
 /// One merged bucket; means from sums, so every tier gives the same mean.
-pub(super) fn bucket_of(r: &sqlx::sqlite::SqliteRow) -> Result<BucketRow, StoreError> {
+fn bucket_of(r: &sqlx::sqlite::SqliteRow) -> Result<BucketRow, StoreError> {
     let n: i64 = r.try_get("n")?;
-    let s_n: i64 = r.try_get("s_n")?;
-    let mean = |sum: f64, count: i64| sum / count as f64;
     Ok(BucketRow {
         bucket: r.try_get("bucket")?,
         count: n as u64,
         volts: [
             r.try_get("v_min")?,
             r.try_get("v_max")?,
-            mean(r.try_get("v_sum")?, n),
+            r.try_get::<f64, _>("v_sum")? / n as f64,
             r.try_get("v_last")?,
         ],
-        soc: if s_n > 0 {
-            Some([
-                r.try_get("s_min")?,
-                r.try_get("s_max")?,
-                mean(r.try_get("s_sum")?, s_n),
-                r.try_get::<Option<f64>, _>("s_last")?.unwrap_or(f64::NAN),
-            ])
-        } else {
-            None
-        },
-        cell_volts_used: [
-            r.try_get("e_min")?,
-            r.try_get("e_max")?,
-            mean(r.try_get("e_sum")?, n),
-            r.try_get("e_last")?,
-        ],
+        soc: partial_of(r, "s")?,
+        equilibrium_cell_volts: partial_of(r, "e")?,
+        driving_force_v: partial_of(r, "d")?,
+        charge_ah_last: r.try_get("c_last")?,
+        energy_wh_last: r.try_get("w_last")?,
         last_run_id: r.try_get("run_id")?,
     })
+}
+
+/// min, max, mean and last of a value some readings lack (columns
+/// `<x>_n`, `<x>_min`, …); none when no reading in the bucket had it, and
+/// `last` NaN when the last reading lacked it.
+fn partial_of(r: &sqlx::sqlite::SqliteRow, x: &str) -> Result<Option<[f64; 4]>, StoreError> {
+    let n: i64 = r.try_get(format!("{x}_n").as_str())?;
+    if n == 0 {
+        return Ok(None);
+    }
+    let get = |stat: &str| -> Result<Option<f64>, StoreError> {
+        Ok(r.try_get(format!("{x}_{stat}").as_str())?)
+    };
+    let value = |v: Option<f64>| v.unwrap_or(f64::NAN);
+    Ok(Some([
+        value(get("min")?),
+        value(get("max")?),
+        value(get("sum")?) / n as f64,
+        value(get("last")?),
+    ]))
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn the_sql_spells_the_same_flag_bits_as_the_code() {
+        use super::super::flags;
+        assert_eq!(flags::OCV_NONE, 4096);
+        assert_eq!(DRIVING_FORCE_SOURCES, 2096);
+        assert!(readings_view!().contains("r.flags & 4096 = 0"));
+        assert!(readings_view!().contains("r.flags & 2096 != 0"));
+        assert!(readings_last!().contains("l.flags & 4096 = 0"));
+        assert!(readings_last!().contains("l.flags & 2096 != 0"));
+    }
 
     #[test]
     fn the_coarsest_tier_that_tiles_the_width() {

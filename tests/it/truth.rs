@@ -151,8 +151,13 @@ async fn rollups_equal_a_recomputation_from_the_readings() {
     let t0 = now_ns() - 3 * 3_600_000_000_000;
     let at = |s: u64| t0 + (s as i64) * 700_000_000;
     let volts = |s: u64| 1.30 + 0.1 * ((s as f64) * 0.37).sin().abs();
+    // Charge and discharge with a rest at the end of each half cycle: some
+    // readings have an open-circuit estimate, some a driving force, some
+    // neither, and buckets mix them.
     let amps = |s: u64| {
-        Some(if (s / 500).is_multiple_of(2) {
+        Some(if s % 500 >= 400 {
+            0.0
+        } else if (s / 500).is_multiple_of(2) {
             1.5
         } else {
             -1.5
@@ -181,6 +186,9 @@ async fn rollups_equal_a_recomputation_from_the_readings() {
     let ch = server.channel().await;
     let stored = stored_readings(&mut HistoryServiceClient::new(ch.clone()), "roll-1").await;
     assert_eq!(stored.len(), 6000);
+    // Buckets holding readings with and without an equilibrium estimate,
+    // and with and without a driving force.
+    let mut mixed = [0usize; 2];
     // 3 s and 7 s are finer than every tier: raw readings answer them.
     for width_s in [3i64, 7, 10, 60, 120, 3600] {
         let width = width_s * 1_000_000_000;
@@ -204,6 +212,7 @@ async fn rollups_equal_a_recomputation_from_the_readings() {
                 .push(r);
         }
         assert_eq!(got.len(), expected.len(), "width {width_s} s");
+        let mut previous_charge: Option<f64> = None;
         for (b, (start, rows)) in got.iter().zip(&expected) {
             assert_eq!(b.start_unix_ns, *start);
             assert_eq!(b.count, rows.len() as u64);
@@ -215,7 +224,68 @@ async fn rollups_equal_a_recomputation_from_the_readings() {
             assert!((v.mean - mean).abs() < 1e-12, "{} vs {mean}", v.mean);
             let last = rows.iter().max_by_key(|r| (r.time_unix_ns, r.seq)).unwrap();
             assert_eq!(v.last, last.volts, "width {width_s} s, bucket {start}");
+            let derived = |r: &&pb::StoredReading| r.derived.clone().unwrap();
+            let known: Vec<f64> = rows
+                .iter()
+                .map(derived)
+                .filter(|d| d.ocv_source != pb::OcvSource::None as i32)
+                .map(|d| d.equilibrium_cell_volts)
+                .collect();
+            let pushed: Vec<f64> = rows
+                .iter()
+                .filter_map(|r| derived(r).driving_force_v)
+                .collect();
+            mixed[0] += usize::from(!known.is_empty() && known.len() < rows.len());
+            mixed[1] += usize::from(!pushed.is_empty() && pushed.len() < rows.len());
+            same_stats(b.equilibrium_cell_volts, &known, "equilibrium");
+            same_stats(b.driving_force_v, &pushed, "driving force");
+            assert_eq!(b.delta_g_kj_per_mol.is_some(), !known.is_empty());
+            let last_charge = derived(last).charge_ah;
+            assert_eq!(b.charge_ah_last, last_charge);
+            // Nothing is stored before the first bucket; then differences.
+            match previous_charge {
+                None => assert_eq!(b.charge_ah_delta, None),
+                Some(before) => {
+                    let delta = b.charge_ah_delta.unwrap();
+                    assert!((delta - (last_charge - before)).abs() < 1e-12);
+                }
+            }
+            previous_charge = Some(last_charge);
         }
     }
+    assert!(
+        mixed[0] > 0 && mixed[1] > 0,
+        "buckets mixing readings with and without an estimate: {mixed:?}"
+    );
     server.stop().await;
+}
+
+/// A bucket's statistic of a value some readings lack, against the values
+/// of the readings that have it.
+fn same_stats(got: Option<pb::Stats>, values: &[f64], what: &str) {
+    let Some(s) = got else {
+        assert!(
+            values.is_empty(),
+            "{what}: absent, but {} readings have it",
+            values.len()
+        );
+        return;
+    };
+    assert!(!values.is_empty(), "{what}: present, but no reading has it");
+    assert_eq!(
+        s.min,
+        values.iter().cloned().fold(f64::INFINITY, f64::min),
+        "{what}"
+    );
+    assert_eq!(
+        s.max,
+        values.iter().cloned().fold(f64::NEG_INFINITY, f64::max),
+        "{what}"
+    );
+    let mean = values.iter().sum::<f64>() / values.len() as f64;
+    assert!(
+        (s.mean - mean).abs() < 1e-12,
+        "{what}: {} vs {mean}",
+        s.mean
+    );
 }

@@ -3,7 +3,7 @@
 use crate::estimator;
 use crate::ingest::ChannelRuntime;
 use crate::pb;
-use crate::store::{BucketRow, ReadingRow, RunRow};
+use crate::store::{BucketRow, CountsBefore, ReadingRow, RunRow};
 use std::collections::HashMap;
 
 /// The estimator's view of a channel now, beside its latest reading.
@@ -66,9 +66,41 @@ pub fn estimator_to_pb(
     }
 }
 
-/// One bucket of readings. ΔG = −nFE is linear in E, so its min/max/mean
-/// follow from E's (using the run of the bucket's last reading).
-pub fn bucket_to_pb(
+/// A query's buckets in order. ΔG = −nFE is linear in E, so its min, max
+/// and mean follow from E's (with the run of the bucket's last reading).
+/// Charge and energy passed per bucket are differences of consecutive
+/// `last` counts, the first from `before` (the last stored reading before
+/// the window); a bucket whose run differs from the one before counts
+/// from zero, as a new run does.
+pub fn buckets_to_pb(
+    rows: &[BucketRow],
+    before: Option<CountsBefore>,
+    start_unix_ns: i64,
+    width_ns: i64,
+    runs: &HashMap<i64, RunRow>,
+) -> Vec<pb::Bucket> {
+    let mut previous = before.map(|b| (b.run_id, b.charge_ah, b.energy_wh));
+    rows.iter()
+        .map(|b| {
+            let delta = |last: f64, prev: Option<(i64, f64)>| match prev {
+                Some((run, before)) if run == b.last_run_id => Some(last - before),
+                Some(_) => Some(last),
+                None => None,
+            };
+            let charge_ah_delta = delta(b.charge_ah_last, previous.map(|p| (p.0, p.1)));
+            let energy_wh_delta = delta(b.energy_wh_last, previous.map(|p| (p.0, p.2)));
+            previous = Some((b.last_run_id, b.charge_ah_last, b.energy_wh_last));
+            pb::Bucket {
+                charge_ah_delta,
+                energy_wh_delta,
+                ..bucket_to_pb(b, start_unix_ns, width_ns, runs)
+            }
+        })
+        .collect()
+}
+
+/// One bucket without the deltas (see [`buckets_to_pb`]).
+fn bucket_to_pb(
     b: &BucketRow,
     start_unix_ns: i64,
     width_ns: i64,
@@ -76,7 +108,6 @@ pub fn bucket_to_pb(
 ) -> pb::Bucket {
     let n = runs.get(&b.last_run_id).map(|r| r.n_electrons).unwrap_or(1);
     let dg = |e: f64| crate::electrochem::thermo::delta_g_kj_per_mol(n, e);
-    let [e_min, e_max, e_mean, e_last] = b.cell_volts_used;
     let stats = |s: [f64; 4]| pb::Stats {
         min: s[0],
         max: s[1],
@@ -88,11 +119,20 @@ pub fn bucket_to_pb(
         count: b.count,
         volts: Some(stats(b.volts)),
         soc: b.soc.map(stats),
-        delta_g_kj_per_mol: Some(pb::Stats {
-            min: dg(e_max),
-            max: dg(e_min),
-            mean: dg(e_mean),
-            last: dg(e_last),
-        }),
+        delta_g_kj_per_mol: b
+            .equilibrium_cell_volts
+            .map(|[e_min, e_max, e_mean, e_last]| pb::Stats {
+                min: dg(e_max),
+                max: dg(e_min),
+                mean: dg(e_mean),
+                last: dg(e_last),
+            }),
+        equilibrium_cell_volts: b.equilibrium_cell_volts.map(stats),
+        driving_force_v: b.driving_force_v.map(stats),
+        charge_ah_last: b.charge_ah_last,
+        energy_wh_last: b.energy_wh_last,
+        charge_ah_delta: None,
+        energy_wh_delta: None,
+        run_id: b.last_run_id.max(0) as u64,
     }
 }
