@@ -402,3 +402,80 @@ async fn a_sigkill_during_pruning_loses_nothing_it_should_not() {
     child.kill().unwrap();
     child.wait().unwrap();
 }
+
+/// One random rig session: readings `step_ms` apart, sent in random
+/// batches with some held back and sent late, some batches resent, and
+/// the server restarted between some batches.
+async fn random_session(seed: u64, n: u64, step_ms: i64) {
+    let mut rng = gibbsline::sim::Rng::new(seed);
+    let (_dir, db) = temp_db();
+    let mut server = Server::start(&db).await;
+    let mut def = channel_def("prop-1", "vanadium-redox");
+    def.capacity_ah = 0.5;
+    put_channel(&server.channel().await, def).await;
+    let (t0, at) = timeline(n, step_ms * 1_000_000);
+    // Current in segments of 40 readings: charge, discharge or rest.
+    let amps = |s: u64| [1.2, -1.2, 0.0][((s / 40) * 7 + seed % 3) as usize % 3];
+    let volts = |s: u64| 1.32 + 0.05 * ((s as f64) * 0.11).sin();
+    let (mut fresh, mut late): (Vec<u64>, Vec<u64>) =
+        (1..=n).partition(|_| rng.next_u64() % 10 != 0);
+    late.reverse();
+    let mut sent: Vec<Vec<u64>> = Vec::new();
+    while !fresh.is_empty() || !late.is_empty() {
+        let batch: Vec<u64> = match rng.next_u64() % 6 {
+            0 if !late.is_empty() => {
+                let k = (1 + rng.next_u64() % 20).min(late.len() as u64) as usize;
+                late.drain(..k).collect()
+            }
+            1 if !sent.is_empty() => sent[(rng.next_u64() % sent.len() as u64) as usize].clone(),
+            _ if !fresh.is_empty() => {
+                let k = (1 + rng.next_u64() % 300).min(fresh.len() as u64) as usize;
+                fresh.drain(..k).collect()
+            }
+            _ => late.drain(..).collect(),
+        };
+        if rng.next_u64() % 12 == 0 {
+            server.stop().await;
+            server = Server::start(&db).await;
+        }
+        let mut ingest = IngestServiceClient::new(server.channel().await);
+        let readings = batch
+            .iter()
+            .map(|&s| reading(s, at(s), volts(s), Some(amps(s))))
+            .collect();
+        send_batches(
+            &mut ingest,
+            vec![pb::ReadingBatch {
+                channel_id: "prop-1".into(),
+                batch_id: sent.len() as u64,
+                readings,
+            }],
+        )
+        .await;
+        sent.push(batch);
+    }
+    let ch = server.channel().await;
+    let stored = stored_readings(&mut HistoryServiceClient::new(ch.clone()), "prop-1").await;
+    assert_eq!(
+        stored.len() as u64,
+        n,
+        "seed {seed}: every reading stored once"
+    );
+    let window = (t0 + (n as i64 / 3) * step_ms * 1_000_000, at(n) + 1);
+    crate::truth::buckets_match_readings(&ch, "prop-1", window, &[4, 10, 60, 3600]).await;
+    server.stop().await;
+}
+
+#[test]
+fn rollups_equal_a_recomputation_over_random_batches_late_readings_and_restarts() {
+    use proptest::prelude::*;
+    let runtime = tokio::runtime::Runtime::new().unwrap();
+    let config = ProptestConfig {
+        cases: 10,
+        failure_persistence: None,
+        ..ProptestConfig::default()
+    };
+    proptest!(config, |(seed in any::<u64>(), n in 200u64..1500, step_ms in prop_oneof![Just(137i64), Just(900), Just(3_100)])| {
+        runtime.block_on(random_session(seed, n, step_ms));
+    });
+}

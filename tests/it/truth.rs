@@ -186,33 +186,67 @@ async fn rollups_equal_a_recomputation_from_the_readings() {
     let ch = server.channel().await;
     let stored = stored_readings(&mut HistoryServiceClient::new(ch.clone()), "roll-1").await;
     assert_eq!(stored.len(), 6000);
-    // Buckets holding readings with and without an equilibrium estimate,
-    // and with and without a driving force.
-    let mut mixed = [0usize; 2];
     // 3 s and 7 s are finer than every tier: raw readings answer them.
-    for width_s in [3i64, 7, 10, 60, 120, 3600] {
+    let mixed = buckets_match_readings(
+        &ch,
+        "roll-1",
+        (t0, t0 + 6_000 * 700_000_000 + 1),
+        &[3, 7, 10, 60, 120, 3600],
+    )
+    .await;
+    assert!(
+        mixed[0] > 0 && mixed[1] > 0,
+        "buckets mixing readings with and without an estimate: {mixed:?}"
+    );
+    server.stop().await;
+}
+
+/// Asserts that `QueryBuckets` over `window` at each width (s) equals a
+/// recomputation from the channel's stored readings: counts, volts, the
+/// equilibrium voltage and driving force over the readings that have them,
+/// ΔG's presence, last counts and charge passed. Returns how many buckets
+/// mixed readings with and without an equilibrium estimate, and with and
+/// without a driving force.
+pub(crate) async fn buckets_match_readings(
+    ch: &tonic::transport::Channel,
+    channel: &str,
+    window: (i64, i64),
+    widths_s: &[i64],
+) -> [usize; 2] {
+    use gibbsline::pb::history_service_client::HistoryServiceClient;
+    let stored = stored_readings(&mut HistoryServiceClient::new(ch.clone()), channel).await;
+    let mut mixed = [0usize; 2];
+    for &width_s in widths_s {
         let width = width_s * 1_000_000_000;
         let got = HistoryServiceClient::new(ch.clone())
             .query_buckets(pb::QueryBucketsRequest {
-                channel_id: "roll-1".into(),
-                start_unix_ns: t0,
-                end_unix_ns: t0 + 6_000 * 700_000_000 + 1,
+                channel_id: channel.into(),
+                start_unix_ns: window.0,
+                end_unix_ns: window.1,
                 bucket_width_ns: width,
             })
             .await
             .unwrap()
             .into_inner()
             .buckets;
+        let start = window.0.div_euclid(width) * width;
         let mut expected: std::collections::BTreeMap<i64, Vec<&pb::StoredReading>> =
             Default::default();
-        for r in &stored {
+        for r in stored
+            .iter()
+            .filter(|r| r.time_unix_ns >= start && r.time_unix_ns < window.1)
+        {
             expected
                 .entry(r.time_unix_ns.div_euclid(width) * width)
                 .or_default()
                 .push(r);
         }
         assert_eq!(got.len(), expected.len(), "width {width_s} s");
-        let mut previous_charge: Option<f64> = None;
+        let mut previous_charge: Option<f64> = stored
+            .iter()
+            .filter(|r| r.time_unix_ns < start)
+            .max_by_key(|r| (r.time_unix_ns, r.seq))
+            .map(|r| r.derived.clone().unwrap().charge_ah);
         for (b, (start, rows)) in got.iter().zip(&expected) {
             assert_eq!(b.start_unix_ns, *start);
             assert_eq!(b.count, rows.len() as u64);
@@ -242,7 +276,7 @@ async fn rollups_equal_a_recomputation_from_the_readings() {
             assert_eq!(b.delta_g_kj_per_mol.is_some(), !known.is_empty());
             let last_charge = derived(last).charge_ah;
             assert_eq!(b.charge_ah_last, last_charge);
-            // Nothing is stored before the first bucket; then differences.
+            // Nothing stored before the first bucket: no delta; then differences.
             match previous_charge {
                 None => assert_eq!(b.charge_ah_delta, None),
                 Some(before) => {
@@ -253,11 +287,7 @@ async fn rollups_equal_a_recomputation_from_the_readings() {
             previous_charge = Some(last_charge);
         }
     }
-    assert!(
-        mixed[0] > 0 && mixed[1] > 0,
-        "buckets mixing readings with and without an estimate: {mixed:?}"
-    );
-    server.stop().await;
+    mixed
 }
 
 /// A bucket's statistic of a value some readings lack, against the values
