@@ -418,7 +418,7 @@ async fn random_session(seed: u64, n: u64, step_ms: i64) {
     let amps = |s: u64| [1.2, -1.2, 0.0][((s / 40) * 7 + seed % 3) as usize % 3];
     let volts = |s: u64| 1.32 + 0.05 * ((s as f64) * 0.11).sin();
     let (mut fresh, mut late): (Vec<u64>, Vec<u64>) =
-        (1..=n).partition(|_| rng.next_u64() % 10 != 0);
+        (1..=n).partition(|_| !rng.next_u64().is_multiple_of(10));
     late.reverse();
     let mut sent: Vec<Vec<u64>> = Vec::new();
     while !fresh.is_empty() || !late.is_empty() {
@@ -432,9 +432,9 @@ async fn random_session(seed: u64, n: u64, step_ms: i64) {
                 let k = (1 + rng.next_u64() % 300).min(fresh.len() as u64) as usize;
                 fresh.drain(..k).collect()
             }
-            _ => late.drain(..).collect(),
+            _ => std::mem::take(&mut late),
         };
-        if rng.next_u64() % 12 == 0 {
+        if rng.next_u64().is_multiple_of(12) {
             server.stop().await;
             server = Server::start(&db).await;
         }
