@@ -52,8 +52,6 @@ pub struct Metrics {
     pub pruned_readings: AtomicU64,
     /// 10 s and 1 min rollups deleted by retention.
     pub pruned_rollups: AtomicU64,
-    /// Free pages handed back to the file system after pruning.
-    pub released_pages: AtomicU64,
     /// Pruning passes finished.
     pub prune_passes: AtomicU64,
 }
@@ -150,11 +148,6 @@ impl Metrics {
                 "gibbsline_pruned_rollups_total",
                 "10 s and 1 min rollups deleted by retention.",
                 &self.pruned_rollups,
-            ),
-            (
-                "gibbsline_released_pages_total",
-                "Free database pages handed back to the file system after pruning.",
-                &self.released_pages,
             ),
             (
                 "gibbsline_prune_passes_total",

@@ -284,7 +284,7 @@ impl SocModelSpec {
                     .enumerate()
                     .map(|(i, s)| s.validate(i))
                     .collect::<Result<Vec<_>, _>>()?;
-                let model = NernstModel { species };
+                let model = NernstModel::new(species);
                 model.validate()?;
                 Ok(SocModel::Nernst(model))
             }

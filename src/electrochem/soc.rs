@@ -9,10 +9,13 @@
 //!   with an optional entropic coefficient per point, interpolated by a
 //!   monotone cubic (Fritsch–Carlson PCHIP) or linearly.
 //!
-//! Inverses use a bracketing root-finder (Illinois regula falsi): on a
-//! monotone function it always converges, needs no derivative and cannot
-//! leave the bracket, and it needs about ten evaluations, not bisection's
-//! fifty.
+//! Inverses: a Nernst model is inverted in ln Q space (E is linear in
+//! ln Q) by safeguarded Newton from a start that depends on the model
+//! alone, a few evaluations per reading; a table by a bracketing
+//! root-finder (Illinois regula falsi), which on a monotone function always
+//! converges, needs no derivative and cannot leave the bracket. The
+//! bracketing solver is also the reference the Newton inverse is tested
+//! against.
 // Item docs here are still being written (DEVELOPERS.md, "Documentation").
 #![allow(missing_docs)]
 
@@ -56,18 +59,111 @@ pub struct Species {
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct NernstModel {
     pub species: Vec<Species>,
+    /// What the inverse needs of the model alone (see [`NernstModel::new`]).
+    #[serde(skip)]
+    inverse: InverseStart,
+}
+
+/// The parts of the inverse that depend on the model only, not on E° or
+/// the temperature: ln Q at both ends (the clamps) and ln Q and its slope
+/// at SOC ½ (the starting guess). Computed once per model, so a reading
+/// costs a start and two or three Newton steps.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+struct InverseStart {
+    ln_q_at_0: f64,
+    ln_q_at_1: f64,
+    ln_q_at_half: f64,
+    slope_at_half: f64,
 }
 
 /// How many points of [0, 1] are checked when a model is validated.
 const VALIDATION_GRID_POINTS: usize = 201;
 
 impl NernstModel {
+    /// A model of these species, with what its inverse needs computed.
+    pub fn new(species: Vec<Species>) -> NernstModel {
+        let mut model = NernstModel {
+            species,
+            inverse: InverseStart::default(),
+        };
+        let (ln_q_at_half, slope_at_half) = model.ln_q_and_slope(0.5);
+        model.inverse = InverseStart {
+            ln_q_at_0: model.ln_q(0.0),
+            ln_q_at_1: model.ln_q(1.0),
+            ln_q_at_half,
+            slope_at_half,
+        };
+        model
+    }
+
     /// ln Q at `soc` (activities must be positive: checked by [`validate`]).
     pub fn ln_q(&self, soc: f64) -> f64 {
         self.species
             .iter()
             .map(|s| s.nu * s.activity.at(soc).ln())
             .sum()
+    }
+
+    /// ln Q at `soc` and d(ln Q)/d(SOC) there, in one pass over the species.
+    fn ln_q_and_slope(&self, soc: f64) -> (f64, f64) {
+        self.species.iter().fold((0.0, 0.0), |(ln_q, slope), s| {
+            let a = s.activity.at(soc);
+            let da = match s.activity {
+                Activity::Fixed { .. } => 0.0,
+                Activity::Linear { per_soc, .. } => per_soc,
+            };
+            (ln_q + s.nu * a.ln(), slope + s.nu * da / a)
+        })
+    }
+
+    /// The SOC at which the model's ln Q equals `ln_q`; the nearer end of
+    /// [0, 1], flagged, when no SOC reaches it. Safeguarded Newton: ln Q
+    /// falls strictly with SOC, so a bracket is kept and a step that would
+    /// leave it bisects instead. The start treats ln Q as linear in
+    /// logit(SOC) through SOC ½, which a model of species linear in SOC is
+    /// close to, so two or three steps reach 1e-15.
+    pub fn soc_at_ln_q(&self, ln_q: f64) -> SocEstimate {
+        let st = self.inverse;
+        if ln_q >= st.ln_q_at_0 {
+            return SocEstimate {
+                soc: 0.0,
+                clamped: ln_q > st.ln_q_at_0,
+            };
+        }
+        if ln_q <= st.ln_q_at_1 {
+            return SocEstimate {
+                soc: 1.0,
+                clamped: ln_q < st.ln_q_at_1,
+            };
+        }
+        // ln Q ≈ ln Q(½) + slope(½)/4 · logit(SOC), since d logit/dSOC = 4 at ½.
+        let logit = 4.0 * (ln_q - st.ln_q_at_half) / st.slope_at_half;
+        let (mut lo, mut hi) = (0.0, 1.0);
+        let mut soc = (1.0 / (1.0 + (-logit).exp())).clamp(1e-12, 1.0 - 1e-12);
+        for _ in 0..100 {
+            let (at, slope) = self.ln_q_and_slope(soc);
+            let excess = at - ln_q;
+            if excess > 0.0 {
+                lo = soc;
+            } else if excess < 0.0 {
+                hi = soc;
+            } else {
+                break;
+            }
+            let mut next = soc - excess / slope;
+            if !(next > lo && next < hi) {
+                next = 0.5 * (lo + hi);
+            }
+            let moved = (next - soc).abs();
+            soc = next;
+            if moved <= 1e-15 || hi - lo <= 1e-15 {
+                break;
+            }
+        }
+        SocEstimate {
+            soc,
+            clamped: false,
+        }
     }
 
     /// Rejects models whose activities are not positive on [0, 1] or whose
@@ -368,23 +464,35 @@ impl SocModel {
     /// SOC at which one cell shows `cell_volts` at open circuit. `None` for a
     /// model without SOC. Never NaN for finite input.
     pub fn soc_from_volts(&self, cell_volts: f64, ctx: NernstContext) -> Option<SocEstimate> {
-        if matches!(self, SocModel::None) {
-            return None;
+        match self {
+            SocModel::None => None,
+            // E = E° − ln Q / (nF/RT), so the inverse is one multiplication
+            // away from ln Q's, which needs no voltage evaluations at all.
+            SocModel::Nernst(m) => Some(m.soc_at_ln_q(
+                (ctx.e_standard_volts - cell_volts)
+                    * thermo::nf_over_rt(ctx.n_electrons, ctx.temp_k),
+            )),
+            SocModel::OcvTable(_) => Some(self.soc_bracketed(cell_volts, ctx)),
         }
+    }
+
+    /// The inverse by a bracketing root-finder on the forward map (tables,
+    /// and the reference the Nernst inverse is tested against).
+    fn soc_bracketed(&self, cell_volts: f64, ctx: NernstContext) -> SocEstimate {
         let (lo_soc, hi_soc) = self.soc_span();
         let f = |soc: f64| self.ocv_volts(soc, ctx).unwrap_or(f64::NAN);
         let (lo_v, hi_v) = (f(lo_soc), f(hi_soc));
         if cell_volts <= lo_v {
-            return Some(SocEstimate {
+            return SocEstimate {
                 soc: lo_soc,
                 clamped: cell_volts < lo_v,
-            });
+            };
         }
         if cell_volts >= hi_v {
-            return Some(SocEstimate {
+            return SocEstimate {
                 soc: hi_soc,
                 clamped: cell_volts > hi_v,
-            });
+            };
         }
         // Illinois variant of regula falsi: keeps the bracket like bisection
         // but converges superlinearly (about ten evaluations instead of
@@ -402,10 +510,10 @@ impl SocModel {
             }
             let fx = f(x) - cell_volts;
             if fx == 0.0 {
-                return Some(SocEstimate {
+                return SocEstimate {
                     soc: x,
                     clamped: false,
-                });
+                };
             }
             if fx < 0.0 {
                 lo = x;
@@ -423,10 +531,10 @@ impl SocModel {
                 side = 1;
             }
         }
-        Some(SocEstimate {
+        SocEstimate {
             soc: 0.5 * (lo + hi),
             clamped: false,
-        })
+        }
     }
 }
 
@@ -525,16 +633,14 @@ mod tests {
 
     #[test]
     fn nernst_model_rejects_nonpositive_activity() {
-        let m = NernstModel {
-            species: vec![Species {
-                name: "X".into(),
-                nu: -1.0,
-                activity: Activity::Linear {
-                    per_soc: 1.0,
-                    at_zero_soc: 0.0,
-                },
-            }],
-        };
+        let m = NernstModel::new(vec![Species {
+            name: "X".into(),
+            nu: -1.0,
+            activity: Activity::Linear {
+                per_soc: 1.0,
+                at_zero_soc: 0.0,
+            },
+        }]);
         let err = m.validate().unwrap_err().to_string();
         assert!(err.contains("activity"), "{err}");
     }
@@ -542,16 +648,50 @@ mod tests {
     #[test]
     fn nernst_model_rejects_wrong_direction() {
         // A reactant whose activity falls with SOC makes E fall with SOC.
-        let m = NernstModel {
-            species: vec![Species {
-                name: "X".into(),
-                nu: -1.0,
-                activity: Activity::Linear {
-                    per_soc: -0.5,
-                    at_zero_soc: 1.0,
-                },
-            }],
-        };
+        let m = NernstModel::new(vec![Species {
+            name: "X".into(),
+            nu: -1.0,
+            activity: Activity::Linear {
+                per_soc: -0.5,
+                at_zero_soc: 1.0,
+            },
+        }]);
         assert!(m.validate().is_err());
+    }
+
+    #[test]
+    fn newton_in_ln_q_agrees_with_the_bracketing_inverse() {
+        use proptest::prelude::*;
+        let registry = crate::electrochem::Registry::builtin();
+        let models: Vec<_> = registry
+            .iter()
+            .filter(|c| matches!(c.soc_model, SocModel::Nernst(_)))
+            .cloned()
+            .collect();
+        assert!(models.len() >= 4);
+        let config = ProptestConfig {
+            cases: 2000,
+            failure_persistence: None,
+            ..ProptestConfig::default()
+        };
+        proptest!(config, |(pick in 0usize..100, at in -0.05f64..1.05, temp_k in 253.15f64..363.15)| {
+            let c = &models[pick % models.len()];
+            let ctx = NernstContext {
+                n_electrons: c.n_electrons,
+                e_standard_volts: c.standard_potential().at(temp_k),
+                temp_k,
+            };
+            // Voltages from below the model's range to above it.
+            let lo = c.soc_model.ocv_volts(0.0, ctx).unwrap();
+            let hi = c.soc_model.ocv_volts(1.0, ctx).unwrap();
+            let volts = lo + at * (hi - lo);
+            let newton = c.soc_model.soc_from_volts(volts, ctx).unwrap();
+            let reference = c.soc_model.soc_bracketed(volts, ctx);
+            prop_assert!((newton.soc - reference.soc).abs() < 1e-9,
+                "{}: {volts} V at {temp_k} K: {} vs {}", c.id, newton.soc, reference.soc);
+            if !(0.0..=1.0).contains(&at) {
+                prop_assert_eq!(newton.clamped, reference.clamped);
+            }
+        });
     }
 }

@@ -89,7 +89,7 @@ pub fn delta_g_kj_per_mol(n_electrons: u32, cell_volts: f64) -> f64 {
 }
 
 /// nF/RT in 1/V at `temp_k`: converts a voltage to a natural-log ratio.
-fn nf_over_rt(n_electrons: u32, temp_k: f64) -> f64 {
+pub(crate) fn nf_over_rt(n_electrons: u32, temp_k: f64) -> f64 {
     f64::from(n_electrons) * FARADAY_C_PER_MOL / (GAS_CONSTANT_J_PER_MOL_K * temp_k)
 }
 

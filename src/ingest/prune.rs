@@ -1,8 +1,8 @@
 //! The pruning task: every `retention.prune_interval_s`, each channel's
 //! marks are raised as its policy asks (`Hub::raise_retention`, under the
 //! channel's commit gate, stored first), then what lies below them is
-//! deleted in small transactions, and free pages beyond a slack are handed
-//! back to the file system.
+//! deleted a few thousand rows at a time. Freed pages go to SQLite's free
+//! list, which new readings fill before the file grows.
 //!
 //! Ingest never waits for a pass: each deletion step of at most
 //! [`ROWS_PER_STEP`] rows is a job in the writer's queue, committed in a
@@ -15,7 +15,6 @@ use super::{Hub, IngestError, Job};
 use crate::config::RetentionSettings;
 use crate::retention::{RetentionMarks, RetentionPolicy};
 use crate::store::retention::Pruned;
-use crate::store::{self, StoreError};
 use std::sync::Arc;
 use std::sync::atomic::Ordering::Relaxed;
 use std::time::Duration;
@@ -24,12 +23,6 @@ use std::time::Duration;
 /// writer's group commits, so it adds its own few milliseconds to the
 /// acks of that commit (measured with `bench retention`).
 pub const ROWS_PER_STEP: u32 = 4_000;
-/// Free pages kept for reuse, as a fraction of the file: new readings
-/// fill them before the file grows, so at steady load the file stays
-/// flat without being shrunk and regrown.
-const FREE_PAGE_SLACK: f64 = 0.10;
-/// Pages handed back per transaction at most.
-const PAGES_PER_RELEASE: u32 = 4_096;
 
 /// What one pass removed.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
@@ -38,8 +31,6 @@ pub struct PassReport {
     pub readings: u64,
     /// 10 s and 1 min rollups deleted.
     pub rollups: u64,
-    /// Free pages handed back to the file system.
-    pub pages_released: u64,
 }
 
 /// Runs passes until the server begins to stop.
@@ -57,7 +48,6 @@ pub async fn run(hub: Arc<Hub>, settings: RetentionSettings) {
                 tracing::info!(
                     readings = report.readings,
                     rollups = report.rollups,
-                    pages_released = report.pages_released,
                     "retention pass"
                 );
             }
@@ -87,9 +77,6 @@ pub async fn pass(hub: &Hub, default: &RetentionPolicy) -> Result<PassReport, In
         if hub.is_shutting_down() {
             break;
         }
-    }
-    if report.readings + report.rollups > 0 {
-        report.pages_released = release_pages(hub).await?;
     }
     hub.metrics().prune_passes.fetch_add(1, Relaxed);
     Ok(report)
@@ -132,26 +119,4 @@ async fn drain(hub: &Hub, key: i64, what: Pruned, before_ns: i64) -> Result<u64,
             return Ok(total);
         }
     }
-}
-
-/// Hands free pages beyond the slack back to the file system.
-async fn release_pages(hub: &Hub) -> Result<u64, StoreError> {
-    let store = hub.store();
-    let (pages, mut free) = store::retention::page_counts(&store.writer).await?;
-    let keep = (pages as f64 * FREE_PAGE_SLACK) as i64;
-    let mut released = 0;
-    while free > keep && !hub.is_shutting_down() {
-        let step = (free - keep).min(i64::from(PAGES_PER_RELEASE)) as u32;
-        let left = store::retention::release_free_pages(store, step).await?;
-        if left >= free {
-            // An older file without incremental auto-vacuum: pages are
-            // only reused, never handed back.
-            break;
-        }
-        released += (free - left) as u64;
-        free = left;
-        tokio::task::yield_now().await;
-    }
-    hub.metrics().released_pages.fetch_add(released, Relaxed);
-    Ok(released)
 }

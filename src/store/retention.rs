@@ -101,38 +101,3 @@ pub async fn prune(
     };
     Ok(done.rows_affected())
 }
-
-/// Pages of the file, and of them free (deleted rows' pages, reused by
-/// later inserts before the file grows).
-pub async fn page_counts(pool: &SqlitePool) -> Result<(i64, i64), StoreError> {
-    let pages: i64 = sqlx::query("PRAGMA page_count")
-        .fetch_one(pool)
-        .await?
-        .try_get(0)?;
-    let free: i64 = sqlx::query("PRAGMA freelist_count")
-        .fetch_one(pool)
-        .await?
-        .try_get(0)?;
-    Ok((pages, free))
-}
-
-/// Hands up to `pages` free pages back to the file system (SQLite's
-/// incremental vacuum: a database created with `auto_vacuum =
-/// INCREMENTAL`; on an older file it does nothing and freed pages are only
-/// reused). Returns the free pages left.
-pub async fn release_free_pages(store: &Store, pages: u32) -> Result<i64, StoreError> {
-    store
-        .write(async |tx| {
-            sqlx::query(sqlx::AssertSqlSafe(format!(
-                "PRAGMA incremental_vacuum({pages})"
-            )))
-            .execute(&mut **tx)
-            .await?;
-            let free: i64 = sqlx::query("PRAGMA freelist_count")
-                .fetch_one(&mut **tx)
-                .await?
-                .try_get(0)?;
-            Ok(free)
-        })
-        .await
-}
