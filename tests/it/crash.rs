@@ -19,9 +19,15 @@ pub(crate) fn free_addr() -> String {
 }
 
 pub(crate) fn spawn_server(db: &Path, addr: &str) -> Child {
+    spawn_server_with(db, addr, &[])
+}
+
+/// [`spawn_server`] with more `serve` arguments.
+pub(crate) fn spawn_server_with(db: &Path, addr: &str, more: &[&std::ffi::OsStr]) -> Child {
     Command::new(env!("CARGO_BIN_EXE_gibbsline"))
         .args(["serve", "--listen", addr, "--durability", "full", "--db"])
         .arg(db)
+        .args(more)
         .env("RUST_LOG", "warn")
         .stdout(Stdio::null())
         .stderr(Stdio::null())

@@ -10,7 +10,6 @@ use gibbsline::pb::ingest_service_client::IngestServiceClient;
 use gibbsline::retention::RetentionPolicy;
 use std::collections::BTreeMap;
 use std::path::Path;
-use std::process::{Command, Stdio};
 use std::time::Duration;
 use tonic::transport::Channel;
 
@@ -285,17 +284,13 @@ fn spawn_pruning_server(
         ),
     )
     .unwrap();
-    Command::new(env!("CARGO_BIN_EXE_gibbsline"))
-        .args(["serve", "--durability", "full", "--listen", addr])
-        .args(["--metrics-listen", metrics, "--config"])
-        .arg(&config)
-        .arg("--db")
-        .arg(db)
-        .env("RUST_LOG", "warn")
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap()
+    let more = [
+        "--metrics-listen".as_ref(),
+        metrics.as_ref(),
+        "--config".as_ref(),
+        config.as_os_str(),
+    ];
+    crate::crash::spawn_server_with(db, addr, &more)
 }
 
 /// The pruned-readings counter of a server still starting: none while
