@@ -15,6 +15,7 @@ use super::{Hub, IngestError, Job};
 use crate::config::RetentionSettings;
 use crate::retention::{RetentionMarks, RetentionPolicy};
 use crate::store::retention::Pruned;
+use std::collections::HashMap;
 use std::sync::Arc;
 use std::sync::atomic::Ordering::Relaxed;
 use std::time::Duration;
@@ -38,12 +39,16 @@ pub async fn run(hub: Arc<Hub>, settings: RetentionSettings) {
     let mut tick = tokio::time::interval(Duration::from_secs(settings.prune_interval_s));
     tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
     let default = settings.policy();
+    // Marks each channel was last drained to: a pass sends no deletions
+    // for a channel whose marks have not moved since (a restart drains
+    // each once, finishing what a killed pass left).
+    let mut drained = HashMap::new();
     loop {
         tokio::select! {
             _ = tick.tick() => {}
             () = super::stopped(hub.shutdown_signal()) => return,
         }
-        match pass(&hub, &default).await {
+        match pass(&hub, &default, &mut drained).await {
             Ok(report) if report != PassReport::default() => {
                 tracing::info!(
                     readings = report.readings,
@@ -59,8 +64,13 @@ pub async fn run(hub: Arc<Hub>, settings: RetentionSettings) {
     }
 }
 
-/// One pass over every channel.
-pub async fn pass(hub: &Hub, default: &RetentionPolicy) -> Result<PassReport, IngestError> {
+/// One pass over every channel; `drained` holds the marks each channel
+/// was last drained to.
+pub async fn pass(
+    hub: &Hub,
+    default: &RetentionPolicy,
+    drained: &mut HashMap<i64, RetentionMarks>,
+) -> Result<PassReport, IngestError> {
     let mut report = PassReport::default();
     for (channel_id, runtime) in hub.runtimes() {
         let policy = {
@@ -71,12 +81,16 @@ pub async fn pass(hub: &Hub, default: &RetentionPolicy) -> Result<PassReport, In
             continue;
         }
         let (key, marks) = hub.raise_retention(&channel_id, default).await?;
+        if marks == RetentionMarks::default() || drained.get(&key) == Some(&marks) {
+            continue;
+        }
         let (readings, rollups) = prune_channel(hub, key, marks).await?;
         report.readings += readings;
         report.rollups += rollups;
         if hub.is_shutting_down() {
             break;
         }
+        drained.insert(key, marks);
     }
     hub.metrics().prune_passes.fetch_add(1, Relaxed);
     Ok(report)
