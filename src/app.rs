@@ -133,18 +133,11 @@ pub async fn run(
     );
     let shutdown_budget = Duration::from_secs(config.limits.shutdown_timeout_s);
     let result = serve_until_deadline(serve, hub.shutdown_signal(), shutdown_budget / 2).await;
-    silent_task.abort();
-    health_task.abort();
-    // The pruner ends at its next small transaction once stopping began.
-    if tokio::time::timeout(Duration::from_secs(2), prune_task)
-        .await
-        .is_err()
-    {
-        tracing::warn!("retention pass still running at shutdown: left for the next start");
-    }
-    if let Some(t) = metrics_task {
-        t.abort();
-    }
+    stop_background(
+        [Some(silent_task), Some(health_task), metrics_task],
+        prune_task,
+    )
+    .await;
     // Connections cut at the deadline may leave tasks holding the hub (and
     // so the writer's queue): the writer is told to stop, not left waiting
     // for every sender to go.
@@ -152,6 +145,24 @@ pub async fn run(
     drop(hub);
     flush_and_close(writer_task, store, shutdown_budget / 2).await;
     result.map_err(AppError::from)
+}
+
+/// Ends the background tasks once serving is over: the timers and the
+/// metrics endpoint at once, the pruner at its next deletion step (it
+/// watches the shutdown signal; what it leaves, the next start drains).
+async fn stop_background(
+    tasks: [Option<tokio::task::JoinHandle<()>>; 3],
+    prune_task: tokio::task::JoinHandle<()>,
+) {
+    for task in tasks.into_iter().flatten() {
+        task.abort();
+    }
+    if tokio::time::timeout(Duration::from_secs(2), prune_task)
+        .await
+        .is_err()
+    {
+        tracing::warn!("retention pass still running at shutdown: left for the next start");
+    }
 }
 
 /// The config's channels (and rules), put at every start: the file is

@@ -118,6 +118,30 @@ impl Metrics {
     /// Prometheus text exposition format 0.0.4.
     pub fn render(&self, queue_depth: usize, channel_ages_s: &[(String, f64)]) -> String {
         let mut o = String::new();
+        self.render_counters(&mut o);
+        labelled(
+            &mut o,
+            "gibbsline_readings_rejected_total",
+            "Readings rejected, by the field at fault.",
+            "field",
+            &REJECT_FIELDS,
+            &self.rejected,
+        );
+        labelled(
+            &mut o,
+            "gibbsline_alerts_raised_total",
+            "Alerts raised, by kind.",
+            "kind",
+            &ALERT_KIND_NAMES,
+            &self.alerts_raised,
+        );
+        self.render_commits(&mut o);
+        self.render_gauges(&mut o, queue_depth, channel_ages_s);
+        o
+    }
+
+    /// The plain counters, one family each.
+    fn render_counters(&self, o: &mut String) {
         for (name, help, counter) in [
             (
                 "gibbsline_readings_accepted_total",
@@ -155,26 +179,13 @@ impl Metrics {
                 &self.prune_passes,
             ),
         ] {
-            family(&mut o, name, help, "counter");
+            family(o, name, help, "counter");
             let _ = writeln!(o, "{name} {}", counter.load(Relaxed));
         }
-        labelled(
-            &mut o,
-            "gibbsline_readings_rejected_total",
-            "Readings rejected, by the field at fault.",
-            "field",
-            &REJECT_FIELDS,
-            &self.rejected,
-        );
-        labelled(
-            &mut o,
-            "gibbsline_alerts_raised_total",
-            "Alerts raised, by kind.",
-            "kind",
-            &ALERT_KIND_NAMES,
-            &self.alerts_raised,
-        );
-        self.render_commits(&mut o);
+    }
+
+    /// Queue depth, open streams and subscribers, each channel's age.
+    fn render_gauges(&self, o: &mut String, queue_depth: usize, channel_ages_s: &[(String, f64)]) {
         for (name, help, v) in [
             (
                 "gibbsline_writer_queue_depth",
@@ -192,12 +203,12 @@ impl Metrics {
                 self.ingest_streams.load(Relaxed),
             ),
         ] {
-            family(&mut o, name, help, "gauge");
+            family(o, name, help, "gauge");
             let _ = writeln!(o, "{name} {v}");
         }
         let name = "gibbsline_channel_last_seen_age_seconds";
         family(
-            &mut o,
+            o,
             name,
             "Seconds since a channel's last batch arrived.",
             "gauge",
@@ -205,7 +216,6 @@ impl Metrics {
         for (id, age) in channel_ages_s {
             let _ = writeln!(o, "{name}{{channel_id=\"{id}\"}} {age}");
         }
-        o
     }
 
     /// The commit-latency histogram (cumulative buckets, sum, count).
