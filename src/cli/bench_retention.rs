@@ -73,37 +73,17 @@ pub(crate) async fn run(args: &BenchRetentionArgs) -> anyhow::Result<()> {
     .await?;
     let conn = client::connect(&server.addr).await?;
     let ids = bench::define_channels(&conn, args.channels, "daniell").await?;
-    let step_ns = (args.interval_ms * 1_000_000) as i64;
-    let per_channel = (args.rig_hours * 3.6e12 / step_ns as f64) as u64;
-    let (normal_volts, over_volts) = bench::test_voltages("daniell");
-    let load = Load {
-        per_channel,
-        batch: u64::from(args.batch),
-        alert_every: 0,
-        t0: client::now_ns() - (per_channel as i64 + 10) * step_ns,
-        step_ns,
-        normal_volts,
-        over_volts,
-        batch_interval: Some(Duration::from_secs_f64(
-            f64::from(args.batch) * f64::from(args.channels) / args.rate,
-        )),
-    };
-    let expected_s = (per_channel * u64::from(args.channels)) as f64 / args.rate;
+    let load = soak_load(args);
+    let expected_s = (load.per_channel * u64::from(args.channels)) as f64 / args.rate;
     let samples: Arc<Mutex<Vec<(f64, f64)>>> = Arc::default();
     let started = Instant::now();
-    let sampler = {
-        let (samples, rig_hours) = (samples.clone(), args.rig_hours);
-        let disk = server.disk_probe();
-        tokio::spawn(async move {
-            let mut tick = tokio::time::interval(Duration::from_secs(1));
-            loop {
-                tick.tick().await;
-                let rig = (started.elapsed().as_secs_f64() / expected_s).min(1.0) * rig_hours;
-                let mb = disk() as f64 / 1e6;
-                samples.lock().expect("poisoned").push((rig, mb));
-            }
-        })
-    };
+    let sampler = sample_disk(
+        &server,
+        samples.clone(),
+        started,
+        expected_s,
+        args.rig_hours,
+    );
     let tasks: Vec<_> = ids
         .into_iter()
         .enumerate()
@@ -132,6 +112,47 @@ pub(crate) async fn run(args: &BenchRetentionArgs) -> anyhow::Result<()> {
     let report = report(readings, seconds, &latencies, samples, horizon_h);
     server.stop().await;
     print(&report, args.json)
+}
+
+/// Every channel's readings: `--rig-hours` of rig time ending now, paced
+/// so that all channels together offer `--rate`.
+fn soak_load(args: &BenchRetentionArgs) -> Load {
+    let step_ns = (args.interval_ms * 1_000_000) as i64;
+    let per_channel = (args.rig_hours * 3.6e12 / step_ns as f64) as u64;
+    let (normal_volts, over_volts) = bench::test_voltages("daniell");
+    Load {
+        per_channel,
+        batch: u64::from(args.batch),
+        alert_every: 0,
+        t0: client::now_ns() - (per_channel as i64 + 10) * step_ns,
+        step_ns,
+        normal_volts,
+        over_volts,
+        batch_interval: Some(Duration::from_secs_f64(
+            f64::from(args.batch) * f64::from(args.channels) / args.rate,
+        )),
+    }
+}
+
+/// Samples the database's size each second as (rig hours reached, MB);
+/// rig time is read off the paced schedule.
+fn sample_disk(
+    server: &LocalServer,
+    samples: Arc<Mutex<Vec<(f64, f64)>>>,
+    started: Instant,
+    expected_s: f64,
+    rig_hours: f64,
+) -> tokio::task::JoinHandle<()> {
+    let disk = server.disk_probe();
+    tokio::spawn(async move {
+        let mut tick = tokio::time::interval(Duration::from_secs(1));
+        loop {
+            tick.tick().await;
+            let rig = (started.elapsed().as_secs_f64() / expected_s).min(1.0) * rig_hours;
+            let mb = disk() as f64 / 1e6;
+            samples.lock().expect("poisoned").push((rig, mb));
+        }
+    })
 }
 
 fn report(

@@ -74,26 +74,31 @@ fn check_reading(rt: &ChannelRuntime, r: &RawReading) -> Result<(), (&'static st
             format!("temp_c = {}: must be from -100 to 200 °C", shown(t)),
         ));
     }
-    if r.time_unix_ns < MIN_TIME_NS {
-        return Err((
-            "time_unix_ns",
-            format!(
-                "time_unix_ns = {}: before 2000-01-01; is the rig's clock set?",
-                r.time_unix_ns
-            ),
-        ));
-    }
-    if rt.retention.refuses(r.time_unix_ns) {
-        return Err((
-            "time_unix_ns",
-            format!(
-                "time_unix_ns = {}: before {} ns, where the channel's raw history was removed by retention",
-                r.time_unix_ns, rt.retention.raw_before_ns
-            ),
-        ));
-    }
+    check_time(rt, r.time_unix_ns)?;
     if r.seq > i64::MAX as u64 {
         return Err(("seq", format!("seq = {}: must be below 2^63", r.seq)));
+    }
+    Ok(())
+}
+
+/// A reading's stamp: not before 2000 (an unset rig clock), not where the
+/// channel's raw history was removed (its bucket could not be recomputed).
+/// How far ahead of the server's clock a stamp may be is `check_timeline`'s.
+fn check_time(rt: &ChannelRuntime, time_unix_ns: i64) -> Result<(), (&'static str, String)> {
+    if time_unix_ns < MIN_TIME_NS {
+        return Err((
+            "time_unix_ns",
+            format!("time_unix_ns = {time_unix_ns}: before 2000-01-01; is the rig's clock set?"),
+        ));
+    }
+    if rt.retention.refuses(time_unix_ns) {
+        return Err((
+            "time_unix_ns",
+            format!(
+                "time_unix_ns = {time_unix_ns}: before {} ns, where the channel's raw history was removed by retention",
+                rt.retention.raw_before_ns
+            ),
+        ));
     }
     Ok(())
 }
