@@ -76,6 +76,9 @@ struct ChannelOut {
     plausible_max_cell_volts: f64,
     run_id: u64,
     description: String,
+    /// The channel's own retention; empty: the server's default.
+    retention_raw_days: Option<f64>,
+    retention_rollup_days: Option<f64>,
 }
 
 impl From<pb::Channel> for ChannelOut {
@@ -89,6 +92,8 @@ impl From<pb::Channel> for ChannelOut {
             plausible_max_cell_volts: c.plausible_max_cell_volts,
             run_id: c.run_id,
             description: c.description,
+            retention_raw_days: c.retention.and_then(|r| r.raw_days),
+            retention_rollup_days: c.retention.and_then(|r| r.rollup_days),
         }
     }
 }
@@ -103,6 +108,8 @@ impl Row for ChannelOut {
         "plausible_max_cell_volts",
         "run_id",
         "description",
+        "retention_raw_days",
+        "retention_rollup_days",
     ];
     const TABLE: &'static [Col] = &[
         Col::left("channel", 16),
