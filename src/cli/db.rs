@@ -85,13 +85,20 @@ impl Row for TableOut<'_> {
 struct ChannelOut<'a>(&'a ChannelUse);
 
 impl Row for ChannelOut<'_> {
-    const CSV_HEADER: &'static [&'static str] =
-        &["channel_id", "readings", "oldest_unix_ns", "newest_unix_ns"];
+    const CSV_HEADER: &'static [&'static str] = &[
+        "channel_id",
+        "readings",
+        "oldest_unix_ns",
+        "newest_unix_ns",
+        "raw_kept_from_unix_ns",
+        "rollups_kept_from_unix_ns",
+    ];
     const TABLE: &'static [Col] = &[
         Col::left("channel", 18),
         Col::right("readings", 12),
         Col::left("oldest", 29),
-        Col::left("newest", 0),
+        Col::left("newest", 29),
+        Col::left("raw kept from", 0),
     ];
     fn table_cells(&self) -> Vec<String> {
         let at = |t: Option<i64>| t.map(iso).unwrap_or_else(|| "-".into());
@@ -100,6 +107,7 @@ impl Row for ChannelOut<'_> {
             self.0.readings.to_string(),
             at(self.0.oldest_unix_ns),
             at(self.0.newest_unix_ns),
+            at(self.0.raw_kept_from_unix_ns),
         ]
     }
 }

@@ -47,6 +47,10 @@ pub struct ChannelUse {
     pub oldest_unix_ns: Option<i64>,
     /// The newest reading's time.
     pub newest_unix_ns: Option<i64>,
+    /// Retention's marks: raw readings and 10 s / 1 min rollups before
+    /// these are deleted; unset where nothing has been pruned.
+    pub raw_kept_from_unix_ns: Option<i64>,
+    pub rollups_kept_from_unix_ns: Option<i64>,
 }
 
 /// Reads the report of the database at `path`, which must exist.
@@ -129,14 +133,49 @@ async fn channels(pool: &sqlx::SqlitePool) -> Result<Vec<ChannelUse>, StoreError
     )
     .fetch_all(pool)
     .await?;
+    let marks = marks(pool).await?;
     rows.iter()
         .map(|r| {
+            let channel_id: String = r.try_get("channel_id")?;
+            let (raw, rollups) = marks.get(&channel_id).copied().unzip();
             Ok(ChannelUse {
-                channel_id: r.try_get("channel_id")?,
                 readings: r.try_get::<i64, _>("n")? as u64,
                 oldest_unix_ns: r.try_get("oldest")?,
                 newest_unix_ns: r.try_get("newest")?,
+                raw_kept_from_unix_ns: raw.filter(|t| *t > 0),
+                rollups_kept_from_unix_ns: rollups.filter(|t| *t > 0),
+                channel_id,
             })
+        })
+        .collect()
+}
+
+/// Each channel's retention marks; none on a database that a server of
+/// this release has not opened yet (the table comes with its migration).
+async fn marks(
+    pool: &sqlx::SqlitePool,
+) -> Result<std::collections::HashMap<String, (i64, i64)>, StoreError> {
+    let present = sqlx::query(
+        "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'retention_marks'",
+    )
+    .fetch_optional(pool)
+    .await?
+    .is_some();
+    if !present {
+        return Ok(Default::default());
+    }
+    let rows = sqlx::query(
+        "SELECT c.channel_id AS channel_id, m.raw_before_ns AS raw, m.rollup_before_ns AS rollups \
+         FROM retention_marks m JOIN channels c ON c.channel_key = m.channel_key",
+    )
+    .fetch_all(pool)
+    .await?;
+    rows.iter()
+        .map(|r| {
+            Ok((
+                r.try_get("channel_id")?,
+                (r.try_get("raw")?, r.try_get("rollups")?),
+            ))
         })
         .collect()
 }

@@ -159,6 +159,15 @@ async fn retention_deletes_exactly_what_it_should_across_a_restart() {
         )
     );
 
+    // The storage report says where raw history now begins.
+    let report = gibbsline::store::report::storage_report(&db).await.unwrap();
+    let channel = report
+        .channels
+        .iter()
+        .find(|c| c.channel_id == "keep-2d")
+        .unwrap();
+    assert_eq!(channel.raw_kept_from_unix_ns, Some(raw_mark));
+    assert_eq!(channel.rollups_kept_from_unix_ns, Some(rollup_mark));
     // The marks survive a restart: the same reading is refused again.
     server.stop().await;
     server = Server::start_with(config, "127.0.0.1:0").await;
