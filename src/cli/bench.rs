@@ -111,23 +111,7 @@ pub(crate) async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
         }),
     };
     let start = Instant::now();
-    let tasks: Vec<_> = ids
-        .into_iter()
-        .enumerate()
-        .map(|(index, id)| {
-            // Channels start out of phase so the offered load is smooth, as
-            // from independent rigs, not one burst per tick.
-            let phase = index as f64 / f64::from(args.channels);
-            tokio::spawn(load.clone().stream(conn.clone(), id, phase, clock.clone()))
-        })
-        .collect();
-    let mut latencies = Vec::new();
-    let mut accepted = 0;
-    for t in tasks {
-        let (a, l) = t.await??;
-        accepted += a;
-        latencies.extend(l);
-    }
+    let (accepted, mut latencies) = load.drive(&conn, ids, &clock).await?;
     let seconds = start.elapsed().as_secs_f64();
     tokio::time::sleep(Duration::from_millis(300)).await;
     watcher.abort();
@@ -354,6 +338,35 @@ pub(crate) struct Load {
 type Sent = Arc<Mutex<HashMap<u64, (Instant, u64)>>>;
 
 impl Load {
+    /// Streams every channel at once, each on its own stream: readings
+    /// accepted and ack latencies (ms) over all of them.
+    pub(crate) async fn drive(
+        &self,
+        conn: &client::Conn,
+        ids: Vec<String>,
+        clock: &AlertClock,
+    ) -> anyhow::Result<(u64, Vec<f64>)> {
+        let channels = ids.len().max(1) as f64;
+        let tasks: Vec<_> = ids
+            .into_iter()
+            .enumerate()
+            .map(|(index, id)| {
+                // Channels start out of phase so the offered load is smooth,
+                // as from independent rigs, not one burst per tick.
+                let phase = index as f64 / channels;
+                tokio::spawn(self.clone().stream(conn.clone(), id, phase, clock.clone()))
+            })
+            .collect();
+        let mut latencies = Vec::new();
+        let mut accepted = 0;
+        for t in tasks {
+            let (a, l) = t.await??;
+            accepted += a;
+            latencies.extend(l);
+        }
+        Ok((accepted, latencies))
+    }
+
     /// One channel's stream: readings accepted and ack latencies (ms).
     pub(crate) async fn stream(
         self,

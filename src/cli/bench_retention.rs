@@ -84,24 +84,7 @@ pub(crate) async fn run(args: &BenchRetentionArgs) -> anyhow::Result<()> {
         expected_s,
         args.rig_hours,
     );
-    let tasks: Vec<_> = ids
-        .into_iter()
-        .enumerate()
-        .map(|(i, id)| {
-            let phase = i as f64 / f64::from(args.channels);
-            tokio::spawn(
-                load.clone()
-                    .stream(conn.clone(), id, phase, AlertClock::default()),
-            )
-        })
-        .collect();
-    let mut latencies = Vec::new();
-    let mut readings = 0;
-    for t in tasks {
-        let (a, l) = t.await??;
-        readings += a;
-        latencies.extend(l);
-    }
+    let (readings, mut latencies) = load.drive(&conn, ids, &AlertClock::default()).await?;
     let seconds = started.elapsed().as_secs_f64();
     // One more pass after the last batch.
     tokio::time::sleep(Duration::from_secs(2)).await;
@@ -195,14 +178,21 @@ fn print(r: &RetentionReport, json: bool) -> anyhow::Result<()> {
         "ack latency     p50 {:.1} ms, p99 {:.1} ms, max {:.1} ms (pruning beside ingest)",
         r.ack_p50_ms, r.ack_p99_ms, r.ack_max_ms
     );
-    println!(
-        "disk            {:.1} MB when both horizons were reached, {:.1} MB at the end; \
-         {:.1}–{:.1} MB in between",
-        r.disk_at_horizon_mb,
-        r.disk_at_end_mb,
-        r.disk_after_horizon_min_mb,
-        r.disk_after_horizon_max_mb
-    );
+    if r.disk_at_horizon_mb.is_nan() {
+        println!(
+            "disk            {:.1} MB at the end; the horizons were not reached (raise --rig-hours)",
+            r.disk_at_end_mb
+        );
+    } else {
+        println!(
+            "disk            {:.1} MB when both horizons were reached, {:.1} MB at the end; \
+             {:.1}–{:.1} MB in between",
+            r.disk_at_horizon_mb,
+            r.disk_at_end_mb,
+            r.disk_after_horizon_min_mb,
+            r.disk_after_horizon_max_mb
+        );
+    }
     println!("rig_hours  disk_mb");
     let every = (r.samples.len() / 24).max(1);
     for (h, mb) in r.samples.iter().step_by(every) {
