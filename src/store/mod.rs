@@ -16,6 +16,7 @@
 // Item docs here are still being written (DEVELOPERS.md, "Documentation").
 #![allow(missing_docs)]
 
+pub mod codec;
 mod fault;
 mod lock;
 pub mod report;
