@@ -54,6 +54,8 @@ pub struct Metrics {
     pub pruned_rollups: AtomicU64,
     /// Pruning passes finished.
     pub prune_passes: AtomicU64,
+    /// Readings rewritten by compaction (small chunks merged).
+    pub compacted_readings: AtomicU64,
 }
 
 /// One taken place of a bounded gauge (open streams, subscribers), given
@@ -177,6 +179,11 @@ impl Metrics {
                 "gibbsline_prune_passes_total",
                 "Retention passes finished.",
                 &self.prune_passes,
+            ),
+            (
+                "gibbsline_compacted_readings_total",
+                "Readings rewritten when small chunks were merged.",
+                &self.compacted_readings,
             ),
         ] {
             family(o, name, help, "counter");

@@ -6,7 +6,8 @@
 //! - [`hub`]: the shared service state every shell calls into.
 //! - [`session`]: one rig's ingest stream, batch after batch.
 //! - [`writer`]: the single batching writer.
-//! - [`prune`]: the retention task (small deletions beside the writer).
+//! - [`prune`]: the upkeep task: retention (small deletions beside the
+//!   writer), then [`compact`]ion of small chunks.
 //!
 //! Per-channel state sits behind a std `Mutex`: it is held only for the
 //! pure computation of one batch, never across an `.await`.
@@ -15,6 +16,7 @@
 
 pub mod derive;
 pub mod hub;
+pub mod compact;
 pub mod prune;
 pub mod runtime;
 pub mod session;

@@ -1,4 +1,6 @@
-//! The pruning task: every `retention.prune_interval_s`, each channel's
+//! The upkeep task: every `retention.prune_interval_s`, a retention pass
+//! and then a compaction pass ([`super::compact`]). In the retention
+//! pass each channel's
 //! marks are raised as its policy asks (`Hub::raise_retention`, under the
 //! channel's commit gate, stored first), then what lies below them is
 //! deleted a few thousand rows at a time. Freed pages go to SQLite's free
@@ -60,6 +62,9 @@ pub async fn run(hub: Arc<Hub>, settings: RetentionSettings) {
             Err(e) => {
                 tracing::warn!(error = %e, "retention pass stopped; trying again next period")
             }
+        }
+        if let Err(e) = super::compact::pass(&hub).await {
+            tracing::warn!(error = %e, "compaction pass stopped; trying again next period");
         }
     }
 }

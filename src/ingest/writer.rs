@@ -79,6 +79,14 @@ pub enum Job {
         limit: u32,
         reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
     },
+    /// One compaction step: small chunks of a channel merged, about
+    /// `limit` readings rewritten at most (the count comes back in
+    /// `WriteOutcome::compacted`).
+    Compact {
+        channel_key: i64,
+        limit: u32,
+        reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
+    },
 }
 
 #[derive(Debug, Clone, Default)]
@@ -89,6 +97,8 @@ pub struct WriteOutcome {
     pub events: Vec<AlertEvent>,
     /// Rows a retention step deleted.
     pub pruned: u64,
+    /// Readings a compaction step rewrote.
+    pub compacted: u64,
 }
 
 struct Ids {
@@ -180,7 +190,7 @@ async fn commit_and_answer(
 fn job_rows(job: &Job) -> usize {
     match job {
         Job::Readings(r) => r.rows.len() + r.maybe_dup.len(),
-        Job::Prune { limit, .. } => *limit as usize,
+        Job::Prune { limit, .. } | Job::Compact { limit, .. } => *limit as usize,
         _ => 1,
     }
 }
@@ -191,7 +201,8 @@ fn reply_of(job: Job) -> oneshot::Sender<Result<WriteOutcome, StoreError>> {
         Job::Alerts { reply, .. }
         | Job::Acknowledge { reply, .. }
         | Job::Operator { reply, .. }
-        | Job::Prune { reply, .. } => reply,
+        | Job::Prune { reply, .. }
+        | Job::Compact { reply, .. } => reply,
     }
 }
 
@@ -253,6 +264,12 @@ async fn write_jobs(
                 out.pruned =
                     store::retention::prune(tx, *channel_key, *what, *before_ns, *limit).await?;
             }
+            Job::Compact {
+                channel_key, limit, ..
+            } => {
+                out.compacted =
+                    store::chunks::compact(tx, *channel_key, u64::from(*limit)).await?;
+            }
         }
         outcomes.push(out);
     }
@@ -266,7 +283,8 @@ async fn write_readings(
     r: &ReadingsJob,
     out: &mut WriteOutcome,
 ) -> Result<(), StoreError> {
-    out.fresh_inserted = store::insert_fresh(tx, &r.rows).await?;
+    let fresh = store::insert_new(tx, &r.rows).await?;
+    out.fresh_inserted = fresh.iter().filter(|n| **n).count() as u64;
     // A fresh row can only collide if two streams raced on a channel;
     // count it as the duplicate it is.
     out.duplicates += r.rows.len() as u64 - out.fresh_inserted;
@@ -279,8 +297,9 @@ async fn write_readings(
     } else {
         recompute.extend(r.rows.iter().map(|row| row.time_ns));
     }
-    for row in &r.maybe_dup {
-        if store::insert_if_new(tx, row).await? {
+    let late = store::insert_new(tx, &r.maybe_dup).await?;
+    for (row, new) in r.maybe_dup.iter().zip(late) {
+        if new {
             out.late_inserted += 1;
             recompute.push(row.time_ns);
         } else {

@@ -16,6 +16,7 @@
 // Item docs here are still being written (DEVELOPERS.md, "Documentation").
 #![allow(missing_docs)]
 
+pub mod chunks;
 pub mod codec;
 mod fault;
 mod lock;
@@ -26,7 +27,7 @@ pub mod rollup;
 use crate::alerts::{AlertKind, RaisedAlert, Severity};
 pub use fault::StorageFault;
 use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
-use sqlx::{Connection, QueryBuilder, Row, Sqlite, SqlitePool};
+use sqlx::{Connection, Row, Sqlite, SqlitePool};
 use std::path::{Path, PathBuf};
 use std::str::FromStr;
 use std::sync::Arc;
@@ -136,9 +137,9 @@ pub struct Store {
 /// `journal_size_limit`), bytes.
 const WAL_LIMIT_BYTES: u64 = 64 * 1024 * 1024;
 
-/// Rows per multi-row INSERT: 13 parameters each stays far below SQLite's
-/// 32,766-parameter limit, and one fixed size keeps one cached statement.
-const INSERT_CHUNK_ROWS: usize = 500;
+/// Readings moved from rows into chunks per transaction when a database
+/// from before chunks is first opened.
+const ADOPT_ROWS_PER_TX: u32 = 50_000;
 
 impl Store {
     /// Opens (creating and migrating) the database and takes its lock: a
@@ -174,6 +175,7 @@ impl Store {
                 reason: e.to_string(),
             })?;
         sqlx::migrate!("./migrations").run(&writer).await?;
+        adopt_rows(&writer).await?;
         let reader = SqlitePoolOptions::new()
             .max_connections(4)
             .connect_with(base.read_only(true))
@@ -291,6 +293,26 @@ impl Store {
         self.writer.close().await;
         self.lock.release();
     }
+}
+
+/// Moves readings a server before chunks stored one per row into
+/// chunks, a transaction at a time (a crash in between leaves each
+/// reading in exactly one of the two; the next open goes on).
+async fn adopt_rows(writer: &SqlitePool) -> Result<(), StoreError> {
+    let mut moved = 0u64;
+    loop {
+        let mut tx = writer.begin().await?;
+        let n = chunks::adopt_rows(&mut tx, ADOPT_ROWS_PER_TX).await?;
+        tx.commit().await?;
+        if n == 0 {
+            break;
+        }
+        moved += n;
+    }
+    if moved > 0 {
+        tracing::info!(readings = moved, "readings moved into compressed chunks");
+    }
+    Ok(())
 }
 
 /// One reading as stored.
@@ -690,11 +712,9 @@ pub async fn load_resume_state(
     // before snapshots falls back to the highest stored seq.
     let max_seq: Option<i64> = match &est {
         Some(r) => Some(r.try_get("last_seq")?),
-        None => sqlx::query("SELECT MAX(seq) AS m FROM readings WHERE channel_key = ?")
-            .bind(channel_key)
-            .fetch_one(pool)
+        None => chunks::max_seq(&mut *pool.acquire().await?, channel_key)
             .await?
-            .try_get("m")?,
+            .map(|m| m as i64),
     };
     let estimator = est
         .map(|r| -> Result<_, StoreError> {
@@ -742,57 +762,25 @@ pub async fn next_ids(pool: &SqlitePool) -> Result<(u64, u64), StoreError> {
 
 pub type Tx<'a> = sqlx::Transaction<'a, Sqlite>;
 
-pub async fn insert_fresh(tx: &mut Tx<'_>, rows: &[ReadingRow]) -> Result<u64, StoreError> {
-    let mut inserted = 0;
-    for chunk in rows.chunks(INSERT_CHUNK_ROWS) {
-        let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
-            "INSERT OR IGNORE INTO readings (channel_key, seq, run_id, time_ns, volts, amps, temp_c, cell_volts_used, \
-             soc_model, soc_fused, charge_ah, energy_wh, flags, soc_counted_unclamped) ",
-        );
-        qb.push_values(chunk, |mut b, r| {
-            b.push_bind(r.channel_key)
-                .push_bind(r.seq as i64)
-                .push_bind(r.run_id)
-                .push_bind(r.time_ns)
-                .push_bind(r.volts)
-                .push_bind(r.amps)
-                .push_bind(r.temp_c)
-                .push_bind(r.cell_volts_used)
-                .push_bind(r.soc_model)
-                .push_bind(r.soc_fused)
-                .push_bind(r.charge_ah)
-                .push_bind(r.energy_wh)
-                .push_bind(r.flags)
-                .push_bind(r.soc_counted_unclamped);
-        });
-        inserted += qb.build().execute(&mut **tx).await?.rows_affected();
+/// Stores the rows of one channel's batch that are new (not stored, not
+/// repeated in the batch); for each row, whether it was.
+pub async fn insert_new(tx: &mut Tx<'_>, rows: &[ReadingRow]) -> Result<Vec<bool>, StoreError> {
+    let Some(key) = rows.first().map(|r| r.channel_key) else {
+        return Ok(Vec::new());
+    };
+    let new = chunks::keep_new(&mut **tx, key, rows).await?;
+    if new.iter().all(|n| *n) {
+        chunks::write(&mut **tx, key, rows).await?;
+    } else {
+        let kept: Vec<ReadingRow> = rows
+            .iter()
+            .zip(&new)
+            .filter(|(_, n)| **n)
+            .map(|(r, _)| r.clone())
+            .collect();
+        chunks::write(&mut **tx, key, &kept).await?;
     }
-    Ok(inserted)
-}
-
-/// Inserts one row that may already be stored; true when it was new.
-pub async fn insert_if_new(tx: &mut Tx<'_>, r: &ReadingRow) -> Result<bool, StoreError> {
-    let done = sqlx::query(
-        "INSERT OR IGNORE INTO readings (channel_key, seq, run_id, time_ns, volts, amps, temp_c, cell_volts_used, \
-         soc_model, soc_fused, charge_ah, energy_wh, flags, soc_counted_unclamped) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-    )
-    .bind(r.channel_key)
-    .bind(r.seq as i64)
-    .bind(r.run_id)
-    .bind(r.time_ns)
-    .bind(r.volts)
-    .bind(r.amps)
-    .bind(r.temp_c)
-    .bind(r.cell_volts_used)
-    .bind(r.soc_model)
-    .bind(r.soc_fused)
-    .bind(r.charge_ah)
-    .bind(r.energy_wh)
-    .bind(r.flags)
-    .bind(r.soc_counted_unclamped)
-    .execute(&mut **tx)
-    .await?;
-    Ok(done.rows_affected() == 1)
+    Ok(new)
 }
 
 pub async fn save_estimator(
@@ -971,17 +959,7 @@ pub async fn query_readings(
     end_ns: i64,
     limit: u32,
 ) -> Result<Vec<ReadingRow>, StoreError> {
-    let rows = sqlx::query(
-        "SELECT * FROM readings WHERE channel_key = ? AND time_ns >= ? AND time_ns < ? \
-         ORDER BY time_ns, seq LIMIT ?",
-    )
-    .bind(channel_key)
-    .bind(start_ns)
-    .bind(end_ns)
-    .bind(i64::from(limit))
-    .fetch_all(pool)
-    .await?;
-    rows.iter().map(reading_from_row).collect()
+    query_readings_page(pool, channel_key, start_ns, end_ns, (i64::MIN, i64::MIN), limit).await
 }
 
 /// One page of readings in (time, seq) order, after the row `after`
@@ -994,23 +972,8 @@ pub async fn query_readings_page(
     after: (i64, i64),
     limit: u32,
 ) -> Result<Vec<ReadingRow>, StoreError> {
-    // The index range starts at the cursor, not at the window's start:
-    // SQLite ranges the index on `time_ns >= ?` only and filters the row
-    // value, so every page would otherwise rescan all the pages before it
-    // (100,000 readings in 50 pages took 3.4 s that way, quadratic).
-    let rows = sqlx::query(
-        "SELECT * FROM readings WHERE channel_key = ? AND time_ns >= ? AND time_ns < ? \
-         AND (time_ns, seq) > (?, ?) ORDER BY time_ns, seq LIMIT ?",
-    )
-    .bind(channel_key)
-    .bind(start_ns.max(after.0))
-    .bind(end_ns)
-    .bind(after.0)
-    .bind(after.1)
-    .bind(i64::from(limit))
-    .fetch_all(pool)
-    .await?;
-    rows.iter().map(reading_from_row).collect()
+    let mut conn = pool.acquire().await?;
+    chunks::page(&mut conn, channel_key, start_ns, end_ns, after, limit as usize).await
 }
 
 /// Records what an operator did to a channel (in the transaction that
@@ -1046,38 +1009,19 @@ pub async fn timeline_anchor(
     channel_key: i64,
     after_seq: Option<u64>,
 ) -> Result<Option<(u64, i64)>, StoreError> {
+    let mut conn = pool.acquire().await?;
     let row = match after_seq {
-        Some(seq) => {
-            sqlx::query("SELECT seq, time_ns FROM readings WHERE channel_key = ? AND seq = ?")
-                .bind(channel_key)
-                .bind(seq as i64)
-                .fetch_optional(pool)
-                .await?
-        }
-        None => {
-            sqlx::query(
-                "SELECT seq, time_ns FROM readings WHERE channel_key = ? AND (flags & ?) != 0 \
-                 ORDER BY seq DESC LIMIT 1",
-            )
-            .bind(channel_key)
-            .bind(flags::OUT_OF_ORDER)
-            .fetch_optional(pool)
-            .await?
-        }
+        Some(seq) => chunks::find_seq(&mut conn, channel_key, seq).await?,
+        None => chunks::last_flagged(&mut conn, channel_key, flags::OUT_OF_ORDER).await?,
     };
-    row.map(|r| Ok((r.try_get::<i64, _>("seq")? as u64, r.try_get("time_ns")?)))
-        .transpose()
+    Ok(row.map(|r| (r.seq, r.time_ns)))
 }
 
 pub async fn latest_reading(
     pool: &SqlitePool,
     channel_key: i64,
 ) -> Result<Option<ReadingRow>, StoreError> {
-    let row = sqlx::query("SELECT * FROM readings WHERE channel_key = ? ORDER BY seq DESC LIMIT 1")
-        .bind(channel_key)
-        .fetch_optional(pool)
-        .await?;
-    row.as_ref().map(reading_from_row).transpose()
+    chunks::latest(&mut *pool.acquire().await?, channel_key).await
 }
 
 /// One bucket of a channel's history: statistics as min, max, mean, last;
@@ -1116,22 +1060,12 @@ pub async fn counts_before(
     channel_key: i64,
     time_ns: i64,
 ) -> Result<Option<CountsBefore>, StoreError> {
-    let row = sqlx::query(
-        "SELECT run_id, charge_ah, energy_wh FROM readings WHERE channel_key = ? AND time_ns < ? \
-         ORDER BY time_ns DESC, seq DESC LIMIT 1",
-    )
-    .bind(channel_key)
-    .bind(time_ns)
-    .fetch_optional(pool)
-    .await?;
-    row.map(|r| {
-        Ok(CountsBefore {
-            run_id: r.try_get("run_id")?,
-            charge_ah: r.try_get("charge_ah")?,
-            energy_wh: r.try_get("energy_wh")?,
-        })
-    })
-    .transpose()
+    let row = chunks::last_before(&mut *pool.acquire().await?, channel_key, time_ns).await?;
+    Ok(row.map(|r| CountsBefore {
+        run_id: r.run_id,
+        charge_ah: r.charge_ah,
+        energy_wh: r.energy_wh,
+    }))
 }
 
 /// Downsampled history: from the rollups when a tier tiles the width
@@ -1217,10 +1151,5 @@ pub async fn list_cycles(
 }
 
 pub async fn count_readings(pool: &SqlitePool, channel_key: i64) -> Result<u64, StoreError> {
-    let n: i64 = sqlx::query("SELECT COUNT(*) AS n FROM readings WHERE channel_key = ?")
-        .bind(channel_key)
-        .fetch_one(pool)
-        .await?
-        .try_get("n")?;
-    Ok(n as u64)
+    chunks::count(&mut *pool.acquire().await?, channel_key).await
 }

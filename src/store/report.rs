@@ -125,14 +125,24 @@ async fn table_bytes(pool: &sqlx::SqlitePool) -> Option<std::collections::HashMa
 }
 
 async fn channels(pool: &sqlx::SqlitePool) -> Result<Vec<ChannelUse>, StoreError> {
-    let rows = sqlx::query(
+    // Readings sit in chunks, and in rows on a file no server of this
+    // release has opened yet (or one it was still moving).
+    let sql = if has_table(pool, "chunks").await? {
+        "SELECT c.channel_id AS channel_id, \
+           (SELECT COALESCE(SUM(n), 0) FROM chunks k WHERE k.channel_key = c.channel_key) \
+           + (SELECT COUNT(*) FROM readings r WHERE r.channel_key = c.channel_key) AS n, \
+           (SELECT MIN(t) FROM (SELECT MIN(start_ns) AS t FROM chunks WHERE channel_key = c.channel_key \
+              UNION ALL SELECT MIN(time_ns) FROM readings WHERE channel_key = c.channel_key)) AS oldest, \
+           (SELECT MAX(t) FROM (SELECT MAX(end_ns) AS t FROM chunks WHERE channel_key = c.channel_key \
+              UNION ALL SELECT MAX(time_ns) FROM readings WHERE channel_key = c.channel_key)) AS newest \
+         FROM channels c ORDER BY c.channel_id"
+    } else {
         "SELECT c.channel_id AS channel_id, COUNT(r.seq) AS n, \
          MIN(r.time_ns) AS oldest, MAX(r.time_ns) AS newest \
          FROM channels c LEFT JOIN readings r ON r.channel_key = c.channel_key \
-         GROUP BY c.channel_key ORDER BY c.channel_id",
-    )
-    .fetch_all(pool)
-    .await?;
+         GROUP BY c.channel_key ORDER BY c.channel_id"
+    };
+    let rows = sqlx::query(sql).fetch_all(pool).await?;
     let marks = marks(pool).await?;
     rows.iter()
         .map(|r| {
@@ -155,13 +165,7 @@ async fn channels(pool: &sqlx::SqlitePool) -> Result<Vec<ChannelUse>, StoreError
 async fn marks(
     pool: &sqlx::SqlitePool,
 ) -> Result<std::collections::HashMap<String, (i64, i64)>, StoreError> {
-    let present = sqlx::query(
-        "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'retention_marks'",
-    )
-    .fetch_optional(pool)
-    .await?
-    .is_some();
-    if !present {
+    if !has_table(pool, "retention_marks").await? {
         return Ok(Default::default());
     }
     let rows = sqlx::query(
@@ -178,4 +182,16 @@ async fn marks(
             ))
         })
         .collect()
+}
+
+/// Whether the file has the table (an older file may lack it: this report
+/// reads files no server of this release has migrated).
+async fn has_table(pool: &sqlx::SqlitePool, name: &str) -> Result<bool, StoreError> {
+    Ok(
+        sqlx::query("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = ?")
+            .bind(name)
+            .fetch_optional(pool)
+            .await?
+            .is_some(),
+    )
 }

@@ -60,9 +60,11 @@ pub enum Pruned {
     FineRollups,
 }
 
-/// Deletes at most `limit` of a channel's rows of `what` before
-/// `before_ns`, oldest first, in the caller's transaction (the writer's
-/// group commit: the deletion shares its fsync); returns how many went.
+/// Deletes a channel's rows of `what` before `before_ns`, oldest first,
+/// in the caller's transaction (the writer's group commit: the deletion
+/// shares its fsync): fine rollups at most `limit`, readings whole chunks
+/// until at least `limit` went. Returns how many went; fewer than `limit`
+/// means none is left.
 pub async fn prune(
     tx: &mut Tx<'_>,
     channel_key: i64,
@@ -70,22 +72,13 @@ pub async fn prune(
     before_ns: i64,
     limit: u32,
 ) -> Result<u64, StoreError> {
-    let done = match what {
+    match what {
         Pruned::Readings => {
-            sqlx::query(
-                "DELETE FROM readings WHERE channel_key = ?1 AND seq IN ( \
-                   SELECT seq FROM readings WHERE channel_key = ?1 AND time_ns < ?2 \
-                   ORDER BY time_ns LIMIT ?3)",
-            )
-            .bind(channel_key)
-            .bind(before_ns)
-            .bind(i64::from(limit))
-            .execute(&mut **tx)
-            .await?
+            super::chunks::prune(tx, channel_key, before_ns, u64::from(limit)).await
         }
         Pruned::FineRollups => {
             let fine = &super::rollup::TIERS_S[..super::rollup::TIERS_S.len() - 1];
-            sqlx::query(
+            let done = sqlx::query(
                 "DELETE FROM rollups WHERE channel_key = ?1 AND (width_s, start_ns) IN ( \
                    SELECT width_s, start_ns FROM rollups WHERE channel_key = ?1 \
                    AND width_s BETWEEN ?2 AND ?3 AND start_ns < ?4 LIMIT ?5)",
@@ -96,8 +89,8 @@ pub async fn prune(
             .bind(before_ns)
             .bind(i64::from(limit))
             .execute(&mut **tx)
-            .await?
+            .await?;
+            Ok(done.rows_affected())
         }
-    };
-    Ok(done.rows_affected())
+    }
 }

@@ -7,65 +7,19 @@
 //! every tier: counts and sums add, min and max widen, `last` goes to the
 //! later time. Anything else (late readings, a fresh row that met a
 //! stored one) makes its buckets be recomputed whole: the 10 s tier from
-//! the readings it covers, each tier above from the one below. Adding is
+//! the readings it covers (decoded from their chunks), each tier above
+//! from the one below. Adding is
 //! what keeps ingest fast at 1 kHz, where a 10 s bucket holds 10,000
 //! readings; recomputing is what keeps the rare cases exact.
 
 use super::{BucketRow, ReadingRow, StoreError, Tx};
 use sqlx::{QueryBuilder, Row, Sqlite, SqlitePool};
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, HashMap};
 
 /// The tiers, seconds, finest first.
 pub const TIERS_S: [i64; 3] = [10, 60, 3600];
 
 const NS_PER_S: i64 = 1_000_000_000;
-
-/// Readings as rollups see them (binds: ?1 channel, ?2 from, ?3 to): the
-/// per-cell equilibrium voltage `e` only where the reading has an
-/// open-circuit estimate (not `flags::OCV_NONE`, 4096), the per-cell driving
-/// force `d` only where it has one (`OCV_OHMIC | OCV_COUNTED |
-/// OCV_REVERSIBLE`, 2096), as each reading on the wire shows them.
-macro_rules! readings_view {
-    () => {
-        "SELECT r.seq, r.run_id, r.time_ns, r.volts, r.soc_fused AS soc, \
-           CASE WHEN r.flags & 4096 = 0 THEN r.cell_volts_used END AS e, \
-           CASE WHEN r.flags & 2096 != 0 THEN r.volts / u.cells_in_series - r.cell_volts_used END AS d, \
-           r.charge_ah AS c, r.energy_wh AS w \
-         FROM readings r JOIN runs u ON u.run_id = r.run_id \
-         WHERE r.channel_key = ?1 AND r.time_ns >= ?2 AND r.time_ns < ?3"
-    };
-}
-
-/// The summary columns of a bucket of [`readings_view`] rows, in the
-/// table's order (after the bucket's start).
-macro_rules! readings_summary {
-    () => {
-        "COUNT(*) AS n, MAX(time_ns) AS last_ns, \
-         MIN(volts) AS v_min, MAX(volts) AS v_max, SUM(volts) AS v_sum, \
-         COUNT(soc) AS s_n, MIN(soc) AS s_min, MAX(soc) AS s_max, SUM(soc) AS s_sum, \
-         COUNT(e) AS e_n, MIN(e) AS e_min, MAX(e) AS e_max, SUM(e) AS e_sum, \
-         COUNT(d) AS d_n, MIN(d) AS d_min, MAX(d) AS d_max, SUM(d) AS d_sum"
-    };
-}
-
-/// The last reading's values for each bucket `a` of an aggregate over
-/// [`readings_view`]: the reading looked up by the time index (the view
-/// itself has none: correlating on it rescans it for every bucket), with
-/// the view's definitions of `e` and `d`. CROSS JOIN fixes the order:
-/// SQLite 3.51 otherwise puts the channel's readings outside the buckets
-/// and visits every reading once per bucket.
-macro_rules! readings_last {
-    () => {
-        "l.run_id, l.volts AS v_last, l.soc_fused AS s_last, \
-         CASE WHEN l.flags & 4096 = 0 THEN l.cell_volts_used END AS e_last, \
-         CASE WHEN l.flags & 2096 != 0 THEN l.volts / lu.cells_in_series - l.cell_volts_used END AS d_last, \
-         l.charge_ah AS c_last, l.energy_wh AS w_last \
-         FROM agg a CROSS JOIN readings l ON l.channel_key = ?1 AND l.seq = ( \
-           SELECT seq FROM readings x WHERE x.channel_key = ?1 AND x.time_ns = a.last_ns \
-           ORDER BY seq DESC LIMIT 1) \
-         CROSS JOIN runs lu ON lu.run_id = l.run_id"
-    };
-}
 
 /// The same columns merged from rollup rows of a finer tier.
 macro_rules! rollups_summary {
@@ -280,10 +234,19 @@ pub async fn add_fresh(
         let summaries = summarise(rows, cells, tier_s * NS_PER_S);
         let list: Vec<_> = summaries.into_iter().collect();
         for chunk in list.chunks(200) {
-            upsert(tx, channel_key, tier_s, chunk).await?;
+            upsert(tx, channel_key, tier_s, chunk, Upsert::Add).await?;
         }
     }
     Ok(())
+}
+
+/// What a summary does to a stored bucket of the same start.
+#[derive(Clone, Copy, PartialEq, Eq)]
+enum Upsert {
+    /// Adds to it (fresh readings).
+    Add,
+    /// Replaces it (a recomputation from everything the bucket holds).
+    Replace,
 }
 
 async fn upsert(
@@ -291,9 +254,14 @@ async fn upsert(
     key: i64,
     tier_s: i64,
     buckets: &[(i64, Summary)],
+    how: Upsert,
 ) -> Result<(), StoreError> {
-    let mut qb: QueryBuilder<Sqlite> =
-        QueryBuilder::new(concat!("INSERT INTO rollups ", rollup_columns!(), " "));
+    let verb = match how {
+        Upsert::Add => "INSERT INTO rollups ",
+        Upsert::Replace => "INSERT OR REPLACE INTO rollups ",
+    };
+    let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(verb);
+    qb.push(concat!(rollup_columns!(), " "));
     qb.push_values(buckets, |mut b, (start, s)| {
         b.push_bind(key)
             .push_bind(tier_s)
@@ -317,7 +285,9 @@ async fn upsert(
             .push_bind(s.charge_ah_last)
             .push_bind(s.energy_wh_last);
     });
-    qb.push(merge_on_conflict());
+    if how == Upsert::Add {
+        qb.push(merge_on_conflict());
+    }
     qb.build().execute(&mut **tx).await?;
     Ok(())
 }
@@ -384,29 +354,48 @@ pub async fn refresh(tx: &mut Tx<'_>, channel_key: i64, times: &[i64]) -> Result
     Ok(())
 }
 
+/// Recomputes the 10 s buckets in `[lo, hi)` from every reading stored
+/// there.
 async fn from_readings(tx: &mut Tx<'_>, key: i64, lo: i64, hi: i64) -> Result<(), StoreError> {
+    let cells = run_cells(&mut **tx, key).await?;
     let width = TIERS_S[0] * NS_PER_S;
-    sqlx::query(concat!(
-        "INSERT OR REPLACE INTO rollups ",
-        rollup_columns!(),
-        " \
-         WITH v AS (",
-        readings_view!(),
-        "), \
-         agg AS (SELECT (time_ns / ?4) * ?4 AS b, ",
-        readings_summary!(),
-        " FROM v GROUP BY b) \
-         SELECT ?1, ?5, a.*, ",
-        readings_last!(),
-    ))
-    .bind(key)
-    .bind(lo)
-    .bind(hi)
-    .bind(width)
-    .bind(TIERS_S[0])
-    .execute(&mut **tx)
+    let mut buckets: BTreeMap<i64, Summary> = BTreeMap::new();
+    super::chunks::for_each_between(&mut **tx, key, lo, hi, |r| {
+        add_to(&mut buckets, r.time_ns.div_euclid(width) * width, r, &cells);
+    })
     .await?;
+    let list: Vec<_> = buckets.into_iter().collect();
+    for chunk in list.chunks(200) {
+        upsert(tx, key, TIERS_S[0], chunk, Upsert::Replace).await?;
+    }
     Ok(())
+}
+
+/// Each of the channel's runs' cells in series (the driving force is per
+/// cell).
+async fn run_cells(
+    conn: &mut sqlx::SqliteConnection,
+    key: i64,
+) -> Result<HashMap<i64, u32>, StoreError> {
+    let rows = sqlx::query("SELECT run_id, cells_in_series FROM runs WHERE channel_key = ?")
+        .bind(key)
+        .fetch_all(conn)
+        .await?;
+    rows.iter()
+        .map(|r| {
+            let cells: i64 = r.try_get("cells_in_series")?;
+            Ok((r.try_get("run_id")?, cells.max(1) as u32))
+        })
+        .collect()
+}
+
+/// Adds reading `r` to the bucket starting at `start`.
+fn add_to(buckets: &mut BTreeMap<i64, Summary>, start: i64, r: &ReadingRow, cells: &HashMap<i64, u32>) {
+    let one = Summary::of(r, cells.get(&r.run_id).copied().unwrap_or(1));
+    buckets
+        .entry(start)
+        .and_modify(|s| s.add(&one))
+        .or_insert(one);
 }
 
 async fn from_child(
@@ -479,24 +468,39 @@ pub async fn query_readings(
     end_ns: i64,
     width_ns: i64,
 ) -> Result<Vec<BucketRow>, StoreError> {
-    let rows = sqlx::query(concat!(
-        "WITH v AS (",
-        readings_view!(),
-        "), \
-         agg AS (SELECT (time_ns - ?2) / ?4 AS bucket, ",
-        readings_summary!(),
-        " FROM v GROUP BY bucket) \
-         SELECT a.*, ",
-        readings_last!(),
-        " ORDER BY a.bucket",
-    ))
-    .bind(key)
-    .bind(start_ns)
-    .bind(end_ns)
-    .bind(width_ns)
-    .fetch_all(pool)
+    let mut conn = pool.acquire().await?;
+    let cells = run_cells(&mut conn, key).await?;
+    let mut buckets: BTreeMap<i64, Summary> = BTreeMap::new();
+    super::chunks::for_each_between(&mut conn, key, start_ns, end_ns, |r| {
+        add_to(&mut buckets, (r.time_ns - start_ns) / width_ns, r, &cells);
+    })
     .await?;
-    rows.iter().map(bucket_of).collect()
+    Ok(buckets
+        .iter()
+        .map(|(bucket, s)| bucket_of_summary(*bucket, s))
+        .collect())
+}
+
+/// A bucket of readings summarised in code, as [`bucket_of`] reads one
+/// from the table.
+fn bucket_of_summary(bucket: i64, s: &Summary) -> BucketRow {
+    let stats = |p: &Partial| {
+        (p.n > 0).then(|| {
+            let v = |x: Option<f64>| x.unwrap_or(f64::NAN);
+            [v(p.min), v(p.max), v(p.sum) / p.n as f64, v(p.last)]
+        })
+    };
+    BucketRow {
+        bucket,
+        count: s.n as u64,
+        volts: [s.volts[0], s.volts[1], s.volts[2] / s.n as f64, s.volts[3]],
+        soc: stats(&s.soc),
+        equilibrium_cell_volts: stats(&s.equilibrium),
+        driving_force_v: stats(&s.driving_force),
+        charge_ah_last: s.charge_ah_last,
+        energy_wh_last: s.energy_wh_last,
+        last_run_id: s.run_id,
+    }
 }
 
 /// One merged bucket; means from sums, so every tier gives the same mean.
@@ -545,14 +549,13 @@ mod tests {
     use super::*;
 
     #[test]
-    fn the_sql_spells_the_same_flag_bits_as_the_code() {
+    fn the_migration_spells_the_same_flag_bits_as_the_code() {
         use super::super::flags;
         assert_eq!(flags::OCV_NONE, 4096);
         assert_eq!(DRIVING_FORCE_SOURCES, 2096);
-        assert!(readings_view!().contains("r.flags & 4096 = 0"));
-        assert!(readings_view!().contains("r.flags & 2096 != 0"));
-        assert!(readings_last!().contains("l.flags & 4096 = 0"));
-        assert!(readings_last!().contains("l.flags & 2096 != 0"));
+        let sql = include_str!("../../migrations/0007_rollup_equilibrium.sql");
+        assert!(sql.contains("flags & 4096 = 0"), "{sql}");
+        assert!(sql.contains("flags & 2096 != 0"), "{sql}");
     }
 
     #[test]

@@ -1,0 +1,538 @@
+//! Readings as compressed chunks: the SQL around [`super::codec`].
+//!
+//! Each writer commit stores a channel's new readings as one chunk per
+//! hour they fall in (a batch of a thousand readings is one row, not a
+//! thousand). Small chunks, from slow rigs sending a reading or two per
+//! batch, are merged later by [`compact`]. Chunks of a channel may overlap
+//! in time (a late reading lands in a chunk of its own), never in stored
+//! readings: [`keep_new`] decodes the chunks whose seq range meets a batch
+//! before it is written, so a seq is stored once. Every read sorts what it
+//! decodes by (time, seq).
+//!
+//! All of it runs on one connection (`&mut SqliteConnection`): the
+//! writer's transaction or a reader taken from the read pool.
+
+use super::codec;
+use super::{ReadingRow, StoreError};
+use sqlx::{Row, SqliteConnection};
+use std::collections::HashSet;
+
+/// No chunk spans an hour boundary (retention's marks are whole hours, so
+/// it deletes whole chunks), hence a chunk starts less than this before
+/// any reading it holds.
+pub const SPAN_NS: i64 = 3_600 * 1_000_000_000;
+/// Rows in one chunk at most: bigger chunks compress a little better, but
+/// a read decodes a whole chunk to use part of it.
+pub const CHUNK_ROWS: usize = 4_096;
+/// Chunks under this many rows are merged with their neighbours in the
+/// same hour (the partial index `chunks_small` spells the same number).
+pub const SMALL_ROWS: i64 = 256;
+/// Chunks fetched per query while scanning.
+const SCAN_CHUNKS: i64 = 16;
+
+fn corrupt(e: codec::CodecError) -> StoreError {
+    StoreError::Corrupt(e.to_string())
+}
+
+fn hour_of(time_ns: i64) -> i64 {
+    time_ns.div_euclid(SPAN_NS)
+}
+
+fn by_time(a: &ReadingRow, b: &ReadingRow) -> std::cmp::Ordering {
+    (a.time_ns, a.seq).cmp(&(b.time_ns, b.seq))
+}
+
+/// Stores readings not stored before as chunks: sorted by (time, seq),
+/// one group per hour, each group cut into near-equal chunks of at most
+/// [`CHUNK_ROWS`].
+pub async fn write(
+    conn: &mut SqliteConnection,
+    key: i64,
+    rows: &[ReadingRow],
+) -> Result<(), StoreError> {
+    let mut sorted;
+    let rows = if rows.is_sorted_by(|a, b| by_time(a, b).is_le()) {
+        rows
+    } else {
+        sorted = rows.to_vec();
+        sorted.sort_by(by_time);
+        &sorted[..]
+    };
+    for hour in rows.chunk_by(|a, b| hour_of(a.time_ns) == hour_of(b.time_ns)) {
+        let parts = hour.len().div_ceil(CHUNK_ROWS);
+        for part in hour.chunks(hour.len().div_ceil(parts)) {
+            insert_one(conn, key, part).await?;
+        }
+    }
+    Ok(())
+}
+
+/// One chunk of rows sorted by (time, seq), all in one hour.
+async fn insert_one(
+    conn: &mut SqliteConnection,
+    key: i64,
+    rows: &[ReadingRow],
+) -> Result<(), StoreError> {
+    let body = codec::encode(rows).map_err(corrupt)?;
+    let first_seq = rows.iter().map(|r| r.seq).min().unwrap_or(0);
+    let last_seq = rows.iter().map(|r| r.seq).max().unwrap_or(0);
+    sqlx::query(
+        "INSERT INTO chunks (channel_key, first_seq, last_seq, start_ns, end_ns, n, body) \
+         VALUES (?, ?, ?, ?, ?, ?, ?)",
+    )
+    .bind(key)
+    .bind(first_seq as i64)
+    .bind(last_seq as i64)
+    .bind(rows[0].time_ns)
+    .bind(rows[rows.len() - 1].time_ns)
+    .bind(rows.len() as i64)
+    .bind(body)
+    .execute(conn)
+    .await?;
+    Ok(())
+}
+
+/// For each of `rows`, whether it is new: not stored, and not an earlier
+/// row of `rows` again. A batch past everything stored costs one index
+/// probe.
+pub async fn keep_new(
+    conn: &mut SqliteConnection,
+    key: i64,
+    rows: &[ReadingRow],
+) -> Result<Vec<bool>, StoreError> {
+    let Some(lo) = rows.iter().map(|r| r.seq).min() else {
+        return Ok(Vec::new());
+    };
+    let hi = rows.iter().map(|r| r.seq).max().unwrap_or(lo);
+    let bodies = sqlx::query(
+        "SELECT body FROM chunks WHERE channel_key = ? AND last_seq >= ? AND first_seq <= ?",
+    )
+    .bind(key)
+    .bind(lo as i64)
+    .bind(hi as i64)
+    .fetch_all(&mut *conn)
+    .await?;
+    let mut stored = HashSet::new();
+    let mut decoded = Vec::new();
+    for b in &bodies {
+        decoded.clear();
+        codec::decode_into(b.try_get("body")?, key, &mut decoded).map_err(corrupt)?;
+        stored.extend(decoded.iter().map(|r| r.seq).filter(|s| (lo..=hi).contains(s)));
+    }
+    Ok(rows.iter().map(|r| stored.insert(r.seq)).collect())
+}
+
+/// A chunk's place, without its body.
+struct Head {
+    id: i64,
+    start_ns: i64,
+}
+
+/// Up to [`SCAN_CHUNKS`] chunks that may hold readings in
+/// `[from_ns, to_ns)`, after `cursor` (start, id) in start order.
+async fn scan(
+    conn: &mut SqliteConnection,
+    key: i64,
+    from_ns: i64,
+    to_ns: i64,
+    cursor: (i64, i64),
+) -> Result<Vec<(Head, Vec<u8>)>, StoreError> {
+    let rows = sqlx::query(
+        "SELECT chunk_id, start_ns, body FROM chunks WHERE channel_key = ? \
+         AND (start_ns, chunk_id) > (?, ?) AND start_ns < ? AND end_ns >= ? \
+         ORDER BY start_ns, chunk_id LIMIT ?",
+    )
+    .bind(key)
+    .bind(cursor.0)
+    .bind(cursor.1)
+    .bind(to_ns)
+    .bind(from_ns)
+    .bind(SCAN_CHUNKS)
+    .fetch_all(conn)
+    .await?;
+    rows.iter()
+        .map(|r| {
+            Ok((
+                Head {
+                    id: r.try_get("chunk_id")?,
+                    start_ns: r.try_get("start_ns")?,
+                },
+                r.try_get("body")?,
+            ))
+        })
+        .collect()
+}
+
+/// The first cursor of a scan from `from_ns`: no chunk starting an hour
+/// or more before it holds a reading at or after it.
+fn first_cursor(from_ns: i64) -> (i64, i64) {
+    (from_ns.saturating_sub(SPAN_NS), i64::MAX)
+}
+
+/// Calls `each` on every stored reading of the channel in
+/// `[start_ns, end_ns)`, chunk by chunk (in chunk start order; not
+/// sorted where chunks overlap).
+pub async fn for_each_between(
+    conn: &mut SqliteConnection,
+    key: i64,
+    start_ns: i64,
+    end_ns: i64,
+    mut each: impl FnMut(&ReadingRow),
+) -> Result<(), StoreError> {
+    let mut cursor = first_cursor(start_ns);
+    let mut rows = Vec::new();
+    loop {
+        let batch = scan(conn, key, start_ns, end_ns, cursor).await?;
+        for (head, body) in &batch {
+            rows.clear();
+            codec::decode_into(body, key, &mut rows).map_err(corrupt)?;
+            rows.iter()
+                .filter(|r| r.time_ns >= start_ns && r.time_ns < end_ns)
+                .for_each(&mut each);
+            cursor = (head.start_ns, head.id);
+        }
+        if (batch.len() as i64) < SCAN_CHUNKS {
+            return Ok(());
+        }
+    }
+}
+
+/// One page of readings in `[start_ns, end_ns)` in (time, seq) order,
+/// after the reading `after` (time, seq): chunks are read in start order
+/// until no later one can hold a reading before the page's last.
+pub async fn page(
+    conn: &mut SqliteConnection,
+    key: i64,
+    start_ns: i64,
+    end_ns: i64,
+    after: (i64, i64),
+    limit: usize,
+) -> Result<Vec<ReadingRow>, StoreError> {
+    let from_ns = start_ns.max(after.0);
+    let mut cursor = first_cursor(from_ns);
+    let mut out: Vec<ReadingRow> = Vec::new();
+    let mut rows = Vec::new();
+    loop {
+        let batch = scan(conn, key, from_ns, end_ns, cursor).await?;
+        for (head, body) in &batch {
+            rows.clear();
+            codec::decode_into(body, key, &mut rows).map_err(corrupt)?;
+            out.extend(rows.drain(..).filter(|r| {
+                r.time_ns >= from_ns && r.time_ns < end_ns && (r.time_ns, r.seq as i64) > after
+            }));
+            cursor = (head.start_ns, head.id);
+        }
+        if out.len() >= limit {
+            out.sort_by(by_time);
+            out.truncate(limit);
+        }
+        // Later chunks start after `cursor.0`: none can hold a reading
+        // before the page's last once that is earlier.
+        let settled = limit == 0 || (out.len() == limit && cursor.0 > out[limit - 1].time_ns);
+        if settled || (batch.len() as i64) < SCAN_CHUNKS {
+            out.sort_by(by_time);
+            out.truncate(limit);
+            return Ok(out);
+        }
+    }
+}
+
+/// Decodes the chunks a query selected (binds: the channel, then `binds`)
+/// and keeps the reading `better` prefers over the others.
+async fn best_of(
+    conn: &mut SqliteConnection,
+    sql: &'static str,
+    key: i64,
+    bind: i64,
+    better: impl Fn(&ReadingRow, &ReadingRow) -> bool,
+) -> Result<Option<ReadingRow>, StoreError> {
+    let bodies = sqlx::query(sqlx::AssertSqlSafe(sql))
+        .bind(key)
+        .bind(bind)
+        .fetch_all(conn)
+        .await?;
+    let mut best: Option<ReadingRow> = None;
+    let mut rows = Vec::new();
+    for b in &bodies {
+        rows.clear();
+        codec::decode_into(b.try_get("body")?, key, &mut rows).map_err(corrupt)?;
+        for r in rows.drain(..) {
+            if best.as_ref().is_none_or(|b| better(&r, b)) {
+                best = Some(r);
+            }
+        }
+    }
+    Ok(best)
+}
+
+/// The reading with seq `seq`, if stored.
+pub async fn find_seq(
+    conn: &mut SqliteConnection,
+    key: i64,
+    seq: u64,
+) -> Result<Option<ReadingRow>, StoreError> {
+    let found = best_of(
+        conn,
+        "SELECT body FROM chunks WHERE channel_key = ?1 AND last_seq >= ?2 AND first_seq <= ?2",
+        key,
+        seq as i64,
+        |r, _| r.seq == seq,
+    )
+    .await?;
+    Ok(found.filter(|r| r.seq == seq))
+}
+
+/// The stored reading with the highest seq.
+pub async fn latest(
+    conn: &mut SqliteConnection,
+    key: i64,
+) -> Result<Option<ReadingRow>, StoreError> {
+    // Chunks may overlap in seq; the highest seq is in the chunk whose
+    // last seq is highest.
+    best_of(
+        conn,
+        "SELECT body FROM chunks WHERE channel_key = ?1 AND ?2 = ?2 ORDER BY last_seq DESC LIMIT 1",
+        key,
+        0,
+        |r, b| r.seq > b.seq,
+    )
+    .await
+}
+
+/// The highest seq stored.
+pub async fn max_seq(conn: &mut SqliteConnection, key: i64) -> Result<Option<u64>, StoreError> {
+    let m: Option<i64> = sqlx::query("SELECT MAX(last_seq) AS m FROM chunks WHERE channel_key = ?")
+        .bind(key)
+        .fetch_one(conn)
+        .await?
+        .try_get("m")?;
+    Ok(m.map(|m| m as u64))
+}
+
+/// Readings stored for the channel.
+pub async fn count(conn: &mut SqliteConnection, key: i64) -> Result<u64, StoreError> {
+    let n: i64 = sqlx::query("SELECT COALESCE(SUM(n), 0) AS n FROM chunks WHERE channel_key = ?")
+        .bind(key)
+        .fetch_one(conn)
+        .await?
+        .try_get("n")?;
+    Ok(n as u64)
+}
+
+/// The stored reading with the highest seq among those with `flag` set,
+/// read from the newest chunks back until no older one can beat it.
+pub async fn last_flagged(
+    conn: &mut SqliteConnection,
+    key: i64,
+    flag: i64,
+) -> Result<Option<ReadingRow>, StoreError> {
+    let mut best: Option<ReadingRow> = None;
+    let mut below = i64::MAX;
+    let mut rows = Vec::new();
+    loop {
+        let batch = sqlx::query(
+            "SELECT last_seq, body FROM chunks WHERE channel_key = ? AND last_seq < ? \
+             ORDER BY last_seq DESC LIMIT ?",
+        )
+        .bind(key)
+        .bind(below)
+        .bind(SCAN_CHUNKS)
+        .fetch_all(&mut *conn)
+        .await?;
+        for c in &batch {
+            let last_seq: i64 = c.try_get("last_seq")?;
+            if best.as_ref().is_some_and(|b| b.seq as i64 > last_seq) {
+                return Ok(best);
+            }
+            rows.clear();
+            codec::decode_into(c.try_get("body")?, key, &mut rows).map_err(corrupt)?;
+            for r in rows.drain(..).filter(|r| r.flags & flag != 0) {
+                if best.as_ref().is_none_or(|b| r.seq > b.seq) {
+                    best = Some(r);
+                }
+            }
+            below = last_seq;
+        }
+        if (batch.len() as i64) < SCAN_CHUNKS {
+            return Ok(best);
+        }
+    }
+}
+
+/// The latest stored reading (by time, then seq) before `time_ns`: chunks
+/// starting before it, newest first, until one starts an hour before the
+/// best found (it could hold nothing later).
+pub async fn last_before(
+    conn: &mut SqliteConnection,
+    key: i64,
+    time_ns: i64,
+) -> Result<Option<ReadingRow>, StoreError> {
+    let mut best: Option<ReadingRow> = None;
+    let mut cursor = (time_ns, i64::MIN);
+    let mut rows = Vec::new();
+    loop {
+        let batch = sqlx::query(
+            "SELECT chunk_id, start_ns, body FROM chunks WHERE channel_key = ? \
+             AND (start_ns, chunk_id) < (?, ?) ORDER BY start_ns DESC, chunk_id DESC LIMIT ?",
+        )
+        .bind(key)
+        .bind(cursor.0)
+        .bind(cursor.1)
+        .bind(SCAN_CHUNKS)
+        .fetch_all(&mut *conn)
+        .await?;
+        for c in &batch {
+            let start_ns: i64 = c.try_get("start_ns")?;
+            if best.as_ref().is_some_and(|b| start_ns + SPAN_NS <= b.time_ns) {
+                return Ok(best);
+            }
+            rows.clear();
+            codec::decode_into(c.try_get("body")?, key, &mut rows).map_err(corrupt)?;
+            for r in rows.drain(..).filter(|r| r.time_ns < time_ns) {
+                if best.as_ref().is_none_or(|b| by_time(&r, b).is_gt()) {
+                    best = Some(r);
+                }
+            }
+            cursor = (start_ns, c.try_get("chunk_id")?);
+        }
+        if (batch.len() as i64) < SCAN_CHUNKS {
+            return Ok(best);
+        }
+    }
+}
+
+/// Deletes the channel's chunks before `before_ns` (a whole hour: no
+/// chunk straddles it), oldest first, until at least `limit` readings
+/// went or none is left; returns how many readings went.
+pub async fn prune(
+    conn: &mut SqliteConnection,
+    key: i64,
+    before_ns: i64,
+    limit: u64,
+) -> Result<u64, StoreError> {
+    let heads = sqlx::query(
+        "SELECT chunk_id, n FROM chunks WHERE channel_key = ? AND start_ns < ? AND end_ns < ? \
+         ORDER BY start_ns LIMIT 256",
+    )
+    .bind(key)
+    .bind(before_ns)
+    .bind(before_ns)
+    .fetch_all(&mut *conn)
+    .await?;
+    let mut gone = 0u64;
+    let mut ids = Vec::new();
+    for h in &heads {
+        if gone >= limit {
+            break;
+        }
+        ids.push(h.try_get::<i64, _>("chunk_id")?);
+        gone += h.try_get::<i64, _>("n")? as u64;
+    }
+    delete(conn, &ids).await?;
+    Ok(gone)
+}
+
+async fn delete(conn: &mut SqliteConnection, ids: &[i64]) -> Result<(), StoreError> {
+    for part in ids.chunks(500) {
+        let mut qb = sqlx::QueryBuilder::new("DELETE FROM chunks WHERE chunk_id IN (");
+        let mut list = qb.separated(", ");
+        for id in part {
+            list.push_bind(*id);
+        }
+        qb.push(")");
+        qb.build().execute(&mut *conn).await?;
+    }
+    Ok(())
+}
+
+/// Merges the channel's small chunks that share an hour into chunks of up
+/// to [`CHUNK_ROWS`], until about `limit` readings were rewritten; returns
+/// how many were. One call is one step of the writer's transaction: a
+/// crash leaves the chunks as they were before it or after it.
+pub async fn compact(
+    conn: &mut SqliteConnection,
+    key: i64,
+    limit: u64,
+) -> Result<u64, StoreError> {
+    let heads = sqlx::query(
+        "SELECT chunk_id, start_ns, n FROM chunks WHERE channel_key = ? AND n < 256 \
+         ORDER BY start_ns, chunk_id LIMIT 4096",
+    )
+    .bind(key)
+    .fetch_all(&mut *conn)
+    .await?;
+    let mut small = Vec::with_capacity(heads.len());
+    for h in &heads {
+        let start: i64 = h.try_get("start_ns")?;
+        small.push((hour_of(start), h.try_get::<i64, _>("chunk_id")?));
+    }
+    let mut merged = 0u64;
+    for group in small.chunk_by(|a, b| a.0 == b.0) {
+        if group.len() < 2 {
+            continue;
+        }
+        let ids: Vec<i64> = group.iter().map(|(_, id)| *id).collect();
+        merged += merge(conn, key, &ids).await?;
+        if merged >= limit {
+            break;
+        }
+    }
+    Ok(merged)
+}
+
+/// Rewrites the chunks `ids` (one hour's) as one run of chunks.
+async fn merge(conn: &mut SqliteConnection, key: i64, ids: &[i64]) -> Result<u64, StoreError> {
+    let mut rows = Vec::new();
+    for part in ids.chunks(500) {
+        let mut qb = sqlx::QueryBuilder::new("SELECT body FROM chunks WHERE chunk_id IN (");
+        let mut list = qb.separated(", ");
+        for id in part {
+            list.push_bind(*id);
+        }
+        qb.push(")");
+        for b in qb.build().fetch_all(&mut *conn).await? {
+            codec::decode_into(b.try_get("body")?, key, &mut rows).map_err(corrupt)?;
+        }
+    }
+    delete(conn, ids).await?;
+    write(conn, key, &rows).await?;
+    Ok(rows.len() as u64)
+}
+
+/// Readings a server before chunks stored one per row, moved into chunks
+/// at most `limit` at a time (one call per transaction); returns how many
+/// moved, zero once none is left.
+pub async fn adopt_rows(conn: &mut SqliteConnection, limit: u32) -> Result<u64, StoreError> {
+    let Some(key) = sqlx::query("SELECT channel_key FROM readings LIMIT 1")
+        .fetch_optional(&mut *conn)
+        .await?
+    else {
+        return Ok(0);
+    };
+    let key: i64 = key.try_get("channel_key")?;
+    let rows = sqlx::query(
+        "SELECT * FROM readings WHERE channel_key = ? ORDER BY time_ns, seq LIMIT ?",
+    )
+    .bind(key)
+    .bind(i64::from(limit))
+    .fetch_all(&mut *conn)
+    .await?;
+    let rows: Vec<ReadingRow> = rows
+        .iter()
+        .map(super::reading_from_row)
+        .collect::<Result<_, _>>()?;
+    let Some(last) = rows.last() else {
+        return Ok(0);
+    };
+    write(conn, key, &rows).await?;
+    sqlx::query("DELETE FROM readings WHERE channel_key = ? AND (time_ns, seq) <= (?, ?)")
+        .bind(key)
+        .bind(last.time_ns)
+        .bind(last.seq as i64)
+        .execute(&mut *conn)
+        .await?;
+    Ok(rows.len() as u64)
+}
+
+#[cfg(test)]
+mod tests;
