@@ -38,6 +38,10 @@ pub(crate) struct BenchIngestArgs {
     /// Durability of the in-process server (full, normal, off).
     #[arg(long, default_value = "full")]
     pub durability: String,
+    /// Also insert as many readings into plain SQLite (one row each, the
+    /// same durability) and report the server's rate against it.
+    #[arg(long)]
+    pub baseline: bool,
     #[arg(long)]
     pub json: bool,
 }
@@ -58,6 +62,10 @@ pub(crate) struct BenchReport {
     pub alert_p99_ms: Option<f64>,
     pub peak_rss_mib: Option<f64>,
     pub db_bytes_per_reading: Option<f64>,
+    /// Plain SQLite on this machine in the same run (`--baseline`).
+    pub baseline: Option<super::bench_baseline::BaselineReport>,
+    /// The server's readings/s over the baseline's rows/s.
+    pub ratio_to_baseline: Option<f64>,
 }
 
 pub(crate) fn percentile(sorted: &[f64], p: f64) -> f64 {
@@ -76,10 +84,40 @@ pub(crate) fn peak_rss_mib() -> Option<f64> {
     Some(kib / 1024.0)
 }
 
+/// The report with the raw-SQLite baseline beside it, when asked for.
+async fn with_baseline(
+    mut report: BenchReport,
+    args: &BenchIngestArgs,
+) -> anyhow::Result<BenchReport> {
+    if !args.baseline {
+        return Ok(report);
+    }
+    let synchronous = match args.durability.as_str() {
+        "normal" => "NORMAL",
+        "off" => "OFF",
+        _ => "FULL",
+    };
+    let (rows, channels, batch) = (report.readings, args.channels, u64::from(args.batch));
+    let dir = tempfile_dir()?;
+    let baseline = tokio::task::spawn_blocking(move || {
+        super::bench_baseline::run(&dir, rows, channels, batch, synchronous)
+    })
+    .await??;
+    report.ratio_to_baseline = Some(report.readings_per_s / baseline.rows_per_s);
+    report.baseline = Some(baseline);
+    Ok(report)
+}
+
 pub(crate) async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
     if args.channels == 0 || args.batch == 0 || args.readings == 0 {
         return Err(super::UsageError(
             "--channels, --batch and --readings must be at least 1".into(),
+        )
+        .into());
+    }
+    if args.baseline && args.connect.is_some() {
+        return Err(super::UsageError(
+            "--baseline measures SQLite on this machine: drop --connect".into(),
         )
         .into());
     }
@@ -133,10 +171,13 @@ pub(crate) async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
         alert_p99_ms: (!alert_lat.is_empty()).then(|| percentile(&alert_lat, 0.99)),
         peak_rss_mib: local.as_ref().and_then(|_| peak_rss_mib()),
         db_bytes_per_reading,
+        baseline: None,
+        ratio_to_baseline: None,
     };
     if let Some(l) = local {
         l.stop().await;
     }
+    let report = with_baseline(report, args).await?;
     print_ingest_report(&report, args.json)
 }
 
@@ -496,6 +537,12 @@ fn print_ingest_report(report: &BenchReport, json: bool) -> anyhow::Result<()> {
     }
     if let Some(b) = report.db_bytes_per_reading {
         println!("disk            {b:.0} bytes per stored reading");
+    }
+    if let (Some(b), Some(ratio)) = (&report.baseline, report.ratio_to_baseline) {
+        println!(
+            "plain SQLite    {:.0} rows/s, {:.0} bytes per row (one row per reading, same durability): server at {ratio:.2}×",
+            b.rows_per_s, b.bytes_per_row
+        );
     }
     Ok(())
 }

@@ -2,6 +2,7 @@
 
 pub(crate) mod alerts;
 pub(crate) mod bench;
+pub(crate) mod bench_baseline;
 pub(crate) mod bench_history;
 pub(crate) mod bench_retention;
 pub(crate) mod channels;

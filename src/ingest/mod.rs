@@ -14,9 +14,9 @@
 // Item docs here are still being written (DEVELOPERS.md, "Documentation").
 #![allow(missing_docs)]
 
+pub mod compact;
 pub mod derive;
 pub mod hub;
-pub mod compact;
 pub mod prune;
 pub mod runtime;
 pub mod session;

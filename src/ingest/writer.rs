@@ -267,8 +267,7 @@ async fn write_jobs(
             Job::Compact {
                 channel_key, limit, ..
             } => {
-                out.compacted =
-                    store::chunks::compact(tx, *channel_key, u64::from(*limit)).await?;
+                out.compacted = store::chunks::compact(tx, *channel_key, u64::from(*limit)).await?;
             }
         }
         outcomes.push(out);

@@ -10,7 +10,11 @@
 //! decodes by (time, seq).
 //!
 //! All of it runs on one connection (`&mut SqliteConnection`): the
-//! writer's transaction or a reader taken from the read pool.
+//! writer's transaction, or a read transaction from the read pool. A read
+//! of several queries must be one transaction, one snapshot: compaction
+//! may commit between two of its queries and move readings the scan has
+//! not reached into a chunk behind its cursor (a test lost readings so
+//! before the store's readers began a transaction).
 
 use super::codec;
 use super::{ReadingRow, StoreError};
@@ -117,7 +121,12 @@ pub async fn keep_new(
     for b in &bodies {
         decoded.clear();
         codec::decode_into(b.try_get("body")?, key, &mut decoded).map_err(corrupt)?;
-        stored.extend(decoded.iter().map(|r| r.seq).filter(|s| (lo..=hi).contains(s)));
+        stored.extend(
+            decoded
+                .iter()
+                .map(|r| r.seq)
+                .filter(|s| (lo..=hi).contains(s)),
+        );
     }
     Ok(rows.iter().map(|r| stored.insert(r.seq)).collect())
 }
@@ -383,7 +392,10 @@ pub async fn last_before(
         .await?;
         for c in &batch {
             let start_ns: i64 = c.try_get("start_ns")?;
-            if best.as_ref().is_some_and(|b| start_ns + SPAN_NS <= b.time_ns) {
+            if best
+                .as_ref()
+                .is_some_and(|b| start_ns + SPAN_NS <= b.time_ns)
+            {
                 return Ok(best);
             }
             rows.clear();
@@ -449,11 +461,7 @@ async fn delete(conn: &mut SqliteConnection, ids: &[i64]) -> Result<(), StoreErr
 /// to [`CHUNK_ROWS`], until about `limit` readings were rewritten; returns
 /// how many were. One call is one step of the writer's transaction: a
 /// crash leaves the chunks as they were before it or after it.
-pub async fn compact(
-    conn: &mut SqliteConnection,
-    key: i64,
-    limit: u64,
-) -> Result<u64, StoreError> {
+pub async fn compact(conn: &mut SqliteConnection, key: i64, limit: u64) -> Result<u64, StoreError> {
     let heads = sqlx::query(
         "SELECT chunk_id, start_ns, n FROM chunks WHERE channel_key = ? AND n < 256 \
          ORDER BY start_ns, chunk_id LIMIT 4096",
@@ -510,13 +518,12 @@ pub async fn adopt_rows(conn: &mut SqliteConnection, limit: u32) -> Result<u64, 
         return Ok(0);
     };
     let key: i64 = key.try_get("channel_key")?;
-    let rows = sqlx::query(
-        "SELECT * FROM readings WHERE channel_key = ? ORDER BY time_ns, seq LIMIT ?",
-    )
-    .bind(key)
-    .bind(i64::from(limit))
-    .fetch_all(&mut *conn)
-    .await?;
+    let rows =
+        sqlx::query("SELECT * FROM readings WHERE channel_key = ? ORDER BY time_ns, seq LIMIT ?")
+            .bind(key)
+            .bind(i64::from(limit))
+            .fetch_all(&mut *conn)
+            .await?;
     let rows: Vec<ReadingRow> = rows
         .iter()
         .map(super::reading_from_row)

@@ -332,7 +332,11 @@ impl Xor {
         }
         let last = f64::from_bits(self.prev);
         let p = last + (last - self.prev2);
-        if p.is_finite() { p.to_bits() } else { self.prev }
+        if p.is_finite() {
+            p.to_bits()
+        } else {
+            self.prev
+        }
     }
 
     fn step(&mut self, bits: u64) {

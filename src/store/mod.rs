@@ -712,7 +712,7 @@ pub async fn load_resume_state(
     // before snapshots falls back to the highest stored seq.
     let max_seq: Option<i64> = match &est {
         Some(r) => Some(r.try_get("last_seq")?),
-        None => chunks::max_seq(&mut *pool.acquire().await?, channel_key)
+        None => chunks::max_seq(&mut *pool.begin().await?, channel_key)
             .await?
             .map(|m| m as i64),
     };
@@ -768,9 +768,9 @@ pub async fn insert_new(tx: &mut Tx<'_>, rows: &[ReadingRow]) -> Result<Vec<bool
     let Some(key) = rows.first().map(|r| r.channel_key) else {
         return Ok(Vec::new());
     };
-    let new = chunks::keep_new(&mut **tx, key, rows).await?;
+    let new = chunks::keep_new(tx, key, rows).await?;
     if new.iter().all(|n| *n) {
-        chunks::write(&mut **tx, key, rows).await?;
+        chunks::write(tx, key, rows).await?;
     } else {
         let kept: Vec<ReadingRow> = rows
             .iter()
@@ -778,7 +778,7 @@ pub async fn insert_new(tx: &mut Tx<'_>, rows: &[ReadingRow]) -> Result<Vec<bool
             .filter(|(_, n)| **n)
             .map(|(r, _)| r.clone())
             .collect();
-        chunks::write(&mut **tx, key, &kept).await?;
+        chunks::write(tx, key, &kept).await?;
     }
     Ok(new)
 }
@@ -959,7 +959,15 @@ pub async fn query_readings(
     end_ns: i64,
     limit: u32,
 ) -> Result<Vec<ReadingRow>, StoreError> {
-    query_readings_page(pool, channel_key, start_ns, end_ns, (i64::MIN, i64::MIN), limit).await
+    query_readings_page(
+        pool,
+        channel_key,
+        start_ns,
+        end_ns,
+        (i64::MIN, i64::MIN),
+        limit,
+    )
+    .await
 }
 
 /// One page of readings in (time, seq) order, after the row `after`
@@ -972,8 +980,16 @@ pub async fn query_readings_page(
     after: (i64, i64),
     limit: u32,
 ) -> Result<Vec<ReadingRow>, StoreError> {
-    let mut conn = pool.acquire().await?;
-    chunks::page(&mut conn, channel_key, start_ns, end_ns, after, limit as usize).await
+    let mut conn = pool.begin().await?;
+    chunks::page(
+        &mut conn,
+        channel_key,
+        start_ns,
+        end_ns,
+        after,
+        limit as usize,
+    )
+    .await
 }
 
 /// Records what an operator did to a channel (in the transaction that
@@ -1009,7 +1025,7 @@ pub async fn timeline_anchor(
     channel_key: i64,
     after_seq: Option<u64>,
 ) -> Result<Option<(u64, i64)>, StoreError> {
-    let mut conn = pool.acquire().await?;
+    let mut conn = pool.begin().await?;
     let row = match after_seq {
         Some(seq) => chunks::find_seq(&mut conn, channel_key, seq).await?,
         None => chunks::last_flagged(&mut conn, channel_key, flags::OUT_OF_ORDER).await?,
@@ -1021,7 +1037,7 @@ pub async fn latest_reading(
     pool: &SqlitePool,
     channel_key: i64,
 ) -> Result<Option<ReadingRow>, StoreError> {
-    chunks::latest(&mut *pool.acquire().await?, channel_key).await
+    chunks::latest(&mut *pool.begin().await?, channel_key).await
 }
 
 /// One bucket of a channel's history: statistics as min, max, mean, last;
@@ -1060,7 +1076,7 @@ pub async fn counts_before(
     channel_key: i64,
     time_ns: i64,
 ) -> Result<Option<CountsBefore>, StoreError> {
-    let row = chunks::last_before(&mut *pool.acquire().await?, channel_key, time_ns).await?;
+    let row = chunks::last_before(&mut *pool.begin().await?, channel_key, time_ns).await?;
     Ok(row.map(|r| CountsBefore {
         run_id: r.run_id,
         charge_ah: r.charge_ah,
@@ -1151,5 +1167,5 @@ pub async fn list_cycles(
 }
 
 pub async fn count_readings(pool: &SqlitePool, channel_key: i64) -> Result<u64, StoreError> {
-    chunks::count(&mut *pool.acquire().await?, channel_key).await
+    chunks::count(&mut *pool.begin().await?, channel_key).await
 }

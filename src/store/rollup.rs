@@ -357,10 +357,10 @@ pub async fn refresh(tx: &mut Tx<'_>, channel_key: i64, times: &[i64]) -> Result
 /// Recomputes the 10 s buckets in `[lo, hi)` from every reading stored
 /// there.
 async fn from_readings(tx: &mut Tx<'_>, key: i64, lo: i64, hi: i64) -> Result<(), StoreError> {
-    let cells = run_cells(&mut **tx, key).await?;
+    let cells = run_cells(tx, key).await?;
     let width = TIERS_S[0] * NS_PER_S;
     let mut buckets: BTreeMap<i64, Summary> = BTreeMap::new();
-    super::chunks::for_each_between(&mut **tx, key, lo, hi, |r| {
+    super::chunks::for_each_between(tx, key, lo, hi, |r| {
         add_to(&mut buckets, r.time_ns.div_euclid(width) * width, r, &cells);
     })
     .await?;
@@ -390,7 +390,12 @@ async fn run_cells(
 }
 
 /// Adds reading `r` to the bucket starting at `start`.
-fn add_to(buckets: &mut BTreeMap<i64, Summary>, start: i64, r: &ReadingRow, cells: &HashMap<i64, u32>) {
+fn add_to(
+    buckets: &mut BTreeMap<i64, Summary>,
+    start: i64,
+    r: &ReadingRow,
+    cells: &HashMap<i64, u32>,
+) {
     let one = Summary::of(r, cells.get(&r.run_id).copied().unwrap_or(1));
     buckets
         .entry(start)
@@ -468,7 +473,7 @@ pub async fn query_readings(
     end_ns: i64,
     width_ns: i64,
 ) -> Result<Vec<BucketRow>, StoreError> {
-    let mut conn = pool.acquire().await?;
+    let mut conn = pool.begin().await?;
     let cells = run_cells(&mut conn, key).await?;
     let mut buckets: BTreeMap<i64, Summary> = BTreeMap::new();
     super::chunks::for_each_between(&mut conn, key, start_ns, end_ns, |r| {

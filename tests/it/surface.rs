@@ -279,7 +279,10 @@ async fn db_stats_reports_rows_and_bytes_beside_a_running_server() {
     // Readings live in compressed chunks, a few per batch; the table of
     // one row per reading stays, empty.
     let chunks = table("chunks");
-    assert!((1..300).contains(&chunks["rows"].as_u64().unwrap()), "{chunks}");
+    assert!(
+        (1..300).contains(&chunks["rows"].as_u64().unwrap()),
+        "{chunks}"
+    );
     assert!(chunks["bytes"].as_u64().unwrap() > 0);
     assert_eq!(table("readings")["rows"], 0);
     let channel = &v["channels"][0];

@@ -29,7 +29,7 @@ fn row(seq: u64, time_ns: i64) -> ReadingRow {
         soc_fused: Some(0.5),
         charge_ah: seq as f64 * 1e-3,
         energy_wh: seq as f64 * 2e-3,
-        flags: if seq % 7 == 0 { 1 } else { 0 },
+        flags: i64::from(seq.is_multiple_of(7)),
         soc_counted_unclamped: None,
     }
 }
@@ -53,7 +53,12 @@ async fn store(conn: &mut SqliteConnection, rows: &[ReadingRow]) -> Vec<bool> {
     new
 }
 
-async fn all_pages(conn: &mut SqliteConnection, start: i64, end: i64, limit: usize) -> Vec<(i64, u64)> {
+async fn all_pages(
+    conn: &mut SqliteConnection,
+    start: i64,
+    end: i64,
+    limit: usize,
+) -> Vec<(i64, u64)> {
     let mut out = Vec::new();
     let mut after = (i64::MIN, i64::MIN);
     loop {
@@ -167,7 +172,9 @@ fn small_chunks_of_one_hour_merge_and_keep_every_value() {
     run(async {
         let mut conn = db().await;
         let base = 10 * HOUR;
-        let rows: Vec<_> = (1..=600).map(|s| row(s, base + s as i64 * 10_000_000_000)).collect();
+        let rows: Vec<_> = (1..=600)
+            .map(|s| row(s, base + s as i64 * 10_000_000_000))
+            .collect();
         // A slow rig: one reading per batch, over two hours.
         for r in &rows {
             store(&mut conn, std::slice::from_ref(r)).await;
@@ -178,8 +185,13 @@ fn small_chunks_of_one_hour_merge_and_keep_every_value() {
         // 360 readings in the first hour, 240 in the second: one chunk each.
         let mut spans = chunk_spans(&mut conn).await;
         spans.sort();
-        assert_eq!(spans.iter().map(|s| s.2).collect::<Vec<_>>(), vec![359, 241]);
-        let back = page(&mut conn, KEY, 0, i64::MAX, (i64::MIN, i64::MIN), 1000).await.unwrap();
+        assert_eq!(
+            spans.iter().map(|s| s.2).collect::<Vec<_>>(),
+            vec![359, 241]
+        );
+        let back = page(&mut conn, KEY, 0, i64::MAX, (i64::MIN, i64::MIN), 1000)
+            .await
+            .unwrap();
         assert_eq!(back, rows);
         // A pass with nothing to merge rewrites nothing.
         assert_eq!(compact(&mut conn, KEY, u64::MAX).await.unwrap(), 0);
@@ -192,7 +204,9 @@ fn pruning_deletes_whole_hours_before_the_mark() {
         let mut conn = db().await;
         let base = 100 * HOUR;
         // Three hours at one reading a second, in batches of 1,000.
-        let rows: Vec<_> = (0..10_800).map(|s| row(s + 1, base + s as i64 * 1_000_000_000)).collect();
+        let rows: Vec<_> = (0..10_800)
+            .map(|s| row(s + 1, base + s as i64 * 1_000_000_000))
+            .collect();
         for b in rows.chunks(1_000) {
             store(&mut conn, b).await;
         }
@@ -206,7 +220,9 @@ fn pruning_deletes_whole_hours_before_the_mark() {
             }
         }
         assert_eq!(gone, 7_200);
-        let kept = page(&mut conn, KEY, 0, i64::MAX, (i64::MIN, i64::MIN), 20_000).await.unwrap();
+        let kept = page(&mut conn, KEY, 0, i64::MAX, (i64::MIN, i64::MIN), 20_000)
+            .await
+            .unwrap();
         assert_eq!(kept.len(), 3_600);
         assert!(kept.iter().all(|r| r.time_ns >= mark));
         assert_eq!(prune(&mut conn, KEY, mark, 2_000).await.unwrap(), 0);
@@ -217,7 +233,9 @@ fn pruning_deletes_whole_hours_before_the_mark() {
 fn rows_from_before_chunks_move_into_chunks_whole() {
     run(async {
         let mut conn = db().await;
-        let rows: Vec<_> = (1..=1_234).map(|s| row(s, HOUR + s as i64 * 5_000_000_000)).collect();
+        let rows: Vec<_> = (1..=1_234)
+            .map(|s| row(s, HOUR + s as i64 * 5_000_000_000))
+            .collect();
         for r in &rows {
             sqlx::query(
                 "INSERT INTO readings (channel_key, seq, run_id, time_ns, volts, amps, temp_c, cell_volts_used, \
@@ -247,7 +265,9 @@ fn rows_from_before_chunks_move_into_chunks_whole() {
             .unwrap()
             .get("n");
         assert_eq!(left, 0);
-        let back = page(&mut conn, KEY, 0, i64::MAX, (i64::MIN, i64::MIN), 2_000).await.unwrap();
+        let back = page(&mut conn, KEY, 0, i64::MAX, (i64::MIN, i64::MIN), 2_000)
+            .await
+            .unwrap();
         assert_eq!(back, rows);
     });
 }
