@@ -536,7 +536,7 @@ impl<'a> BitReader<'a> {
         if n == 0 {
             return Ok(0);
         }
-        if n > 32 {
+        if n > 56 {
             let hi = self.take(n - 32)?;
             return Ok((hi << 32) | self.take(32)?);
         }
@@ -544,15 +544,15 @@ impl<'a> BitReader<'a> {
         if end > self.bytes.len() * 8 {
             return Err(RowFault::Truncated);
         }
-        // Up to 32 bits starting anywhere in a byte span at most 5 bytes.
+        // Eight bytes from the one holding `pos` (zeros past the end):
+        // after skipping up to 7 bits, at least 57 remain.
         let first = self.pos / 8;
-        let mut window = 0u64;
-        for i in 0..5 {
-            window = (window << 8) | u64::from(*self.bytes.get(first + i).unwrap_or(&0));
-        }
+        let mut window = [0u8; 8];
+        let avail = (self.bytes.len() - first).min(8);
+        window[..avail].copy_from_slice(&self.bytes[first..first + avail]);
         let skip = (self.pos % 8) as u32;
         self.pos = end;
-        Ok((window >> (40 - skip - n)) & ((1u64 << n) - 1))
+        Ok((u64::from_be_bytes(window) << skip) >> (64 - n))
     }
 }
 
