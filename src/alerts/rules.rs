@@ -447,7 +447,7 @@ enum Side {
     AtOrBelow,
 }
 
-struct Check {
+struct Check<M: Fn() -> String> {
     kind: AlertKind,
     /// `Some(true)` past raise, `Some(false)` back past clear, `None` in between
     /// (keep what we have) or not applicable.
@@ -458,8 +458,10 @@ struct Check {
     threshold: f64,
     unit: &'static str,
     /// Built only when the alert is raised: formatting on every reading
-    /// would be most of the rules' cost.
-    message: Box<dyn Fn() -> String>,
+    /// would be most of the rules' cost. A closure of its own type per
+    /// check, not boxed: a box per check per reading was most of the
+    /// allocations of ingest's derivation.
+    message: M,
     seconds_to_target: Option<f64>,
 }
 
@@ -482,21 +484,23 @@ pub fn evaluate(
     let since_flow_s = state
         .last_flowing_ns
         .map(|t| (input.time_ns - t) as f64 / 1e9);
-    let checks = [
-        equilibrium_check(rules, input),
+    // Each check is applied as it is made: their messages are closures of
+    // different types (see `Check::message`).
+    let mut changes: Vec<AlertChange> = Vec::new();
+    let c = &mut changes;
+    apply_into(c, state, equilibrium_check(rules, input), input);
+    apply_into(
+        c,
+        state,
         driving_force_check(rules, input, since_flow_s),
-        end_of_charge_check(rules, input),
-        end_of_discharge_check(rules, input),
-        rest_settled_check(rules, input),
-        Some(voltage_limit_check(rules, input)),
-        current_limit_check(rules, input),
-        temperature_limit_check(rules, input),
-    ];
-    let mut changes: Vec<AlertChange> = checks
-        .into_iter()
-        .flatten()
-        .filter_map(|check| apply(state, check, input))
-        .collect();
+        input,
+    );
+    apply_into(c, state, end_of_charge_check(rules, input), input);
+    apply_into(c, state, end_of_discharge_check(rules, input), input);
+    apply_into(c, state, rest_settled_check(rules, input), input);
+    apply_into(c, state, Some(voltage_limit_check(rules, input)), input);
+    apply_into(c, state, current_limit_check(rules, input), input);
+    apply_into(c, state, temperature_limit_check(rules, input), input);
     // A reading arriving ends a silence.
     if state.is_active(AlertKind::SilentRig) {
         state
@@ -512,7 +516,7 @@ pub fn evaluate(
 
 /// Reaction equilibrium: |ΔG| of the cell reaction small (a concentration
 /// or teaching cell run down); rarer than a spent driving force.
-fn equilibrium_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+fn equilibrium_check(rules: &AlertRules, input: &RuleInput) -> Option<Check<impl Fn() -> String>> {
     let t = rules.equilibrium_delta_g_kj_per_mol;
     let value = input.delta_g_kj_per_mol.filter(|_| t.enabled)?.abs();
     let (past_raise, past_clear) = compare(&t, Side::AtOrBelow, value);
@@ -524,7 +528,7 @@ fn equilibrium_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
         trigger_value: value,
         threshold: t.raise_at,
         unit: "kJ/mol",
-        message: Box::new(move || {
+        message: (move || {
             format!("|ΔG| {value:.3} kJ/mol: the cell reaction is near chemical equilibrium")
         }),
         seconds_to_target: None,
@@ -538,7 +542,7 @@ fn driving_force_check(
     rules: &AlertRules,
     input: &RuleInput,
     since_flow_s: Option<f64>,
-) -> Option<Check> {
+) -> Option<Check<impl Fn() -> String>> {
     let t = rules.driving_force_cell_volts;
     let recent = since_flow_s.is_some_and(|s| s <= rules.driving_force_after_stop_s);
     let eta = input.driving_force_volts.filter(|_| t.enabled)?;
@@ -552,7 +556,7 @@ fn driving_force_check(
         trigger_value: eta,
         threshold: t.raise_at,
         unit: "V",
-        message: Box::new(move || {
+        message: (move || {
             format!(
                 "driving force spent: terminal voltage within {:.1} mV per cell of equilibrium",
                 value * 1e3
@@ -577,7 +581,10 @@ struct CycleEnd {
     flowing: bool,
 }
 
-fn end_of_charge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+fn end_of_charge_check(
+    rules: &AlertRules,
+    input: &RuleInput,
+) -> Option<Check<impl Fn() -> String>> {
     cycle_end_check(
         CycleEnd {
             kind: AlertKind::EndOfCharge,
@@ -592,7 +599,10 @@ fn end_of_charge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
     )
 }
 
-fn end_of_discharge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+fn end_of_discharge_check(
+    rules: &AlertRules,
+    input: &RuleInput,
+) -> Option<Check<impl Fn() -> String>> {
     cycle_end_check(
         CycleEnd {
             kind: AlertKind::EndOfDischarge,
@@ -607,7 +617,7 @@ fn end_of_discharge_check(rules: &AlertRules, input: &RuleInput) -> Option<Check
     )
 }
 
-fn cycle_end_check(end: CycleEnd, input: &RuleInput) -> Option<Check> {
+fn cycle_end_check(end: CycleEnd, input: &RuleInput) -> Option<Check<impl Fn() -> String>> {
     let (soc_rule, volts_rule) = (end.soc_rule, end.volts_rule);
     if !(soc_rule.enabled || volts_rule.enabled) {
         return None;
@@ -655,7 +665,7 @@ fn cycle_end_check(end: CycleEnd, input: &RuleInput) -> Option<Check> {
         trigger_value: value,
         threshold,
         unit,
-        message: Box::new(move || match (unit, eta) {
+        message: (move || match (unit, eta) {
             ("%", Some(e)) if e > 0.0 => {
                 format!("{label} in about {e:.0} s (SOC {value:.1} %, target {threshold:.1} %)")
             }
@@ -666,7 +676,7 @@ fn cycle_end_check(end: CycleEnd, input: &RuleInput) -> Option<Check> {
     })
 }
 
-fn rest_settled_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+fn rest_settled_check(rules: &AlertRules, input: &RuleInput) -> Option<Check<impl Fn() -> String>> {
     let t = rules.rest_settled_mv_per_min;
     if !t.enabled {
         return None;
@@ -684,7 +694,7 @@ fn rest_settled_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
         trigger_value: rate.unwrap_or(f64::NAN),
         threshold: t.raise_at,
         unit: "mV/min",
-        message: Box::new(move || {
+        message: (move || {
             format!(
                 "rest settled: |dV/dt| {:.3} mV/min; the open-circuit SOC is now trustworthy",
                 rate.unwrap_or(0.0)
@@ -695,7 +705,7 @@ fn rest_settled_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
 }
 
 /// Limits: raised at once, cleared once back inside by a small margin.
-fn voltage_limit_check(rules: &AlertRules, input: &RuleInput) -> Check {
+fn voltage_limit_check(rules: &AlertRules, input: &RuleInput) -> Check<impl Fn() -> String> {
     let (min, max) = (rules.safe_min_cell_volts, rules.safe_max_cell_volts);
     let v = input.cell_volts_terminal;
     let v_margin = 0.01 * (max - min);
@@ -707,7 +717,7 @@ fn voltage_limit_check(rules: &AlertRules, input: &RuleInput) -> Check {
         trigger_value: v,
         threshold: if v < min { min } else { max },
         unit: "V",
-        message: Box::new(move || {
+        message: (move || {
             let (v, min, max) = (
                 distinct(v, min, 3),
                 distinct(min, v, 3),
@@ -719,7 +729,10 @@ fn voltage_limit_check(rules: &AlertRules, input: &RuleInput) -> Check {
     }
 }
 
-fn current_limit_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+fn current_limit_check(
+    rules: &AlertRules,
+    input: &RuleInput,
+) -> Option<Check<impl Fn() -> String>> {
     let limit = rules.max_abs_amps;
     let i = input.amps.filter(|_| limit > 0.0)?;
     Some(Check {
@@ -730,12 +743,15 @@ fn current_limit_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
         trigger_value: i,
         threshold: limit,
         unit: "A",
-        message: Box::new(move || format!("current {i:.3} A beyond the limit ±{limit:.3} A")),
+        message: (move || format!("current {i:.3} A beyond the limit ±{limit:.3} A")),
         seconds_to_target: None,
     })
 }
 
-fn temperature_limit_check(rules: &AlertRules, input: &RuleInput) -> Option<Check> {
+fn temperature_limit_check(
+    rules: &AlertRules,
+    input: &RuleInput,
+) -> Option<Check<impl Fn() -> String>> {
     let temp = input.temp_c?;
     let (min, max) = (rules.min_temp_c, rules.max_temp_c);
     Some(Check {
@@ -746,7 +762,7 @@ fn temperature_limit_check(rules: &AlertRules, input: &RuleInput) -> Option<Chec
         trigger_value: temp,
         threshold: if temp < min { min } else { max },
         unit: "°C",
-        message: Box::new(move || {
+        message: (move || {
             let (t, lo, hi) = (
                 distinct(temp, min, 1),
                 distinct(min, temp, 1),
@@ -769,7 +785,21 @@ fn distinct(v: f64, other: f64, digits: usize) -> String {
     format!("{v:.d$}")
 }
 
-fn apply(state: &mut ChannelRuleState, check: Check, input: &RuleInput) -> Option<AlertChange> {
+/// Applies a check, when the rule made one, keeping the change it makes.
+fn apply_into<M: Fn() -> String>(
+    changes: &mut Vec<AlertChange>,
+    state: &mut ChannelRuleState,
+    check: Option<Check<M>>,
+    input: &RuleInput,
+) {
+    changes.extend(check.and_then(|c| apply(state, c, input)));
+}
+
+fn apply<M: Fn() -> String>(
+    state: &mut ChannelRuleState,
+    check: Check<M>,
+    input: &RuleInput,
+) -> Option<AlertChange> {
     let rule = state.rules.entry(check.kind).or_default();
     if rule.active {
         if check.past_clear && !check.past_raise {
