@@ -311,6 +311,11 @@ async fn adopt_rows(writer: &SqlitePool) -> Result<(), StoreError> {
     }
     if moved > 0 {
         tracing::info!(readings = moved, "readings moved into compressed chunks");
+        // The rows' pages are free now, a few times what the chunks take:
+        // once, hand them back to the file system rather than keep a file
+        // that stays at its old size until history grows into it.
+        sqlx::query("VACUUM").execute(writer).await?;
+        tracing::info!("database file compacted after the move");
     }
     Ok(())
 }
