@@ -57,23 +57,7 @@ pub(crate) fn run(
                 let channel = (i / batch) % seqs.len() as u64;
                 let seq = &mut seqs[channel as usize];
                 *seq += 1;
-                let s = *seq as f64;
-                insert.execute(rusqlite::params![
-                    channel as i64,
-                    *seq as i64,
-                    channel as i64 + 1,
-                    1_700_000_000_000_000_000i64 + *seq as i64 * 1_000_000,
-                    1.10 + 1e-5 * (s % 97.0),
-                    Some(0.5),
-                    Some(25.0),
-                    1.10 + 1e-5 * (s % 97.0),
-                    None::<f64>,
-                    Some(0.5 + s * 1e-7),
-                    s * 1.4e-7,
-                    s * 1.5e-7,
-                    16i64,
-                    Some(0.5 + s * 1e-7),
-                ])?;
+                insert_one(&mut insert, channel, *seq)?;
             }
         }
         conn.execute_batch("COMMIT")?;
@@ -95,4 +79,30 @@ pub(crate) fn run(
         rows_per_s: rows as f64 / seconds,
         bytes_per_row: bytes as f64 / rows.max(1) as f64,
     })
+}
+
+/// One reading-shaped row of `channel` with `seq`.
+fn insert_one(
+    insert: &mut rusqlite::Statement<'_>,
+    channel: u64,
+    seq: u64,
+) -> rusqlite::Result<()> {
+    let s = seq as f64;
+    insert.execute(rusqlite::params![
+        channel as i64,
+        seq as i64,
+        channel as i64 + 1,
+        1_700_000_000_000_000_000i64 + seq as i64 * 1_000_000,
+        1.10 + 1e-5 * (s % 97.0),
+        Some(0.5),
+        Some(25.0),
+        1.10 + 1e-5 * (s % 97.0),
+        None::<f64>,
+        Some(0.5 + s * 1e-7),
+        s * 1.4e-7,
+        s * 1.5e-7,
+        16i64,
+        Some(0.5 + s * 1e-7),
+    ])?;
+    Ok(())
 }
