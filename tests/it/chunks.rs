@@ -36,18 +36,7 @@ fn spawn_compacting_server(
 }
 
 async fn compacted_so_far(metrics: std::net::SocketAddr) -> Option<f64> {
-    use tokio::io::{AsyncReadExt, AsyncWriteExt};
-    let mut socket = tokio::net::TcpStream::connect(metrics).await.ok()?;
-    socket
-        .write_all(b"GET /metrics HTTP/1.1\r\nhost: test\r\nconnection: close\r\n\r\n")
-        .await
-        .ok()?;
-    let mut text = String::new();
-    socket.read_to_string(&mut text).await.ok()?;
-    Some(crate::metrics::sample(
-        &text,
-        "gibbsline_compacted_readings_total",
-    ))
+    crate::metrics::sample_when_up(metrics, "gibbsline_compacted_readings_total").await
 }
 
 fn chunk_rows(db: &Path) -> u64 {

@@ -302,21 +302,9 @@ fn spawn_pruning_server(
     crate::crash::spawn_server_with(db, addr, &more)
 }
 
-/// The pruned-readings counter of a server still starting: none while
-/// its metrics endpoint does not answer yet.
+/// The pruned-readings counter of a server still starting.
 async fn pruned_so_far(metrics: std::net::SocketAddr) -> Option<f64> {
-    use tokio::io::{AsyncReadExt, AsyncWriteExt};
-    let mut socket = tokio::net::TcpStream::connect(metrics).await.ok()?;
-    socket
-        .write_all(b"GET /metrics HTTP/1.1\r\nhost: test\r\nconnection: close\r\n\r\n")
-        .await
-        .ok()?;
-    let mut text = String::new();
-    socket.read_to_string(&mut text).await.ok()?;
-    Some(crate::metrics::sample(
-        &text,
-        "gibbsline_pruned_readings_total",
-    ))
+    crate::metrics::sample_when_up(metrics, "gibbsline_pruned_readings_total").await
 }
 
 #[tokio::test]

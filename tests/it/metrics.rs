@@ -19,6 +19,19 @@ async fn scrape(addr: std::net::SocketAddr) -> String {
     response
 }
 
+/// The value of `series` on a server that may still be starting: none
+/// while its metrics endpoint does not answer yet.
+pub(crate) async fn sample_when_up(addr: std::net::SocketAddr, series: &str) -> Option<f64> {
+    let mut socket = tokio::net::TcpStream::connect(addr).await.ok()?;
+    socket
+        .write_all(b"GET /metrics HTTP/1.1\r\nhost: test\r\nconnection: close\r\n\r\n")
+        .await
+        .ok()?;
+    let mut text = String::new();
+    socket.read_to_string(&mut text).await.ok()?;
+    Some(sample(&text, series))
+}
+
 /// The value of the sample line named exactly `series`.
 pub(crate) fn sample(text: &str, series: &str) -> f64 {
     text.lines()
