@@ -210,6 +210,9 @@ pub(crate) struct ChemistriesArgs {
 
 pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<()> {
     time::show_utc(cli.utc);
+    if only_prints(&cli.command) {
+        exit_quietly_when_the_reader_leaves();
+    }
     match cli.command {
         Command::Eval(args) => eval::run_eval(&args),
         Command::Chemistries(args) => eval::run_chemistries(&args),
@@ -230,6 +233,29 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Config(ConfigCommand::Check { file, no_files }) => {
             config_check::run(&file, no_files)
         }
+    }
+}
+
+/// Commands that print and end (or follow a stream) but serve nothing:
+/// they may stop when whoever reads their output is gone.
+fn only_prints(command: &Command) -> bool {
+    !matches!(
+        command,
+        Command::Serve(_) | Command::Bench(_) | Command::Demo(_) | Command::Rig(_)
+    )
+}
+
+/// `gibbsline db stats | head`: the reader leaves and the next write gets
+/// EPIPE, which `println!` turns into a panic. Rust ignores SIGPIPE at
+/// start; a command that only prints takes the default back and ends
+/// quietly, as other command-line tools do. Never for anything that
+/// serves: a peer that hangs up must not end a server.
+fn exit_quietly_when_the_reader_leaves() {
+    // SAFETY: called once, before any thread or runtime is started;
+    // setting a signal's disposition to its default is async-signal-safe
+    // and touches no Rust state.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
     }
 }
 
