@@ -131,6 +131,28 @@ pub async fn keep_new(
     Ok(rows.iter().map(|r| stored.insert(r.seq)).collect())
 }
 
+/// Stores the rows of `rows` that are new ([`keep_new`]); for each row,
+/// whether it was.
+pub async fn insert_new(
+    conn: &mut SqliteConnection,
+    key: i64,
+    rows: &[ReadingRow],
+) -> Result<Vec<bool>, StoreError> {
+    let new = keep_new(conn, key, rows).await?;
+    if new.iter().all(|n| *n) {
+        write(conn, key, rows).await?;
+    } else {
+        let kept: Vec<ReadingRow> = rows
+            .iter()
+            .zip(&new)
+            .filter(|(_, n)| **n)
+            .map(|(r, _)| r.clone())
+            .collect();
+        write(conn, key, &kept).await?;
+    }
+    Ok(new)
+}
+
 /// A chunk's place, without its body.
 struct Head {
     id: i64,

@@ -773,19 +773,7 @@ pub async fn insert_new(tx: &mut Tx<'_>, rows: &[ReadingRow]) -> Result<Vec<bool
     let Some(key) = rows.first().map(|r| r.channel_key) else {
         return Ok(Vec::new());
     };
-    let new = chunks::keep_new(tx, key, rows).await?;
-    if new.iter().all(|n| *n) {
-        chunks::write(tx, key, rows).await?;
-    } else {
-        let kept: Vec<ReadingRow> = rows
-            .iter()
-            .zip(&new)
-            .filter(|(_, n)| **n)
-            .map(|(r, _)| r.clone())
-            .collect();
-        chunks::write(tx, key, &kept).await?;
-    }
-    Ok(new)
+    chunks::insert_new(tx, key, rows).await
 }
 
 pub async fn save_estimator(

@@ -42,15 +42,7 @@ fn sorted(rows: &[ReadingRow]) -> Vec<(i64, u64)> {
 
 /// Stores `rows` the way the writer does: only what is new.
 async fn store(conn: &mut SqliteConnection, rows: &[ReadingRow]) -> Vec<bool> {
-    let new = keep_new(conn, KEY, rows).await.unwrap();
-    let kept: Vec<_> = rows
-        .iter()
-        .zip(&new)
-        .filter(|(_, n)| **n)
-        .map(|(r, _)| r.clone())
-        .collect();
-    write(conn, KEY, &kept).await.unwrap();
-    new
+    insert_new(conn, KEY, rows).await.unwrap()
 }
 
 async fn all_pages(
