@@ -22,14 +22,64 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         out_dir.join("gibbsline_descriptor.bin"),
         prost::Message::encode_to_vec(&fds),
     )?;
-    tonic_prost_build::configure()
+    let mut builder = tonic_prost_build::configure()
         .codec_path("crate::grpc::codec::StrictCodec")
         .build_server(true)
         .build_client(true)
-        // The CLI prints these as they come off the wire, so its JSON and
-        // CSV carry the proto's field names and nothing to keep in step.
-        .type_attribute("gibbsline.v1.Cycle", "#[derive(serde::Serialize)]")
-        .type_attribute("gibbsline.v1.ChemistryInfo", "#[derive(serde::Serialize)]")
-        .compile_fds(fds)?;
+        // The JSON API and the CLI print messages as they come off the
+        // wire, so their JSON carries the proto's field names and nothing
+        // is kept in step by hand.
+        .type_attribute(".gibbsline.v1", "#[derive(serde::Serialize)]");
+    // Enum fields are i32 on the Rust side; JSON spells their value's name.
+    for (field, serializer) in enum_fields(&fds) {
+        builder = builder.field_attribute(
+            field,
+            format!("#[serde(serialize_with = \"crate::pb::names::{serializer}\")]"),
+        );
+    }
+    builder.compile_fds(fds)?;
     Ok(())
+}
+
+/// Every enum-typed field (`.gibbsline.v1.Alert.severity`) and the name of
+/// the serializer for its enum (`severity`, from `Severity`).
+fn enum_fields(fds: &prost_types::FileDescriptorSet) -> Vec<(String, String)> {
+    use prost_types::field_descriptor_proto::{Label, Type};
+    let mut out = Vec::new();
+    for file in &fds.file {
+        let package = file.package();
+        for message in &file.message_type {
+            for field in &message.field {
+                if field.r#type() != Type::Enum {
+                    continue;
+                }
+                assert!(
+                    field.label() != Label::Repeated,
+                    "repeated enum field {}: give it a serializer",
+                    field.name()
+                );
+                let enum_name = field.type_name().rsplit('.').next().unwrap_or_default();
+                out.push((
+                    format!(".{package}.{}.{}", message.name(), field.name()),
+                    snake_case(enum_name),
+                ));
+            }
+        }
+    }
+    out
+}
+
+fn snake_case(camel: &str) -> String {
+    let mut out = String::new();
+    for (i, c) in camel.chars().enumerate() {
+        if c.is_ascii_uppercase() {
+            if i > 0 {
+                out.push('_');
+            }
+            out.push(c.to_ascii_lowercase());
+        } else {
+            out.push(c);
+        }
+    }
+    out
 }

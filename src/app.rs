@@ -25,6 +25,8 @@ pub struct Listeners {
     pub grpc: TcpListener,
     /// Prometheus text endpoint (`metrics_listen`); none means off.
     pub metrics: Option<TcpListener>,
+    /// Web console and JSON API (`http_listen`); none means off.
+    pub http: Option<TcpListener>,
 }
 
 impl Listeners {
@@ -33,6 +35,7 @@ impl Listeners {
         Listeners {
             grpc,
             metrics: None,
+            http: None,
         }
     }
 }
@@ -77,6 +80,7 @@ pub async fn run(
     let Listeners {
         grpc: listener,
         metrics: metrics_listener,
+        http: http_listener,
     } = listeners;
     let tls = config.read_tls()?;
     let db_path = PathBuf::from(&config.db);
@@ -117,24 +121,32 @@ pub async fn run(
     let incoming = crate::listen::incoming(listener, connection_idle);
     let reporter = health_reporter.clone();
     let builder = server_builder(&config.limits, tls.as_ref())?;
-    let tokens = crate::auth::TokenTable::new(&config.token)?;
+    let tokens = Arc::new(crate::auth::TokenTable::new(&config.token)?);
+    let apis = grpc::Apis::new(&hub, config.limits);
+    let http_task = match http_listener {
+        Some(l) => Some(spawn_console(l, &hub, &apis, &tokens, tls.as_ref())?),
+        None => None,
+    };
     let router = builder
-        .layer(grpc::authz::AuthLayer::new(tokens))
+        .layer(grpc::authz::AuthLayer::new(tokens.as_ref().clone()))
         .add_service(health_service);
     let router = add_reflection(router)?;
-    let serve = grpc::add_services(router, &hub, config.limits).serve_with_incoming_shutdown(
-        incoming,
-        async move {
+    let serve =
+        grpc::add_services(router, &apis).serve_with_incoming_shutdown(incoming, async move {
             shutdown.await;
             tracing::info!("shutting down: health NOT_SERVING");
             let _ = shutdown_tx.send(true);
             set_health(&reporter, tonic_health::ServingStatus::NotServing).await;
-        },
-    );
+        });
     let shutdown_budget = Duration::from_secs(config.limits.shutdown_timeout_s);
     let result = serve_until_deadline(serve, hub.shutdown_signal(), shutdown_budget / 2).await;
     stop_background(
-        [Some(silent_task), Some(health_task), metrics_task],
+        [
+            Some(silent_task),
+            Some(health_task),
+            metrics_task,
+            http_task,
+        ],
         prune_task,
     )
     .await;
@@ -147,11 +159,31 @@ pub async fn run(
     result.map_err(AppError::from)
 }
 
+/// Starts the console and JSON API on `listener`, with HTTPS when the
+/// server has TLS files.
+fn spawn_console(
+    listener: TcpListener,
+    hub: &Arc<Hub>,
+    apis: &grpc::Apis,
+    tokens: &Arc<crate::auth::TokenTable>,
+    tls: Option<&TlsPem>,
+) -> Result<tokio::task::JoinHandle<()>, AppError> {
+    let acceptor = tls.map(crate::http::conn::acceptor).transpose()?;
+    let state = Arc::new(crate::http::api::ApiState {
+        apis: apis.clone(),
+        hub: hub.clone(),
+        tokens: tokens.clone(),
+    });
+    let addr = listener.local_addr().ok();
+    tracing::info!(?addr, https = acceptor.is_some(), "console and JSON API");
+    Ok(tokio::spawn(crate::http::serve(listener, state, acceptor)))
+}
+
 /// Ends the background tasks once serving is over: the timers and the
 /// metrics endpoint at once, the pruner at its next deletion step (it
 /// watches the shutdown signal; what it leaves, the next start drains).
 async fn stop_background(
-    tasks: [Option<tokio::task::JoinHandle<()>>; 3],
+    tasks: [Option<tokio::task::JoinHandle<()>>; 4],
     prune_task: tokio::task::JoinHandle<()>,
 ) {
     for task in tasks.into_iter().flatten() {

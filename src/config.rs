@@ -24,6 +24,8 @@ pub struct ConfigFile {
     pub durability: Option<Durability>,
     /// Prometheus text endpoint, e.g. "127.0.0.1:9464"; unset = off.
     pub metrics_listen: Option<String>,
+    /// Web console and JSON API (see [`ServerConfig::http_listen`]).
+    pub http_listen: Option<String>,
     /// Confirms serving beyond loopback without TLS.
     #[serde(default)]
     pub allow_insecure: bool,
@@ -274,6 +276,10 @@ pub struct ServerConfig {
     pub durability: Durability,
     /// Prometheus text endpoint; none means off.
     pub metrics_listen: Option<String>,
+    /// Web console, JSON API and `/metrics` over HTTP (HTTPS with
+    /// `[tls]`), `host:port`; none (`"off"`) means off.
+    #[serde(serialize_with = "off_when_none")]
+    pub http_listen: Option<String>,
     /// Serving beyond loopback without TLS is confirmed.
     pub allow_insecure: bool,
     /// TLS files; none means plain text (loopback, or behind a proxy).
@@ -292,6 +298,8 @@ pub struct ServerConfig {
 
 /// Where the server listens unless told.
 pub const DEFAULT_LISTEN: &str = "127.0.0.1:50051";
+/// Where the web console listens unless told (`"off"` turns it off).
+pub const DEFAULT_HTTP_LISTEN: &str = "127.0.0.1:8080";
 /// The database file unless told, in the working directory.
 pub const DEFAULT_DB: &str = "gibbsline.db";
 
@@ -333,6 +341,8 @@ pub struct Flags {
     pub durability: Option<String>,
     /// `--metrics-listen`.
     pub metrics_listen: Option<String>,
+    /// `--http-listen`.
+    pub http_listen: Option<String>,
     /// `--allow-insecure`.
     pub allow_insecure: bool,
     /// `--chemistry-file` files as (path, text): their chemistries join
@@ -374,6 +384,7 @@ pub fn load_with_flags(
         ("GIBBSLINE_LISTEN", &flags.listen),
         ("GIBBSLINE_DB", &flags.db),
         ("GIBBSLINE_METRICS_LISTEN", &flags.metrics_listen),
+        ("GIBBSLINE_HTTP_LISTEN", &flags.http_listen),
     ] {
         if let Some(v) = flag {
             env.insert(key.into(), v.clone());
@@ -420,6 +431,7 @@ pub fn resolve(
         None => file.durability.unwrap_or_default(),
     };
     let (listen, metrics_listen) = addresses(&file, env).map_err(fail)?;
+    let http_listen = http_address(&file, env).map_err(fail)?;
     let allow_insecure = match env.get("GIBBSLINE_ALLOW_INSECURE") {
         Some(v) => matches!(v.as_str(), "1" | "true" | "yes"),
         None => file.allow_insecure,
@@ -447,6 +459,7 @@ pub fn resolve(
         db,
         durability,
         metrics_listen,
+        http_listen,
         allow_insecure,
         tls: file.tls,
         token: file.token,
@@ -484,6 +497,34 @@ fn addresses(
         ));
     }
     Ok((listen, metrics_listen))
+}
+
+/// Printed configs say `"off"` for a console that is off: left out, it
+/// would load back as the default address.
+fn off_when_none<S: serde::Serializer>(v: &Option<String>, s: S) -> Result<S::Ok, S::Error> {
+    s.serialize_str(v.as_deref().unwrap_or("off"))
+}
+
+/// The console's address, the environment before the file; `"off"` is none.
+fn http_address(
+    file: &ConfigFile,
+    env: &BTreeMap<String, String>,
+) -> Result<Option<String>, Problem> {
+    let http = env
+        .get("GIBBSLINE_HTTP_LISTEN")
+        .cloned()
+        .or(file.http_listen.clone())
+        .unwrap_or_else(|| DEFAULT_HTTP_LISTEN.into());
+    if http == "off" {
+        return Ok(None);
+    }
+    if http.parse::<std::net::SocketAddr>().is_err() {
+        return Err((
+            None,
+            format!("http_listen = {http:?}: expected an address like 127.0.0.1:8080, or \"off\""),
+        ));
+    }
+    Ok(Some(http))
 }
 
 /// The file's chemistries, channels and their rules, each against the
@@ -544,6 +585,20 @@ impl ServerConfig {
                 &self.listen,
                 "not a loopback address and no [tls] is configured; \
                  set [tls] cert and key, or pass --allow-insecure (allow_insecure = true) if a proxy or mesh provides TLS",
+            ));
+        }
+        // The console has the same tokens as gRPC, and TLS with [tls].
+        if let Some(h) = &self.http_listen
+            && let Ok(addr) = h.parse::<std::net::SocketAddr>()
+            && !addr.ip().is_loopback()
+            && self.tls.is_none()
+            && !self.allow_insecure
+        {
+            return Err(FieldError::new(
+                "http_listen",
+                h,
+                "not a loopback address and no [tls] is configured; \
+                 set [tls] cert and key, or pass --allow-insecure (allow_insecure = true) if a proxy provides TLS",
             ));
         }
         // The metrics page is plain HTTP and unauthenticated: beyond

@@ -6,3 +6,5 @@ tonic::include_proto!("gibbsline.v1");
 
 /// Descriptor set for server reflection.
 pub const FILE_DESCRIPTOR_SET: &[u8] = tonic::include_file_descriptor_set!("gibbsline_descriptor");
+
+pub mod names;

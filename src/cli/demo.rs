@@ -29,6 +29,9 @@ pub(crate) struct DemoArgs {
     /// Address for the demo server.
     #[arg(long, default_value = "127.0.0.1:50051")]
     pub listen: String,
+    /// Address of the web console for the demo ("off" for none).
+    #[arg(long, default_value = gibbsline::config::DEFAULT_HTTP_LISTEN)]
+    pub http_listen: String,
 }
 
 type ServerTask = tokio::task::JoinHandle<Result<(), gibbsline::app::AppError>>;
@@ -50,7 +53,13 @@ async fn start_server(
     let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
     let config =
         gibbsline::config::ServerConfig::for_db(&args.db, gibbsline::store::Durability::Normal);
-    let listeners = gibbsline::app::Listeners::grpc_only(listener);
+    let mut listeners = gibbsline::app::Listeners::grpc_only(listener);
+    if args.http_listen != "off" {
+        listeners.http = super::serve::bind_console(&args.http_listen).await?;
+        if let Some(l) = &listeners.http {
+            println!("console: http://{}/", l.local_addr()?);
+        }
+    }
     let server = tokio::spawn(gibbsline::app::run(config, listeners, async move {
         let _ = stop_rx.await;
     }));

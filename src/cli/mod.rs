@@ -143,6 +143,10 @@ pub(crate) struct ServeArgs {
     /// Serve Prometheus metrics on this address.
     #[arg(long)]
     pub metrics_listen: Option<String>,
+    /// Serve the web console and JSON API on this address (default
+    /// 127.0.0.1:8080; "off" for none).
+    #[arg(long)]
+    pub http_listen: Option<String>,
     /// Confirm serving plain-text gRPC beyond loopback.
     #[arg(long)]
     pub allow_insecure: bool,

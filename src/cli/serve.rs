@@ -72,6 +72,7 @@ fn flags_of(args: &ServeArgs) -> anyhow::Result<Flags> {
         db: args.db.as_ref().map(|d| d.display().to_string()),
         durability: args.durability.clone(),
         metrics_listen: args.metrics_listen.clone(),
+        http_listen: args.http_listen.clone(),
         allow_insecure: args.allow_insecure,
         chemistry_files,
     })
@@ -89,7 +90,35 @@ async fn bind(config: &ServerConfig) -> anyhow::Result<gibbsline::app::Listeners
         ),
         None => None,
     };
-    Ok(gibbsline::app::Listeners { grpc, metrics })
+    let http = match &config.http_listen {
+        Some(h) => bind_console(h).await?,
+        None => None,
+    };
+    Ok(gibbsline::app::Listeners {
+        grpc,
+        metrics,
+        http,
+    })
+}
+
+/// The console's listener. The default address taken by another program
+/// (a second server on this machine, say) costs the console, not the
+/// server: a warning says so. An address asked for must be had.
+pub(crate) async fn bind_console(addr: &str) -> anyhow::Result<Option<tokio::net::TcpListener>> {
+    match tokio::net::TcpListener::bind(addr).await {
+        Ok(l) => Ok(Some(l)),
+        Err(e)
+            if addr == gibbsline::config::DEFAULT_HTTP_LISTEN
+                && e.kind() == std::io::ErrorKind::AddrInUse =>
+        {
+            tracing::warn!(
+                http_listen = addr,
+                "console not served: the default address is in use; set http_listen (or \"off\")"
+            );
+            Ok(None)
+        }
+        Err(e) => Err(UsageError(format!("http_listen {addr}: {e}")).into()),
+    }
 }
 
 async fn shutdown_signal() {

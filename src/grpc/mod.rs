@@ -30,18 +30,50 @@ pub const MAX_INGEST_MESSAGE_BYTES: usize = 1024 * 1024;
 /// The name the health service reports ingest under.
 pub const INGEST_SERVICE_NAME: &str = "gibbsline.v1.IngestService";
 
+/// The five services, built once: the gRPC router serves them and the
+/// JSON API calls the same objects in-process, so both share one set of
+/// limits (query slots, ingest admission).
+#[derive(Clone)]
+pub struct Apis {
+    /// `ChannelService`.
+    pub channel: Arc<channel::ChannelApi>,
+    /// `IngestService`.
+    pub ingest: Arc<ingest::IngestApi>,
+    /// `HistoryService`.
+    pub history: Arc<history::HistoryApi>,
+    /// `ChemistryService`.
+    pub chemistry: Arc<chemistry::ChemistryApi>,
+    /// `AlertService`.
+    pub alert: Arc<alert::AlertApi>,
+}
+
+impl Apis {
+    /// The services over `hub`, with the server's limits.
+    pub fn new(hub: &Arc<Hub>, limits: Limits) -> Apis {
+        Apis {
+            channel: Arc::new(channel::ChannelApi { hub: hub.clone() }),
+            ingest: Arc::new(ingest::IngestApi {
+                hub: hub.clone(),
+                limits,
+                slots: Default::default(),
+            }),
+            history: Arc::new(history::HistoryApi::new(hub.clone(), limits.max_query_rows)),
+            chemistry: Arc::new(chemistry::ChemistryApi { hub: hub.clone() }),
+            alert: Arc::new(alert::AlertApi { hub: hub.clone() }),
+        }
+    }
+}
+
 /// Adds the five services, each with its message limits, to a router.
 pub fn add_services<L>(
     router: tonic::transport::server::Router<L>,
-    hub: &Arc<Hub>,
-    limits: Limits,
+    apis: &Apis,
 ) -> tonic::transport::server::Router<L> {
     use pb::{
         alert_service_server::AlertServiceServer, channel_service_server::ChannelServiceServer,
         chemistry_service_server::ChemistryServiceServer,
         history_service_server::HistoryServiceServer, ingest_service_server::IngestServiceServer,
     };
-    let hub = || hub.clone();
     macro_rules! limited {
         ($server:expr, $decode:expr) => {
             $server
@@ -49,31 +81,25 @@ pub fn add_services<L>(
                 .max_encoding_message_size(MAX_MESSAGE_BYTES)
         };
     }
-    let ingest = ingest::IngestApi {
-        hub: hub(),
-        limits,
-        slots: Default::default(),
-    };
-    let history = history::HistoryApi::new(hub(), limits.max_query_rows);
     router
         .add_service(limited!(
-            ChannelServiceServer::new(channel::ChannelApi { hub: hub() }),
+            ChannelServiceServer::from_arc(apis.channel.clone()),
             MAX_MESSAGE_BYTES
         ))
         .add_service(limited!(
-            IngestServiceServer::new(ingest),
+            IngestServiceServer::from_arc(apis.ingest.clone()),
             MAX_INGEST_MESSAGE_BYTES
         ))
         .add_service(limited!(
-            HistoryServiceServer::new(history),
+            HistoryServiceServer::from_arc(apis.history.clone()),
             MAX_MESSAGE_BYTES
         ))
         .add_service(limited!(
-            ChemistryServiceServer::new(chemistry::ChemistryApi { hub: hub() }),
+            ChemistryServiceServer::from_arc(apis.chemistry.clone()),
             MAX_MESSAGE_BYTES
         ))
         .add_service(limited!(
-            AlertServiceServer::new(alert::AlertApi { hub: hub() }),
+            AlertServiceServer::from_arc(apis.alert.clone()),
             MAX_MESSAGE_BYTES
         ))
 }

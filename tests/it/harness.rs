@@ -30,6 +30,20 @@ impl Server {
         Server::start_with_listeners(config, app::Listeners::grpc_only(listener)).await
     }
 
+    /// A server with its web console on another loopback port; returns
+    /// the console's address too.
+    pub(crate) async fn start_with_console(config: ServerConfig) -> (Server, std::net::SocketAddr) {
+        let grpc = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let http = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let http_addr = http.local_addr().unwrap();
+        let mut listeners = app::Listeners::grpc_only(grpc);
+        listeners.http = Some(http);
+        (
+            Server::start_with_listeners(config, listeners).await,
+            http_addr,
+        )
+    }
+
     pub(crate) async fn start_with_listeners(
         config: ServerConfig,
         listeners: app::Listeners,

@@ -4,6 +4,7 @@
 mod alerts;
 mod chunks;
 mod cli;
+mod console;
 mod crash;
 mod faults;
 mod flood;
@@ -15,3 +16,4 @@ mod security;
 mod service;
 mod surface;
 mod truth;
+mod web;

@@ -49,6 +49,7 @@ async fn metrics_count_what_ingest_did() {
     let listeners = gibbsline::app::Listeners {
         grpc: tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap(),
         metrics: Some(metrics_listener),
+        http: None,
     };
     let server = Server::start_with_listeners(config_for(&db), listeners).await;
     let ch = server.channel().await;
