@@ -2,6 +2,7 @@
 //! file, spoken to by a real tonic client.
 
 mod alerts;
+mod browser;
 mod chunks;
 mod cli;
 mod console;

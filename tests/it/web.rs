@@ -54,8 +54,17 @@ pub(crate) async fn request_on(
     let chunked = headers
         .iter()
         .any(|(n, v)| n == "transfer-encoding" && v.contains("chunked"));
+    let length = headers
+        .iter()
+        .find(|(n, _)| n == "content-length")
+        .and_then(|(_, v)| v.parse::<usize>().ok());
     let body = if chunked {
         read_chunked(&mut reader).await
+    } else if let Some(n) = length {
+        // Some peers keep the connection open despite `close`.
+        let mut b = vec![0; n];
+        reader.read_exact(&mut b).await.unwrap();
+        b
     } else {
         let mut b = Vec::new();
         reader.read_to_end(&mut b).await.unwrap();

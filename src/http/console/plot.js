@@ -99,7 +99,11 @@ class Plot {
       lo = Math.min(lo, p.lo ?? p.y); hi = Math.max(hi, p.hi ?? p.y);
     }
     if (!Number.isFinite(lo)) return [0, 1];
-    if (hi - lo < 1e-9 * Math.max(1, Math.abs(hi))) { const m = Math.max(Math.abs(hi) * 1e-3, 1e-6); return [lo - m, hi + m]; }
+    if (hi - lo < 1e-9 * Math.max(1, Math.abs(hi))) {
+      // A flat line: a band a few of the plot's last digits wide.
+      const m = Math.max(Math.abs(hi) * 1e-3, 5 * Math.pow(10, -this.digits));
+      return [lo - m, hi + m];
+    }
     const m = (hi - lo) * 0.05;
     return [lo - m, hi + m];
   }
