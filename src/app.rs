@@ -106,6 +106,7 @@ pub async fn run(
         writer_stop_rx,
     ));
     let silent_task = tokio::spawn(silent_watch(hub.clone()));
+    let notify_tasks = crate::notify::start(&hub, &config.notify).await?;
     let prune_task = tokio::spawn(ingest::prune::run(hub.clone(), config.retention));
 
     let (health_reporter, health_service) = tonic_health::server::health_reporter();
@@ -150,6 +151,11 @@ pub async fn run(
         prune_task,
     )
     .await;
+    // Couriers stop at the shutdown signal; one cut mid-send sends its
+    // event again at the next start (at least once).
+    for task in notify_tasks {
+        task.abort();
+    }
     // Connections cut at the deadline may leave tasks holding the hub (and
     // so the writer's queue): the writer is told to stop, not left waiting
     // for every sender to go.

@@ -44,6 +44,8 @@ pub struct ConfigFile {
     pub limits: Option<Limits>,
     /// `[retention]`: the default for every channel; unset keeps all.
     pub retention: Option<RetentionSettings>,
+    /// `[notify]`: webhooks and MQTT for alert events.
+    pub notify: Option<crate::notify::NotifySettings>,
 }
 
 /// `[retention]`: how long history is kept unless a channel says
@@ -294,6 +296,8 @@ pub struct ServerConfig {
     pub limits: Limits,
     /// How long history is kept unless a channel says otherwise.
     pub retention: RetentionSettings,
+    /// Where alert events are delivered besides `WatchAlerts`.
+    pub notify: crate::notify::NotifySettings,
 }
 
 /// Where the server listens unless told.
@@ -448,6 +452,10 @@ pub fn resolve(
     limits
         .validate()
         .map_err(|e| fail((table_line(text, "[limits]", 0), e.to_string())))?;
+    let notify = file.notify.unwrap_or_default();
+    notify
+        .validate()
+        .map_err(|e| fail((table_line(text, "[notify", 0), e.to_string())))?;
     let retention = file.retention.unwrap_or_default();
     retention
         .validate()
@@ -462,6 +470,7 @@ pub fn resolve(
         http_listen,
         allow_insecure,
         tls: file.tls,
+        notify,
         token: file.token,
         chemistry: file.chemistry,
         channel: file.channel,

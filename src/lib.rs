@@ -21,6 +21,7 @@ pub mod http;
 pub mod ingest;
 pub mod listen;
 pub mod metrics;
+pub mod notify;
 pub mod pb;
 pub mod retention;
 pub mod sim;

@@ -56,6 +56,11 @@ pub struct Metrics {
     pub prune_passes: AtomicU64,
     /// Readings rewritten by compaction (small chunks merged).
     pub compacted_readings: AtomicU64,
+    /// Alert deliveries (webhook, MQTT) the target took.
+    pub deliveries_ok: AtomicU64,
+    /// Alert delivery attempts that failed (each is retried).
+    pub deliveries_failed: AtomicU64,
+    delivery_latency_sum_us: AtomicU64,
 }
 
 /// One taken place of a bounded gauge (open streams, subscribers), given
@@ -144,6 +149,17 @@ impl Metrics {
 
     /// The plain counters, one family each.
     fn render_counters(&self, o: &mut String) {
+        family(
+            o,
+            "gibbsline_alert_delivery_seconds_sum",
+            "Seconds from an event's commit to its delivery, summed over deliveries (divide by gibbsline_alert_deliveries_total).",
+            "counter",
+        );
+        let _ = writeln!(
+            o,
+            "gibbsline_alert_delivery_seconds_sum {}",
+            self.delivery_latency_sum_us.load(Relaxed) as f64 / 1e6
+        );
         for (name, help, counter) in [
             (
                 "gibbsline_readings_accepted_total",
@@ -185,10 +201,26 @@ impl Metrics {
                 "Readings rewritten when small chunks were merged.",
                 &self.compacted_readings,
             ),
+            (
+                "gibbsline_alert_deliveries_total",
+                "Alert events delivered to a webhook or the MQTT broker.",
+                &self.deliveries_ok,
+            ),
+            (
+                "gibbsline_alert_delivery_failures_total",
+                "Alert delivery attempts that failed (retried with backoff).",
+                &self.deliveries_failed,
+            ),
         ] {
             family(o, name, help, "counter");
             let _ = writeln!(o, "{name} {}", counter.load(Relaxed));
         }
+    }
+
+    /// Notes how long a delivered event waited from its commit.
+    pub fn note_delivery_latency(&self, ns: i64) {
+        self.delivery_latency_sum_us
+            .fetch_add((ns.max(0) / 1_000) as u64, Relaxed);
     }
 
     /// Queue depth, open streams and subscribers, each channel's age.

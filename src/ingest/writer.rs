@@ -79,6 +79,13 @@ pub enum Job {
         limit: u32,
         reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
     },
+    /// One attempt to deliver an alert event to a notify target.
+    Delivery {
+        target: String,
+        event_id: u64,
+        attempt: store::outbox::Attempt,
+        reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
+    },
     /// One compaction step: small chunks of a channel merged, about
     /// `limit` readings rewritten at most (the count comes back in
     /// `WriteOutcome::compacted`).
@@ -202,7 +209,8 @@ fn reply_of(job: Job) -> oneshot::Sender<Result<WriteOutcome, StoreError>> {
         | Job::Acknowledge { reply, .. }
         | Job::Operator { reply, .. }
         | Job::Prune { reply, .. }
-        | Job::Compact { reply, .. } => reply,
+        | Job::Compact { reply, .. }
+        | Job::Delivery { reply, .. } => reply,
     }
 }
 
@@ -264,6 +272,12 @@ async fn write_jobs(
                 out.pruned =
                     store::retention::prune(tx, *channel_key, *what, *before_ns, *limit).await?;
             }
+            Job::Delivery {
+                target,
+                event_id,
+                attempt,
+                ..
+            } => store::outbox::record(tx, target, *event_id, attempt).await?,
             Job::Compact {
                 channel_key, limit, ..
             } => {

@@ -20,6 +20,7 @@ pub mod chunks;
 pub mod codec;
 mod fault;
 mod lock;
+pub mod outbox;
 pub mod report;
 pub mod retention;
 pub mod rollup;
@@ -834,7 +835,11 @@ async fn insert_event(
     .bind(time_ns)
     .execute(&mut **tx)
     .await?;
-    Ok(())
+    // The wall clock: when it was stored, whatever the rig's clock says.
+    let now_ns = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map_or(0, |d| d.as_nanos() as i64);
+    outbox::enqueue(tx, event_id, alert_id, now_ns).await
 }
 
 async fn fetch_alert(tx: &mut Tx<'_>, alert_id: u64) -> Result<Option<AlertRow>, StoreError> {

@@ -104,8 +104,12 @@ impl Browser {
     }
 
     async fn run(&self, script: &str) -> Value {
-        self.call("POST", "/execute/sync", json!({"script": script, "args": []}))
-            .await
+        self.call(
+            "POST",
+            "/execute/sync",
+            json!({"script": script, "args": []}),
+        )
+        .await
     }
 
     /// Waits until `script` returns something truthy; its value.
@@ -123,20 +127,29 @@ impl Browser {
 
     async fn element(&self, css: &str) -> String {
         let v = self
-            .call("POST", "/element", json!({"using": "css selector", "value": css}))
+            .call(
+                "POST",
+                "/element",
+                json!({"using": "css selector", "value": css}),
+            )
             .await;
         v[ELEMENT].as_str().unwrap().to_string()
     }
 
     async fn click(&self, css: &str) {
         let id = self.element(css).await;
-        self.call("POST", &format!("/element/{id}/click"), json!({})).await;
+        self.call("POST", &format!("/element/{id}/click"), json!({}))
+            .await;
     }
 
     async fn type_into(&self, css: &str, text: &str) {
         let id = self.element(css).await;
-        self.call("POST", &format!("/element/{id}/value"), json!({ "text": text }))
-            .await;
+        self.call(
+            "POST",
+            &format!("/element/{id}/value"),
+            json!({ "text": text }),
+        )
+        .await;
     }
 
     async fn screenshot(&self, name: &str) {
@@ -196,7 +209,14 @@ async fn raise_alert(ch: tonic::transport::Channel) -> u64 {
         .unwrap();
     let t0 = now_ns() - 10_000_000_000;
     let readings = (1..20)
-        .map(|s| reading(s, t0 + s as i64 * 100_000_000, if s >= 10 { 1.35 } else { 1.1 }, Some(0.0)))
+        .map(|s| {
+            reading(
+                s,
+                t0 + s as i64 * 100_000_000,
+                if s >= 10 { 1.35 } else { 1.1 },
+                Some(0.0),
+            )
+        })
         .collect();
     let batch = pb::ReadingBatch {
         channel_id: "alarm-1".into(),
@@ -205,7 +225,11 @@ async fn raise_alert(ch: tonic::transport::Channel) -> u64 {
     };
     let mut ingest = pb::ingest_service_client::IngestServiceClient::new(ch.clone());
     let outbound = tokio_stream::iter([pb::StreamReadingsRequest { batch: Some(batch) }]);
-    let mut acks = ingest.stream_readings(with_token(outbound)).await.unwrap().into_inner();
+    let mut acks = ingest
+        .stream_readings(with_token(outbound))
+        .await
+        .unwrap()
+        .into_inner();
     use tokio_stream::StreamExt;
     acks.next().await.unwrap().unwrap();
     let alerts = pb::alert_service_client::AlertServiceClient::new(ch)
@@ -250,7 +274,10 @@ async fn the_console_in_a_real_browser() {
     // No token yet: the page asks for one, and keeps it out of URLs.
     browser.go(&base).await;
     browser
-        .until("the token dialog", "return document.getElementById('token-dialog').open")
+        .until(
+            "the token dialog",
+            "return document.getElementById('token-dialog').open",
+        )
         .await;
     browser.type_into("#token-input", "operator-secret").await;
     browser.click("#token-ok").await;
@@ -285,7 +312,10 @@ async fn the_console_in_a_real_browser() {
     browser.go(&format!("{base}#/alerts")).await;
     let row = format!("tr[data-alert='{alert_id}'] button.ack");
     browser
-        .until("the alert row", &format!("return !!document.querySelector(\"{row}\")"))
+        .until(
+            "the alert row",
+            &format!("return !!document.querySelector(\"{row}\")"),
+        )
         .await;
     browser.click(&row).await;
     browser.type_into("#ack-name", "R. Lindqvist").await;
@@ -301,9 +331,15 @@ async fn the_console_in_a_real_browser() {
         )
         .await;
     browser.screenshot("alerts.png").await;
-    let stored = request(http, "GET", "/api/v1/alerts?channel_id=alarm-1", Some("operator-secret"), None)
-        .await
-        .json();
+    let stored = request(
+        http,
+        "GET",
+        "/api/v1/alerts?channel_id=alarm-1",
+        Some("operator-secret"),
+        None,
+    )
+    .await
+    .json();
     let a = stored["alerts"]
         .as_array()
         .unwrap()

@@ -13,6 +13,7 @@ mod harness;
 mod history;
 mod hostile;
 mod metrics;
+mod notify;
 mod security;
 mod service;
 mod surface;
