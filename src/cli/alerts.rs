@@ -36,6 +36,16 @@ pub(crate) enum AlertsCommand {
         #[arg(long, default_value = DEFAULT_ADDR)]
         connect: String,
     },
+    /// Where each alert event went (webhooks, MQTT) or is waiting to go.
+    Deliveries {
+        #[arg(long, default_value = DEFAULT_ADDR)]
+        connect: String,
+        /// Only deliveries not yet made.
+        #[arg(long)]
+        pending: bool,
+        #[arg(long, value_enum, default_value_t = Format::Table)]
+        format: Format,
+    },
     /// List stored alerts.
     List {
         #[arg(long, default_value = DEFAULT_ADDR)]
@@ -229,6 +239,11 @@ pub(crate) async fn run(cmd: &AlertsCommand) -> anyhow::Result<()> {
             )
             .await
         }
+        AlertsCommand::Deliveries {
+            connect,
+            pending,
+            format,
+        } => super::deliveries::run(connect, *pending, *format).await,
         AlertsCommand::Watch {
             connect,
             after,

@@ -10,6 +10,7 @@ pub(crate) mod client;
 pub(crate) mod config_check;
 pub(crate) mod cycles;
 pub(crate) mod db;
+pub(crate) mod deliveries;
 pub(crate) mod demo;
 pub(crate) mod eval;
 pub(crate) mod names;

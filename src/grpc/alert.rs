@@ -126,6 +126,44 @@ impl pb::alert_service_server::AlertService for AlertApi {
             rules: Some(rules_to_pb(&rules)),
         }))
     }
+
+    async fn list_deliveries(
+        &self,
+        request: Request<pb::ListDeliveriesRequest>,
+    ) -> Result<Response<pb::ListDeliveriesResponse>, Status> {
+        let q = request.into_inner();
+        let limit = match q.limit {
+            0 => 100,
+            l if l > 10_000 => return Err(invalid("limit", l, "must be at most 10000")),
+            l => l,
+        };
+        let after = (q.after_target.as_str(), q.after_event_id);
+        let rows =
+            store::outbox::list(&self.hub.store().reader, q.pending_only, after, limit).await?;
+        let (next_after_target, next_after_event_id) = match rows.last() {
+            Some(last) if rows.len() == limit as usize => (last.target.clone(), last.event_id),
+            _ => (String::new(), 0),
+        };
+        Ok(Response::new(pb::ListDeliveriesResponse {
+            deliveries: rows.iter().map(delivery_to_pb).collect(),
+            next_after_target,
+            next_after_event_id,
+        }))
+    }
+}
+
+fn delivery_to_pb(d: &store::outbox::DeliveryRow) -> pb::Delivery {
+    pb::Delivery {
+        target: d.target.clone(),
+        event_id: d.event_id,
+        alert_id: d.alert_id,
+        channel_id: d.channel_id.clone(),
+        created_unix_ns: d.created_ns,
+        attempts: d.attempts,
+        next_attempt_unix_ns: d.next_attempt_ns,
+        delivered_unix_ns: d.delivered_ns,
+        last_error: d.last_error.clone(),
+    }
 }
 
 fn item_to_pb(item: FeedItem) -> pb::WatchAlertsResponse {

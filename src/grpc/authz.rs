@@ -18,7 +18,7 @@ use tonic::Status;
 const PACKAGE_PREFIX: &str = "/gibbsline.v1.";
 
 /// Each RPC's full path and the permission it needs.
-pub static METHODS: [(&str, Permission); 18] = [
+pub static METHODS: [(&str, Permission); 19] = [
     (
         "/gibbsline.v1.ChannelService/PutChannel",
         Permission::Administer,
@@ -72,6 +72,10 @@ pub static METHODS: [(&str, Permission); 18] = [
     (
         "/gibbsline.v1.AlertService/PutAlertRules",
         Permission::Operate,
+    ),
+    (
+        "/gibbsline.v1.AlertService/ListDeliveries",
+        Permission::Read,
     ),
 ];
 

@@ -207,6 +207,57 @@ async fn webhook_gets_every_event_in_order_across_failures_and_a_kill() {
         }
     }
     assert_eq!(*receiver.bad_signatures.lock().unwrap(), 0);
+
+    // The outbox as operators see it: each event delivered once recorded,
+    // some after failed attempts.
+    let deadline = Instant::now() + Duration::from_secs(30);
+    let deliveries = loop {
+        let out = tokio::task::spawn_blocking({
+            let addr = addr.clone();
+            move || {
+                std::process::Command::new(env!("CARGO_BIN_EXE_gibbsline"))
+                    .args([
+                        "alerts",
+                        "deliveries",
+                        "--connect",
+                        &addr,
+                        "--format",
+                        "json",
+                    ])
+                    .output()
+                    .unwrap()
+            }
+        })
+        .await
+        .unwrap();
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let v: Value = serde_json::from_slice(&out.stdout).unwrap();
+        let rows = v.as_array().unwrap().clone();
+        if rows.iter().all(|d| !d["delivered_unix_ns"].is_null()) {
+            break rows;
+        }
+        assert!(
+            Instant::now() < deadline,
+            "deliveries still pending: {rows:?}"
+        );
+        tokio::time::sleep(Duration::from_millis(200)).await;
+    };
+    assert_eq!(deliveries.len(), stored.len());
+    assert!(
+        deliveries
+            .iter()
+            .all(|d| d["target"] == "lab-7" && d["last_error"].is_null())
+    );
+    assert!(
+        deliveries
+            .iter()
+            .any(|d| d["attempts"].as_u64().unwrap() >= 2),
+        "the failing receiver made some deliveries take more than one attempt"
+    );
     server.kill().unwrap();
     server.wait().unwrap();
 }

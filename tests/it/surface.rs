@@ -166,6 +166,7 @@ async fn every_command_prints_every_format_it_accepts_under_one_set_of_names() {
         vec!["readings", "--channel", "face-1", "--bucket", "1m"],
         vec!["alerts", "list"],
         vec!["alerts", "list", "--min-severity", "warning"],
+        vec!["alerts", "deliveries"],
         vec!["channels", "list"],
         vec!["channels", "get", "face-1"],
         vec!["cycles", "--channel", "face-1"],
