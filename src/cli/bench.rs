@@ -147,6 +147,7 @@ pub(crate) async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
         batch_interval: (args.rate > 0.0).then(|| {
             Duration::from_secs_f64(f64::from(args.batch) * f64::from(args.channels) / args.rate)
         }),
+        ack_log: None,
     };
     let start = Instant::now();
     let (accepted, mut latencies) = load.drive(&conn, ids, &clock).await?;
@@ -201,6 +202,16 @@ impl LocalServer {
         channels: u32,
         tune: impl FnOnce(&mut gibbsline::config::ServerConfig),
     ) -> anyhow::Result<LocalServer> {
+        LocalServer::start_serving(durability, channels, tune, None).await
+    }
+
+    /// [`LocalServer::start_with`], with the console and JSON API on `http`.
+    pub(crate) async fn start_serving(
+        durability: &str,
+        channels: u32,
+        tune: impl FnOnce(&mut gibbsline::config::ServerConfig),
+        http: Option<tokio::net::TcpListener>,
+    ) -> anyhow::Result<LocalServer> {
         let dir = tempfile_dir()?;
         let db = dir.join("bench.db");
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
@@ -217,7 +228,8 @@ impl LocalServer {
             .max_streams_per_client
             .max(u64::from(channels));
         tune(&mut config);
-        let listeners = gibbsline::app::Listeners::grpc_only(listener);
+        let mut listeners = gibbsline::app::Listeners::grpc_only(listener);
+        listeners.http = http;
         let task = tokio::spawn(gibbsline::app::run(config, listeners, async move {
             let _ = stop_rx.await;
         }));
@@ -334,15 +346,24 @@ impl AlertClock {
         }))
     }
 
-    fn acked(&self, channel_id: &str, seqs: impl Iterator<Item = u64>, at: Instant) {
+    pub(crate) fn acked(&self, channel_id: &str, seqs: impl Iterator<Item = u64>, at: Instant) {
         let mut acked = self.acked.lock().expect("poisoned");
         for s in seqs {
             acked.insert((channel_id.to_string(), s), at);
         }
     }
 
+    /// Notes an alert's arrival somewhere else (a webhook receiver).
+    pub(crate) fn arrived(&self, channel_id: String, raised_seq: u64) {
+        let at = Instant::now();
+        self.arrived
+            .lock()
+            .expect("poisoned")
+            .push((channel_id, raised_seq, at));
+    }
+
     /// Sorted ack-to-arrival times of the alerts seen, ms.
-    fn latencies_ms(&self) -> Vec<f64> {
+    pub(crate) fn latencies_ms(&self) -> Vec<f64> {
         let acked = self.acked.lock().expect("poisoned");
         let mut out: Vec<f64> = self
             .arrived
@@ -373,7 +394,12 @@ pub(crate) struct Load {
     pub over_volts: f64,
     /// Paced: one batch per channel this often; `None`: as fast as acked.
     pub batch_interval: Option<Duration>,
+    /// Every ack as (channel, last seq of its batch, when), if kept.
+    pub ack_log: Option<AckLog>,
 }
+
+/// Acks as they came: (channel id, the batch's last seq, arrival).
+pub(crate) type AckLog = Arc<Mutex<Vec<(String, u64, Instant)>>>;
 
 /// Batches sent and not yet acknowledged: batch id → (sent at, last seq).
 type Sent = Arc<Mutex<HashMap<u64, (Instant, u64)>>>;
@@ -438,6 +464,9 @@ impl Load {
             accepted += u64::from(ack.accepted);
             if let Some((t, hi)) = sent.lock().expect("poisoned").remove(&ack.batch_id) {
                 latencies.push(now.duration_since(t).as_secs_f64() * 1e3);
+                if let Some(log) = &self.ack_log {
+                    log.lock().expect("poisoned").push((id.clone(), hi, now));
+                }
                 let lo = hi.saturating_sub(self.batch) + 1;
                 if self.alert_every > 0 {
                     let every = self.alert_every;

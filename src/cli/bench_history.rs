@@ -90,6 +90,7 @@ async fn measure(args: &BenchHistoryArgs, n: u64) -> anyhow::Result<HistoryRow> 
         normal_volts,
         over_volts,
         batch_interval: None,
+        ack_log: None,
     };
     let started = Instant::now();
     let (stored, _) = load

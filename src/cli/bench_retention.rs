@@ -114,6 +114,7 @@ fn soak_load(args: &BenchRetentionArgs) -> Load {
         batch_interval: Some(Duration::from_secs_f64(
             f64::from(args.batch) * f64::from(args.channels) / args.rate,
         )),
+        ack_log: None,
     }
 }
 

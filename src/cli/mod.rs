@@ -3,6 +3,7 @@
 pub(crate) mod alerts;
 pub(crate) mod bench;
 pub(crate) mod bench_baseline;
+pub(crate) mod bench_console;
 pub(crate) mod bench_history;
 pub(crate) mod bench_retention;
 pub(crate) mod channels;
@@ -125,6 +126,9 @@ pub(crate) enum BenchCommand {
     History(bench_history::BenchHistoryArgs),
     /// A soak at constant load with retention on: disk over time, ack latency.
     Retention(bench_retention::BenchRetentionArgs),
+    /// The console and alert delivery under load: overview load time, live
+    /// feed latency, webhook latency.
+    Console(bench_console::BenchConsoleArgs),
 }
 
 #[derive(Debug, Args)]
@@ -226,6 +230,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Bench(BenchCommand::Derive(args)) => bench::derive(&args),
         Command::Bench(BenchCommand::History(args)) => block_on(bench_history::run(&args)),
         Command::Bench(BenchCommand::Retention(args)) => block_on(bench_retention::run(&args)),
+        Command::Bench(BenchCommand::Console(args)) => block_on(bench_console::run(&args)),
         Command::Demo(args) => block_on(demo::run(&args)),
         Command::Rig(cmd) => block_on(simulate::run(&cmd)),
         Command::Readings(args) => block_on(readings::run(&args)),
