@@ -94,9 +94,7 @@ pub async fn run(
         jobs: writer_rx,
         shutdown: shutdown_tx,
     } = handles;
-    put_configured(&hub, config.channel).await?;
-    let metrics_task =
-        metrics_listener.map(|l| tokio::spawn(crate::http::serve_metrics(l, hub.clone())));
+    put_configured(&hub, config.channel.clone()).await?;
     let (writer_stop_tx, writer_stop_rx) = tokio::sync::watch::channel(false);
     let writer_task = tokio::spawn(writer::run(
         store.clone(),
@@ -105,30 +103,22 @@ pub async fn run(
         hub.metrics().clone(),
         writer_stop_rx,
     ));
-    let silent_task = tokio::spawn(silent_watch(hub.clone()));
-    let notify_tasks = crate::notify::start(&hub, &config.notify).await?;
-    let prune_task = tokio::spawn(ingest::prune::run(hub.clone(), config.retention));
-
     let (health_reporter, health_service) = tonic_health::server::health_reporter();
     set_health(&health_reporter, tonic_health::ServingStatus::Serving).await;
-    let health_task = tokio::spawn(follow_storage_health(
-        store.clone(),
-        health_reporter.clone(),
-        hub.shutdown_signal(),
-    ));
+    let mut background =
+        Background::start(&hub, &config, metrics_listener, health_reporter.clone()).await?;
     let addr = listener.local_addr().ok();
     tracing::info!(?addr, db = %db_path.display(), "serving");
     let connection_idle = Duration::from_secs(config.limits.connection_idle_timeout_s);
     let incoming = crate::listen::incoming(listener, connection_idle);
-    let reporter = health_reporter.clone();
-    let builder = server_builder(&config.limits, tls.as_ref())?;
     let tokens = Arc::new(crate::auth::TokenTable::new(&config.token)?);
     let apis = grpc::Apis::new(&hub, config.limits);
-    let http_task = match http_listener {
-        Some(l) => Some(spawn_console(l, &hub, &apis, &tokens, tls.as_ref())?),
-        None => None,
-    };
-    let router = builder
+    if let Some(l) = http_listener {
+        background
+            .aborted
+            .push(spawn_console(l, &hub, &apis, &tokens, tls.as_ref())?);
+    }
+    let router = server_builder(&config.limits, tls.as_ref())?
         .layer(grpc::authz::AuthLayer::new(tokens.as_ref().clone()))
         .add_service(health_service);
     let router = add_reflection(router)?;
@@ -137,25 +127,11 @@ pub async fn run(
             shutdown.await;
             tracing::info!("shutting down: health NOT_SERVING");
             let _ = shutdown_tx.send(true);
-            set_health(&reporter, tonic_health::ServingStatus::NotServing).await;
+            set_health(&health_reporter, tonic_health::ServingStatus::NotServing).await;
         });
     let shutdown_budget = Duration::from_secs(config.limits.shutdown_timeout_s);
     let result = serve_until_deadline(serve, hub.shutdown_signal(), shutdown_budget / 2).await;
-    stop_background(
-        [
-            Some(silent_task),
-            Some(health_task),
-            metrics_task,
-            http_task,
-        ],
-        prune_task,
-    )
-    .await;
-    // Couriers stop at the shutdown signal; one cut mid-send sends its
-    // event again at the next start (at least once).
-    for task in notify_tasks {
-        task.abort();
-    }
+    background.stop().await;
     // Connections cut at the deadline may leave tasks holding the hub (and
     // so the writer's queue): the writer is told to stop, not left waiting
     // for every sender to go.
@@ -185,21 +161,54 @@ fn spawn_console(
     Ok(tokio::spawn(crate::http::serve(listener, state, acceptor)))
 }
 
-/// Ends the background tasks once serving is over: the timers and the
-/// metrics endpoint at once, the pruner at its next deletion step (it
-/// watches the shutdown signal; what it leaves, the next start drains).
-async fn stop_background(
-    tasks: [Option<tokio::task::JoinHandle<()>>; 4],
-    prune_task: tokio::task::JoinHandle<()>,
-) {
-    for task in tasks.into_iter().flatten() {
-        task.abort();
+/// The tasks beside the transport.
+struct Background {
+    /// Timers, endpoints and couriers: ended at once when serving ends.
+    aborted: Vec<tokio::task::JoinHandle<()>>,
+    /// The pruner: ended at its next deletion step (it watches the
+    /// shutdown signal; what it leaves, the next start drains).
+    prune: tokio::task::JoinHandle<()>,
+}
+
+impl Background {
+    /// The silent-rig timer, the pruner, the metrics endpoint, the
+    /// couriers and the storage-health follower.
+    async fn start(
+        hub: &Arc<Hub>,
+        config: &ServerConfig,
+        metrics_listener: Option<TcpListener>,
+        health_reporter: tonic_health::server::HealthReporter,
+    ) -> Result<Background, AppError> {
+        let mut background = Background {
+            aborted: vec![tokio::spawn(silent_watch(hub.clone()))],
+            prune: tokio::spawn(ingest::prune::run(hub.clone(), config.retention)),
+        };
+        let metrics =
+            metrics_listener.map(|l| tokio::spawn(crate::http::serve_metrics(l, hub.clone())));
+        background.aborted.extend(metrics);
+        // Couriers stop at the shutdown signal; one cut mid-send sends its
+        // event again at the next start (at least once).
+        background
+            .aborted
+            .extend(crate::notify::start(hub, &config.notify).await?);
+        background.aborted.push(tokio::spawn(follow_storage_health(
+            hub.store().clone(),
+            health_reporter,
+            hub.shutdown_signal(),
+        )));
+        Ok(background)
     }
-    if tokio::time::timeout(Duration::from_secs(2), prune_task)
-        .await
-        .is_err()
-    {
-        tracing::warn!("retention pass still running at shutdown: left for the next start");
+
+    async fn stop(self) {
+        for task in self.aborted {
+            task.abort();
+        }
+        if tokio::time::timeout(Duration::from_secs(2), self.prune)
+            .await
+            .is_err()
+        {
+            tracing::warn!("retention pass still running at shutdown: left for the next start");
+        }
     }
 }
 

@@ -82,7 +82,7 @@ pub(crate) async fn run(args: &BenchConsoleArgs) -> anyhow::Result<()> {
     let conn = client::connect(&local.addr).await?;
     let ids = define_channels(&conn, args.channels, "daniell").await?;
     let (normal_volts, over_volts) = test_voltages("daniell");
-    let mut load = Load {
+    let load = Load {
         per_channel: 200,
         batch: BATCH,
         alert_every: 0,
@@ -98,6 +98,44 @@ pub(crate) async fn run(args: &BenchConsoleArgs) -> anyhow::Result<()> {
     let (overview, overview_bytes) = time_overview(web, args.loads).await?;
     let page_assets_ms = time_assets(web).await?;
 
+    let live = live_phase(args, &conn, &ids, load, web, &clock).await?;
+    tokio::time::sleep(Duration::from_secs(2)).await;
+    let webhook = clock.latencies_ms();
+    local.stop().await;
+    let report = ConsoleReport {
+        channels: args.channels,
+        overview_p50_ms: percentile(&overview, 0.5),
+        overview_p99_ms: percentile(&overview, 0.99),
+        overview_bytes,
+        page_assets_ms,
+        offered_rate: args.rate,
+        readings_per_s: live.readings_per_s,
+        live_events: live.latencies_ms.len(),
+        live_p50_ms: percentile(&live.latencies_ms, 0.5),
+        live_p99_ms: percentile(&live.latencies_ms, 0.99),
+        webhook_deliveries: webhook.len(),
+        webhook_p50_ms: (!webhook.is_empty()).then(|| percentile(&webhook, 0.5)),
+        webhook_p99_ms: (!webhook.is_empty()).then(|| percentile(&webhook, 0.99)),
+    };
+    print_report(&report, args.json)
+}
+
+/// What the paced phase measured.
+struct LivePhase {
+    readings_per_s: f64,
+    /// Sorted ack → live event times of the followed channel, ms.
+    latencies_ms: Vec<f64>,
+}
+
+/// The paced load with alerts, the first channel followed on the live feed.
+async fn live_phase(
+    args: &BenchConsoleArgs,
+    conn: &client::Conn,
+    ids: &[String],
+    mut load: Load,
+    web: std::net::SocketAddr,
+    clock: &AlertClock,
+) -> anyhow::Result<LivePhase> {
     let feed = LiveFeed::open(web, &ids[0]).await?;
     let acks: AckLog = Arc::default();
     let per_channel = (args.rate * args.seconds / f64::from(args.channels)).ceil() as u64;
@@ -109,28 +147,15 @@ pub(crate) async fn run(args: &BenchConsoleArgs) -> anyhow::Result<()> {
         BATCH as f64 * f64::from(args.channels) / args.rate,
     ));
     let start = Instant::now();
-    let (accepted, _) = load.drive(&conn, ids.clone(), &clock).await?;
+    let (accepted, _) = load.drive(conn, ids.to_vec(), clock).await?;
     let elapsed = start.elapsed().as_secs_f64();
-    tokio::time::sleep(Duration::from_secs(2)).await;
-    let live = feed.latencies_ms(&acks.lock().expect("poisoned"), &ids[0]);
-    let webhook = clock.latencies_ms();
-    local.stop().await;
-    let report = ConsoleReport {
-        channels: args.channels,
-        overview_p50_ms: percentile(&overview, 0.5),
-        overview_p99_ms: percentile(&overview, 0.99),
-        overview_bytes,
-        page_assets_ms,
-        offered_rate: args.rate,
+    // The last batches' events are still on their way.
+    tokio::time::sleep(Duration::from_millis(500)).await;
+    let latencies_ms = feed.latencies_ms(&acks.lock().expect("poisoned"), &ids[0]);
+    Ok(LivePhase {
         readings_per_s: accepted as f64 / elapsed,
-        live_events: live.len(),
-        live_p50_ms: percentile(&live, 0.5),
-        live_p99_ms: percentile(&live, 0.99),
-        webhook_deliveries: webhook.len(),
-        webhook_p50_ms: (!webhook.is_empty()).then(|| percentile(&webhook, 0.5)),
-        webhook_p99_ms: (!webhook.is_empty()).then(|| percentile(&webhook, 0.99)),
-    };
-    print_report(&report, args.json)
+        latencies_ms,
+    })
 }
 
 /// A webhook receiver on loopback: each raised alert's arrival goes to `clock`.
