@@ -256,17 +256,25 @@ fn only_prints(command: &Command) -> bool {
 }
 
 /// `gibbsline db stats | head`: the reader leaves and the next write gets
-/// EPIPE, which `println!` turns into a panic. Rust ignores SIGPIPE at
-/// start; a command that only prints takes the default back and ends
-/// quietly, as other command-line tools do. Never for anything that
-/// serves: a peer that hangs up must not end a server.
+/// EPIPE, which `println!` turns into a panic. A command that only prints
+/// then ends quietly with success, as other command-line tools do.
+/// SIGPIPE itself stays ignored (Rust's default): hyper writes to its
+/// sockets with `writev`, which raises SIGPIPE when a server hangs up, and
+/// that must be an error the command reports, not a silent death.
 fn exit_quietly_when_the_reader_leaves() {
-    // SAFETY: called once, before any thread or runtime is started;
-    // setting a signal's disposition to its default is async-signal-safe
-    // and touches no Rust state.
-    unsafe {
-        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
-    }
+    let default_hook = std::panic::take_hook();
+    std::panic::set_hook(Box::new(move |info| {
+        let message = info
+            .payload()
+            .downcast_ref::<String>()
+            .map(String::as_str)
+            .or_else(|| info.payload().downcast_ref::<&str>().copied())
+            .unwrap_or("");
+        if message.starts_with("failed printing to stdout") && message.contains("Broken pipe") {
+            std::process::exit(0);
+        }
+        default_hook(info);
+    }));
 }
 
 fn block_on<F: std::future::Future<Output = anyhow::Result<()>>>(f: F) -> anyhow::Result<()> {

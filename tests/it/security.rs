@@ -364,7 +364,7 @@ async fn cli_speaks_tls_with_certificates_and_tokens() {
     .await
     .unwrap();
     let stderr = String::from_utf8_lossy(&plain.stderr);
-    assert_eq!(plain.status.code(), Some(3), "{stderr}");
+    assert_eq!(plain.status.code(), Some(3), "{:?}: {stderr}", plain.status);
     assert_eq!(stderr.trim().lines().count(), 1, "{stderr}");
     assert!(stderr.contains("https://"), "{stderr}");
 
