@@ -13,7 +13,7 @@
 use crate::harness::*;
 use crate::web::request;
 use base64::Engine;
-use gibbsline::auth::{Role, TokenSpec, sha256_hex};
+use gibbsline::auth::Role;
 use gibbsline::pb;
 use serde_json::{Value, json};
 use std::net::SocketAddr;
@@ -168,13 +168,8 @@ impl Browser {
     }
 }
 
-fn token(name: &str, role: Role, secret: &str) -> TokenSpec {
-    TokenSpec {
-        name: name.into(),
-        role,
-        sha256: sha256_hex(secret),
-        channels: vec![],
-    }
+fn token(name: &str, role: Role, secret: &str) -> gibbsline::auth::TokenSpec {
+    crate::security::token(name, role, secret, &[])
 }
 
 /// The simulated bench as its own process, streaming to `grpc`.

@@ -5,7 +5,7 @@
 
 use crate::harness::*;
 use crate::web::{self, Events, assert_documented, request};
-use gibbsline::auth::{Role, TokenSpec, sha256_hex};
+use gibbsline::auth::Role;
 use gibbsline::pb;
 use gibbsline::pb::ingest_service_client::IngestServiceClient;
 use serde_json::{Value, json};
@@ -259,13 +259,8 @@ async fn bad_input_is_named_and_unknown_things_are_not_found() {
     server.stop().await;
 }
 
-fn token(name: &str, role: Role, secret: &str) -> TokenSpec {
-    TokenSpec {
-        name: name.into(),
-        role,
-        sha256: sha256_hex(secret),
-        channels: vec![],
-    }
+fn token(name: &str, role: Role, secret: &str) -> gibbsline::auth::TokenSpec {
+    crate::security::token(name, role, secret, &[])
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

@@ -32,7 +32,8 @@ fn pki() -> Pki {
     }
 }
 
-fn token(name: &str, role: Role, secret: &str, channels: &[&str]) -> TokenSpec {
+/// A token table entry for `secret` (its digest), granted `channels`.
+pub(crate) fn token(name: &str, role: Role, secret: &str, channels: &[&str]) -> TokenSpec {
     TokenSpec {
         name: name.into(),
         role,
