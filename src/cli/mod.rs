@@ -14,6 +14,7 @@ pub(crate) mod db;
 pub(crate) mod deliveries;
 pub(crate) mod demo;
 pub(crate) mod eval;
+pub(crate) mod import;
 pub(crate) mod names;
 pub(crate) mod output;
 pub(crate) mod readings;
@@ -83,6 +84,9 @@ pub(crate) enum Command {
     Rig(simulate::RigCommand),
     /// Stored readings of a channel, raw or in time buckets.
     Readings(readings::ReadingsArgs),
+    /// A recorded file (as `readings --format csv` writes it) into a
+    /// channel's history, through the normal ingest path.
+    Import(import::ImportArgs),
     /// Live state of one or all channels.
     State(state::StateArgs),
     /// Watch, list and acknowledge alerts.
@@ -234,6 +238,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Demo(args) => block_on(demo::run(&args)),
         Command::Rig(cmd) => block_on(simulate::run(&cmd)),
         Command::Readings(args) => block_on(readings::run(&args)),
+        Command::Import(args) => block_on(import::run(&args)),
         Command::State(args) => block_on(state::run(&args)),
         Command::Alerts(cmd) => block_on(alerts::run(&cmd)),
         Command::Channels(cmd) => block_on(channels::run(&cmd)),

@@ -12,6 +12,7 @@ mod flood;
 mod harness;
 mod history;
 mod hostile;
+mod import;
 mod metrics;
 mod notify;
 mod security;

@@ -1,0 +1,194 @@
+//! `gibbsline import`: what `readings --format csv` exported comes back
+//! the same into another server (a channel that signs discharge
+//! positive, so the sign is turned back on the way in), a second import
+//! stores nothing, and a bad line is refused by its line number.
+
+use crate::harness::*;
+use gibbsline::pb;
+use std::process::Command;
+
+fn bin() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_gibbsline"))
+}
+
+async fn output_of(mut command: Command) -> std::process::Output {
+    tokio::task::spawn_blocking(move || command.output().unwrap())
+        .await
+        .unwrap()
+}
+
+fn def() -> pb::Channel {
+    pb::Channel {
+        current_sign: pb::CurrentSign::DischargePositive as i32,
+        ..channel_def("rec-1", "vanadium-redox")
+    }
+}
+
+/// Charge, rest, discharge: instrument amps discharge positive.
+fn recorded(t0: i64) -> Vec<pb::Reading> {
+    (1..=300u64)
+        .map(|s| {
+            let amps = match s {
+                1..=120 => -1.5,
+                121..=180 => 0.0,
+                _ => 1.25,
+            };
+            let volts = 1.30 + 0.001 * (s % 120) as f64 + 1.0 / 3.0 * 1e-3;
+            pb::Reading {
+                seq: s,
+                time_unix_ns: t0 + s as i64 * 1_000_000_007,
+                volts,
+                amps: Some(amps),
+                temp_c: Some(24.0 + s as f64 / 7.0),
+            }
+        })
+        .collect()
+}
+
+async fn import(addr: &str, file: &std::path::Path) -> serde_json::Value {
+    let mut cmd = bin();
+    cmd.args([
+        "import",
+        "--connect",
+        addr,
+        "--channel",
+        "rec-1",
+        "--format",
+        "json",
+        "--batch",
+        "64",
+    ])
+    .arg(file);
+    let out = output_of(cmd).await;
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    v[0].clone()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_export_imports_back_the_same_once() {
+    let (dir, db_a) = temp_db();
+    let a = Server::start(&db_a).await;
+    let ch_a = a.channel().await;
+    put_channel(&ch_a, def()).await;
+    let t0 = now_ns() - 3_600_000_000_000;
+    let mut ingest = pb::ingest_service_client::IngestServiceClient::new(ch_a.clone());
+    let batch = pb::ReadingBatch {
+        channel_id: "rec-1".into(),
+        batch_id: 1,
+        readings: recorded(t0),
+    };
+    send_batches(&mut ingest, vec![batch]).await;
+    let mut export = bin();
+    export.args([
+        "readings",
+        "--connect",
+        &a.addr.to_string(),
+        "--channel",
+        "rec-1",
+        "--format",
+        "csv",
+    ]);
+    let out = output_of(export).await;
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let csv_path = dir.path().join("rec-1.csv");
+    std::fs::write(&csv_path, &out.stdout).unwrap();
+
+    let db_b = dir.path().join("b.db");
+    let b = Server::start(&db_b).await;
+    let ch_b = b.channel().await;
+    put_channel(&ch_b, def()).await;
+    let addr_b = b.addr.to_string();
+    let first = import(&addr_b, &csv_path).await;
+    assert_eq!(
+        (
+            first["rows_read"].as_u64(),
+            first["stored"].as_u64(),
+            first["rejected"].as_u64()
+        ),
+        (Some(300), Some(300), Some(0))
+    );
+
+    let mut history_a = pb::history_service_client::HistoryServiceClient::new(ch_a.clone());
+    let mut history_b = pb::history_service_client::HistoryServiceClient::new(ch_b.clone());
+    let was = stored_readings(&mut history_a, "rec-1").await;
+    let now = stored_readings(&mut history_b, "rec-1").await;
+    assert_eq!(was.len(), 300);
+    for (x, y) in was.iter().zip(&now) {
+        // Bit for bit, raw and derived (the same readings in the same order
+        // derive the same state).
+        assert_eq!(
+            (x.seq, x.time_unix_ns, x.volts.to_bits()),
+            (y.seq, y.time_unix_ns, y.volts.to_bits())
+        );
+        assert_eq!(
+            x.amps_charge_positive.map(f64::to_bits),
+            y.amps_charge_positive.map(f64::to_bits)
+        );
+        assert_eq!(x.temp_c.map(f64::to_bits), y.temp_c.map(f64::to_bits));
+        let (dx, dy) = (x.derived.as_ref().unwrap(), y.derived.as_ref().unwrap());
+        assert_eq!(
+            dx.charge_ah.to_bits(),
+            dy.charge_ah.to_bits(),
+            "seq {}",
+            x.seq
+        );
+        assert_eq!(
+            dx.soc_fused.map(f64::to_bits),
+            dy.soc_fused.map(f64::to_bits),
+            "seq {}",
+            x.seq
+        );
+    }
+    // Charge-positive on the wire out, so the instrument's discharge-positive
+    // sign was turned back on the way in: charging first.
+    assert_eq!(now[0].amps_charge_positive, Some(1.5));
+
+    let again = import(&addr_b, &csv_path).await;
+    assert_eq!(
+        (again["stored"].as_u64(), again["duplicates"].as_u64()),
+        (Some(0), Some(300))
+    );
+
+    // A damaged copy: one value unreadable, one reading the server refuses.
+    let text = String::from_utf8(out.stdout).unwrap();
+    let mut lines: Vec<String> = text.lines().map(str::to_string).collect();
+    let header: Vec<&str> = lines[0].split(',').collect();
+    let volts_at = header.iter().position(|h| *h == "volts").unwrap();
+    let mut cells: Vec<String> = lines[5].split(',').map(str::to_string).collect();
+    cells[volts_at] = "1;2".into();
+    lines[5] = cells.join(",");
+    let mut cells: Vec<String> = lines[9].split(',').map(str::to_string).collect();
+    cells[volts_at] = "NaN".into();
+    lines[9] = cells.join(",");
+    let damaged = dir.path().join("damaged.csv");
+    std::fs::write(&damaged, lines.join("\n")).unwrap();
+    let db_c = dir.path().join("c.db");
+    let c = Server::start(&db_c).await;
+    put_channel(&c.channel().await, def()).await;
+    let report = import(&c.addr.to_string(), &damaged).await;
+    assert_eq!(
+        (report["stored"].as_u64(), report["rejected"].as_u64()),
+        (Some(298), Some(2))
+    );
+    let refusals = report["refusals"].as_array().unwrap();
+    assert_eq!(
+        (refusals[0]["line"].as_u64(), refusals[0]["field"].as_str()),
+        (Some(6), Some("volts"))
+    );
+    assert_eq!(
+        (refusals[1]["line"].as_u64(), refusals[1]["field"].as_str()),
+        (Some(10), Some("volts"))
+    );
+    for s in [a, b, c] {
+        s.stop().await;
+    }
+}
