@@ -1,5 +1,6 @@
 //! Command-line definitions (stage one: flags only, no I/O) and dispatch.
 
+pub(crate) mod agent;
 pub(crate) mod alerts;
 pub(crate) mod bench;
 pub(crate) mod bench_baseline;

@@ -14,11 +14,7 @@ pub(crate) fn run(args: &ServeArgs) -> anyhow::Result<()> {
     config
         .check_exposure()
         .map_err(|e| UsageError(e.to_string()))?;
-    tracing_subscriber::fmt()
-        .with_env_filter(
-            tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
-        )
-        .init();
+    init_logging();
     // Each connection is a descriptor; the common soft limit of 1024 would
     // make a few hundred idle clients lock the rest out. Raised to the hard
     // limit (the accept loop still backs off if even that runs out).
@@ -121,7 +117,16 @@ pub(crate) async fn bind_console(addr: &str) -> anyhow::Result<Option<tokio::net
     }
 }
 
-async fn shutdown_signal() {
+/// Logs to stderr, `RUST_LOG` or info (the server and the rig agent).
+pub(crate) fn init_logging() {
+    tracing_subscriber::fmt()
+        .with_env_filter(
+            tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
+        )
+        .init();
+}
+
+pub(crate) async fn shutdown_signal() {
     let ctrl_c = tokio::signal::ctrl_c();
     #[cfg(unix)]
     {

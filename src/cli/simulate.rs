@@ -6,6 +6,12 @@ use std::time::Duration;
 
 #[derive(Debug, clap::Subcommand)]
 pub(crate) enum RigCommand {
+    /// Read real instruments into a local spool and stream them to a server.
+    Run {
+        /// The agent's file (`connect`, `spool`, `[[source]]`).
+        #[arg(long)]
+        config: std::path::PathBuf,
+    },
     /// Stream the simulated bench to a server; resumes after restarts.
     Simulate {
         #[arg(long, default_value = DEFAULT_ADDR)]
@@ -22,22 +28,34 @@ pub(crate) enum RigCommand {
 }
 
 pub(crate) async fn run(cmd: &RigCommand) -> anyhow::Result<()> {
-    let RigCommand::Simulate {
-        connect,
-        channels,
-        speed,
-        duration,
-    } = cmd;
-    if *channels == 0 || *channels > 10_000 {
+    match cmd {
+        RigCommand::Run { config } => super::agent::run(config).await,
+        RigCommand::Simulate {
+            connect,
+            channels,
+            speed,
+            duration,
+        } => simulate(connect, *channels, *speed, *duration).await,
+    }
+}
+
+/// The simulated bench, streaming to `connect`.
+async fn simulate(
+    connect: &str,
+    channels: usize,
+    speed: f64,
+    duration: Option<Duration>,
+) -> anyhow::Result<()> {
+    if channels == 0 || channels > 10_000 {
         return Err(UsageError(format!("--channels {channels}: must be from 1 to 10000")).into());
     }
-    if !(speed.is_finite() && *speed > 0.0 && *speed <= 10_000.0) {
+    if !(speed.is_finite() && speed > 0.0 && speed <= 10_000.0) {
         return Err(UsageError(format!(
             "--speed {speed}: must be above 0 and at most 10000"
         ))
         .into());
     }
-    let sim = rig::harbour_lane(*channels, 11);
+    let sim = rig::harbour_lane(channels, 11);
     rig::define_channels(connect, &sim).await?;
     let stats = std::sync::Arc::new(rig::RigStats::default());
     let stop = stats.clone();
@@ -46,12 +64,12 @@ pub(crate) async fn run(cmd: &RigCommand) -> anyhow::Result<()> {
         stop.stop.store(true, std::sync::atomic::Ordering::Relaxed);
     });
     let opts = rig::RigOptions {
-        speed: *speed,
+        speed,
         readings_per_sim_s: 1.0,
-        duration: *duration,
+        duration,
         quiet: false,
     };
-    rig::run(connect.clone(), sim, opts, stats.clone()).await?;
+    rig::run(connect.to_string(), sim, opts, stats.clone()).await?;
     use std::sync::atomic::Ordering::Relaxed;
     println!(
         "rig: {} readings sent, {} acknowledged, {} reconnects",

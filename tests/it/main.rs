@@ -1,6 +1,7 @@
 //! Integration tests: the real server on 127.0.0.1:0 with a real SQLite
 //! file, spoken to by a real tonic client.
 
+mod agent;
 mod alerts;
 mod browser;
 mod chunks;

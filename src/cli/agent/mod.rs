@@ -1,0 +1,278 @@
+//! `gibbsline rig run --config rig.toml`: the piece next to the
+//! instruments. Each `[[source]]` is polled on its period into one
+//! channel; every reading is written to a local spool (an embedded
+//! SQLite file, fsynced per write) before anything else, and streamed to
+//! the server from there; a spooled reading is deleted only after the
+//! server has acknowledged it. With the server away the agent keeps
+//! measuring into the spool (bounded by `max_spooled`; past it the oldest
+//! are dropped, counted and warned about) and replays in order when it
+//! comes back, from the server's resume point.
+
+mod scpi;
+mod spool;
+mod uplink;
+
+use super::UsageError;
+use serde::Deserialize;
+use std::path::PathBuf;
+use std::sync::Arc;
+use std::time::Duration;
+
+/// The agent's file.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(crate) struct RigFile {
+    /// The server, `host:port` (token and TLS from the environment as for
+    /// every client command).
+    pub connect: String,
+    /// The spool file; created if missing.
+    pub spool: PathBuf,
+    /// Readings kept in the spool at most, all channels; the oldest go first.
+    #[serde(default = "default_max_spooled")]
+    pub max_spooled: u64,
+    pub source: Vec<SourceSpec>,
+}
+
+fn default_max_spooled() -> u64 {
+    10_000_000
+}
+
+/// One instrument channel.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(crate) struct SourceSpec {
+    pub channel_id: String,
+    /// `scpi` (today's only kind).
+    pub kind: String,
+    /// `host:port` of the instrument (5025 is the common SCPI port).
+    pub address: String,
+    /// How often to read, e.g. `100ms`, `1s`.
+    pub period: String,
+    /// How long one query may take (default 1s).
+    #[serde(default)]
+    pub timeout: Option<String>,
+    /// The instrument's sign of current: `charge_positive` or
+    /// `discharge_positive`.
+    #[serde(default = "default_sign")]
+    pub current_sign: String,
+    pub volts: Quantity,
+    #[serde(default)]
+    pub amps: Option<Quantity>,
+    #[serde(default)]
+    pub temp_c: Option<Quantity>,
+}
+
+fn default_sign() -> String {
+    "charge_positive".into()
+}
+
+/// How one quantity is read.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(crate) struct Quantity {
+    /// The query, e.g. `MEAS:VOLT?`.
+    pub query: String,
+    /// `V`/`mV`, `A`/`mA`, `C`/`K`.
+    pub unit: String,
+}
+
+/// A source as the agent runs it: validated, units turned into factors.
+#[derive(Debug, Clone)]
+pub(crate) struct Source {
+    pub channel_id: String,
+    pub address: String,
+    pub period: Duration,
+    pub timeout: Duration,
+    /// Multiplies the instrument's amps into charge-positive amps.
+    pub to_charge_positive: f64,
+    /// (query, scale, offset) for volts, amps, °C.
+    pub volts: (String, f64, f64),
+    pub amps: Option<(String, f64, f64)>,
+    pub temp_c: Option<(String, f64, f64)>,
+}
+
+fn unit_factor(
+    field: &str,
+    unit: &str,
+    allowed: &[(&str, f64, f64)],
+) -> Result<(f64, f64), UsageError> {
+    allowed
+        .iter()
+        .find(|(u, _, _)| *u == unit)
+        .map(|(_, scale, offset)| (*scale, *offset))
+        .ok_or_else(|| {
+            let names: Vec<&str> = allowed.iter().map(|(u, _, _)| *u).collect();
+            UsageError(format!(
+                "{field}.unit = {unit:?}: expected one of {names:?}"
+            ))
+        })
+}
+
+impl SourceSpec {
+    fn resolve(&self, at: &str) -> Result<Source, UsageError> {
+        if self.kind != "scpi" {
+            return Err(UsageError(format!(
+                "{at}.kind = {:?}: this build reads scpi sources",
+                self.kind
+            )));
+        }
+        let duration = |field: &str, text: &str| {
+            super::parse_duration(text).map_err(|e| UsageError(format!("{at}.{field}: {e}")))
+        };
+        let period = duration("period", &self.period)?;
+        if period < Duration::from_millis(10) {
+            return Err(UsageError(format!(
+                "{at}.period = {:?}: at least 10ms",
+                self.period
+            )));
+        }
+        let timeout = duration("timeout", self.timeout.as_deref().unwrap_or("1s"))?;
+        let to_charge_positive = match self.current_sign.as_str() {
+            "charge_positive" => 1.0,
+            "discharge_positive" => -1.0,
+            other => {
+                return Err(UsageError(format!(
+                    "{at}.current_sign = {other:?}: expected charge_positive or discharge_positive"
+                )));
+            }
+        };
+        let q = |name: &str, q: &Quantity, units: &[(&str, f64, f64)]| {
+            unit_factor(&format!("{at}.{name}"), &q.unit, units)
+                .map(|(s, o)| (q.query.clone(), s, o))
+        };
+        Ok(Source {
+            channel_id: self.channel_id.clone(),
+            address: self.address.clone(),
+            period,
+            timeout,
+            to_charge_positive,
+            volts: q("volts", &self.volts, &[("V", 1.0, 0.0), ("mV", 1e-3, 0.0)])?,
+            amps: self
+                .amps
+                .as_ref()
+                .map(|a| q("amps", a, &[("A", 1.0, 0.0), ("mA", 1e-3, 0.0)]))
+                .transpose()?,
+            temp_c: self
+                .temp_c
+                .as_ref()
+                .map(|t| q("temp_c", t, &[("C", 1.0, 0.0), ("K", 1.0, -273.15)]))
+                .transpose()?,
+        })
+    }
+}
+
+/// Reads and checks the agent's file.
+pub(crate) fn load(path: &std::path::Path) -> Result<(RigFile, Vec<Source>), UsageError> {
+    let name = path.display();
+    let text = std::fs::read_to_string(path).map_err(|e| UsageError(format!("{name}: {e}")))?;
+    let file: RigFile = toml::from_str(&text).map_err(|e| UsageError(format!("{name}: {e}")))?;
+    let mut sources = Vec::new();
+    for (i, s) in file.source.iter().enumerate() {
+        let at = format!("{name}: source[{i}]");
+        if sources
+            .iter()
+            .any(|o: &Source| o.channel_id == s.channel_id)
+        {
+            return Err(UsageError(format!(
+                "{at}.channel_id = {:?}: two sources feed it",
+                s.channel_id
+            )));
+        }
+        sources.push(s.resolve(&at)?);
+    }
+    if sources.is_empty() {
+        return Err(UsageError(format!("{name}: no [[source]]")));
+    }
+    Ok((file, sources))
+}
+
+/// Runs every source and its uplink until Ctrl-C or SIGTERM.
+pub(crate) async fn run(config: &std::path::Path) -> anyhow::Result<()> {
+    let (file, sources) = load(config)?;
+    super::serve::init_logging();
+    let spool = Arc::new(spool::Spool::open(&file.spool, file.max_spooled).await?);
+    let mut tasks = Vec::new();
+    for source in sources {
+        let wake = Arc::new(tokio::sync::Notify::new());
+        let known = Arc::new(tokio::sync::Notify::new());
+        tasks.push(tokio::spawn(scpi::sample(
+            source.clone(),
+            spool.clone(),
+            wake.clone(),
+            known.clone(),
+        )));
+        tasks.push(tokio::spawn(uplink::run(
+            file.connect.clone(),
+            source.channel_id.clone(),
+            spool.clone(),
+            wake,
+            known,
+        )));
+    }
+    tracing::info!(sources = tasks.len() / 2, spool = %file.spool.display(), "rig agent running");
+    super::serve::shutdown_signal().await;
+    for t in tasks {
+        t.abort();
+    }
+    spool.close().await;
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn load_text(text: &str) -> Result<Vec<Source>, String> {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("rig.toml");
+        std::fs::write(&path, text).unwrap();
+        load(&path).map(|(_, s)| s).map_err(|e| e.0)
+    }
+
+    const HEAD: &str = "connect = \"127.0.0.1:50051\"\nspool = \"spool.db\"\n";
+
+    fn source(extra: &str) -> String {
+        format!(
+            "{HEAD}[[source]]\nchannel_id = \"b3\"\nkind = \"scpi\"\naddress = \"10.0.0.5:5025\"\nperiod = \"100ms\"\n\
+             volts = {{ query = \"MEAS:VOLT?\", unit = \"mV\" }}\n{extra}"
+        )
+    }
+
+    #[test]
+    fn units_become_factors_and_the_sign_a_multiplier() {
+        let text = source(
+            "current_sign = \"discharge_positive\"\namps = { query = \"MEAS:CURR?\", unit = \"mA\" }\n\
+             temp_c = { query = \"MEAS:TEMP?\", unit = \"K\" }\n",
+        );
+        let s = &load_text(&text).unwrap()[0];
+        assert_eq!(s.volts.1, 1e-3);
+        assert_eq!(s.amps.as_ref().unwrap().1, 1e-3);
+        assert_eq!(s.temp_c.as_ref().unwrap().2, -273.15);
+        assert_eq!(s.to_charge_positive, -1.0);
+        assert_eq!(s.period, Duration::from_millis(100));
+    }
+
+    #[test]
+    fn a_bad_entry_is_named() {
+        let bad_unit = load_text(&source(
+            "amps = { query = \"MEAS:CURR?\", unit = \"uA\" }\n",
+        ))
+        .unwrap_err();
+        assert!(
+            bad_unit.contains("source[0].amps.unit = \"uA\""),
+            "{bad_unit}"
+        );
+        let bad_sign = load_text(&source("current_sign = \"positive\"\n")).unwrap_err();
+        assert!(bad_sign.contains("source[0].current_sign"), "{bad_sign}");
+        let modbus =
+            load_text(&source("").replace("kind = \"scpi\"", "kind = \"modbus\"")).unwrap_err();
+        assert!(modbus.contains("source[0].kind = \"modbus\""), "{modbus}");
+        let twice = format!("{}{}", source(""), source("").trim_start_matches(HEAD));
+        assert!(
+            load_text(&twice)
+                .unwrap_err()
+                .contains("source[1].channel_id = \"b3\"")
+        );
+        assert!(load_text(HEAD).unwrap_err().contains("source"));
+    }
+}

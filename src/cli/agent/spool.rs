@@ -1,0 +1,204 @@
+//! The agent's spool: every reading is here, fsynced, before it goes to
+//! the server, and leaves only after the server acknowledged it. One
+//! SQLite file (WAL, `synchronous = FULL`) of the agent's own; per
+//! channel, the readings in seq order and the next seq to give.
+
+use gibbsline::pb;
+use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
+use sqlx::{Row, SqlitePool};
+use std::path::Path;
+use std::sync::atomic::{AtomicU64, Ordering::SeqCst};
+
+pub(crate) struct Spool {
+    pool: SqlitePool,
+    max_rows: u64,
+    /// Readings spooled now, all channels (counted once at open, then
+    /// kept: a COUNT per write would scan the spool).
+    rows: AtomicU64,
+}
+
+const SCHEMA: &str = "
+CREATE TABLE IF NOT EXISTS spooled (
+    channel_id TEXT NOT NULL, seq INTEGER NOT NULL, time_ns INTEGER NOT NULL,
+    volts REAL NOT NULL, amps_charge_positive REAL, temp_c REAL,
+    PRIMARY KEY (channel_id, seq)) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS next_seq (channel_id TEXT PRIMARY KEY, next INTEGER NOT NULL);
+CREATE TABLE IF NOT EXISTS dropped (channel_id TEXT PRIMARY KEY, n INTEGER NOT NULL);
+";
+
+/// One reading as spooled: current charge-positive.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct Spooled {
+    pub seq: u64,
+    pub time_ns: i64,
+    pub volts: f64,
+    pub amps_charge_positive: Option<f64>,
+    pub temp_c: Option<f64>,
+}
+
+impl Spooled {
+    /// On the wire, current in the channel's sign (`to_wire` ±1).
+    pub(crate) fn to_pb(&self, to_wire: f64) -> pb::Reading {
+        pb::Reading {
+            seq: self.seq,
+            time_unix_ns: self.time_ns,
+            volts: self.volts,
+            amps: self.amps_charge_positive.map(|a| a * to_wire),
+            temp_c: self.temp_c,
+        }
+    }
+}
+
+impl Spool {
+    pub(crate) async fn open(path: &Path, max_rows: u64) -> anyhow::Result<Spool> {
+        let options = SqliteConnectOptions::new()
+            .filename(path)
+            .create_if_missing(true)
+            .journal_mode(SqliteJournalMode::Wal)
+            .synchronous(SqliteSynchronous::Full);
+        // One connection: writes from the samplers and trims from the
+        // uplinks take turns, and each is its own fsynced transaction.
+        let pool = SqlitePoolOptions::new()
+            .max_connections(1)
+            .connect_with(options)
+            .await
+            .map_err(|e| anyhow::anyhow!("spool {}: {e}", path.display()))?;
+        sqlx::raw_sql(SCHEMA).execute(&pool).await?;
+        let rows: i64 = sqlx::query("SELECT COUNT(*) AS n FROM spooled")
+            .fetch_one(&pool)
+            .await?
+            .get("n");
+        Ok(Spool {
+            pool,
+            max_rows,
+            rows: AtomicU64::new(rows as u64),
+        })
+    }
+
+    /// The next seq to give the channel's readings, once known.
+    pub(crate) async fn next_seq(&self, channel_id: &str) -> anyhow::Result<Option<u64>> {
+        let row = sqlx::query("SELECT next FROM next_seq WHERE channel_id = ?")
+            .bind(channel_id)
+            .fetch_optional(&self.pool)
+            .await?;
+        Ok(row.map(|r| r.get::<i64, _>("next") as u64))
+    }
+
+    /// Sets where a channel's seqs go on when the spool did not know
+    /// (a new spool): after what the server has.
+    pub(crate) async fn learn_next_seq(&self, channel_id: &str, next: u64) -> anyhow::Result<()> {
+        sqlx::query("INSERT OR IGNORE INTO next_seq (channel_id, next) VALUES (?, ?)")
+            .bind(channel_id)
+            .bind(next as i64)
+            .execute(&self.pool)
+            .await?;
+        Ok(())
+    }
+
+    /// Stores readings and the next seq together; drops the oldest
+    /// readings past the bound (how many, per channel, is kept).
+    pub(crate) async fn append(
+        &self,
+        channel_id: &str,
+        rows: &[Spooled],
+        next: u64,
+    ) -> anyhow::Result<u64> {
+        let mut tx = self.pool.begin().await?;
+        let mut added = 0;
+        for r in rows {
+            added += sqlx::query(
+                "INSERT OR IGNORE INTO spooled (channel_id, seq, time_ns, volts, amps_charge_positive, temp_c) VALUES (?, ?, ?, ?, ?, ?)",
+            )
+            .bind(channel_id)
+            .bind(r.seq as i64)
+            .bind(r.time_ns)
+            .bind(r.volts)
+            .bind(r.amps_charge_positive)
+            .bind(r.temp_c)
+            .execute(&mut *tx)
+            .await?
+            .rows_affected();
+        }
+        sqlx::query("INSERT INTO next_seq (channel_id, next) VALUES (?, ?) ON CONFLICT (channel_id) DO UPDATE SET next = excluded.next")
+            .bind(channel_id)
+            .bind(next as i64)
+            .execute(&mut *tx)
+            .await?;
+        let over = (self.rows.load(SeqCst) + added).saturating_sub(self.max_rows);
+        let dropped = drop_oldest(&mut tx, channel_id, over).await?;
+        tx.commit().await?;
+        self.rows.fetch_add(added, SeqCst);
+        self.rows
+            .fetch_sub(dropped.min(self.rows.load(SeqCst)), SeqCst);
+        Ok(dropped)
+    }
+
+    /// Up to `limit` readings of the channel after `after`, in seq order.
+    pub(crate) async fn after(
+        &self,
+        channel_id: &str,
+        after: u64,
+        limit: u32,
+    ) -> anyhow::Result<Vec<Spooled>> {
+        let rows = sqlx::query(
+            "SELECT seq, time_ns, volts, amps_charge_positive, temp_c FROM spooled WHERE channel_id = ? AND seq > ? ORDER BY seq LIMIT ?",
+        )
+        .bind(channel_id)
+        .bind(after as i64)
+        .bind(i64::from(limit))
+        .fetch_all(&self.pool)
+        .await?;
+        Ok(rows
+            .iter()
+            .map(|r| Spooled {
+                seq: r.get::<i64, _>("seq") as u64,
+                time_ns: r.get("time_ns"),
+                volts: r.get("volts"),
+                amps_charge_positive: r.get("amps_charge_positive"),
+                temp_c: r.get("temp_c"),
+            })
+            .collect())
+    }
+
+    /// Forgets the channel's readings up to `seq` (the server has them).
+    pub(crate) async fn trim(&self, channel_id: &str, seq: u64) -> anyhow::Result<()> {
+        let gone = sqlx::query("DELETE FROM spooled WHERE channel_id = ? AND seq <= ?")
+            .bind(channel_id)
+            .bind(seq as i64)
+            .execute(&self.pool)
+            .await?
+            .rows_affected();
+        self.rows
+            .fetch_sub(gone.min(self.rows.load(SeqCst)), SeqCst);
+        Ok(())
+    }
+
+    pub(crate) async fn close(&self) {
+        self.pool.close().await;
+    }
+}
+
+/// The channel's `over` oldest go (the spool is past its bound); counted.
+async fn drop_oldest(
+    tx: &mut sqlx::Transaction<'_, sqlx::Sqlite>,
+    channel_id: &str,
+    over: u64,
+) -> anyhow::Result<u64> {
+    if over == 0 {
+        return Ok(0);
+    }
+    let gone = sqlx::query(
+        "DELETE FROM spooled WHERE channel_id = ?1 AND seq IN (SELECT seq FROM spooled WHERE channel_id = ?1 ORDER BY seq LIMIT ?2)",
+    )
+    .bind(channel_id)
+    .bind(over as i64)
+    .execute(&mut **tx)
+    .await?
+    .rows_affected();
+    sqlx::query("INSERT INTO dropped (channel_id, n) VALUES (?, ?) ON CONFLICT (channel_id) DO UPDATE SET n = n + excluded.n")
+        .bind(channel_id)
+        .bind(gone as i64)
+        .execute(&mut **tx)
+        .await?;
+    Ok(gone)
+}

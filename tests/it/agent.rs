@@ -1,0 +1,173 @@
+//! `gibbsline rig run`: a scripted SCPI instrument on loopback (answers
+//! in scientific notation, in mA and K; sometimes slow, sometimes a reply
+//! that is not a number, sometimes a dropped connection), two channels
+//! polled at 10 Hz, the server SIGKILLed and away for a while, the agent
+//! SIGKILLed while it replays: every reading the agent spooled is stored
+//! once, in order, with seqs that run without a gap.
+
+use crate::crash::{connect, free_addr, spawn_server_with};
+use crate::harness::*;
+use gibbsline::pb;
+use std::process::{Child, Command, Stdio};
+use std::sync::Arc;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::time::Duration;
+use tokio::io::{AsyncBufReadExt, AsyncWriteExt, BufReader};
+
+/// Answers the queries a rig.toml names; every 23rd answer is garbage
+/// (then `SYST:ERR?` says why), every 37th comes too late, every 53rd
+/// connection-killing.
+async fn instrument() -> (std::net::SocketAddr, Arc<AtomicU64>) {
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+    let addr = listener.local_addr().unwrap();
+    let queries = Arc::new(AtomicU64::new(0));
+    let counter = queries.clone();
+    tokio::spawn(async move {
+        while let Ok((stream, _)) = listener.accept().await {
+            let counter = counter.clone();
+            tokio::spawn(async move {
+                let (read, mut write) = stream.into_split();
+                let mut lines = BufReader::new(read).lines();
+                while let Ok(Some(q)) = lines.next_line().await {
+                    let n = counter.fetch_add(1, Ordering::SeqCst);
+                    let reply = match q.trim() {
+                        "SYST:ERR?" => "-113,\"Undefined header\"".to_string(),
+                        _ if n % 53 == 52 => return,
+                        _ if n % 23 == 22 => "garbage".to_string(),
+                        "MEAS:VOLT?" => format!("{:+.6E}", 1.30 + (n % 100) as f64 * 1e-4),
+                        "MEAS:CURR?" => "+1.500000E+03".to_string(),
+                        "MEAS:TEMP?" => "+2.981500E+02".to_string(),
+                        _ => continue,
+                    };
+                    if n % 37 == 36 {
+                        tokio::time::sleep(Duration::from_millis(600)).await;
+                    }
+                    if write
+                        .write_all(format!("{reply}\n").as_bytes())
+                        .await
+                        .is_err()
+                    {
+                        return;
+                    }
+                }
+            });
+        }
+    });
+    (addr, queries)
+}
+
+fn rig_toml(server: &str, instrument: std::net::SocketAddr, spool: &std::path::Path) -> String {
+    let mut text = format!("connect = \"{server}\"\nspool = \"{}\"\n", spool.display());
+    for channel in ["rig-a", "rig-b"] {
+        text.push_str(&format!(
+            "\n[[source]]\nchannel_id = \"{channel}\"\nkind = \"scpi\"\naddress = \"{instrument}\"\nperiod = \"100ms\"\n\
+             timeout = \"300ms\"\ncurrent_sign = \"discharge_positive\"\n\
+             volts = {{ query = \"MEAS:VOLT?\", unit = \"V\" }}\n\
+             amps = {{ query = \"MEAS:CURR?\", unit = \"mA\" }}\n\
+             temp_c = {{ query = \"MEAS:TEMP?\", unit = \"K\" }}\n"
+        ));
+    }
+    text
+}
+
+fn spawn_agent(config: &std::path::Path, log: &std::path::Path) -> Child {
+    Command::new(env!("CARGO_BIN_EXE_gibbsline"))
+        .args(["rig", "run", "--config"])
+        .arg(config)
+        .env("RUST_LOG", "warn")
+        // Logs go to stdout, as the server's do.
+        .stdout(
+            std::fs::OpenOptions::new()
+                .create(true)
+                .append(true)
+                .open(log)
+                .unwrap(),
+        )
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap()
+}
+
+async fn stored(addr: &str, channel: &str) -> Vec<pb::StoredReading> {
+    let ch = connect(addr).await;
+    let mut history = pb::history_service_client::HistoryServiceClient::new(ch);
+    stored_readings(&mut history, channel).await
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn spooled_readings_survive_a_server_outage_and_an_agent_kill() {
+    let (dir, db) = temp_db();
+    let (instrument, queries) = instrument().await;
+    let addr = free_addr();
+    let off: [&std::ffi::OsStr; 2] = ["--http-listen".as_ref(), "off".as_ref()];
+    let mut server = spawn_server_with(&db, &addr, &off);
+    let ch = connect(&addr).await;
+    for id in ["rig-a", "rig-b"] {
+        let def = pb::Channel {
+            current_sign: pb::CurrentSign::ChargePositive as i32,
+            ..channel_def(id, "vanadium-redox")
+        };
+        put_channel(&ch, def).await;
+    }
+    let config = dir.path().join("rig.toml");
+    let spool = dir.path().join("spool.db");
+    std::fs::write(&config, rig_toml(&addr, instrument, &spool)).unwrap();
+    let log = dir.path().join("agent.log");
+    let mut agent = spawn_agent(&config, &log);
+    tokio::time::sleep(Duration::from_secs(3)).await;
+
+    // The server dies and stays away; the agent keeps measuring.
+    server.kill().unwrap();
+    server.wait().unwrap();
+    tokio::time::sleep(Duration::from_secs(5)).await;
+    let mut server = spawn_server_with(&db, &addr, &off);
+    connect(&addr).await;
+    // The agent dies while it replays; a new one takes over the spool.
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    agent.kill().unwrap();
+    agent.wait().unwrap();
+    let mut agent = spawn_agent(&config, &log);
+    tokio::time::sleep(Duration::from_secs(3)).await;
+    let _ = Command::new("kill")
+        .arg("-TERM")
+        .arg(agent.id().to_string())
+        .status();
+    agent.wait().unwrap();
+
+    for channel in ["rig-a", "rig-b"] {
+        let rows = stored(&addr, channel).await;
+        let seqs: Vec<u64> = rows.iter().map(|r| r.seq).collect();
+        // About 11 s at 10 Hz less failed reads: a gap-free run from 1.
+        assert!(seqs.len() > 40, "{channel}: {} readings", seqs.len());
+        assert_eq!(
+            seqs,
+            (1..=seqs.len() as u64).collect::<Vec<_>>(),
+            "{channel}"
+        );
+        assert!(
+            rows.windows(2)
+                .all(|w| w[0].time_unix_ns < w[1].time_unix_ns),
+            "{channel}: times rise"
+        );
+        let r = &rows[0];
+        // 1500 mA discharge-positive → 1.5 A charging; 298.15 K → 25 °C.
+        assert_eq!(r.amps_charge_positive, Some(-1.5));
+        assert!((r.temp_c.unwrap() - 25.0).abs() < 1e-9, "{:?}", r.temp_c);
+        assert!((1.30..1.32).contains(&r.volts), "{}", r.volts);
+    }
+    // Nothing is left waiting in the spool: all of it was acknowledged.
+    let left: i64 = {
+        let conn = rusqlite::Connection::open(&spool).unwrap();
+        conn.query_row("SELECT COUNT(*) FROM spooled", [], |r| r.get(0))
+            .unwrap()
+    };
+    assert_eq!(left, 0);
+    let log_text = std::fs::read_to_string(&log).unwrap();
+    assert!(
+        log_text.contains("Undefined header"),
+        "the instrument's error text is logged:\n{log_text}"
+    );
+    assert!(queries.load(Ordering::SeqCst) > 100);
+    server.kill().unwrap();
+    server.wait().unwrap();
+}
