@@ -171,3 +171,104 @@ async fn spooled_readings_survive_a_server_outage_and_an_agent_kill() {
     server.kill().unwrap();
     server.wait().unwrap();
 }
+
+/// A file an instrument program writes: `;`-separated with decimal
+/// commas, elapsed seconds, mA; lines appended, one arriving in two
+/// parts, the agent SIGKILLed and restarted, then the file cut short and
+/// written anew.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_followed_file_is_read_once_across_partial_lines_kills_and_truncation() {
+    let (dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    put_channel(&ch, channel_def("pstat-2", "vanadium-redox")).await;
+    let data = dir.path().join("run42.csv");
+    let line = |i: u64| format!("{},0;1,{:04};-1500,0;25,5\n", i, 3000 + i);
+    let append = |text: &str| {
+        use std::io::Write;
+        let mut f = std::fs::OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(&data)
+            .unwrap();
+        f.write_all(text.as_bytes()).unwrap();
+    };
+    append("time/s;Ewe/V;I/mA;T/degC\n");
+    (0..10).for_each(|i| append(&line(i)));
+    let config = dir.path().join("rig.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "connect = \"{}\"\nspool = \"{}\"\n\n[[source]]\nchannel_id = \"pstat-2\"\nkind = \"file\"\naddress = \"{}\"\n\
+             period = \"100ms\"\ndecimal_comma = true\n\
+             time = {{ column = \"time/s\", format = \"elapsed_s\", start = \"2026-12-03T08:00:00Z\" }}\n\
+             volts = {{ column = \"Ewe/V\", unit = \"V\" }}\namps = {{ column = \"I/mA\", unit = \"mA\" }}\n\
+             temp_c = {{ column = \"#4\", unit = \"C\" }}\n",
+            server.addr,
+            dir.path().join("spool.db").display(),
+            data.display()
+        ),
+    )
+    .unwrap();
+    let log = dir.path().join("agent.log");
+    let addr = server.addr.to_string();
+    let wait_for = |n: usize| {
+        let addr = addr.clone();
+        async move {
+            for _ in 0..100 {
+                let rows = stored(&addr, "pstat-2").await;
+                if rows.len() >= n {
+                    return rows;
+                }
+                tokio::time::sleep(Duration::from_millis(100)).await;
+            }
+            panic!("fewer than {n} readings stored");
+        }
+    };
+    let mut agent = spawn_agent(&config, &log);
+    wait_for(10).await;
+    (10..15).for_each(|i| append(&line(i)));
+    append("15,0;1,30");
+    wait_for(15).await;
+    tokio::time::sleep(Duration::from_millis(400)).await;
+    assert_eq!(
+        stored(&addr, "pstat-2").await.len(),
+        15,
+        "a partial line waits"
+    );
+    append("15;-1500,0;25,5\n");
+    wait_for(16).await;
+    agent.kill().unwrap();
+    agent.wait().unwrap();
+    (16..20).for_each(|i| append(&line(i)));
+    let mut agent = spawn_agent(&config, &log);
+    wait_for(20).await;
+    // Cut short and written anew: read from its start.
+    std::fs::write(
+        &data,
+        format!(
+            "time/s;Ewe/V;I/mA;T/degC\n{}{}{}",
+            line(100),
+            line(101),
+            line(102)
+        ),
+    )
+    .unwrap();
+    let rows = wait_for(23).await;
+    tokio::time::sleep(Duration::from_millis(400)).await;
+    agent.kill().unwrap();
+    agent.wait().unwrap();
+    let rows_now = stored(&addr, "pstat-2").await;
+    assert_eq!(rows_now.len(), 23, "nothing read twice");
+    let seqs: Vec<u64> = rows.iter().map(|r| r.seq).collect();
+    assert_eq!(seqs, (1..=23).collect::<Vec<_>>());
+    let start_ns = 1_796_284_800_000_000_000; // 2026-12-03T08:00:00Z
+    let r = &rows[2];
+    assert_eq!(r.time_unix_ns, start_ns + 2_000_000_000);
+    assert_eq!(r.volts, 1.3002);
+    assert_eq!(r.amps_charge_positive, Some(-1.5));
+    assert_eq!(r.temp_c, Some(25.5));
+    assert_eq!(rows[15].volts, 1.3015, "the line that came in two parts");
+    assert_eq!(rows[20].time_unix_ns, start_ns + 100_000_000_000);
+    server.stop().await;
+}

@@ -8,6 +8,7 @@
 //! are dropped, counted and warned about) and replays in order when it
 //! comes back, from the server's resume point.
 
+mod file;
 mod scpi;
 mod spool;
 mod uplink;
@@ -42,12 +43,22 @@ fn default_max_spooled() -> u64 {
 #[serde(deny_unknown_fields)]
 pub(crate) struct SourceSpec {
     pub channel_id: String,
-    /// `scpi` (today's only kind).
+    /// `scpi` or `file`.
     pub kind: String,
-    /// `host:port` of the instrument (5025 is the common SCPI port).
+    /// `host:port` of the instrument (5025 is the common SCPI port), or
+    /// the path of the file an instrument program writes.
     pub address: String,
-    /// How often to read, e.g. `100ms`, `1s`.
+    /// How often to read (or look for new lines), e.g. `100ms`, `1s`.
     pub period: String,
+    /// `file`: the time column and how its times are written.
+    #[serde(default)]
+    pub time: Option<TimeColumn>,
+    /// `file`: the field separator (`,`, `;` or `\t`); from the header if unset.
+    #[serde(default)]
+    pub delimiter: Option<String>,
+    /// `file`: numbers written with a decimal comma (`1,234`).
+    #[serde(default)]
+    pub decimal_comma: bool,
     /// How long one query may take (default 1s).
     #[serde(default)]
     pub timeout: Option<String>,
@@ -70,22 +81,48 @@ fn default_sign() -> String {
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub(crate) struct Quantity {
-    /// The query, e.g. `MEAS:VOLT?`.
-    pub query: String,
+    /// `scpi`: the query, e.g. `MEAS:VOLT?`.
+    #[serde(default)]
+    pub query: Option<String>,
+    /// `file`: the column, by header name or `#n` (1-based).
+    #[serde(default)]
+    pub column: Option<String>,
     /// `V`/`mV`, `A`/`mA`, `C`/`K`.
     pub unit: String,
+}
+
+/// `file`: where a line's time is.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(crate) struct TimeColumn {
+    /// By header name or `#n`.
+    pub column: String,
+    /// `iso8601` (no offset: UTC), `epoch_s`, `epoch_ms`, or `elapsed_s`
+    /// (seconds since `start`).
+    pub format: String,
+    /// For `elapsed_s`: when the recording began (RFC 3339).
+    #[serde(default)]
+    pub start: Option<String>,
+}
+
+/// How a source is read.
+#[derive(Debug, Clone)]
+pub(crate) enum Kind {
+    Scpi,
+    File(file::Layout),
 }
 
 /// A source as the agent runs it: validated, units turned into factors.
 #[derive(Debug, Clone)]
 pub(crate) struct Source {
     pub channel_id: String,
+    pub kind: Kind,
     pub address: String,
     pub period: Duration,
     pub timeout: Duration,
     /// Multiplies the instrument's amps into charge-positive amps.
     pub to_charge_positive: f64,
-    /// (query, scale, offset) for volts, amps, °C.
+    /// (query or column, scale, offset) for volts, amps, °C.
     pub volts: (String, f64, f64),
     pub amps: Option<(String, f64, f64)>,
     pub temp_c: Option<(String, f64, f64)>,
@@ -110,12 +147,15 @@ fn unit_factor(
 
 impl SourceSpec {
     fn resolve(&self, at: &str) -> Result<Source, UsageError> {
-        if self.kind != "scpi" {
-            return Err(UsageError(format!(
-                "{at}.kind = {:?}: this build reads scpi sources",
-                self.kind
-            )));
-        }
+        let kind = match self.kind.as_str() {
+            "scpi" => Kind::Scpi,
+            "file" => Kind::File(file::Layout::of(self, at)?),
+            other => {
+                return Err(UsageError(format!(
+                    "{at}.kind = {other:?}: this build reads scpi and file sources"
+                )));
+            }
+        };
         let duration = |field: &str, text: &str| {
             super::parse_duration(text).map_err(|e| UsageError(format!("{at}.{field}: {e}")))
         };
@@ -136,11 +176,23 @@ impl SourceSpec {
                 )));
             }
         };
+        let file = matches!(kind, Kind::File(_));
         let q = |name: &str, q: &Quantity, units: &[(&str, f64, f64)]| {
-            unit_factor(&format!("{at}.{name}"), &q.unit, units)
-                .map(|(s, o)| (q.query.clone(), s, o))
+            let (key, given) = if file {
+                ("column", q.column.clone())
+            } else {
+                ("query", q.query.clone())
+            };
+            let given = given.ok_or_else(|| {
+                UsageError(format!(
+                    "{at}.{name}.{key}: required for a {} source",
+                    self.kind
+                ))
+            })?;
+            unit_factor(&format!("{at}.{name}"), &q.unit, units).map(|(s, o)| (given, s, o))
         };
         Ok(Source {
+            kind,
             channel_id: self.channel_id.clone(),
             address: self.address.clone(),
             period,
@@ -195,12 +247,20 @@ pub(crate) async fn run(config: &std::path::Path) -> anyhow::Result<()> {
     for source in sources {
         let wake = Arc::new(tokio::sync::Notify::new());
         let known = Arc::new(tokio::sync::Notify::new());
-        tasks.push(tokio::spawn(scpi::sample(
-            source.clone(),
-            spool.clone(),
-            wake.clone(),
-            known.clone(),
-        )));
+        tasks.push(match &source.kind {
+            Kind::Scpi => tokio::spawn(scpi::sample(
+                source.clone(),
+                spool.clone(),
+                wake.clone(),
+                known.clone(),
+            )),
+            Kind::File(_) => tokio::spawn(file::follow(
+                source.clone(),
+                spool.clone(),
+                wake.clone(),
+                known.clone(),
+            )),
+        });
         tasks.push(tokio::spawn(uplink::run(
             file.connect.clone(),
             source.channel_id.clone(),

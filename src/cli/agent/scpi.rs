@@ -108,7 +108,7 @@ impl Instrument {
 /// Where the channel's seqs go on: the spool's record, or (a new spool)
 /// what the uplink learns from the server; measuring waits for it, so a
 /// new spool never reuses a seq the server has.
-async fn first_seq(spool: &Spool, channel: &str, known: &Notify) -> u64 {
+pub(super) async fn first_seq(spool: &Spool, channel: &str, known: &Notify) -> u64 {
     loop {
         match spool.next_seq(channel).await {
             Ok(Some(n)) => break n,

@@ -24,7 +24,15 @@ CREATE TABLE IF NOT EXISTS spooled (
     PRIMARY KEY (channel_id, seq)) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS next_seq (channel_id TEXT PRIMARY KEY, next INTEGER NOT NULL);
 CREATE TABLE IF NOT EXISTS dropped (channel_id TEXT PRIMARY KEY, n INTEGER NOT NULL);
+CREATE TABLE IF NOT EXISTS file_pos (channel_id TEXT PRIMARY KEY, inode INTEGER NOT NULL, offset INTEGER NOT NULL);
 ";
+
+/// How far a followed file has been read: its inode and byte offset.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub(crate) struct FilePos {
+    pub inode: u64,
+    pub offset: u64,
+}
 
 /// One reading as spooled: current charge-positive.
 #[derive(Debug, Clone, PartialEq)]
@@ -103,7 +111,27 @@ impl Spool {
         rows: &[Spooled],
         next: u64,
     ) -> anyhow::Result<u64> {
+        self.append_at(channel_id, rows, next, None).await
+    }
+
+    /// [`Spool::append`], with how far a followed file has been read
+    /// stored in the same transaction: a restart reads on from there.
+    pub(crate) async fn append_at(
+        &self,
+        channel_id: &str,
+        rows: &[Spooled],
+        next: u64,
+        pos: Option<FilePos>,
+    ) -> anyhow::Result<u64> {
         let mut tx = self.pool.begin().await?;
+        if let Some(p) = pos {
+            sqlx::query("INSERT INTO file_pos (channel_id, inode, offset) VALUES (?, ?, ?) ON CONFLICT (channel_id) DO UPDATE SET inode = excluded.inode, offset = excluded.offset")
+                .bind(channel_id)
+                .bind(p.inode as i64)
+                .bind(p.offset as i64)
+                .execute(&mut *tx)
+                .await?;
+        }
         let mut added = 0;
         for r in rows {
             added += sqlx::query(
@@ -171,6 +199,18 @@ impl Spool {
         self.rows
             .fetch_sub(gone.min(self.rows.load(SeqCst)), SeqCst);
         Ok(())
+    }
+
+    /// How far the channel's file was read, if it is followed.
+    pub(crate) async fn file_pos(&self, channel_id: &str) -> anyhow::Result<Option<FilePos>> {
+        let row = sqlx::query("SELECT inode, offset FROM file_pos WHERE channel_id = ?")
+            .bind(channel_id)
+            .fetch_optional(&self.pool)
+            .await?;
+        Ok(row.map(|r| FilePos {
+            inode: r.get::<i64, _>("inode") as u64,
+            offset: r.get::<i64, _>("offset") as u64,
+        }))
     }
 
     pub(crate) async fn close(&self) {
