@@ -272,3 +272,123 @@ async fn a_followed_file_is_read_once_across_partial_lines_kills_and_truncation(
     assert_eq!(rows[20].time_unix_ns, start_ns + 100_000_000_000);
     server.stop().await;
 }
+
+/// Registers of a Modbus unit, shared with the test: (input table?, address) → word.
+type Registers = Arc<std::sync::Mutex<std::collections::HashMap<(bool, u16), u16>>>;
+
+struct Unit(Registers);
+
+impl tokio_modbus::server::Service for Unit {
+    type Request = tokio_modbus::SlaveRequest<'static>;
+    type Response = tokio_modbus::Response;
+    type Exception = tokio_modbus::ExceptionCode;
+    type Future = std::future::Ready<Result<Self::Response, Self::Exception>>;
+
+    fn call(&self, req: Self::Request) -> Self::Future {
+        use tokio_modbus::{ExceptionCode, Request, Response};
+        let regs = self.0.lock().unwrap();
+        let words = |input: bool, addr: u16, n: u16| -> Vec<u16> {
+            (addr..addr + n)
+                .map(|a| regs.get(&(input, a)).copied().unwrap_or(0))
+                .collect()
+        };
+        let answer = match (req.slave, req.request) {
+            (7, Request::ReadHoldingRegisters(a, n)) => {
+                Ok(Response::ReadHoldingRegisters(words(false, a, n)))
+            }
+            (7, Request::ReadInputRegisters(a, n)) => {
+                Ok(Response::ReadInputRegisters(words(true, a, n)))
+            }
+            (7, _) => Err(ExceptionCode::IllegalFunction),
+            _ => Err(ExceptionCode::GatewayTargetDevice),
+        };
+        std::future::ready(answer)
+    }
+}
+
+async fn modbus_unit(regs: Registers) -> std::net::SocketAddr {
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+    let addr = listener.local_addr().unwrap();
+    let server = tokio_modbus::server::tcp::Server::new(listener);
+    tokio::spawn(async move {
+        let on_connected = move |stream, socket_addr| {
+            let regs = regs.clone();
+            async move {
+                tokio_modbus::server::tcp::accept_tcp_connection(stream, socket_addr, move |_| {
+                    Ok(Some(Unit(regs.clone())))
+                })
+            }
+        };
+        let _ = server.serve(&on_connected, |_| {}).await;
+    });
+    addr
+}
+
+/// A Modbus TCP unit whose registers change: f32 volts high word first,
+/// i32 mA low word first, u16 tenths of °C in an input register.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn modbus_registers_are_read_signed_and_scaled() {
+    let (dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    put_channel(
+        &server.channel().await,
+        channel_def("bms-1", "vanadium-redox"),
+    )
+    .await;
+    let regs: Registers = Arc::default();
+    let set_amps = |regs: &Registers, words: [u16; 2]| {
+        let mut r = regs.lock().unwrap();
+        r.insert((false, 10), words[0]);
+        r.insert((false, 11), words[1]);
+    };
+    {
+        let mut r = regs.lock().unwrap();
+        // 1.3125 as IEEE 754 single is 0x3FA8_0000.
+        r.insert((false, 0), 0x3FA8);
+        r.insert((false, 1), 0x0000);
+        r.insert((true, 20), 253);
+    }
+    // −2,500 mA: 0xFFFF_F63C, low word first.
+    set_amps(&regs, [0xF63C, 0xFFFF]);
+    let unit = modbus_unit(regs.clone()).await;
+    let config = dir.path().join("rig.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "connect = \"{}\"\nspool = \"{}\"\n\n[[source]]\nchannel_id = \"bms-1\"\nkind = \"modbus\"\naddress = \"{unit}\"\n\
+             unit_id = 7\nperiod = \"100ms\"\n\
+             volts = {{ register = 0, type = \"f32\", unit = \"V\" }}\n\
+             amps = {{ register = 10, type = \"i32\", word_order = \"low_first\", unit = \"mA\" }}\n\
+             temp_c = {{ register = 20, table = \"input\", scale = 0.1, unit = \"C\" }}\n",
+            server.addr,
+            dir.path().join("spool.db").display()
+        ),
+    )
+    .unwrap();
+    let mut agent = spawn_agent(&config, &dir.path().join("agent.log"));
+    let addr = server.addr.to_string();
+    let wait_for = |n: usize| {
+        let addr = addr.clone();
+        async move {
+            for _ in 0..100 {
+                let rows = stored(&addr, "bms-1").await;
+                if rows.len() >= n {
+                    return rows;
+                }
+                tokio::time::sleep(Duration::from_millis(100)).await;
+            }
+            panic!("fewer than {n} readings stored");
+        }
+    };
+    let before = wait_for(5).await.len();
+    // +1,200 mA: 0x0000_04B0, low word first.
+    set_amps(&regs, [0x04B0, 0x0000]);
+    let rows = wait_for(before + 5).await;
+    agent.kill().unwrap();
+    agent.wait().unwrap();
+    assert!(rows.iter().all(|r| r.volts == 1.3125));
+    assert!(rows.iter().all(|r| (r.temp_c.unwrap() - 25.3).abs() < 1e-9));
+    assert_eq!(rows[0].amps_charge_positive, Some(-2.5));
+    assert_eq!(rows.last().unwrap().amps_charge_positive, Some(1.2));
+    server.stop().await;
+}

@@ -9,6 +9,7 @@
 //! comes back, from the server's resume point.
 
 mod file;
+mod modbus;
 mod scpi;
 mod spool;
 mod uplink;
@@ -59,6 +60,9 @@ pub(crate) struct SourceSpec {
     /// `file`: numbers written with a decimal comma (`1,234`).
     #[serde(default)]
     pub decimal_comma: bool,
+    /// `modbus`: the unit (slave) id (default 1).
+    #[serde(default)]
+    pub unit_id: Option<u8>,
     /// How long one query may take (default 1s).
     #[serde(default)]
     pub timeout: Option<String>,
@@ -87,6 +91,23 @@ pub(crate) struct Quantity {
     /// `file`: the column, by header name or `#n` (1-based).
     #[serde(default)]
     pub column: Option<String>,
+    /// `modbus`: the register's address (0-based).
+    #[serde(default)]
+    pub register: Option<u16>,
+    /// `modbus`: `u16` (default), `i16`, `u32`, `i32` or `f32`.
+    #[serde(default)]
+    pub r#type: Option<String>,
+    /// `modbus`: `high_first` (default) or `low_first` for two registers.
+    #[serde(default)]
+    pub word_order: Option<String>,
+    /// `modbus`: `holding` (default) or `input`.
+    #[serde(default)]
+    pub table: Option<String>,
+    /// `modbus`: raw × scale + offset is the value in `unit`.
+    #[serde(default)]
+    pub scale: Option<f64>,
+    #[serde(default)]
+    pub offset: Option<f64>,
     /// `V`/`mV`, `A`/`mA`, `C`/`K`.
     pub unit: String,
 }
@@ -110,6 +131,13 @@ pub(crate) struct TimeColumn {
 pub(crate) enum Kind {
     Scpi,
     File(file::Layout),
+    /// The unit id and the registers of volts, amps and °C.
+    Modbus {
+        unit_id: u8,
+        volts: modbus::Reg,
+        amps: Option<modbus::Reg>,
+        temp_c: Option<modbus::Reg>,
+    },
 }
 
 /// A source as the agent runs it: validated, units turned into factors.
@@ -146,16 +174,30 @@ fn unit_factor(
 }
 
 impl SourceSpec {
-    fn resolve(&self, at: &str) -> Result<Source, UsageError> {
-        let kind = match self.kind.as_str() {
+    /// What reads this source, with what each kind needs besides.
+    fn kind_of(&self, at: &str) -> Result<Kind, UsageError> {
+        Ok(match self.kind.as_str() {
             "scpi" => Kind::Scpi,
             "file" => Kind::File(file::Layout::of(self, at)?),
+            "modbus" => {
+                let reg = |name: &str, q: &Quantity| modbus::Reg::of(q, &format!("{at}.{name}"));
+                Kind::Modbus {
+                    unit_id: self.unit_id.unwrap_or(1),
+                    volts: reg("volts", &self.volts)?,
+                    amps: self.amps.as_ref().map(|q| reg("amps", q)).transpose()?,
+                    temp_c: self.temp_c.as_ref().map(|q| reg("temp_c", q)).transpose()?,
+                }
+            }
             other => {
                 return Err(UsageError(format!(
-                    "{at}.kind = {other:?}: this build reads scpi and file sources"
+                    "{at}.kind = {other:?}: expected scpi, modbus or file"
                 )));
             }
-        };
+        })
+    }
+
+    fn resolve(&self, at: &str) -> Result<Source, UsageError> {
+        let kind = self.kind_of(at)?;
         let duration = |field: &str, text: &str| {
             super::parse_duration(text).map_err(|e| UsageError(format!("{at}.{field}: {e}")))
         };
@@ -176,12 +218,11 @@ impl SourceSpec {
                 )));
             }
         };
-        let file = matches!(kind, Kind::File(_));
         let q = |name: &str, q: &Quantity, units: &[(&str, f64, f64)]| {
-            let (key, given) = if file {
-                ("column", q.column.clone())
-            } else {
-                ("query", q.query.clone())
+            let (key, given) = match &kind {
+                Kind::File(_) => ("column", q.column.clone()),
+                Kind::Scpi => ("query", q.query.clone()),
+                Kind::Modbus { .. } => ("register", q.register.map(|r| format!("register {r}"))),
             };
             let given = given.ok_or_else(|| {
                 UsageError(format!(
@@ -191,6 +232,17 @@ impl SourceSpec {
             })?;
             unit_factor(&format!("{at}.{name}"), &q.unit, units).map(|(s, o)| (given, s, o))
         };
+        let volts = q("volts", &self.volts, &[("V", 1.0, 0.0), ("mV", 1e-3, 0.0)])?;
+        let amps = self
+            .amps
+            .as_ref()
+            .map(|a| q("amps", a, &[("A", 1.0, 0.0), ("mA", 1e-3, 0.0)]))
+            .transpose()?;
+        let temp_c = self
+            .temp_c
+            .as_ref()
+            .map(|t| q("temp_c", t, &[("C", 1.0, 0.0), ("K", 1.0, -273.15)]))
+            .transpose()?;
         Ok(Source {
             kind,
             channel_id: self.channel_id.clone(),
@@ -198,17 +250,9 @@ impl SourceSpec {
             period,
             timeout,
             to_charge_positive,
-            volts: q("volts", &self.volts, &[("V", 1.0, 0.0), ("mV", 1e-3, 0.0)])?,
-            amps: self
-                .amps
-                .as_ref()
-                .map(|a| q("amps", a, &[("A", 1.0, 0.0), ("mA", 1e-3, 0.0)]))
-                .transpose()?,
-            temp_c: self
-                .temp_c
-                .as_ref()
-                .map(|t| q("temp_c", t, &[("C", 1.0, 0.0), ("K", 1.0, -273.15)]))
-                .transpose()?,
+            volts,
+            amps,
+            temp_c,
         })
     }
 }
@@ -248,7 +292,7 @@ pub(crate) async fn run(config: &std::path::Path) -> anyhow::Result<()> {
         let wake = Arc::new(tokio::sync::Notify::new());
         let known = Arc::new(tokio::sync::Notify::new());
         tasks.push(match &source.kind {
-            Kind::Scpi => tokio::spawn(scpi::sample(
+            Kind::Scpi | Kind::Modbus { .. } => tokio::spawn(scpi::sample(
                 source.clone(),
                 spool.clone(),
                 wake.clone(),
@@ -324,9 +368,13 @@ mod tests {
         );
         let bad_sign = load_text(&source("current_sign = \"positive\"\n")).unwrap_err();
         assert!(bad_sign.contains("source[0].current_sign"), "{bad_sign}");
-        let modbus =
-            load_text(&source("").replace("kind = \"scpi\"", "kind = \"modbus\"")).unwrap_err();
-        assert!(modbus.contains("source[0].kind = \"modbus\""), "{modbus}");
+        let kind = |k: &str| {
+            load_text(&source("").replace("kind = \"scpi\"", &format!("kind = \"{k}\"")))
+                .unwrap_err()
+        };
+        assert!(kind("serial").contains("source[0].kind = \"serial\""));
+        let modbus = kind("modbus");
+        assert!(modbus.contains("source[0].volts.register"), "{modbus}");
         let twice = format!("{}{}", source(""), source("").trim_start_matches(HEAD));
         assert!(
             load_text(&twice)

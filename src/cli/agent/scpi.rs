@@ -1,8 +1,9 @@
-//! A SCPI instrument over TCP (IEEE 488.2 text: a query ends in `?` and a
+//! The polled sources: a SCPI instrument over TCP (IEEE 488.2 text: a query ends in `?` and a
 //! newline, the answer is one line; port 5025 is common practice). After
 //! a failed or unreadable answer the instrument's error queue is read
 //! (`SYST:ERR?`, the standard query) and logged; a broken connection is
-//! opened again with backoff. Each reading is spooled as it is taken.
+//! opened again with backoff. A Modbus device (`modbus.rs`) is polled by
+//! the same loop. Each reading is spooled as it is taken.
 
 use super::Source;
 use super::spool::{Spool, Spooled};
@@ -29,7 +30,6 @@ pub(crate) fn parse_number(reply: &str) -> Option<f64> {
 struct Instrument {
     source: Source,
     conn: Option<BufReader<TcpStream>>,
-    backoff: Duration,
 }
 
 impl Instrument {
@@ -127,6 +127,66 @@ pub(super) async fn first_seq(spool: &Spool, channel: &str, known: &Notify) -> u
     }
 }
 
+/// What a polled source reads through.
+enum Probe {
+    Scpi(Box<Instrument>),
+    Modbus(super::modbus::Device),
+}
+
+impl Probe {
+    fn of(source: &Source) -> Probe {
+        match &source.kind {
+            super::Kind::Modbus { unit_id, .. } => Probe::Modbus(super::modbus::Device::new(
+                source.address.clone(),
+                *unit_id,
+                source.timeout,
+            )),
+            _ => Probe::Scpi(Box::new(Instrument {
+                conn: None,
+                source: source.clone(),
+            })),
+        }
+    }
+
+    fn connected(&self) -> bool {
+        match self {
+            Probe::Scpi(i) => i.conn.is_some(),
+            Probe::Modbus(d) => d.connected(),
+        }
+    }
+
+    /// Volts, charge-positive amps and °C, each in its unit.
+    async fn read(&mut self, source: &Source) -> Result<(f64, Option<f64>, Option<f64>), String> {
+        match self {
+            Probe::Scpi(i) => i.read().await,
+            Probe::Modbus(d) => {
+                let super::Kind::Modbus {
+                    volts,
+                    amps,
+                    temp_c,
+                    ..
+                } = &source.kind
+                else {
+                    unreachable!("a modbus probe has a modbus source");
+                };
+                let unit = |(_, scale, offset): &(String, f64, f64), raw: f64| raw * scale + offset;
+                let v = unit(&source.volts, d.read(volts).await?);
+                let a = match (amps, &source.amps) {
+                    (Some(r), Some(u)) => {
+                        Some(unit(u, d.read(r).await?) * source.to_charge_positive)
+                    }
+                    _ => None,
+                };
+                let t = match (temp_c, &source.temp_c) {
+                    (Some(r), Some(u)) => Some(unit(u, d.read(r).await?)),
+                    _ => None,
+                };
+                Ok((v, a, t))
+            }
+        }
+    }
+}
+
 /// Polls the instrument on its period into the spool, for good.
 pub(crate) async fn sample(
     source: Source,
@@ -138,18 +198,15 @@ pub(crate) async fn sample(
     let mut next = first_seq(&spool, &channel, &known).await;
     let mut tick = tokio::time::interval(source.period);
     tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
-    let mut instrument = Instrument {
-        backoff: RECONNECT_FIRST,
-        conn: None,
-        source,
-    };
+    let mut probe = Probe::of(&source);
+    let mut backoff = RECONNECT_FIRST;
     let mut taken: Vec<Spooled> = Vec::new();
     let mut last_write = tokio::time::Instant::now();
     loop {
         tick.tick().await;
-        match instrument.read().await {
+        match probe.read(&source).await {
             Ok((volts, amps_charge_positive, temp_c)) => {
-                instrument.backoff = RECONNECT_FIRST;
+                backoff = RECONNECT_FIRST;
                 taken.push(Spooled {
                     seq: next,
                     time_ns: gibbsline::ingest::now_ns(),
@@ -161,9 +218,9 @@ pub(crate) async fn sample(
             }
             Err(e) => {
                 tracing::warn!(channel, error = %e, "instrument read failed");
-                if instrument.conn.is_none() {
-                    tokio::time::sleep(instrument.backoff).await;
-                    instrument.backoff = (instrument.backoff * 2).min(RECONNECT_MAX);
+                if !probe.connected() {
+                    tokio::time::sleep(backoff).await;
+                    backoff = (backoff * 2).min(RECONNECT_MAX);
                 }
             }
         }
