@@ -379,3 +379,73 @@ async fn the_live_feed_carries_committed_readings_and_alerts() {
     assert_eq!(alert["alert"]["raised_seq"], 35);
     server.stop().await;
 }
+
+/// The server's own log (debug level, every layer) while the console is
+/// asked with a right token, a wrong one and one whose role falls short:
+/// no token text appears in it.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn tokens_never_reach_the_log() {
+    let (dir, db) = temp_db();
+    let config = dir.path().join("gibbsline.toml");
+    let http = crate::crash::free_addr();
+    std::fs::write(
+        &config,
+        format!(
+            "http_listen = \"{http}\"\n\n[[token]]\nname = \"wall-screen\"\nrole = \"viewer\"\nsha256 = \"{}\"\n",
+            gibbsline::auth::sha256_hex("viewer-token-7f3a9c")
+        ),
+    )
+    .unwrap();
+    let log = dir.path().join("server.log");
+    let grpc = crate::crash::free_addr();
+    let mut server = std::process::Command::new(env!("CARGO_BIN_EXE_gibbsline"))
+        .args(["serve", "--listen", &grpc, "--config"])
+        .arg(&config)
+        .arg("--db")
+        .arg(&db)
+        .env("RUST_LOG", "debug")
+        .stdout(std::fs::File::create(&log).unwrap())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap();
+    crate::crash::connect(&grpc).await;
+    let http: std::net::SocketAddr = http.parse().unwrap();
+    let body = json!({"acknowledged_by": "A"});
+    for _ in 0..50 {
+        if tokio::net::TcpStream::connect(http).await.is_ok() {
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(50)).await;
+    }
+    let cases = [
+        ("GET", "/api/v1/overview", Some("viewer-token-7f3a9c"), 200),
+        ("GET", "/api/v1/overview", Some("wrong-token-b81d44"), 401),
+        (
+            "POST",
+            "/api/v1/alerts/1/acknowledge",
+            Some("viewer-token-7f3a9c"),
+            403,
+        ),
+        ("GET", "/api/v1/live", Some("wrong-token-b81d44"), 401),
+    ];
+    for (method, path, token, status) in cases {
+        let b = (method == "POST").then_some(&body);
+        assert_eq!(
+            request(http, method, path, token, b).await.status,
+            status,
+            "{path}"
+        );
+    }
+    server.kill().unwrap();
+    server.wait().unwrap();
+    let text = std::fs::read_to_string(&log).unwrap();
+    assert!(text.contains("denied"), "the denials are logged:\n{text}");
+    for secret in [
+        "viewer-token-7f3a9c",
+        "wrong-token-b81d44",
+        "7f3a9c",
+        "b81d44",
+    ] {
+        assert!(!text.contains(secret), "{secret} in the log:\n{text}");
+    }
+}
