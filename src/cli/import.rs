@@ -147,9 +147,13 @@ pub(crate) async fn run(args: &ImportArgs) -> anyhow::Result<()> {
         .await
         .map_err(client::status_error)?
         .into_inner();
-    let mut batches: std::collections::HashMap<u64, Vec<u64>> = Default::default();
-    let mut pending: Vec<(u64, pb::Reading)> = Vec::new();
-    let mut batch_id = 0u64;
+    let mut out = Outbound {
+        tx,
+        channel_id: args.channel.clone(),
+        batch_id: 0,
+        pending: Vec::new(),
+        batches: Default::default(),
+    };
     let progress = std::io::stderr().is_terminal();
     for (i, record) in csv.records().enumerate() {
         // Line 1 is the header.
@@ -159,19 +163,12 @@ pub(crate) async fn run(args: &ImportArgs) -> anyhow::Result<()> {
             .map_err(|e| ("line".to_string(), e.to_string()))
             .and_then(|r| columns.reading(&r, to_wire))
         {
-            Ok(reading) => pending.push((line, reading)),
+            Ok(reading) => out.pending.push((line, reading)),
             Err((field, reason)) => summary.refuse(line, field, reason),
         }
-        if pending.len() == args.batch {
-            send(
-                &tx,
-                &args.channel,
-                &mut batch_id,
-                &mut pending,
-                &mut batches,
-            )
-            .await?;
-            take_acks(&mut acks, &mut batches, &mut summary, 2).await?;
+        if out.pending.len() == args.batch {
+            out.send().await?;
+            take_acks(&mut acks, &mut out.batches, &mut summary, 2).await?;
             if progress && summary.rows_read.is_multiple_of(100_000) {
                 eprint!(
                     "\rread {} lines, stored {}",
@@ -180,14 +177,10 @@ pub(crate) async fn run(args: &ImportArgs) -> anyhow::Result<()> {
             }
         }
     }
-    send(
-        &tx,
-        &args.channel,
-        &mut batch_id,
-        &mut pending,
-        &mut batches,
-    )
-    .await?;
+    out.send().await?;
+    let Outbound {
+        tx, mut batches, ..
+    } = out;
     drop(tx);
     take_acks(&mut acks, &mut batches, &mut summary, 0).await?;
     if progress {
@@ -214,7 +207,7 @@ fn open_csv(args: &ImportArgs) -> Result<(csv::Reader<std::fs::File>, Columns), 
 
 /// The factor from charge-positive amps (the file) to the channel's
 /// instrument convention (the wire).
-async fn sign_to_wire(conn: &client::Conn, channel_id: &str) -> anyhow::Result<f64> {
+pub(crate) async fn sign_to_wire(conn: &client::Conn, channel_id: &str) -> anyhow::Result<f64> {
     let channel = ChannelServiceClient::new(conn.clone())
         .get_channel(pb::GetChannelRequest {
             channel_id: channel_id.to_string(),
@@ -233,27 +226,35 @@ async fn sign_to_wire(conn: &client::Conn, channel_id: &str) -> anyhow::Result<f
     )
 }
 
-async fn send(
-    tx: &tokio::sync::mpsc::Sender<pb::StreamReadingsRequest>,
-    channel_id: &str,
-    batch_id: &mut u64,
-    pending: &mut Vec<(u64, pb::Reading)>,
-    batches: &mut std::collections::HashMap<u64, Vec<u64>>,
-) -> anyhow::Result<()> {
-    if pending.is_empty() {
-        return Ok(());
+/// Readings on their way: the batch being filled (each reading with its
+/// line) and, per batch sent, its lines, until its ack comes.
+struct Outbound {
+    tx: tokio::sync::mpsc::Sender<pb::StreamReadingsRequest>,
+    channel_id: String,
+    batch_id: u64,
+    pending: Vec<(u64, pb::Reading)>,
+    batches: std::collections::HashMap<u64, Vec<u64>>,
+}
+
+impl Outbound {
+    /// Sends the batch being filled, if it holds anything.
+    async fn send(&mut self) -> anyhow::Result<()> {
+        if self.pending.is_empty() {
+            return Ok(());
+        }
+        let (lines, readings): (Vec<u64>, Vec<pb::Reading>) = self.pending.drain(..).unzip();
+        self.batch_id += 1;
+        self.batches.insert(self.batch_id, lines);
+        let batch = pb::ReadingBatch {
+            channel_id: self.channel_id.clone(),
+            batch_id: self.batch_id,
+            readings,
+        };
+        self.tx
+            .send(pb::StreamReadingsRequest { batch: Some(batch) })
+            .await
+            .map_err(|_| anyhow::anyhow!("the server ended the stream"))
     }
-    let (lines, readings): (Vec<u64>, Vec<pb::Reading>) = pending.drain(..).unzip();
-    *batch_id += 1;
-    batches.insert(*batch_id, lines);
-    let batch = pb::ReadingBatch {
-        channel_id: channel_id.to_string(),
-        batch_id: *batch_id,
-        readings,
-    };
-    tx.send(pb::StreamReadingsRequest { batch: Some(batch) })
-        .await
-        .map_err(|_| anyhow::anyhow!("the server ended the stream"))
 }
 
 /// Reads acks until at most `in_flight` batches are unanswered.

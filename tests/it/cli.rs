@@ -8,12 +8,12 @@ use gibbsline::pb::history_service_client::HistoryServiceClient;
 use std::process::{Command, Stdio};
 use tokio_stream::StreamExt;
 
-fn bin() -> Command {
+pub(crate) fn bin() -> Command {
     Command::new(env!("CARGO_BIN_EXE_gibbsline"))
 }
 
 /// Runs the binary to completion without blocking the runtime that serves it.
-async fn output_of(mut command: Command) -> std::process::Output {
+pub(crate) async fn output_of(mut command: Command) -> std::process::Output {
     tokio::task::spawn_blocking(move || command.output().unwrap())
         .await
         .unwrap()

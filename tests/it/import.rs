@@ -3,19 +3,9 @@
 //! positive, so the sign is turned back on the way in), a second import
 //! stores nothing, and a bad line is refused by its line number.
 
+use crate::cli::{bin, output_of};
 use crate::harness::*;
 use gibbsline::pb;
-use std::process::Command;
-
-fn bin() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_gibbsline"))
-}
-
-async fn output_of(mut command: Command) -> std::process::Output {
-    tokio::task::spawn_blocking(move || command.output().unwrap())
-        .await
-        .unwrap()
-}
 
 fn def() -> pb::Channel {
     pb::Channel {

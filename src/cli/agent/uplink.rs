@@ -8,7 +8,6 @@
 use super::spool::Spool;
 use crate::cli::client;
 use gibbsline::pb;
-use gibbsline::pb::channel_service_client::ChannelServiceClient;
 use gibbsline::pb::ingest_service_client::IngestServiceClient;
 use std::sync::Arc;
 use std::time::Duration;
@@ -53,19 +52,7 @@ async fn resume(
     known: &Notify,
 ) -> anyhow::Result<(IngestServiceClient<client::Conn>, f64, u64)> {
     let conn = client::connect(addr).await?;
-    let def = ChannelServiceClient::new(conn.clone())
-        .get_channel(pb::GetChannelRequest {
-            channel_id: channel.to_string(),
-        })
-        .await?
-        .into_inner()
-        .channel
-        .unwrap_or_default();
-    let to_wire = if def.current_sign == pb::CurrentSign::DischargePositive as i32 {
-        -1.0
-    } else {
-        1.0
-    };
+    let to_wire = crate::cli::import::sign_to_wire(&conn, channel).await?;
     let mut ingest = IngestServiceClient::new(conn);
     let resume = ingest
         .get_resume_point(pb::GetResumePointRequest {
