@@ -29,8 +29,10 @@ pub struct Filter {
 }
 
 impl Filter {
+    /// Alerts of imported recordings are stored and listed, not pushed.
     fn passes(&self, e: &AlertEvent) -> bool {
-        (self.channel_id.is_empty() || e.alert.channel_id == self.channel_id)
+        !e.alert.historical
+            && (self.channel_id.is_empty() || e.alert.channel_id == self.channel_id)
             && e.alert.severity.code() >= self.min_severity
     }
 }

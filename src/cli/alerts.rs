@@ -99,6 +99,8 @@ pub(crate) struct AlertOut {
     acknowledged_unix_ns: Option<i64>,
     acknowledge_note: Option<String>,
     raised_utc: String,
+    /// Raised by an imported recording (never pushed).
+    historical: bool,
     #[serde(skip)]
     codes: (i32, i32),
 }
@@ -123,12 +125,13 @@ impl From<&pb::Alert> for AlertOut {
             acknowledged_unix_ns: a.acknowledged_unix_ns,
             acknowledge_note: a.acknowledge_note.clone(),
             raised_utc: super::time::iso_utc(a.raised_unix_ns),
+            historical: a.historical,
             codes: (a.kind, a.severity),
         }
     }
 }
 
-const ALERT_HEADER: [&str; 17] = [
+const ALERT_HEADER: [&str; 18] = [
     "alert_id",
     "channel_id",
     "kind",
@@ -146,6 +149,7 @@ const ALERT_HEADER: [&str; 17] = [
     "acknowledged_unix_ns",
     "acknowledge_note",
     "raised_utc",
+    "historical",
 ];
 
 const ALERT_COLUMNS: [Col; 7] = [
@@ -199,7 +203,7 @@ pub(crate) struct EventOut {
     alert: AlertOut,
 }
 
-const EVENT_HEADER: [&str; 19] = output::concat(["event", "event_id"], ALERT_HEADER);
+const EVENT_HEADER: [&str; 20] = output::concat(["event", "event_id"], ALERT_HEADER);
 
 const EVENT_COLUMNS: [Col; 9] = output::concat(
     [Col::left("event", 12), Col::right("event_id", 8)],

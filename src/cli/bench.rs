@@ -504,6 +504,7 @@ impl Load {
                 .expect("poisoned")
                 .insert(batch_id, (Instant::now(), end - 1));
             let batch = pb::ReadingBatch {
+                historical: false,
                 channel_id: id.clone(),
                 batch_id,
                 readings,

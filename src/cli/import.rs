@@ -246,6 +246,7 @@ impl Outbound {
         self.batch_id += 1;
         self.batches.insert(self.batch_id, lines);
         let batch = pb::ReadingBatch {
+            historical: true,
             channel_id: self.channel_id.clone(),
             batch_id: self.batch_id,
             readings,

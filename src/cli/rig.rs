@@ -407,6 +407,7 @@ async fn send_pending(
             .sent
             .fetch_add(readings.len() as u64, Ordering::Relaxed);
         let batch = pb::ReadingBatch {
+            historical: false,
             channel_id: ch.def.channel_id.clone(),
             batch_id: *batch_id,
             readings,

@@ -174,6 +174,7 @@ proptest! {
     ) {
         let request = pb::StreamReadingsRequest {
             batch: Some(pb::ReadingBatch {
+                historical: false,
                 channel_id: "fuzz".into(),
                 readings,
                 batch_id: 1,

@@ -72,6 +72,7 @@ fn inbound_of(message: pb::StreamReadingsRequest) -> Inbound {
             batch_id: batch.batch_id,
             // The wire form is dropped here, before the commit is awaited.
             readings: batch.readings.iter().map(RawReading::from).collect(),
+            historical: batch.historical,
         },
         None => Inbound::NoBatch,
     }

@@ -297,6 +297,7 @@ impl Hub {
         channel_id: &str,
         batch_id: u64,
         readings: Vec<RawReading>,
+        historical: bool,
     ) -> Result<Ack, IngestError> {
         check_batch_size(&readings)?;
         let (runtime, _turn) = self.take_turn(channel_id).await?;
@@ -308,7 +309,7 @@ impl Hub {
         };
         drop(readings);
         let outcome = match self
-            .submit(|reply| Job::Readings(derived.into_job(reply)))
+            .submit(|reply| Job::Readings(derived.into_job(reply, historical)))
             .await
         {
             Ok(outcome) => outcome,
@@ -380,7 +381,7 @@ impl Hub {
             }
         };
         if let Err(e) = self
-            .submit(|reply| Job::Readings(job.into_job(reply)))
+            .submit(|reply| Job::Readings(job.into_job(reply, false)))
             .await
         {
             self.reload_after_failure(&runtime).await;
@@ -536,7 +537,11 @@ impl Hub {
 }
 
 impl DerivedBatch {
-    fn into_job(self, reply: oneshot::Sender<Result<WriteOutcome, StoreError>>) -> ReadingsJob {
+    fn into_job(
+        self,
+        reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
+        historical: bool,
+    ) -> ReadingsJob {
         ReadingsJob {
             channel_key: self.channel_key,
             run_id: self.run_id,
@@ -546,6 +551,7 @@ impl DerivedBatch {
             changes: self.changes,
             cycles: self.cycles,
             estimator: self.estimator,
+            historical,
             reply,
         }
     }

@@ -33,6 +33,8 @@ pub enum Inbound {
         channel_id: String,
         batch_id: u64,
         readings: Vec<RawReading>,
+        /// From a recording: alerts stored historical, not pushed.
+        historical: bool,
     },
     /// A message without a batch: answered in-band, the stream stays open.
     NoBatch,
@@ -224,12 +226,17 @@ impl Session {
             channel_id,
             batch_id,
             readings,
+            historical,
         } = message
         else {
             return Ok(Reply::NoBatch);
         };
         auth::check_channel(self.principal.as_ref(), &channel_id).map_err(End::Denied)?;
-        match self.hub.ingest(&channel_id, batch_id, readings).await {
+        match self
+            .hub
+            .ingest(&channel_id, batch_id, readings, historical)
+            .await
+        {
             Ok(ack) => Ok(Reply::Ack(ack)),
             // Batch-level problems are answered in-band and the stream
             // stays open; the rest end the stream.

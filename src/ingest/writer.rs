@@ -35,6 +35,8 @@ pub struct ReadingsJob {
     pub changes: Vec<AlertChange>,
     pub cycles: Vec<CycleRecord>,
     pub estimator: Option<EstimatorSnapshot>,
+    /// From a recording: its alerts are stored historical.
+    pub historical: bool,
     pub reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
 }
 
@@ -243,7 +245,7 @@ async fn write_jobs(
             } => {
                 for a in raised {
                     out.events
-                        .push(raise(tx, ids, *channel_key, *run_id, a).await?);
+                        .push(raise(tx, ids, *channel_key, *run_id, a, false).await?);
                 }
             }
             Job::Operator { change, .. } => write_operator(tx, change).await?,
@@ -322,7 +324,9 @@ async fn write_readings(
     store::rollup::refresh(tx, r.channel_key, &recompute).await?;
     for change in &r.changes {
         let event = match change {
-            AlertChange::Raise(a) => Some(raise(tx, ids, r.channel_key, r.run_id, a).await?),
+            AlertChange::Raise(a) => {
+                Some(raise(tx, ids, r.channel_key, r.run_id, a, r.historical).await?)
+            }
             AlertChange::Clear { kind, time_ns } => {
                 let event =
                     store::clear_alert(tx, ids.next_event_id, r.channel_key, *kind, *time_ns)
@@ -352,6 +356,7 @@ async fn raise(
     channel_key: i64,
     run_id: i64,
     alert: &RaisedAlert,
+    historical: bool,
 ) -> Result<AlertEvent, StoreError> {
     let event = store::raise_alert(
         tx,
@@ -360,6 +365,7 @@ async fn raise(
         channel_key,
         run_id,
         alert,
+        historical,
     )
     .await?;
     ids.next_alert_id += 1;

@@ -432,6 +432,8 @@ pub struct AlertRow {
     pub ack_by: Option<String>,
     pub ack_ns: Option<i64>,
     pub ack_note: Option<String>,
+    /// Raised by an imported recording: never pushed or delivered.
+    pub historical: bool,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -460,7 +462,7 @@ pub struct AlertEvent {
 }
 
 const ALERT_COLUMNS: &str = "a.alert_id, c.channel_id, a.run_id, a.kind, a.severity, a.raised_ns, a.raised_seq, \
-     a.trigger_value, a.threshold, a.unit, a.message, a.seconds_to_target, a.cleared_ns, a.ack_by, a.ack_ns, a.ack_note";
+     a.trigger_value, a.threshold, a.unit, a.message, a.seconds_to_target, a.cleared_ns, a.ack_by, a.ack_ns, a.ack_note, a.historical";
 
 fn alert_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<AlertRow, StoreError> {
     let kind_code: i64 = row.try_get("kind")?;
@@ -484,6 +486,7 @@ fn alert_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<AlertRow, StoreError>
         ack_by: row.try_get("ack_by")?,
         ack_ns: row.try_get("ack_ns")?,
         ack_note: row.try_get("ack_note")?,
+        historical: row.try_get::<i64, _>("historical")? != 0,
     })
 }
 
@@ -861,10 +864,11 @@ pub async fn raise_alert(
     channel_key: i64,
     run_id: i64,
     a: &RaisedAlert,
+    historical: bool,
 ) -> Result<AlertEvent, StoreError> {
     sqlx::query(
-        "INSERT INTO alerts (alert_id, channel_key, run_id, kind, severity, raised_ns, raised_seq, trigger_value, threshold, unit, message, seconds_to_target) \
-         VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+        "INSERT INTO alerts (alert_id, channel_key, run_id, kind, severity, raised_ns, raised_seq, trigger_value, threshold, unit, message, seconds_to_target, historical) \
+         VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
     )
     .bind(alert_id as i64)
     .bind(channel_key)
@@ -878,6 +882,7 @@ pub async fn raise_alert(
     .bind(a.unit)
     .bind(&a.message)
     .bind(a.seconds_to_target)
+    .bind(historical)
     .execute(&mut **tx)
     .await?;
     insert_event(tx, event_id, alert_id, EventKind::Raised, a.time_ns).await?;

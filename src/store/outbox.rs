@@ -57,7 +57,7 @@ pub(super) async fn enqueue(
     sqlx::query(
         "INSERT OR IGNORE INTO deliveries (target, event_id, created_ns, next_attempt_ns) \
          SELECT t.name, ?1, ?2, ?2 FROM notify_targets t, alerts a JOIN channels c ON c.channel_key = a.channel_key \
-         WHERE a.alert_id = ?3 AND a.severity >= t.min_severity \
+         WHERE a.alert_id = ?3 AND a.historical = 0 AND a.severity >= t.min_severity \
            AND (t.channels = '' OR instr(t.channels, ',' || c.channel_id || ',') > 0)",
     )
     .bind(event_id as i64)

@@ -22,6 +22,7 @@ fn limit_batch(
     over: impl Fn(u64) -> bool,
 ) -> pb::ReadingBatch {
     pb::ReadingBatch {
+        historical: false,
         channel_id: channel.into(),
         batch_id: seqs.start,
         readings: seqs

@@ -214,6 +214,7 @@ async fn raise_alert(ch: tonic::transport::Channel) -> u64 {
         })
         .collect();
     let batch = pb::ReadingBatch {
+        historical: false,
         channel_id: "alarm-1".into(),
         batch_id: 1,
         readings,

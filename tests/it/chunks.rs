@@ -118,6 +118,7 @@ async fn sigkills_while_small_chunks_merge_lose_and_double_nothing() {
             .chunks(3)
             .enumerate()
             .map(|(i, c)| pb::ReadingBatch {
+                historical: false,
                 channel_id: "slow-rig".into(),
                 batch_id: i as u64,
                 readings: c

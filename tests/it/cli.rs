@@ -96,6 +96,7 @@ async fn csv_parses_back_to_stored_values() {
     let mut acks = ingest
         .stream_readings(tokio_stream::iter(vec![pb::StreamReadingsRequest {
             batch: Some(pb::ReadingBatch {
+                historical: false,
                 channel_id: "csv-1".into(),
                 batch_id: 1,
                 readings,

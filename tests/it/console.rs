@@ -14,6 +14,7 @@ use serde_json::{Value, json};
 /// limit from `over_from` on, so a critical alert stays raised.
 fn batch(channel: &str, t0: i64, seqs: std::ops::Range<u64>, over_from: u64) -> pb::ReadingBatch {
     pb::ReadingBatch {
+        historical: false,
         channel_id: channel.into(),
         batch_id: seqs.start,
         readings: seqs

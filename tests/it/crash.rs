@@ -115,6 +115,7 @@ async fn stream_until_broken(
             if tx
                 .send(pb::StreamReadingsRequest {
                     batch: Some(pb::ReadingBatch {
+                        historical: false,
                         channel_id: id.into(),
                         batch_id,
                         readings,
@@ -261,6 +262,7 @@ async fn sigterm_ends_streams_with_resume_points_and_exits_zero() {
         .into_inner();
     tx.send(pb::StreamReadingsRequest {
         batch: Some(pb::ReadingBatch {
+            historical: false,
             channel_id: "term-1".into(),
             batch_id: 1,
             readings: (1..=100)

@@ -36,6 +36,7 @@ async fn try_batch(
 
 fn batch(channel: &str, seqs: std::ops::Range<u64>, t0: i64) -> pb::ReadingBatch {
     pb::ReadingBatch {
+        historical: false,
         channel_id: channel.into(),
         batch_id: seqs.start,
         readings: seqs
@@ -287,6 +288,7 @@ async fn one_garbled_reading_does_not_silence_alerts() {
         let ack = try_batch(
             &mut ingest,
             pb::ReadingBatch {
+                historical: false,
                 channel_id: channel.into(),
                 batch_id: 1,
                 readings: vec![first, garbled],
@@ -313,6 +315,7 @@ async fn one_garbled_reading_does_not_silence_alerts() {
         let ack = try_batch(
             &mut ingest,
             pb::ReadingBatch {
+                historical: false,
                 channel_id: channel.into(),
                 batch_id: 2,
                 readings: hot,
@@ -357,6 +360,7 @@ async fn a_reset_timeline_brings_real_readings_back_to_the_rules() {
         temp_c: Some(temp_c),
     };
     let send = |readings: Vec<pb::Reading>| pb::ReadingBatch {
+        historical: false,
         channel_id: "reset-1".into(),
         batch_id: 0,
         readings,
@@ -621,6 +625,7 @@ async fn modes_follow_the_current_and_an_operator_soc_anchors_the_count() {
     let t0 = now_ns() - 600_000_000_000;
     let send =
         |channel: &str, seqs: std::ops::Range<u64>, volts: f64, amps: f64| pb::ReadingBatch {
+            historical: false,
             channel_id: channel.into(),
             batch_id: seqs.start,
             readings: seqs

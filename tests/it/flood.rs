@@ -101,6 +101,7 @@ async fn flood_keeps_memory_bounded() {
                         if tx
                             .send(pb::StreamReadingsRequest {
                                 batch: Some(pb::ReadingBatch {
+                                    historical: false,
                                     channel_id: id.clone(),
                                     batch_id: seq,
                                     readings,

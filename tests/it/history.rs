@@ -32,6 +32,7 @@ async fn send_all(ch: &Channel, channel: &str, seqs: &[u64], at: &impl Fn(u64) -
         .chunks(2000)
         .enumerate()
         .map(|(i, chunk)| pb::ReadingBatch {
+            historical: false,
             channel_id: channel.into(),
             batch_id: i as u64,
             readings: chunk
@@ -136,6 +137,7 @@ async fn retention_deletes_exactly_what_it_should_across_a_restart() {
     // and its hour's rollup takes it.
     let mut ingest = IngestServiceClient::new(ch.clone());
     let late = |seq: u64, time: i64| pb::ReadingBatch {
+        historical: false,
         channel_id: "keep-2d".into(),
         batch_id: 900 + seq,
         readings: vec![reading(seq, time, 1.2, Some(0.0))],
@@ -438,6 +440,7 @@ async fn random_session(seed: u64, n: u64, step_ms: i64) {
         send_batches(
             &mut ingest,
             vec![pb::ReadingBatch {
+                historical: false,
                 channel_id: "prop-1".into(),
                 batch_id: sent.len() as u64,
                 readings,

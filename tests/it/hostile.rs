@@ -83,6 +83,7 @@ async fn hostile_corpus_gets_specific_answers() {
         let mut acks = ingest
             .stream_readings(tokio_stream::iter(vec![pb::StreamReadingsRequest {
                 batch: Some(pb::ReadingBatch {
+                    historical: false,
                     channel_id: "good-1".into(),
                     batch_id: 0,
                     readings,

@@ -68,6 +68,7 @@ async fn an_export_imports_back_the_same_once() {
     let t0 = now_ns() - 3_600_000_000_000;
     let mut ingest = pb::ingest_service_client::IngestServiceClient::new(ch_a.clone());
     let batch = pb::ReadingBatch {
+        historical: false,
         channel_id: "rec-1".into(),
         batch_id: 1,
         readings: recorded(t0),
@@ -181,4 +182,82 @@ async fn an_export_imports_back_the_same_once() {
     for s in [a, b, c] {
         s.stop().await;
     }
+}
+
+/// Alerts a recording raises are stored and listed as historical; live
+/// subscribers hear nothing of them, and still hear a live alert after.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_import_raises_historical_alerts_that_are_not_pushed() {
+    use tokio_stream::StreamExt;
+    let (dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    put_channel(&ch, channel_def("hist-1", "daniell")).await;
+    let mut alerts = pb::alert_service_client::AlertServiceClient::new(ch.clone());
+    let mut watch = alerts
+        .watch_alerts(pb::WatchAlertsRequest {
+            after_event_id: u64::MAX >> 1,
+            ..Default::default()
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    let live = watch.next().await.unwrap().unwrap();
+    assert_eq!(live.event, pb::AlertEventKind::Live as i32);
+
+    // Daniell's safe window ends at 1.30 V: seqs 10–15 go over it.
+    let t0 = now_ns() - 3_600_000_000_000;
+    let mut csv = String::from("seq,time_unix_ns,volts,amps_charge_positive,temp_c\n");
+    for s in 1..=20u64 {
+        let volts = if (10..=15).contains(&s) { 1.35 } else { 1.10 };
+        csv.push_str(&format!(
+            "{s},{},{volts},0,25\n",
+            t0 + s as i64 * 100_000_000
+        ));
+    }
+    let file = dir.path().join("recorded.csv");
+    std::fs::write(&file, csv).unwrap();
+    let mut cmd = bin();
+    cmd.args([
+        "import",
+        "--connect",
+        &server.addr.to_string(),
+        "--channel",
+        "hist-1",
+    ])
+    .arg(&file);
+    assert!(output_of(cmd).await.status.success());
+    let listed = alerts
+        .list_alerts(pb::ListAlertsRequest {
+            channel_id: "hist-1".into(),
+            ..Default::default()
+        })
+        .await
+        .unwrap()
+        .into_inner()
+        .alerts;
+    let limit = listed
+        .iter()
+        .find(|a| a.kind == pb::AlertKind::VoltageLimit as i32)
+        .expect("the recording's voltage-limit alert is stored");
+    assert!(limit.historical && limit.cleared_unix_ns.is_some());
+
+    // A live reading over the limit is pushed: the first thing the
+    // subscriber hears, so nothing of the import came before it.
+    let batch = pb::ReadingBatch {
+        channel_id: "hist-1".into(),
+        batch_id: 1,
+        historical: false,
+        readings: vec![reading(21, t0 + 21 * 100_000_000, 1.35, Some(0.0))],
+    };
+    let mut ingest = pb::ingest_service_client::IngestServiceClient::new(ch.clone());
+    send_batches(&mut ingest, vec![batch]).await;
+    let first = tokio::time::timeout(std::time::Duration::from_secs(10), watch.next())
+        .await
+        .unwrap()
+        .unwrap()
+        .unwrap();
+    let a = first.alert.unwrap();
+    assert_eq!((a.raised_seq, a.historical), (21, false));
+    server.stop().await;
 }

@@ -57,6 +57,7 @@ async fn metrics_count_what_ingest_did() {
     let t0 = now_ns() - 60_000_000_000;
     let at = |s: u64| t0 + s as i64 * 1_000_000_000;
     let batch = |readings: Vec<pb::Reading>| pb::ReadingBatch {
+        historical: false,
         channel_id: "met-1".into(),
         readings,
         batch_id: 1,
@@ -69,6 +70,7 @@ async fn metrics_count_what_ingest_did() {
     // once 50 mV beyond it, inside the channel's plausibility window.
     let over_limit = vec![reading(13, at(13), 1.40, None)];
     let unknown = pb::ReadingBatch {
+        historical: false,
         channel_id: "met-nobody".into(),
         ..batch(vec![reading(1, at(1), 1.08, None)])
     };

@@ -85,6 +85,7 @@ async fn start_receiver() -> (std::net::SocketAddr, Arc<Receiver>) {
 /// batch of 10 raises and clears a voltage-limit alert.
 fn crossing_batch(channel: &str, t0: i64, first: u64) -> pb::ReadingBatch {
     pb::ReadingBatch {
+        historical: false,
         channel_id: channel.into(),
         batch_id: first,
         readings: (first..first + 10)

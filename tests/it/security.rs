@@ -237,6 +237,7 @@ async fn tls_mtls_and_roles() {
     let batches = vec![
         pb::StreamReadingsRequest {
             batch: Some(pb::ReadingBatch {
+                historical: false,
                 channel_id: "granted-1".into(),
                 batch_id: 1,
                 readings: vec![reading(1, t, 1.1, None)],
@@ -244,6 +245,7 @@ async fn tls_mtls_and_roles() {
         },
         pb::StreamReadingsRequest {
             batch: Some(pb::ReadingBatch {
+                historical: false,
                 channel_id: "other-2".into(),
                 batch_id: 2,
                 readings: vec![reading(1, t, 1.1, None)],

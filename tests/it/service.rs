@@ -25,6 +25,7 @@ async fn stream_store_query_restart_resend() {
     }
     let t0 = now_ns() - 3_600_000_000_000;
     let batch = |id: &str, from: u64, n: u64, volts: f64| pb::ReadingBatch {
+        historical: false,
         channel_id: id.into(),
         batch_id: from,
         readings: (from..from + n)
@@ -169,6 +170,7 @@ async fn bad_input_is_answered_and_costs_no_good_reading() {
     let acks = send_batches(
         &mut ingest,
         vec![pb::ReadingBatch {
+            historical: false,
             channel_id: "cell-1".into(),
             batch_id: 1,
             readings: readings.clone(),
@@ -205,6 +207,7 @@ async fn bad_input_is_answered_and_costs_no_good_reading() {
     let acks = send_batches(
         &mut ingest,
         vec![pb::ReadingBatch {
+            historical: false,
             channel_id: "cell-1".into(),
             batch_id: 2,
             readings,
@@ -218,16 +221,19 @@ async fn bad_input_is_answered_and_costs_no_good_reading() {
         &mut ingest,
         vec![
             pb::ReadingBatch {
+                historical: false,
                 channel_id: "nope".into(),
                 batch_id: 3,
                 readings: vec![reading(1, t, 1.0, None)],
             },
             pb::ReadingBatch {
+                historical: false,
                 channel_id: "cell-1".into(),
                 batch_id: 4,
                 readings: vec![],
             },
             pb::ReadingBatch {
+                historical: false,
                 channel_id: "cell-1".into(),
                 batch_id: 5,
                 readings: vec![reading(9, t + 9_000_000_000, 1.08, Some(0.0))],
@@ -246,6 +252,7 @@ async fn bad_input_is_answered_and_costs_no_good_reading() {
         .collect();
     let outbound = tokio_stream::iter(vec![pb::StreamReadingsRequest {
         batch: Some(pb::ReadingBatch {
+            historical: false,
             channel_id: "cell-1".into(),
             batch_id: 6,
             readings: big,
@@ -349,6 +356,7 @@ async fn late_reading_with_a_high_seq_moves_the_resume_point_across_restarts() {
     let t0 = now_ns() - 600_000_000_000;
     let at = |s: i64| t0 + s * 1_000_000_000;
     let batch = |readings: Vec<pb::Reading>| pb::ReadingBatch {
+        historical: false,
         channel_id: "clock-1".into(),
         readings,
         batch_id: 1,

@@ -142,6 +142,7 @@ async fn bench_with_history(server: &Server) {
         .collect();
     let mut ingest = pb::ingest_service_client::IngestServiceClient::new(ch);
     let batch = pb::ReadingBatch {
+        historical: false,
         channel_id: "face-1".into(),
         batch_id: 1,
         readings,

@@ -17,6 +17,7 @@ fn steps(
     amps: f64,
 ) -> pb::ReadingBatch {
     pb::ReadingBatch {
+        historical: false,
         channel_id: channel.into(),
         batch_id: seqs.start,
         readings: seqs
@@ -174,6 +175,7 @@ async fn rollups_equal_a_recomputation_from_the_readings() {
         }
         let mut ingest = IngestServiceClient::new(server.channel().await);
         let batch = pb::ReadingBatch {
+            historical: false,
             channel_id: "roll-1".into(),
             batch_id: i as u64 + 1,
             readings: chunk

@@ -93,6 +93,7 @@ async fn session(
             let rows = spool.after(channel, sent_up_to, BATCH).await?;
             if let Some(last) = rows.last() {
                 let batch = pb::ReadingBatch {
+                    historical: false,
                     channel_id: channel.to_string(),
                     batch_id: last.seq,
                     readings: rows.iter().map(|r| r.to_pb(to_wire)).collect(),

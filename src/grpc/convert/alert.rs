@@ -40,6 +40,7 @@ pub fn alert_to_pb(a: &AlertRow) -> pb::Alert {
         acknowledged_by: a.ack_by.clone(),
         acknowledged_unix_ns: a.ack_ns,
         acknowledge_note: a.ack_note.clone(),
+        historical: a.historical,
     }
 }
 

@@ -1,0 +1,3 @@
+-- Alerts raised by imported recordings: stored and listed, never pushed
+-- to live subscribers or notify targets.
+ALTER TABLE alerts ADD COLUMN historical INTEGER NOT NULL DEFAULT 0;
