@@ -31,6 +31,16 @@ pub(crate) struct ImportArgs {
     /// Readings per batch.
     #[arg(long, default_value_t = 1000)]
     pub batch: usize,
+    /// How a recorded file other than an export is laid out (a file
+    /// source's keys: time, delimiter, decimal_comma, current_sign,
+    /// volts, amps, temp_c). Its lines get seqs by line number.
+    #[arg(long)]
+    pub map: Option<PathBuf>,
+    /// With --map: seqs are this plus the line number (the header is
+    /// line 1); past what the channel holds already. The same file with
+    /// the same --seq-from stores nothing twice.
+    #[arg(long, default_value_t = 0)]
+    pub seq_from: u64,
     #[arg(long, value_enum, default_value_t = TableOrJson::Table)]
     pub format: TableOrJson,
 }
@@ -133,9 +143,12 @@ pub(crate) async fn run(args: &ImportArgs) -> anyhow::Result<()> {
     if args.batch == 0 || args.batch > 10_000 {
         return Err(UsageError(format!("--batch {}: must be from 1 to 10000", args.batch)).into());
     }
-    let (mut csv, columns) = open_csv(args)?;
     let conn = client::connect(&args.connect).await?;
     let to_wire = sign_to_wire(&conn, &args.channel).await?;
+    let lines = match &args.map {
+        None => exported_lines(args, to_wire)?,
+        Some(map) => mapped_lines(args, map, to_wire)?,
+    };
     let mut summary = ImportSummary {
         file,
         channel_id: args.channel.clone(),
@@ -155,14 +168,9 @@ pub(crate) async fn run(args: &ImportArgs) -> anyhow::Result<()> {
         batches: Default::default(),
     };
     let progress = std::io::stderr().is_terminal();
-    for (i, record) in csv.records().enumerate() {
-        // Line 1 is the header.
-        let line = i as u64 + 2;
+    for (line, reading) in lines {
         summary.rows_read += 1;
-        match record
-            .map_err(|e| ("line".to_string(), e.to_string()))
-            .and_then(|r| columns.reading(&r, to_wire))
-        {
+        match reading {
             Ok(reading) => out.pending.push((line, reading)),
             Err((field, reason)) => summary.refuse(line, field, reason),
         }
@@ -188,6 +196,53 @@ pub(crate) async fn run(args: &ImportArgs) -> anyhow::Result<()> {
     }
     summary.prose = summary.lines();
     output::print_all(&[summary], args.format.into())
+}
+
+/// Each line of the file and its reading: numbered (the header is line 1).
+type Lines = Box<dyn Iterator<Item = (u64, Result<pb::Reading, (String, String)>)>>;
+
+/// A file as `readings --format csv` writes it.
+fn exported_lines(args: &ImportArgs, to_wire: f64) -> Result<Lines, UsageError> {
+    let (csv, columns) = open_csv(args)?;
+    Ok(Box::new(csv.into_records().enumerate().map(
+        move |(i, record)| {
+            let reading = record
+                .map_err(|e| ("line".to_string(), e.to_string()))
+                .and_then(|r| columns.reading(&r, to_wire));
+            (i as u64 + 2, reading)
+        },
+    )))
+}
+
+/// A file laid out as `--map` says; seqs from `--seq-from` and the line number.
+fn mapped_lines(
+    args: &ImportArgs,
+    map: &std::path::Path,
+    to_wire: f64,
+) -> Result<Lines, UsageError> {
+    let file = args.file.display().to_string();
+    let source = super::agent::recording_layout(map, &args.channel)?;
+    let text =
+        std::fs::read_to_string(&args.file).map_err(|e| UsageError(format!("{file}: {e}")))?;
+    let lines = super::agent::file::read_recording(&text, &source)
+        .map_err(|e| UsageError(format!("{file}: {e}")))?;
+    let seq_from = args.seq_from;
+    Ok(Box::new(lines.into_iter().map(move |(line, row)| {
+        let reading = row
+            .map(|(time_ns, volts, amps, temp_c)| pb::Reading {
+                seq: seq_from + line,
+                time_unix_ns: time_ns,
+                volts,
+                amps: amps.map(|a| a * to_wire),
+                temp_c,
+            })
+            // The reason begins with the field it is about ("volts = …").
+            .map_err(|reason| {
+                let field = reason.split(" = ").next().filter(|f| !f.contains(' '));
+                (field.unwrap_or("line").to_string(), reason)
+            });
+        (line, reading)
+    })))
 }
 
 /// The file, with its header read and the wanted columns found.

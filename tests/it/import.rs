@@ -261,3 +261,93 @@ async fn an_import_raises_historical_alerts_that_are_not_pushed() {
     assert_eq!((a.raised_seq, a.historical), (21, false));
     server.stop().await;
 }
+
+/// A recording in another program's layout, read through a map: `;`,
+/// decimal commas, elapsed seconds, mA signed discharge-positive; seqs by
+/// line number, so a second import stores nothing; a bad line is named.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_mapped_recording_imports_once_by_line_number() {
+    let (dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    put_channel(
+        &server.channel().await,
+        channel_def("pot-1", "vanadium-redox"),
+    )
+    .await;
+    let mut text = String::from("Zeit/s;Ewe/V;I/mA;T/degC\n");
+    for i in 0..40 {
+        text.push_str(&format!("{i},5;1,{:03};250,0;24,5\n", 300 + i));
+    }
+    text.push_str("40,5;nicht;250,0;24,5\n");
+    let data = dir.path().join("run7.txt");
+    std::fs::write(&data, text).unwrap();
+    let map = dir.path().join("map.toml");
+    std::fs::write(
+        &map,
+        "delimiter = \";\"\ndecimal_comma = true\ncurrent_sign = \"discharge_positive\"\n\
+         time = { column = \"Zeit/s\", format = \"elapsed_s\", start = \"2026-11-30T09:00:00Z\" }\n\
+         volts = { column = \"Ewe/V\", unit = \"V\" }\namps = { column = \"I/mA\", unit = \"mA\" }\n\
+         temp_c = { column = \"T/degC\", unit = \"C\" }\n",
+    )
+    .unwrap();
+    let run = || {
+        let mut cmd = bin();
+        cmd.args([
+            "import",
+            "--connect",
+            &server.addr.to_string(),
+            "--channel",
+            "pot-1",
+            "--format",
+            "json",
+            "--map",
+        ])
+        .arg(&map)
+        .arg(&data);
+        async move {
+            let out = output_of(cmd).await;
+            assert!(
+                out.status.success(),
+                "{}",
+                String::from_utf8_lossy(&out.stderr)
+            );
+            serde_json::from_slice::<serde_json::Value>(&out.stdout).unwrap()[0].clone()
+        }
+    };
+    let first = run().await;
+    assert_eq!(
+        (
+            first["rows_read"].as_u64(),
+            first["stored"].as_u64(),
+            first["rejected"].as_u64()
+        ),
+        (Some(41), Some(40), Some(1))
+    );
+    assert_eq!(
+        (
+            first["refusals"][0]["line"].as_u64(),
+            first["refusals"][0]["field"].as_str()
+        ),
+        (Some(42), Some("volts"))
+    );
+    let again = run().await;
+    assert_eq!(
+        (again["stored"].as_u64(), again["duplicates"].as_u64()),
+        (Some(0), Some(40))
+    );
+
+    let mut history = pb::history_service_client::HistoryServiceClient::new(server.channel().await);
+    let rows = stored_readings(&mut history, "pot-1").await;
+    assert_eq!(
+        rows.iter().map(|r| r.seq).collect::<Vec<_>>(),
+        (2..=41).collect::<Vec<u64>>()
+    );
+    let r = &rows[3];
+    // 2026-11-30T09:00:00Z + 3.5 s; 250 mA discharge-positive is 0.25 A out.
+    assert_eq!(r.time_unix_ns, 1_796_029_200_000_000_000 + 3_500_000_000);
+    assert_eq!(
+        (r.volts, r.amps_charge_positive, r.temp_c),
+        (1.303, Some(-0.25), Some(24.5))
+    );
+    server.stop().await;
+}

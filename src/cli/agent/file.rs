@@ -262,6 +262,30 @@ fn readings_of(
     rows
 }
 
+/// One line of a recording read whole: its number (the header is line 1)
+/// and its (time ns, volts, charge-positive amps, °C), or why not.
+pub(crate) type RecordedLine = (u64, Result<(i64, f64, Option<f64>, Option<f64>), String>);
+
+/// A recorded file read whole with a file source's layout (`import
+/// --map`): every line after the header, numbered; an error if the header
+/// lacks a configured column.
+pub(crate) fn read_recording(text: &str, source: &Source) -> Result<Vec<RecordedLine>, String> {
+    let super::Kind::File(layout) = &source.kind else {
+        unreachable!("a file layout");
+    };
+    let mut lines = text
+        .lines()
+        .enumerate()
+        .filter(|(_, l)| !l.trim().is_empty());
+    let Some((_, first)) = lines.next() else {
+        return Ok(Vec::new());
+    };
+    let header = Header::of(first, source, layout)?;
+    Ok(lines
+        .map(|(i, line)| (i as u64 + 1, header.row(line, source, layout)))
+        .collect())
+}
+
 /// Follows the file for good, spooling each new line's reading.
 pub(crate) async fn follow(
     source: Source,

@@ -8,7 +8,7 @@
 //! are dropped, counted and warned about) and replays in order when it
 //! comes back, from the server's resume point.
 
-mod file;
+pub(crate) mod file;
 mod modbus;
 mod scpi;
 mod spool;
@@ -32,6 +32,10 @@ pub(crate) struct RigFile {
     /// Readings kept in the spool at most, all channels; the oldest go first.
     #[serde(default = "default_max_spooled")]
     pub max_spooled: u64,
+    /// Readings older than this (by their own time) leave the spool
+    /// unsent, counted and warned about, e.g. `7d`; unset: no age bound.
+    #[serde(default)]
+    pub max_spooled_age: Option<String>,
     pub source: Vec<SourceSpec>,
 }
 
@@ -257,6 +261,51 @@ impl SourceSpec {
     }
 }
 
+/// `import --map`: how a recorded file is laid out, in a file source's
+/// words (time, delimiter, decimal comma, current sign, columns and units).
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct MapFile {
+    time: TimeColumn,
+    #[serde(default)]
+    delimiter: Option<String>,
+    #[serde(default)]
+    decimal_comma: bool,
+    #[serde(default = "default_sign")]
+    current_sign: String,
+    volts: Quantity,
+    #[serde(default)]
+    amps: Option<Quantity>,
+    #[serde(default)]
+    temp_c: Option<Quantity>,
+}
+
+/// The layout of a recorded file from its map, as a file source reads it.
+pub(crate) fn recording_layout(
+    map: &std::path::Path,
+    channel_id: &str,
+) -> Result<Source, UsageError> {
+    let name = map.display();
+    let text = std::fs::read_to_string(map).map_err(|e| UsageError(format!("{name}: {e}")))?;
+    let m: MapFile = toml::from_str(&text).map_err(|e| UsageError(format!("{name}: {e}")))?;
+    let spec = SourceSpec {
+        channel_id: channel_id.to_string(),
+        kind: "file".into(),
+        address: String::new(),
+        period: "1s".into(),
+        timeout: None,
+        time: Some(m.time),
+        delimiter: m.delimiter,
+        decimal_comma: m.decimal_comma,
+        unit_id: None,
+        current_sign: m.current_sign,
+        volts: m.volts,
+        amps: m.amps,
+        temp_c: m.temp_c,
+    };
+    spec.resolve(&name.to_string())
+}
+
 /// Reads and checks the agent's file.
 pub(crate) fn load(path: &std::path::Path) -> Result<(RigFile, Vec<Source>), UsageError> {
     let name = path.display();
@@ -286,7 +335,12 @@ pub(crate) fn load(path: &std::path::Path) -> Result<(RigFile, Vec<Source>), Usa
 pub(crate) async fn run(config: &std::path::Path) -> anyhow::Result<()> {
     let (file, sources) = load(config)?;
     super::serve::init_logging();
-    let spool = Arc::new(spool::Spool::open(&file.spool, file.max_spooled).await?);
+    let max_age = file
+        .max_spooled_age
+        .as_deref()
+        .map(|t| super::parse_duration(t).map_err(|e| UsageError(format!("max_spooled_age: {e}"))))
+        .transpose()?;
+    let spool = Arc::new(spool::Spool::open(&file.spool, file.max_spooled, max_age).await?);
     let mut tasks = Vec::new();
     for source in sources {
         let wake = Arc::new(tokio::sync::Notify::new());

@@ -12,6 +12,8 @@ use std::sync::atomic::{AtomicU64, Ordering::SeqCst};
 pub(crate) struct Spool {
     pool: SqlitePool,
     max_rows: u64,
+    /// Readings older than this go unsent.
+    max_age: Option<std::time::Duration>,
     /// Readings spooled now, all channels (counted once at open, then
     /// kept: a COUNT per write would scan the spool).
     rows: AtomicU64,
@@ -24,6 +26,7 @@ CREATE TABLE IF NOT EXISTS spooled (
     PRIMARY KEY (channel_id, seq)) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS next_seq (channel_id TEXT PRIMARY KEY, next INTEGER NOT NULL);
 CREATE TABLE IF NOT EXISTS dropped (channel_id TEXT PRIMARY KEY, n INTEGER NOT NULL);
+CREATE INDEX IF NOT EXISTS spooled_by_time ON spooled (channel_id, time_ns);
 CREATE TABLE IF NOT EXISTS file_pos (channel_id TEXT PRIMARY KEY, inode INTEGER NOT NULL, offset INTEGER NOT NULL);
 ";
 
@@ -58,7 +61,11 @@ impl Spooled {
 }
 
 impl Spool {
-    pub(crate) async fn open(path: &Path, max_rows: u64) -> anyhow::Result<Spool> {
+    pub(crate) async fn open(
+        path: &Path,
+        max_rows: u64,
+        max_age: Option<std::time::Duration>,
+    ) -> anyhow::Result<Spool> {
         let options = SqliteConnectOptions::new()
             .filename(path)
             .create_if_missing(true)
@@ -79,6 +86,7 @@ impl Spool {
         Ok(Spool {
             pool,
             max_rows,
+            max_age,
             rows: AtomicU64::new(rows as u64),
         })
     }
@@ -153,7 +161,11 @@ impl Spool {
             .execute(&mut *tx)
             .await?;
         let over = (self.rows.load(SeqCst) + added).saturating_sub(self.max_rows);
-        let dropped = drop_oldest(&mut tx, channel_id, over).await?;
+        let mut dropped = drop_oldest(&mut tx, channel_id, over).await?;
+        if let Some(age) = self.max_age {
+            let before_ns = gibbsline::ingest::now_ns() - age.as_nanos() as i64;
+            dropped += drop_older(&mut tx, channel_id, before_ns).await?;
+        }
         tx.commit().await?;
         self.rows.fetch_add(added, SeqCst);
         self.rows
@@ -218,6 +230,28 @@ impl Spool {
     }
 }
 
+/// The channel's readings stamped before `before_ns` go (the age bound); counted.
+async fn drop_older(
+    tx: &mut sqlx::Transaction<'_, sqlx::Sqlite>,
+    channel_id: &str,
+    before_ns: i64,
+) -> anyhow::Result<u64> {
+    let gone = sqlx::query("DELETE FROM spooled WHERE channel_id = ? AND time_ns < ?")
+        .bind(channel_id)
+        .bind(before_ns)
+        .execute(&mut **tx)
+        .await?
+        .rows_affected();
+    if gone > 0 {
+        sqlx::query("INSERT INTO dropped (channel_id, n) VALUES (?, ?) ON CONFLICT (channel_id) DO UPDATE SET n = n + excluded.n")
+            .bind(channel_id)
+            .bind(gone as i64)
+            .execute(&mut **tx)
+            .await?;
+    }
+    Ok(gone)
+}
+
 /// The channel's `over` oldest go (the spool is past its bound); counted.
 async fn drop_oldest(
     tx: &mut sqlx::Transaction<'_, sqlx::Sqlite>,
@@ -241,4 +275,56 @@ async fn drop_oldest(
         .execute(&mut **tx)
         .await?;
     Ok(gone)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn reading(seq: u64, time_ns: i64) -> Spooled {
+        Spooled {
+            seq,
+            time_ns,
+            volts: 1.3,
+            amps_charge_positive: None,
+            temp_c: None,
+        }
+    }
+
+    #[tokio::test]
+    async fn bounds_by_count_and_by_age_drop_the_oldest_and_trims_follow_acks() {
+        let dir = tempfile::tempdir().unwrap();
+        let now = gibbsline::ingest::now_ns();
+        let spool = Spool::open(&dir.path().join("s.db"), 5, None)
+            .await
+            .unwrap();
+        let rows: Vec<Spooled> = (1..=7).map(|s| reading(s, now)).collect();
+        assert_eq!(spool.append("a", &rows, 8).await.unwrap(), 2);
+        let kept: Vec<u64> = spool
+            .after("a", 0, 100)
+            .await
+            .unwrap()
+            .iter()
+            .map(|r| r.seq)
+            .collect();
+        assert_eq!(kept, [3, 4, 5, 6, 7]);
+        spool.trim("a", 5).await.unwrap();
+        assert_eq!(spool.after("a", 0, 100).await.unwrap().len(), 2);
+        assert_eq!(spool.next_seq("a").await.unwrap(), Some(8));
+
+        let aged = Spool::open(
+            &dir.path().join("t.db"),
+            100,
+            Some(std::time::Duration::from_secs(3600)),
+        )
+        .await
+        .unwrap();
+        let old = now - 7_200_000_000_000;
+        let rows = [reading(1, old), reading(2, old), reading(3, now)];
+        assert_eq!(aged.append("b", &rows, 4).await.unwrap(), 2);
+        assert_eq!(
+            aged.after("b", 0, 100).await.unwrap(),
+            vec![reading(3, now)]
+        );
+    }
 }
