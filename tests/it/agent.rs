@@ -56,8 +56,16 @@ async fn instrument() -> (std::net::SocketAddr, Arc<AtomicU64>) {
     (addr, queries)
 }
 
-fn rig_toml(server: &str, instrument: std::net::SocketAddr, spool: &std::path::Path) -> String {
-    let mut text = format!("connect = \"{server}\"\nspool = \"{}\"\n", spool.display());
+fn rig_toml(
+    server: &str,
+    instrument: std::net::SocketAddr,
+    spool: &std::path::Path,
+    metrics: &str,
+) -> String {
+    let mut text = format!(
+        "connect = \"{server}\"\nspool = \"{}\"\nmetrics_listen = \"{metrics}\"\n",
+        spool.display()
+    );
     for channel in ["rig-a", "rig-b"] {
         text.push_str(&format!(
             "\n[[source]]\nchannel_id = \"{channel}\"\nkind = \"scpi\"\naddress = \"{instrument}\"\nperiod = \"100ms\"\n\
@@ -111,7 +119,8 @@ async fn spooled_readings_survive_a_server_outage_and_an_agent_kill() {
     }
     let config = dir.path().join("rig.toml");
     let spool = dir.path().join("spool.db");
-    std::fs::write(&config, rig_toml(&addr, instrument, &spool)).unwrap();
+    let metrics = free_addr();
+    std::fs::write(&config, rig_toml(&addr, instrument, &spool, &metrics)).unwrap();
     let log = dir.path().join("agent.log");
     let mut agent = spawn_agent(&config, &log);
     tokio::time::sleep(Duration::from_secs(3)).await;
@@ -138,6 +147,19 @@ async fn spooled_readings_survive_a_server_outage_and_an_agent_kill() {
     agent.wait().unwrap();
     let mut agent = spawn_agent(&config, &log);
     tokio::time::sleep(Duration::from_secs(3)).await;
+    // The agent's own metrics: the garbage answers counted, the spool empty.
+    let page = crate::web::request(metrics.parse().unwrap(), "GET", "/metrics", None, None).await;
+    let text = String::from_utf8(page.body).unwrap();
+    let value = |name: &str| -> f64 {
+        let line = text
+            .lines()
+            .find(|l| l.starts_with(&format!("{name} ")))
+            .unwrap_or_else(|| panic!("{name} in {text}"));
+        line.rsplit(' ').next().unwrap().parse().unwrap()
+    };
+    assert!(value("gibbsline_rig_read_errors_total") > 0.0, "{text}");
+    assert!(value("gibbsline_rig_acked_readings_total") > 0.0, "{text}");
+    assert_eq!(value("gibbsline_rig_dropped_readings_total"), 0.0, "{text}");
     let _ = Command::new("kill")
         .arg("-TERM")
         .arg(agent.id().to_string())

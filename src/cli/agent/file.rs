@@ -328,7 +328,14 @@ pub(crate) async fn follow(
             );
             header = None;
         }
+        let lines = text.lines().filter(|l| !l.trim().is_empty()).count() as u64;
         let rows = readings_of(&text, &mut header, &source, &layout, &mut next);
+        // Lines that gave no reading (a header gives none either: at most one).
+        let failed =
+            lines.saturating_sub(rows.len() as u64 + u64::from(restarted || pos.offset == 0));
+        spool
+            .read_errors_total
+            .fetch_add(failed, std::sync::atomic::Ordering::Relaxed);
         match spool.append_at(&channel, &rows, next, Some(end)).await {
             Ok(_) => {
                 pos = end;

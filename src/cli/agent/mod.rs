@@ -32,6 +32,10 @@ pub(crate) struct RigFile {
     /// Readings kept in the spool at most, all channels; the oldest go first.
     #[serde(default = "default_max_spooled")]
     pub max_spooled: u64,
+    /// Serve the agent's metrics (spooled, dropped, acknowledged, read
+    /// errors) at `/metrics` on this address, e.g. `127.0.0.1:9465`.
+    #[serde(default)]
+    pub metrics_listen: Option<String>,
     /// Readings older than this (by their own time) leave the spool
     /// unsent, counted and warned about, e.g. `7d`; unset: no age bound.
     #[serde(default)]
@@ -331,6 +335,28 @@ pub(crate) fn load(path: &std::path::Path) -> Result<(RigFile, Vec<Source>), Usa
     Ok((file, sources))
 }
 
+/// `/metrics` for the agent (Prometheus text).
+async fn serve_metrics(listener: tokio::net::TcpListener, spool: Arc<spool::Spool>) {
+    let app = axum::Router::new().route(
+        "/metrics",
+        axum::routing::get(move || {
+            let page = spool.render_metrics();
+            async move {
+                (
+                    [(
+                        axum::http::header::CONTENT_TYPE,
+                        "text/plain; version=0.0.4",
+                    )],
+                    page,
+                )
+            }
+        }),
+    );
+    if let Err(e) = axum::serve(listener, app).await {
+        tracing::error!(error = %e, "agent metrics endpoint stopped");
+    }
+}
+
 /// Runs every source and its uplink until Ctrl-C or SIGTERM.
 pub(crate) async fn run(config: &std::path::Path) -> anyhow::Result<()> {
     let (file, sources) = load(config)?;
@@ -367,7 +393,13 @@ pub(crate) async fn run(config: &std::path::Path) -> anyhow::Result<()> {
             known,
         )));
     }
-    tracing::info!(sources = tasks.len() / 2, spool = %file.spool.display(), "rig agent running");
+    if let Some(addr) = &file.metrics_listen {
+        let listener = tokio::net::TcpListener::bind(addr)
+            .await
+            .map_err(|e| UsageError(format!("metrics_listen {addr}: {e}")))?;
+        tasks.push(tokio::spawn(serve_metrics(listener, spool.clone())));
+    }
+    tracing::info!(spool = %file.spool.display(), "rig agent running");
     super::serve::shutdown_signal().await;
     for t in tasks {
         t.abort();

@@ -218,6 +218,9 @@ pub(crate) async fn sample(
             }
             Err(e) => {
                 tracing::warn!(channel, error = %e, "instrument read failed");
+                spool
+                    .read_errors_total
+                    .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
                 if !probe.connected() {
                     tokio::time::sleep(backoff).await;
                     backoff = (backoff * 2).min(RECONNECT_MAX);

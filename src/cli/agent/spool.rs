@@ -17,6 +17,11 @@ pub(crate) struct Spool {
     /// Readings spooled now, all channels (counted once at open, then
     /// kept: a COUNT per write would scan the spool).
     rows: AtomicU64,
+    /// Since start: readings dropped by a bound, readings the server
+    /// acknowledged (trimmed), instrument reads or file lines that failed.
+    pub(crate) dropped_total: AtomicU64,
+    pub(crate) acked_total: AtomicU64,
+    pub(crate) read_errors_total: AtomicU64,
 }
 
 const SCHEMA: &str = "
@@ -88,6 +93,9 @@ impl Spool {
             max_rows,
             max_age,
             rows: AtomicU64::new(rows as u64),
+            dropped_total: AtomicU64::new(0),
+            acked_total: AtomicU64::new(0),
+            read_errors_total: AtomicU64::new(0),
         })
     }
 
@@ -170,6 +178,7 @@ impl Spool {
         self.rows.fetch_add(added, SeqCst);
         self.rows
             .fetch_sub(dropped.min(self.rows.load(SeqCst)), SeqCst);
+        self.dropped_total.fetch_add(dropped, SeqCst);
         Ok(dropped)
     }
 
@@ -210,6 +219,7 @@ impl Spool {
             .rows_affected();
         self.rows
             .fetch_sub(gone.min(self.rows.load(SeqCst)), SeqCst);
+        self.acked_total.fetch_add(gone, SeqCst);
         Ok(())
     }
 
@@ -223,6 +233,42 @@ impl Spool {
             inode: r.get::<i64, _>("inode") as u64,
             offset: r.get::<i64, _>("offset") as u64,
         }))
+    }
+
+    /// The agent's metrics, Prometheus text.
+    pub(crate) fn render_metrics(&self) -> String {
+        let mut page = String::new();
+        for (name, kind, help, value) in [
+            (
+                "gibbsline_rig_spooled_readings",
+                "gauge",
+                "Readings in the spool, waiting for the server's ack.",
+                self.rows.load(SeqCst),
+            ),
+            (
+                "gibbsline_rig_dropped_readings_total",
+                "counter",
+                "Readings dropped unsent by the spool's bounds.",
+                self.dropped_total.load(SeqCst),
+            ),
+            (
+                "gibbsline_rig_acked_readings_total",
+                "counter",
+                "Readings the server acknowledged (left the spool).",
+                self.acked_total.load(SeqCst),
+            ),
+            (
+                "gibbsline_rig_read_errors_total",
+                "counter",
+                "Instrument reads and file lines that gave no reading.",
+                self.read_errors_total.load(SeqCst),
+            ),
+        ] {
+            page.push_str(&format!(
+                "# HELP {name} {help}\n# TYPE {name} {kind}\n{name} {value}\n"
+            ));
+        }
+        page
     }
 
     pub(crate) async fn close(&self) {
