@@ -304,7 +304,12 @@ impl Hub {
         let wall_now = now_ns();
         let (derived, rejected) = {
             let mut rt = runtime.lock().expect("channel state poisoned");
-            rt.note_arrival(wall_now);
+            // A recording is not the rig speaking: it must not set the
+            // silent-rig yardstick (the import's pace would then make a
+            // channel with no live rig look silent once the import ends).
+            if !historical {
+                rt.note_arrival(wall_now);
+            }
             derive_batch(&mut rt, &readings, wall_now)
         };
         drop(readings);

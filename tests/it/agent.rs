@@ -96,6 +96,18 @@ fn spawn_agent(config: &std::path::Path, log: &std::path::Path) -> Child {
         .unwrap()
 }
 
+/// The channel's readings once at least `n` are stored (10 s at most).
+async fn stored_at_least(addr: &str, channel: &str, n: usize) -> Vec<pb::StoredReading> {
+    for _ in 0..100 {
+        let rows = stored(addr, channel).await;
+        if rows.len() >= n {
+            return rows;
+        }
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
+    panic!("fewer than {n} readings of {channel} stored");
+}
+
 async fn stored(addr: &str, channel: &str) -> Vec<pb::StoredReading> {
     let ch = connect(addr).await;
     let mut history = pb::history_service_client::HistoryServiceClient::new(ch);
@@ -244,19 +256,7 @@ async fn a_followed_file_is_read_once_across_partial_lines_kills_and_truncation(
     .unwrap();
     let log = dir.path().join("agent.log");
     let addr = server.addr.to_string();
-    let wait_for = |n: usize| {
-        let addr = addr.clone();
-        async move {
-            for _ in 0..100 {
-                let rows = stored(&addr, "pstat-2").await;
-                if rows.len() >= n {
-                    return rows;
-                }
-                tokio::time::sleep(Duration::from_millis(100)).await;
-            }
-            panic!("fewer than {n} readings stored");
-        }
-    };
+    let wait_for = |n: usize| stored_at_least(&addr, "pstat-2", n);
     let mut agent = spawn_agent(&config, &log);
     wait_for(10).await;
     (10..15).for_each(|i| append(&line(i)));
@@ -399,19 +399,7 @@ async fn modbus_registers_are_read_signed_and_scaled() {
     .unwrap();
     let mut agent = spawn_agent(&config, &dir.path().join("agent.log"));
     let addr = server.addr.to_string();
-    let wait_for = |n: usize| {
-        let addr = addr.clone();
-        async move {
-            for _ in 0..100 {
-                let rows = stored(&addr, "bms-1").await;
-                if rows.len() >= n {
-                    return rows;
-                }
-                tokio::time::sleep(Duration::from_millis(100)).await;
-            }
-            panic!("fewer than {n} readings stored");
-        }
-    };
+    let wait_for = |n: usize| stored_at_least(&addr, "bms-1", n);
     let before = wait_for(5).await.len();
     // +1,200 mA: 0x0000_04B0, low word first.
     set_amps(&regs, [0x04B0, 0x0000]);
