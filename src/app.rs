@@ -11,7 +11,6 @@ use crate::ingest::{self, Hub, Job, hub::HubHandles, writer};
 use crate::pb;
 use crate::store::{self, Store};
 use std::future::Future;
-use std::path::PathBuf;
 use std::sync::{Arc, Mutex};
 use std::time::Duration;
 use tokio::net::TcpListener;
@@ -83,8 +82,8 @@ pub async fn run(
         http: http_listener,
     } = listeners;
     let tls = config.read_tls()?;
-    let db_path = PathBuf::from(&config.db);
-    let store = Store::open(&db_path, config.durability).await?;
+    let db = store::Location::parse(&config.db);
+    let store = Store::open_location(&db, config.durability).await?;
     if let Ok(addr) = listener.local_addr() {
         store.note_holder(&addr.to_string());
     }
@@ -108,7 +107,7 @@ pub async fn run(
     let mut background =
         Background::start(&hub, &config, metrics_listener, health_reporter.clone()).await?;
     let addr = listener.local_addr().ok();
-    tracing::info!(?addr, db = %db_path.display(), "serving");
+    tracing::info!(?addr, db = %db.display_name(), "serving");
     let connection_idle = Duration::from_secs(config.limits.connection_idle_timeout_s);
     let incoming = crate::listen::incoming(listener, connection_idle);
     let tokens = Arc::new(crate::auth::TokenTable::new(&config.token)?);
@@ -429,9 +428,11 @@ pub fn render_metrics(hub: &Hub) -> String {
         })
         .collect();
     let mut page = hub.metrics().render(hub.writer_queue_depth(), &ages);
-    let db = hub.store().path();
-    let file_bytes = std::fs::metadata(db).map(|m| m.len()).unwrap_or(0);
-    crate::metrics::render_storage(&mut page, file_bytes, store::report::wal_bytes(db));
+    if hub.store().engine() == store::Engine::Sqlite {
+        let db = hub.store().path();
+        let file_bytes = std::fs::metadata(db).map(|m| m.len()).unwrap_or(0);
+        crate::metrics::render_storage(&mut page, file_bytes, store::report::wal_bytes(db));
+    }
     page
 }
 

@@ -62,7 +62,7 @@ const QUERY_SEND_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(3
 
 /// The range one QueryReadings call reads, page by page.
 struct QueryPage {
-    reader: sqlx::SqlitePool,
+    reader: store::Pool,
     channel_key: i64,
     start_ns: i64,
     end_ns: i64,

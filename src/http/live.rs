@@ -115,7 +115,7 @@ fn json_event(name: &str, body: &impl serde::Serialize) -> Event {
 /// One channel's committed readings, picked up tick by tick.
 struct Follower {
     runtime: Arc<Mutex<ChannelRuntime>>,
-    reader: sqlx::SqlitePool,
+    reader: store::Pool,
     channel_key: i64,
     runs: HashMap<i64, RunRow>,
     /// The last reading sent, as (time, seq).

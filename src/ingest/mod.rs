@@ -17,6 +17,7 @@
 pub mod compact;
 pub mod derive;
 pub mod hub;
+pub mod ownership;
 pub mod prune;
 pub mod runtime;
 pub mod session;

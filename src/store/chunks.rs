@@ -9,16 +9,17 @@
 //! before it is written, so a seq is stored once. Every read sorts what it
 //! decodes by (time, seq).
 //!
-//! All of it runs on one connection (`&mut SqliteConnection`): the
+//! All of it runs on one connection (`&mut Conn`): the
 //! writer's transaction, or a read transaction from the read pool. A read
 //! of several queries must be one transaction, one snapshot: compaction
 //! may commit between two of its queries and move readings the scan has
 //! not reached into a chunk behind its cursor (a test lost readings so
 //! before the store's readers began a transaction).
 
+use super::Conn;
 use super::codec;
 use super::{ReadingRow, StoreError};
-use sqlx::{Row, SqliteConnection};
+use sqlx::Row;
 use std::collections::HashSet;
 
 /// No chunk spans an hour boundary (retention's marks are whole hours, so
@@ -49,11 +50,7 @@ fn by_time(a: &ReadingRow, b: &ReadingRow) -> std::cmp::Ordering {
 /// Stores readings not stored before as chunks: sorted by (time, seq),
 /// one group per hour, each group cut into near-equal chunks of at most
 /// [`CHUNK_ROWS`].
-pub async fn write(
-    conn: &mut SqliteConnection,
-    key: i64,
-    rows: &[ReadingRow],
-) -> Result<(), StoreError> {
+pub async fn write(conn: &mut Conn, key: i64, rows: &[ReadingRow]) -> Result<(), StoreError> {
     let mut sorted;
     let rows = if rows.is_sorted_by(|a, b| by_time(a, b).is_le()) {
         rows
@@ -72,17 +69,13 @@ pub async fn write(
 }
 
 /// One chunk of rows sorted by (time, seq), all in one hour.
-async fn insert_one(
-    conn: &mut SqliteConnection,
-    key: i64,
-    rows: &[ReadingRow],
-) -> Result<(), StoreError> {
+async fn insert_one(conn: &mut Conn, key: i64, rows: &[ReadingRow]) -> Result<(), StoreError> {
     let body = codec::encode(rows).map_err(corrupt)?;
     let first_seq = rows.iter().map(|r| r.seq).min().unwrap_or(0);
     let last_seq = rows.iter().map(|r| r.seq).max().unwrap_or(0);
     sqlx::query(
         "INSERT INTO chunks (channel_key, first_seq, last_seq, start_ns, end_ns, n, body) \
-         VALUES (?, ?, ?, ?, ?, ?, ?)",
+         VALUES ($1, $2, $3, $4, $5, $6, $7)",
     )
     .bind(key)
     .bind(first_seq as i64)
@@ -100,7 +93,7 @@ async fn insert_one(
 /// row of `rows` again. A batch past everything stored costs one index
 /// probe.
 pub async fn keep_new(
-    conn: &mut SqliteConnection,
+    conn: &mut Conn,
     key: i64,
     rows: &[ReadingRow],
 ) -> Result<Vec<bool>, StoreError> {
@@ -109,7 +102,7 @@ pub async fn keep_new(
     };
     let hi = rows.iter().map(|r| r.seq).max().unwrap_or(lo);
     let bodies = sqlx::query(
-        "SELECT body FROM chunks WHERE channel_key = ? AND last_seq >= ? AND first_seq <= ?",
+        "SELECT body FROM chunks WHERE channel_key = $1 AND last_seq >= $2 AND first_seq <= $3",
     )
     .bind(key)
     .bind(lo as i64)
@@ -134,7 +127,7 @@ pub async fn keep_new(
 /// Stores the rows of `rows` that are new ([`keep_new`]); for each row,
 /// whether it was.
 pub async fn insert_new(
-    conn: &mut SqliteConnection,
+    conn: &mut Conn,
     key: i64,
     rows: &[ReadingRow],
 ) -> Result<Vec<bool>, StoreError> {
@@ -162,7 +155,7 @@ struct Head {
 /// Up to `count` chunks that may hold readings in `[from_ns, to_ns)`,
 /// after `cursor` (start, id) in start order.
 async fn scan(
-    conn: &mut SqliteConnection,
+    conn: &mut Conn,
     key: i64,
     from_ns: i64,
     to_ns: i64,
@@ -170,9 +163,9 @@ async fn scan(
     count: i64,
 ) -> Result<Vec<(Head, Vec<u8>)>, StoreError> {
     let rows = sqlx::query(
-        "SELECT chunk_id, start_ns, body FROM chunks WHERE channel_key = ? \
-         AND (start_ns, chunk_id) > (?, ?) AND start_ns < ? AND end_ns >= ? \
-         ORDER BY start_ns, chunk_id LIMIT ?",
+        "SELECT chunk_id, start_ns, body FROM chunks WHERE channel_key = $1 \
+         AND (start_ns, chunk_id) > ($2, $3) AND start_ns < $4 AND end_ns >= $5 \
+         ORDER BY start_ns, chunk_id LIMIT $6",
     )
     .bind(key)
     .bind(cursor.0)
@@ -197,15 +190,15 @@ async fn scan(
 
 /// Where the next chunk [`scan`] would return starts, if there is one.
 async fn next_start(
-    conn: &mut SqliteConnection,
+    conn: &mut Conn,
     key: i64,
     from_ns: i64,
     to_ns: i64,
     cursor: (i64, i64),
 ) -> Result<Option<i64>, StoreError> {
     let row = sqlx::query(
-        "SELECT start_ns FROM chunks WHERE channel_key = ? \
-         AND (start_ns, chunk_id) > (?, ?) AND start_ns < ? AND end_ns >= ? \
+        "SELECT start_ns FROM chunks WHERE channel_key = $1 \
+         AND (start_ns, chunk_id) > ($2, $3) AND start_ns < $4 AND end_ns >= $5 \
          ORDER BY start_ns, chunk_id LIMIT 1",
     )
     .bind(key)
@@ -228,7 +221,7 @@ fn first_cursor(from_ns: i64) -> (i64, i64) {
 /// `[start_ns, end_ns)`, chunk by chunk (in chunk start order; not
 /// sorted where chunks overlap).
 pub async fn for_each_between(
-    conn: &mut SqliteConnection,
+    conn: &mut Conn,
     key: i64,
     start_ns: i64,
     end_ns: i64,
@@ -256,7 +249,7 @@ pub async fn for_each_between(
 /// after the reading `after` (time, seq): chunks are read in start order
 /// until no later one can hold a reading before the page's last.
 pub async fn page(
-    conn: &mut SqliteConnection,
+    conn: &mut Conn,
     key: i64,
     start_ns: i64,
     end_ns: i64,
@@ -305,7 +298,7 @@ pub async fn page(
 /// Decodes the chunks a query selected (binds: the channel, then `binds`)
 /// and keeps the reading `better` prefers over the others.
 async fn best_of(
-    conn: &mut SqliteConnection,
+    conn: &mut Conn,
     sql: &'static str,
     key: i64,
     bind: i64,
@@ -332,13 +325,13 @@ async fn best_of(
 
 /// The reading with seq `seq`, if stored.
 pub async fn find_seq(
-    conn: &mut SqliteConnection,
+    conn: &mut Conn,
     key: i64,
     seq: u64,
 ) -> Result<Option<ReadingRow>, StoreError> {
     let found = best_of(
         conn,
-        "SELECT body FROM chunks WHERE channel_key = ?1 AND last_seq >= ?2 AND first_seq <= ?2",
+        "SELECT body FROM chunks WHERE channel_key = $1 AND last_seq >= $2 AND first_seq <= $2",
         key,
         seq as i64,
         |r, _| r.seq == seq,
@@ -348,15 +341,12 @@ pub async fn find_seq(
 }
 
 /// The stored reading with the highest seq.
-pub async fn latest(
-    conn: &mut SqliteConnection,
-    key: i64,
-) -> Result<Option<ReadingRow>, StoreError> {
+pub async fn latest(conn: &mut Conn, key: i64) -> Result<Option<ReadingRow>, StoreError> {
     // Chunks may overlap in seq; the highest seq is in the chunk whose
     // last seq is highest.
     best_of(
         conn,
-        "SELECT body FROM chunks WHERE channel_key = ?1 AND ?2 = ?2 ORDER BY last_seq DESC LIMIT 1",
+        "SELECT body FROM chunks WHERE channel_key = $1 AND $2 = $2 ORDER BY last_seq DESC LIMIT 1",
         key,
         0,
         |r, b| r.seq > b.seq,
@@ -365,29 +355,32 @@ pub async fn latest(
 }
 
 /// The highest seq stored.
-pub async fn max_seq(conn: &mut SqliteConnection, key: i64) -> Result<Option<u64>, StoreError> {
-    let m: Option<i64> = sqlx::query("SELECT MAX(last_seq) AS m FROM chunks WHERE channel_key = ?")
-        .bind(key)
-        .fetch_one(conn)
-        .await?
-        .try_get("m")?;
+pub async fn max_seq(conn: &mut Conn, key: i64) -> Result<Option<u64>, StoreError> {
+    let m: Option<i64> =
+        sqlx::query("SELECT MAX(last_seq) AS m FROM chunks WHERE channel_key = $1")
+            .bind(key)
+            .fetch_one(conn)
+            .await?
+            .try_get("m")?;
     Ok(m.map(|m| m as u64))
 }
 
 /// Readings stored for the channel.
-pub async fn count(conn: &mut SqliteConnection, key: i64) -> Result<u64, StoreError> {
-    let n: i64 = sqlx::query("SELECT COALESCE(SUM(n), 0) AS n FROM chunks WHERE channel_key = ?")
-        .bind(key)
-        .fetch_one(conn)
-        .await?
-        .try_get("n")?;
+pub async fn count(conn: &mut Conn, key: i64) -> Result<u64, StoreError> {
+    let n: i64 = sqlx::query(
+        "SELECT CAST(COALESCE(SUM(n), 0) AS BIGINT) AS n FROM chunks WHERE channel_key = $1",
+    )
+    .bind(key)
+    .fetch_one(conn)
+    .await?
+    .try_get("n")?;
     Ok(n as u64)
 }
 
 /// The stored reading with the highest seq among those with `flag` set,
 /// read from the newest chunks back until no older one can beat it.
 pub async fn last_flagged(
-    conn: &mut SqliteConnection,
+    conn: &mut Conn,
     key: i64,
     flag: i64,
 ) -> Result<Option<ReadingRow>, StoreError> {
@@ -396,8 +389,8 @@ pub async fn last_flagged(
     let mut rows = Vec::new();
     loop {
         let batch = sqlx::query(
-            "SELECT last_seq, body FROM chunks WHERE channel_key = ? AND last_seq < ? \
-             ORDER BY last_seq DESC LIMIT ?",
+            "SELECT last_seq, body FROM chunks WHERE channel_key = $1 AND last_seq < $2 \
+             ORDER BY last_seq DESC LIMIT $3",
         )
         .bind(key)
         .bind(below)
@@ -428,7 +421,7 @@ pub async fn last_flagged(
 /// starting before it, newest first, until one starts an hour before the
 /// best found (it could hold nothing later).
 pub async fn last_before(
-    conn: &mut SqliteConnection,
+    conn: &mut Conn,
     key: i64,
     time_ns: i64,
 ) -> Result<Option<ReadingRow>, StoreError> {
@@ -437,8 +430,8 @@ pub async fn last_before(
     let mut rows = Vec::new();
     loop {
         let batch = sqlx::query(
-            "SELECT chunk_id, start_ns, body FROM chunks WHERE channel_key = ? \
-             AND (start_ns, chunk_id) < (?, ?) ORDER BY start_ns DESC, chunk_id DESC LIMIT ?",
+            "SELECT chunk_id, start_ns, body FROM chunks WHERE channel_key = $1 \
+             AND (start_ns, chunk_id) < ($2, $3) ORDER BY start_ns DESC, chunk_id DESC LIMIT $4",
         )
         .bind(key)
         .bind(cursor.0)
@@ -473,13 +466,13 @@ pub async fn last_before(
 /// chunk straddles it), oldest first, until at least `limit` readings
 /// went or none is left; returns how many readings went.
 pub async fn prune(
-    conn: &mut SqliteConnection,
+    conn: &mut Conn,
     key: i64,
     before_ns: i64,
     limit: u64,
 ) -> Result<u64, StoreError> {
     let heads = sqlx::query(
-        "SELECT chunk_id, n FROM chunks WHERE channel_key = ? AND start_ns < ? AND end_ns < ? \
+        "SELECT chunk_id, n FROM chunks WHERE channel_key = $1 AND start_ns < $2 AND end_ns < $3 \
          ORDER BY start_ns LIMIT 256",
     )
     .bind(key)
@@ -500,15 +493,11 @@ pub async fn prune(
     Ok(gone)
 }
 
-async fn delete(conn: &mut SqliteConnection, ids: &[i64]) -> Result<(), StoreError> {
+async fn delete(conn: &mut Conn, ids: &[i64]) -> Result<(), StoreError> {
     for part in ids.chunks(500) {
-        let mut qb = sqlx::QueryBuilder::new("DELETE FROM chunks WHERE chunk_id IN (");
-        let mut list = qb.separated(", ");
-        for id in part {
-            list.push_bind(*id);
-        }
-        qb.push(")");
-        qb.build().execute(&mut *conn).await?;
+        let mut q = super::Binds::new("DELETE FROM chunks WHERE chunk_id IN ");
+        q.list(part.iter().copied());
+        q.execute(&mut *conn).await?;
     }
     Ok(())
 }
@@ -517,9 +506,9 @@ async fn delete(conn: &mut SqliteConnection, ids: &[i64]) -> Result<(), StoreErr
 /// to [`CHUNK_ROWS`], until about `limit` readings were rewritten; returns
 /// how many were. One call is one step of the writer's transaction: a
 /// crash leaves the chunks as they were before it or after it.
-pub async fn compact(conn: &mut SqliteConnection, key: i64, limit: u64) -> Result<u64, StoreError> {
+pub async fn compact(conn: &mut Conn, key: i64, limit: u64) -> Result<u64, StoreError> {
     let heads = sqlx::query(
-        "SELECT chunk_id, start_ns, n FROM chunks WHERE channel_key = ? AND n < 256 \
+        "SELECT chunk_id, start_ns, n FROM chunks WHERE channel_key = $1 AND n < 256 \
          ORDER BY start_ns, chunk_id LIMIT 4096",
     )
     .bind(key)
@@ -545,16 +534,12 @@ pub async fn compact(conn: &mut SqliteConnection, key: i64, limit: u64) -> Resul
 }
 
 /// Rewrites the chunks `ids` (one hour's) as one run of chunks.
-async fn merge(conn: &mut SqliteConnection, key: i64, ids: &[i64]) -> Result<u64, StoreError> {
+async fn merge(conn: &mut Conn, key: i64, ids: &[i64]) -> Result<u64, StoreError> {
     let mut rows = Vec::new();
     for part in ids.chunks(500) {
-        let mut qb = sqlx::QueryBuilder::new("SELECT body FROM chunks WHERE chunk_id IN (");
-        let mut list = qb.separated(", ");
-        for id in part {
-            list.push_bind(*id);
-        }
-        qb.push(")");
-        for b in qb.build().fetch_all(&mut *conn).await? {
+        let mut q = super::Binds::new("SELECT body FROM chunks WHERE chunk_id IN ");
+        q.list(part.iter().copied());
+        for b in q.query().fetch_all(&mut *conn).await? {
             codec::decode_into(b.try_get("body")?, key, &mut rows).map_err(corrupt)?;
         }
     }
@@ -566,7 +551,7 @@ async fn merge(conn: &mut SqliteConnection, key: i64, ids: &[i64]) -> Result<u64
 /// Readings a server before chunks stored one per row, moved into chunks
 /// at most `limit` at a time (one call per transaction); returns how many
 /// moved, zero once none is left.
-pub async fn adopt_rows(conn: &mut SqliteConnection, limit: u32) -> Result<u64, StoreError> {
+pub async fn adopt_rows(conn: &mut Conn, limit: u32) -> Result<u64, StoreError> {
     let Some(key) = sqlx::query("SELECT channel_key FROM readings LIMIT 1")
         .fetch_optional(&mut *conn)
         .await?
@@ -575,7 +560,7 @@ pub async fn adopt_rows(conn: &mut SqliteConnection, limit: u32) -> Result<u64, 
     };
     let key: i64 = key.try_get("channel_key")?;
     let rows =
-        sqlx::query("SELECT * FROM readings WHERE channel_key = ? ORDER BY time_ns, seq LIMIT ?")
+        sqlx::query("SELECT * FROM readings WHERE channel_key = $1 ORDER BY time_ns, seq LIMIT $2")
             .bind(key)
             .bind(i64::from(limit))
             .fetch_all(&mut *conn)
@@ -588,7 +573,7 @@ pub async fn adopt_rows(conn: &mut SqliteConnection, limit: u32) -> Result<u64, 
         return Ok(0);
     };
     write(conn, key, &rows).await?;
-    sqlx::query("DELETE FROM readings WHERE channel_key = ? AND (time_ns, seq) <= (?, ?)")
+    sqlx::query("DELETE FROM readings WHERE channel_key = $1 AND (time_ns, seq) <= ($2, $3)")
         .bind(key)
         .bind(last.time_ns)
         .bind(last.seq as i64)

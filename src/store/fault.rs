@@ -66,23 +66,43 @@ impl StorageFault {
 
 /// The fault behind a sqlx error, if it is one of the storage kind (a
 /// constraint or a malformed statement is not: those are bugs or input).
-pub(crate) fn of_sqlx(e: &sqlx::Error) -> Option<StorageFault> {
+pub(crate) fn of_sqlx(e: &sqlx::Error, engine: super::Engine) -> Option<StorageFault> {
     match e {
-        sqlx::Error::Database(db) => {
-            let code: i64 = db.code()?.parse().ok()?;
-            // Extended result codes keep the primary code in the low byte
-            // (https://www.sqlite.org/rescode.html).
-            match code & 0xff {
-                13 => Some(StorageFault::Full),
-                8 => Some(StorageFault::ReadOnly),
-                11 | 26 => Some(StorageFault::Corrupt),
-                10 => Some(StorageFault::Io),
-                14 => Some(StorageFault::Missing),
-                5 | 6 => Some(StorageFault::Busy),
-                _ => None,
-            }
+        sqlx::Error::Database(db) => match engine {
+            super::Engine::Sqlite => of_sqlite_code(db.code()?.parse().ok()?),
+            super::Engine::Postgres => of_sqlstate(&db.code()?),
+        },
+        sqlx::Error::Io(_) | sqlx::Error::PoolTimedOut | sqlx::Error::PoolClosed => {
+            Some(StorageFault::Io)
         }
-        sqlx::Error::Io(_) => Some(StorageFault::Io),
+        _ => None,
+    }
+}
+
+fn of_sqlite_code(code: i64) -> Option<StorageFault> {
+    // Extended result codes keep the primary code in the low byte
+    // (https://www.sqlite.org/rescode.html).
+    match code & 0xff {
+        13 => Some(StorageFault::Full),
+        8 => Some(StorageFault::ReadOnly),
+        11 | 26 => Some(StorageFault::Corrupt),
+        10 => Some(StorageFault::Io),
+        14 => Some(StorageFault::Missing),
+        5 | 6 => Some(StorageFault::Busy),
+        _ => None,
+    }
+}
+
+/// PostgreSQL's SQLSTATE classes (PostgreSQL 15 manual, appendix A).
+fn of_sqlstate(state: &str) -> Option<StorageFault> {
+    match state {
+        "25006" => Some(StorageFault::ReadOnly),
+        "XX001" | "XX002" => Some(StorageFault::Corrupt),
+        "40001" | "40P01" | "55P03" => Some(StorageFault::Busy),
+        s if s.starts_with("53") => Some(StorageFault::Full),
+        s if s.starts_with("58") || s.starts_with("08") || s.starts_with("57P") => {
+            Some(StorageFault::Io)
+        }
         _ => None,
     }
 }
@@ -147,10 +167,14 @@ mod tests {
             &["CREATE TABLE t (v TEXT)", "PRAGMA max_page_count = 8"],
         )
         .await;
-        assert_eq!(of_sqlx(&full), Some(StorageFault::Full), "{full}");
+        assert_eq!(
+            of_sqlx(&full, crate::store::Engine::Sqlite),
+            Some(StorageFault::Full),
+            "{full}"
+        );
         let read_only = insert_error(create.read_only(true), &[]).await;
         assert_eq!(
-            of_sqlx(&read_only),
+            of_sqlx(&read_only, crate::store::Engine::Sqlite),
             Some(StorageFault::ReadOnly),
             "{read_only}"
         );
@@ -172,7 +196,7 @@ mod tests {
             .execute(&mut conn)
             .await
             .unwrap_err();
-        assert_eq!(of_sqlx(&dup), None, "{dup}");
+        assert_eq!(of_sqlx(&dup, crate::store::Engine::Sqlite), None, "{dup}");
     }
 
     #[test]

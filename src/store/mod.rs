@@ -19,6 +19,7 @@
 pub mod chunks;
 pub mod codec;
 mod fault;
+pub mod lease;
 mod lock;
 pub mod outbox;
 pub mod report;
@@ -27,13 +28,191 @@ pub mod rollup;
 
 use crate::alerts::{AlertKind, RaisedAlert, Severity};
 pub use fault::StorageFault;
-use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
-use sqlx::{Connection, Row, Sqlite, SqlitePool};
+use sqlx::any::{AnyConnectOptions, AnyPoolOptions};
+use sqlx::{Connection, Executor, Row};
 use std::path::{Path, PathBuf};
 use std::str::FromStr;
 use std::sync::Arc;
-use std::time::Duration;
 
+/// The pools, connections and rows of whichever engine the store runs on
+/// (sqlx's `Any` driver: SQLite or PostgreSQL, chosen by the `db` setting).
+pub type Pool = sqlx::AnyPool;
+pub type Conn = sqlx::AnyConnection;
+pub type DbRow = sqlx::any::AnyRow;
+
+/// The engine below the store. SQL is written once for both where the
+/// dialects agree (`$n` placeholders, `ON CONFLICT`, row values); the few
+/// statements that differ ask [`Engine::of`].
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Engine {
+    Sqlite,
+    Postgres,
+}
+
+impl Engine {
+    /// The engine behind a connection.
+    pub fn of(conn: &Conn) -> Engine {
+        if conn.backend_name() == "PostgreSQL" {
+            Engine::Postgres
+        } else {
+            Engine::Sqlite
+        }
+    }
+
+    /// The two-argument larger/smaller of SQL scalars (SQLite's MAX/MIN
+    /// with two arguments; PostgreSQL's GREATEST/LEAST).
+    pub fn greatest(self) -> &'static str {
+        match self {
+            Engine::Sqlite => "MAX",
+            Engine::Postgres => "GREATEST",
+        }
+    }
+
+    pub fn least(self) -> &'static str {
+        match self {
+            Engine::Sqlite => "MIN",
+            Engine::Postgres => "LEAST",
+        }
+    }
+}
+
+/// Where the database is: a SQLite file (the default) or a PostgreSQL
+/// server, told apart by the `db` setting's scheme.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Location {
+    File(PathBuf),
+    Postgres(String),
+}
+
+impl Location {
+    pub fn parse(db: &str) -> Location {
+        if db.starts_with("postgres://") || db.starts_with("postgresql://") {
+            Location::Postgres(db.to_string())
+        } else {
+            Location::File(PathBuf::from(db.strip_prefix("sqlite://").unwrap_or(db)))
+        }
+    }
+
+    /// How logs and messages name it: the path, or the URL without its
+    /// password.
+    pub fn display_name(&self) -> String {
+        match self {
+            Location::File(p) => p.display().to_string(),
+            Location::Postgres(url) => redact_url(url),
+        }
+    }
+}
+
+/// A URL with any password replaced by `***`.
+pub fn redact_url(url: &str) -> String {
+    let Some((scheme, rest)) = url.split_once("://") else {
+        return url.to_string();
+    };
+    let (auth, host) = match rest.split_once('@') {
+        Some((auth, host)) => (auth, host),
+        None => return url.to_string(),
+    };
+    match auth.split_once(':') {
+        Some((user, _)) => format!("{scheme}://{user}:***@{host}"),
+        None => url.to_string(),
+    }
+}
+
+/// A statement built piece by piece with its binds, numbered `$1, $2, …`
+/// as both engines read them (sqlx's `QueryBuilder` writes `?` for the
+/// `Any` driver, which PostgreSQL refuses).
+pub(crate) struct Binds {
+    sql: String,
+    args: sqlx::any::AnyArguments,
+    n: usize,
+}
+
+impl Binds {
+    pub(crate) fn new(sql: &str) -> Binds {
+        Binds {
+            sql: sql.to_string(),
+            args: Default::default(),
+            n: 0,
+        }
+    }
+
+    pub(crate) fn push(&mut self, sql: &str) -> &mut Binds {
+        self.sql.push_str(sql);
+        self
+    }
+
+    /// Appends the next placeholder (after a comma unless it opens a
+    /// parenthesis) and binds `value` to it.
+    pub(crate) fn bind<T>(&mut self, value: T) -> &mut Binds
+    where
+        T: for<'q> sqlx::Encode<'q, sqlx::Any> + sqlx::Type<sqlx::Any>,
+    {
+        use sqlx::Arguments;
+        use std::fmt::Write;
+        if !self.sql.ends_with('(') {
+            self.sql.push_str(", ");
+        }
+        self.n += 1;
+        let _ = write!(self.sql, "${}", self.n);
+        // Encoding into `Any`'s buffer only records the value: it cannot fail.
+        let _ = self.args.add(value);
+        self
+    }
+
+    /// A comma-separated list of placeholders bound to `values`, in parentheses.
+    pub(crate) fn list<T>(&mut self, values: impl IntoIterator<Item = T>) -> &mut Binds
+    where
+        T: for<'q> sqlx::Encode<'q, sqlx::Any> + sqlx::Type<sqlx::Any>,
+    {
+        self.push("(");
+        for v in values {
+            self.bind(v);
+        }
+        self.push(")")
+    }
+
+    pub(crate) fn query(self) -> sqlx::query::Query<'static, sqlx::Any, sqlx::any::AnyArguments> {
+        sqlx::query_with(sqlx::AssertSqlSafe(self.sql), self.args)
+    }
+
+    pub(crate) async fn execute(
+        self,
+        conn: &mut Conn,
+    ) -> Result<sqlx::any::AnyQueryResult, sqlx::Error> {
+        self.query().execute(conn).await
+    }
+}
+
+/// A statement written in SQLite's words as PostgreSQL takes it: SQLite's
+/// `CROSS JOIN … ON` (a join order the planner must keep) is a plain
+/// `JOIN` there, and SQLite's `instr` is `strpos`.
+pub(crate) fn dialect(engine: Engine, sql: &str) -> String {
+    match engine {
+        Engine::Sqlite => sql.to_string(),
+        Engine::Postgres => sql
+            .replace("CROSS JOIN", "JOIN")
+            .replace("instr(", "strpos("),
+    }
+}
+
+/// The engine behind a pool.
+pub fn pool_engine(pool: &Pool) -> Engine {
+    if pool
+        .connect_options()
+        .database_url
+        .scheme()
+        .starts_with("postgres")
+    {
+        Engine::Postgres
+    } else {
+        Engine::Sqlite
+    }
+}
+
+pub(crate) fn install_drivers() {
+    static ONCE: std::sync::Once = std::sync::Once::new();
+    ONCE.call_once(sqlx::any::install_default_drivers);
+}
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
     #[error("database: {0}")]
@@ -122,13 +301,17 @@ impl FromStr for Durability {
 /// keeps them honest (the file's identity, the lock, the write health).
 #[derive(Debug, Clone)]
 pub struct Store {
-    pub writer: SqlitePool,
-    pub reader: SqlitePool,
+    pub writer: Pool,
+    pub reader: Pool,
+    engine: Engine,
+    /// The file, or the redacted URL, as messages name it.
     path: Arc<PathBuf>,
     /// (device, inode) of the file at open: a deleted or replaced file is
     /// detected before a write, not written into the void.
     identity: Option<(u64, u64)>,
-    lock: Arc<lock::DbLock>,
+    /// SQLite only: one server per file. On PostgreSQL several servers
+    /// share the database and channel leases keep them apart.
+    lock: Option<Arc<lock::DbLock>>,
     /// `None` while writes succeed; the fault of the last failed write until
     /// one succeeds again (health follows it).
     health: Arc<tokio::sync::watch::Sender<Option<StorageFault>>>,
@@ -142,55 +325,105 @@ const WAL_LIMIT_BYTES: u64 = 64 * 1024 * 1024;
 /// from before chunks is first opened.
 const ADOPT_ROWS_PER_TX: u32 = 50_000;
 
+/// Read connections per server.
+const READERS: u32 = 4;
+
 impl Store {
-    /// Opens (creating and migrating) the database and takes its lock: a
-    /// second server on the same file is refused, naming the holder.
+    /// Opens (creating and migrating) the database at `db`: a SQLite file
+    /// (its lock taken: a second server on the same file is refused,
+    /// naming the holder) or a PostgreSQL URL.
+    pub async fn open_location(db: &Location, durability: Durability) -> Result<Store, StoreError> {
+        match db {
+            Location::File(path) => Store::open(path, durability).await,
+            Location::Postgres(url) => Store::open_postgres(url, durability).await,
+        }
+    }
+
+    /// Opens a SQLite file (see [`Store::open_location`]).
     pub async fn open(path: &Path, durability: Durability) -> Result<Store, StoreError> {
+        install_drivers();
         let lock = lock::DbLock::acquire(path)?;
+        let url = sqlite_url(path);
         let sync = match durability {
-            Durability::Full => SqliteSynchronous::Full,
-            Durability::Normal => SqliteSynchronous::Normal,
-            Durability::Off => SqliteSynchronous::Off,
+            Durability::Full => "FULL",
+            Durability::Normal => "NORMAL",
+            Durability::Off => "OFF",
         };
-        let base = SqliteConnectOptions::new()
-            .filename(path)
-            .journal_mode(SqliteJournalMode::Wal)
-            .synchronous(sync)
-            .busy_timeout(Duration::from_secs(10));
         // The WAL is cut back to 64 MiB after each checkpoint instead of
         // keeping its largest size for ever. No auto-vacuum: pages freed
         // by retention go to SQLite's free list and new readings fill them
         // before the file grows, so the file stays flat at steady load;
         // incremental auto-vacuum would hand them back, but its pointer
         // map cost 10 % of ingest here (README, Performance).
-        let writer_options = base
-            .clone()
-            .create_if_missing(true)
-            .pragma("journal_size_limit", WAL_LIMIT_BYTES.to_string());
-        let writer = SqlitePoolOptions::new()
-            .max_connections(1)
-            .connect_with(writer_options)
+        let pragmas = format!(
+            "PRAGMA busy_timeout = 10000; PRAGMA synchronous = {sync}; \
+             PRAGMA journal_size_limit = {WAL_LIMIT_BYTES};"
+        );
+        let writer = connect(&format!("{url}?mode=rwc"), 1, pragmas.clone())
             .await
             .map_err(|e| StoreError::Open {
                 path: path.to_path_buf(),
                 reason: e.to_string(),
             })?;
+        sqlx::query("PRAGMA journal_mode = WAL")
+            .execute(&writer)
+            .await?;
         sqlx::migrate!("./migrations").run(&writer).await?;
         adopt_rows(&writer).await?;
-        let reader = SqlitePoolOptions::new()
-            .max_connections(4)
-            .connect_with(base.read_only(true))
-            .await?;
+        let reader = connect(&format!("{url}?mode=ro"), READERS, pragmas).await?;
         Ok(Store {
             writer,
             reader,
+            engine: Engine::Sqlite,
             identity: fault::file_identity(path),
             path: Arc::new(path.to_path_buf()),
-            lock: Arc::new(lock),
+            lock: Some(Arc::new(lock)),
             health: Arc::new(tokio::sync::watch::channel(None).0),
         })
     }
 
+    /// Opens a PostgreSQL database by URL (created tables: its own
+    /// migrations, `migrations/postgres/`). `durability` maps to
+    /// `synchronous_commit`: full → on; normal and off → off (a server
+    /// crash may lose the last commits, never consistency).
+    async fn open_postgres(url: &str, durability: Durability) -> Result<Store, StoreError> {
+        install_drivers();
+        let sync = match durability {
+            Durability::Full => "on",
+            Durability::Normal | Durability::Off => "off",
+        };
+        let name = redact_url(url);
+        let setup = format!("SET synchronous_commit = {sync}");
+        // sqlx's `Any` declares a NULL f64 as float4; a statement cached
+        // after such a first use then takes a later 8-byte f64 as float4
+        // and PostgreSQL refuses it ("incorrect binary data format").
+        // Unnamed statements, typed at each use, avoid that.
+        let sep = if url.contains('?') { '&' } else { '?' };
+        let url = &format!("{url}{sep}statement-cache-capacity=0");
+        let writer = connect(url, 1, setup.clone())
+            .await
+            .map_err(|e| StoreError::Open {
+                path: PathBuf::from(&name),
+                reason: e.to_string(),
+            })?;
+        sqlx::migrate!("./migrations/postgres").run(&writer).await?;
+        let reader = connect(url, READERS, setup).await?;
+        Ok(Store {
+            writer,
+            reader,
+            engine: Engine::Postgres,
+            identity: None,
+            path: Arc::new(PathBuf::from(name)),
+            lock: None,
+            health: Arc::new(tokio::sync::watch::channel(None).0),
+        })
+    }
+
+    pub fn engine(&self) -> Engine {
+        self.engine
+    }
+
+    /// The SQLite file, or the PostgreSQL URL without its password.
     pub fn path(&self) -> &Path {
         &self.path
     }
@@ -198,7 +431,9 @@ impl Store {
     /// Records what the server listens on in the lock file, so a second
     /// server's refusal can name it.
     pub fn note_holder(&self, listen: &str) {
-        self.lock.note(listen);
+        if let Some(lock) = &self.lock {
+            lock.note(listen);
+        }
     }
 
     /// Follows write health: `None` while writes succeed.
@@ -249,7 +484,7 @@ impl Store {
     pub async fn probe_write(&self, now_ns: i64) -> Result<(), StoreError> {
         self.write(async |tx| {
             sqlx::query(
-                "INSERT INTO server_meta (key, value) VALUES ('write_probe_ns', ?) \
+                "INSERT INTO server_meta (key, value) VALUES ('write_probe_ns', $1) \
                  ON CONFLICT (key) DO UPDATE SET value = excluded.value",
             )
             .bind(now_ns.to_string())
@@ -264,7 +499,7 @@ impl Store {
     /// records it for health.
     fn classify(&self, e: StoreError) -> StoreError {
         match &e {
-            StoreError::Database(db) => match fault::of_sqlx(db) {
+            StoreError::Database(db) => match fault::of_sqlx(db, self.engine) {
                 Some(fault) => self.failed(fault, db.to_string()),
                 None => e,
             },
@@ -292,14 +527,47 @@ impl Store {
     pub async fn close(&self) {
         self.reader.close().await;
         self.writer.close().await;
-        self.lock.release();
+        if let Some(lock) = &self.lock {
+            lock.release();
+        }
     }
+}
+
+/// A pool whose every new connection first runs `setup`.
+async fn connect(url: &str, max: u32, setup: String) -> Result<Pool, sqlx::Error> {
+    let options = AnyConnectOptions::from_str(url)?;
+    AnyPoolOptions::new()
+        .max_connections(max)
+        .after_connect(move |conn, _| {
+            let setup = setup.clone();
+            Box::pin(async move {
+                conn.execute(sqlx::AssertSqlSafe(setup)).await?;
+                Ok(())
+            })
+        })
+        .connect_with(options)
+        .await
+}
+
+/// A SQLite URL for a file path (`%`, `?` and `#` escaped: SQLite's
+/// URL parser decodes them).
+fn sqlite_url(path: &Path) -> String {
+    let mut escaped = String::new();
+    for c in path.display().to_string().chars() {
+        match c {
+            '%' => escaped.push_str("%25"),
+            '?' => escaped.push_str("%3F"),
+            '#' => escaped.push_str("%23"),
+            c => escaped.push(c),
+        }
+    }
+    format!("sqlite://{escaped}")
 }
 
 /// Moves readings a server before chunks stored one per row into
 /// chunks, a transaction at a time (a crash in between leaves each
 /// reading in exactly one of the two; the next open goes on).
-async fn adopt_rows(writer: &SqlitePool) -> Result<(), StoreError> {
+async fn adopt_rows(writer: &Pool) -> Result<(), StoreError> {
     let mut moved = 0u64;
     loop {
         let mut tx = writer.begin().await?;
@@ -464,7 +732,7 @@ pub struct AlertEvent {
 const ALERT_COLUMNS: &str = "a.alert_id, c.channel_id, a.run_id, a.kind, a.severity, a.raised_ns, a.raised_seq, \
      a.trigger_value, a.threshold, a.unit, a.message, a.seconds_to_target, a.cleared_ns, a.ack_by, a.ack_ns, a.ack_note, a.historical";
 
-fn alert_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<AlertRow, StoreError> {
+fn alert_from_row(row: &DbRow) -> Result<AlertRow, StoreError> {
     let kind_code: i64 = row.try_get("kind")?;
     Ok(AlertRow {
         alert_id: row.try_get::<i64, _>("alert_id")? as u64,
@@ -490,7 +758,7 @@ fn alert_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<AlertRow, StoreError>
     })
 }
 
-fn reading_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<ReadingRow, StoreError> {
+fn reading_from_row(row: &DbRow) -> Result<ReadingRow, StoreError> {
     Ok(ReadingRow {
         channel_key: row.try_get("channel_key")?,
         seq: row.try_get::<i64, _>("seq")? as u64,
@@ -509,7 +777,7 @@ fn reading_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<ReadingRow, StoreEr
     })
 }
 
-fn run_from_row(row: &sqlx::sqlite::SqliteRow) -> Result<RunRow, StoreError> {
+fn run_from_row(row: &DbRow) -> Result<RunRow, StoreError> {
     Ok(RunRow {
         run_id: row.try_get("run_id")?,
         channel_key: row.try_get("channel_key")?,
@@ -536,7 +804,7 @@ macro_rules! channel_select {
     };
 }
 
-fn channel_from_row(r: &sqlx::sqlite::SqliteRow) -> Result<ChannelRow, StoreError> {
+fn channel_from_row(r: &DbRow) -> Result<ChannelRow, StoreError> {
     Ok(ChannelRow {
         channel_key: r.try_get("channel_key")?,
         channel_id: r.try_get("channel_id")?,
@@ -546,7 +814,7 @@ fn channel_from_row(r: &sqlx::sqlite::SqliteRow) -> Result<ChannelRow, StoreErro
     })
 }
 
-pub async fn list_channels(pool: &SqlitePool) -> Result<Vec<ChannelRow>, StoreError> {
+pub async fn list_channels(pool: &Pool) -> Result<Vec<ChannelRow>, StoreError> {
     let rows = sqlx::query(channel_select!("ORDER BY channel_id"))
         .fetch_all(pool)
         .await?;
@@ -555,11 +823,8 @@ pub async fn list_channels(pool: &SqlitePool) -> Result<Vec<ChannelRow>, StoreEr
 
 /// One channel by id, through the unique index (cost independent of the
 /// number of channels).
-pub async fn get_channel(
-    pool: &SqlitePool,
-    channel_id: &str,
-) -> Result<Option<ChannelRow>, StoreError> {
-    let row = sqlx::query(channel_select!("WHERE channel_id = ?"))
+pub async fn get_channel(pool: &Pool, channel_id: &str) -> Result<Option<ChannelRow>, StoreError> {
+    let row = sqlx::query(channel_select!("WHERE channel_id = $1"))
         .bind(channel_id)
         .fetch_optional(pool)
         .await?;
@@ -587,14 +852,14 @@ async fn put_channel_in(
     now_ns: i64,
 ) -> Result<(i64, i64), StoreError> {
     let existing =
-        sqlx::query("SELECT channel_key, current_run_id FROM channels WHERE channel_id = ?")
+        sqlx::query("SELECT channel_key, current_run_id FROM channels WHERE channel_id = $1")
             .bind(channel_id)
             .fetch_optional(&mut **tx)
             .await?;
     let channel_key = match &existing {
         Some(row) => {
             let key: i64 = row.try_get("channel_key")?;
-            sqlx::query("UPDATE channels SET definition_json = ?, updated_ns = ? WHERE channel_key = ?")
+            sqlx::query("UPDATE channels SET definition_json = $1, updated_ns = $2 WHERE channel_key = $3")
                 .bind(definition_json)
                 .bind(now_ns)
                 .bind(key)
@@ -602,7 +867,7 @@ async fn put_channel_in(
                 .await?;
             key
         }
-        None => sqlx::query("INSERT INTO channels (channel_id, definition_json, current_run_id, updated_ns) VALUES (?, ?, 0, ?) RETURNING channel_key")
+        None => sqlx::query("INSERT INTO channels (channel_id, definition_json, current_run_id, updated_ns) VALUES ($1, $2, 0, $3) RETURNING channel_key")
             .bind(channel_id)
             .bind(definition_json)
             .bind(now_ns)
@@ -615,7 +880,7 @@ async fn put_channel_in(
             let run_id: i64 = sqlx::query(
                 "INSERT INTO runs (channel_key, started_ns, chemistry_id, n_electrons, e_standard_298_v, de_dt_v_per_k, \
                  cells_in_series, default_temp_c, equilibrium_tolerance_v, soc_model, definition_json) \
-                 VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING run_id",
+                 VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11) RETURNING run_id",
             )
             .bind(channel_key)
             .bind(now_ns)
@@ -631,7 +896,7 @@ async fn put_channel_in(
             .fetch_one(&mut **tx)
             .await?
             .try_get("run_id")?;
-            sqlx::query("UPDATE channels SET current_run_id = ? WHERE channel_key = ?")
+            sqlx::query("UPDATE channels SET current_run_id = $1 WHERE channel_key = $2")
                 .bind(run_id)
                 .bind(channel_key)
                 .execute(&mut **tx)
@@ -653,7 +918,7 @@ pub async fn put_rules(
 ) -> Result<(), StoreError> {
     store
         .write(async |tx| {
-            sqlx::query("UPDATE channels SET rules_json = ? WHERE channel_key = ?")
+            sqlx::query("UPDATE channels SET rules_json = $1 WHERE channel_key = $2")
                 .bind(rules_json)
                 .bind(channel_key)
                 .execute(&mut **tx)
@@ -663,8 +928,8 @@ pub async fn put_rules(
         .await
 }
 
-pub async fn get_runs(pool: &SqlitePool, channel_key: i64) -> Result<Vec<RunRow>, StoreError> {
-    let rows = sqlx::query("SELECT * FROM runs WHERE channel_key = ? ORDER BY run_id")
+pub async fn get_runs(pool: &Pool, channel_key: i64) -> Result<Vec<RunRow>, StoreError> {
+    let rows = sqlx::query("SELECT * FROM runs WHERE channel_key = $1 ORDER BY run_id")
         .bind(channel_key)
         .fetch_all(pool)
         .await?;
@@ -678,7 +943,7 @@ pub async fn put_chemistry(
     now_ns: i64,
 ) -> Result<(), StoreError> {
     store.write(async |tx| {
-        sqlx::query("INSERT INTO chemistries (chemistry_id, spec_json, updated_ns) VALUES (?, ?, ?) \
+        sqlx::query("INSERT INTO chemistries (chemistry_id, spec_json, updated_ns) VALUES ($1, $2, $3) \
                      ON CONFLICT (chemistry_id) DO UPDATE SET spec_json = excluded.spec_json, updated_ns = excluded.updated_ns")
             .bind(id)
             .bind(spec_json)
@@ -690,7 +955,7 @@ pub async fn put_chemistry(
     .await
 }
 
-pub async fn list_chemistry_specs(pool: &SqlitePool) -> Result<Vec<String>, StoreError> {
+pub async fn list_chemistry_specs(pool: &Pool) -> Result<Vec<String>, StoreError> {
     let rows = sqlx::query("SELECT spec_json FROM chemistries ORDER BY chemistry_id")
         .fetch_all(pool)
         .await?;
@@ -708,11 +973,8 @@ pub struct ResumeState {
     pub marks: crate::retention::RetentionMarks,
 }
 
-pub async fn load_resume_state(
-    pool: &SqlitePool,
-    channel_key: i64,
-) -> Result<ResumeState, StoreError> {
-    let est = sqlx::query("SELECT run_id, last_seq, last_time_ns, usual_interval_s, state_json FROM estimator_state WHERE channel_key = ?")
+pub async fn load_resume_state(pool: &Pool, channel_key: i64) -> Result<ResumeState, StoreError> {
+    let est = sqlx::query("SELECT run_id, last_seq, last_time_ns, usual_interval_s, state_json FROM estimator_state WHERE channel_key = $1")
         .bind(channel_key)
         .fetch_optional(pool)
         .await?;
@@ -735,10 +997,11 @@ pub async fn load_resume_state(
             ))
         })
         .transpose()?;
-    let kinds = sqlx::query("SELECT kind FROM alerts WHERE channel_key = ? AND cleared_ns IS NULL")
-        .bind(channel_key)
-        .fetch_all(pool)
-        .await?;
+    let kinds =
+        sqlx::query("SELECT kind FROM alerts WHERE channel_key = $1 AND cleared_ns IS NULL")
+            .bind(channel_key)
+            .fetch_all(pool)
+            .await?;
     let active_kinds = kinds
         .iter()
         .filter_map(|r| {
@@ -755,7 +1018,7 @@ pub async fn load_resume_state(
     })
 }
 
-pub async fn next_ids(pool: &SqlitePool) -> Result<(u64, u64), StoreError> {
+pub async fn next_ids(pool: &Pool) -> Result<(u64, u64), StoreError> {
     let a: Option<i64> = sqlx::query("SELECT MAX(alert_id) AS m FROM alerts")
         .fetch_one(pool)
         .await?
@@ -769,7 +1032,7 @@ pub async fn next_ids(pool: &SqlitePool) -> Result<(u64, u64), StoreError> {
 
 // ---- the write transaction -------------------------------------------------------
 
-pub type Tx<'a> = sqlx::Transaction<'a, Sqlite>;
+pub type Tx<'a> = sqlx::Transaction<'a, sqlx::Any>;
 
 /// Stores the rows of one channel's batch that are new (not stored, not
 /// repeated in the batch); for each row, whether it was.
@@ -790,7 +1053,7 @@ pub async fn save_estimator(
     state_json: &str,
 ) -> Result<(), StoreError> {
     sqlx::query(
-        "INSERT INTO estimator_state (channel_key, run_id, last_seq, last_time_ns, usual_interval_s, state_json) VALUES (?, ?, ?, ?, ?, ?) \
+        "INSERT INTO estimator_state (channel_key, run_id, last_seq, last_time_ns, usual_interval_s, state_json) VALUES ($1, $2, $3, $4, $5, $6) \
          ON CONFLICT (channel_key) DO UPDATE SET run_id = excluded.run_id, last_seq = excluded.last_seq, \
          last_time_ns = excluded.last_time_ns, usual_interval_s = excluded.usual_interval_s, state_json = excluded.state_json",
     )
@@ -812,7 +1075,10 @@ pub async fn insert_cycle(
     index: u32,
     json: &str,
 ) -> Result<(), StoreError> {
-    sqlx::query("INSERT OR REPLACE INTO cycles (channel_key, run_id, cycle_index, record_json) VALUES (?, ?, ?, ?)")
+    sqlx::query(
+        "INSERT INTO cycles (channel_key, run_id, cycle_index, record_json) VALUES ($1, $2, $3, $4) \
+         ON CONFLICT (channel_key, run_id, cycle_index) DO UPDATE SET record_json = excluded.record_json",
+    )
         .bind(channel_key)
         .bind(run_id)
         .bind(i64::from(index))
@@ -830,7 +1096,7 @@ async fn insert_event(
     time_ns: i64,
 ) -> Result<(), StoreError> {
     sqlx::query(
-        "INSERT INTO alert_events (event_id, alert_id, event_kind, time_ns) VALUES (?, ?, ?, ?)",
+        "INSERT INTO alert_events (event_id, alert_id, event_kind, time_ns) VALUES ($1, $2, $3, $4)",
     )
     .bind(event_id as i64)
     .bind(alert_id as i64)
@@ -847,7 +1113,7 @@ async fn insert_event(
 
 async fn fetch_alert(tx: &mut Tx<'_>, alert_id: u64) -> Result<Option<AlertRow>, StoreError> {
     let sql = format!(
-        "SELECT {ALERT_COLUMNS} FROM alerts a JOIN channels c ON c.channel_key = a.channel_key WHERE a.alert_id = ?"
+        "SELECT {ALERT_COLUMNS} FROM alerts a JOIN channels c ON c.channel_key = a.channel_key WHERE a.alert_id = $1"
     );
     let row = sqlx::query(sqlx::AssertSqlSafe(sql))
         .bind(alert_id as i64)
@@ -868,7 +1134,7 @@ pub async fn raise_alert(
 ) -> Result<AlertEvent, StoreError> {
     sqlx::query(
         "INSERT INTO alerts (alert_id, channel_key, run_id, kind, severity, raised_ns, raised_seq, trigger_value, threshold, unit, message, seconds_to_target, historical) \
-         VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+         VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13)",
     )
     .bind(alert_id as i64)
     .bind(channel_key)
@@ -882,7 +1148,7 @@ pub async fn raise_alert(
     .bind(a.unit)
     .bind(&a.message)
     .bind(a.seconds_to_target)
-    .bind(historical)
+    .bind(i64::from(historical))
     .execute(&mut **tx)
     .await?;
     insert_event(tx, event_id, alert_id, EventKind::Raised, a.time_ns).await?;
@@ -904,7 +1170,7 @@ pub async fn clear_alert(
     kind: AlertKind,
     time_ns: i64,
 ) -> Result<Option<AlertEvent>, StoreError> {
-    let row = sqlx::query("UPDATE alerts SET cleared_ns = ? WHERE channel_key = ? AND kind = ? AND cleared_ns IS NULL RETURNING alert_id")
+    let row = sqlx::query("UPDATE alerts SET cleared_ns = $1 WHERE channel_key = $2 AND kind = $3 AND cleared_ns IS NULL RETURNING alert_id")
         .bind(time_ns)
         .bind(channel_key)
         .bind(kind.code())
@@ -931,14 +1197,15 @@ pub async fn acknowledge_alert(
     note: &str,
     time_ns: i64,
 ) -> Result<Option<AlertEvent>, StoreError> {
-    let done =
-        sqlx::query("UPDATE alerts SET ack_by = ?, ack_ns = ?, ack_note = ? WHERE alert_id = ?")
-            .bind(by)
-            .bind(time_ns)
-            .bind(note)
-            .bind(alert_id as i64)
-            .execute(&mut **tx)
-            .await?;
+    let done = sqlx::query(
+        "UPDATE alerts SET ack_by = $1, ack_ns = $2, ack_note = $3 WHERE alert_id = $4",
+    )
+    .bind(by)
+    .bind(time_ns)
+    .bind(note)
+    .bind(alert_id as i64)
+    .execute(&mut **tx)
+    .await?;
     if done.rows_affected() == 0 {
         return Ok(None);
     }
@@ -956,7 +1223,7 @@ pub async fn acknowledge_alert(
 // ---- reads -----------------------------------------------------------------------
 
 pub async fn query_readings(
-    pool: &SqlitePool,
+    pool: &Pool,
     channel_key: i64,
     start_ns: i64,
     end_ns: i64,
@@ -976,7 +1243,7 @@ pub async fn query_readings(
 /// One page of readings in (time, seq) order, after the row `after`
 /// (a keyset: each page costs the same however deep into the range).
 pub async fn query_readings_page(
-    pool: &SqlitePool,
+    pool: &Pool,
     channel_key: i64,
     start_ns: i64,
     end_ns: i64,
@@ -1008,7 +1275,7 @@ pub async fn insert_operator_event(
 ) -> Result<(), StoreError> {
     sqlx::query(
         "INSERT INTO operator_events (channel_key, run_id, time_ns, kind, by_name, detail_json) \
-         VALUES (?, ?, ?, ?, ?, ?)",
+         VALUES ($1, $2, $3, $4, $5, $6)",
     )
     .bind(channel_key)
     .bind(run_id)
@@ -1024,7 +1291,7 @@ pub async fn insert_operator_event(
 /// The reading a reset timeline resumes after: `after_seq` if stored,
 /// else the highest-seq reading stored out of order. (seq, time_ns).
 pub async fn timeline_anchor(
-    pool: &SqlitePool,
+    pool: &Pool,
     channel_key: i64,
     after_seq: Option<u64>,
 ) -> Result<Option<(u64, i64)>, StoreError> {
@@ -1037,7 +1304,7 @@ pub async fn timeline_anchor(
 }
 
 pub async fn latest_reading(
-    pool: &SqlitePool,
+    pool: &Pool,
     channel_key: i64,
 ) -> Result<Option<ReadingRow>, StoreError> {
     chunks::latest(&mut *pool.begin().await?, channel_key).await
@@ -1075,7 +1342,7 @@ pub struct CountsBefore {
 
 /// The run and counts of the channel's last stored reading before `time_ns`.
 pub async fn counts_before(
-    pool: &SqlitePool,
+    pool: &Pool,
     channel_key: i64,
     time_ns: i64,
 ) -> Result<Option<CountsBefore>, StoreError> {
@@ -1091,7 +1358,7 @@ pub async fn counts_before(
 /// ([`rollup::tier_for`]), from the readings otherwise. `last` is the
 /// reading with the latest time (the highest seq among equal times).
 pub async fn query_buckets(
-    pool: &SqlitePool,
+    pool: &Pool,
     channel_key: i64,
     start_ns: i64,
     end_ns: i64,
@@ -1104,7 +1371,7 @@ pub async fn query_buckets(
 }
 
 pub async fn list_alerts(
-    pool: &SqlitePool,
+    pool: &Pool,
     channel_key: Option<i64>,
     min_severity: i64,
     active_only: bool,
@@ -1113,8 +1380,8 @@ pub async fn list_alerts(
 ) -> Result<Vec<AlertRow>, StoreError> {
     let sql = format!(
         "SELECT {ALERT_COLUMNS} FROM alerts a JOIN channels c ON c.channel_key = a.channel_key \
-         WHERE a.alert_id > ? AND (? IS NULL OR a.channel_key = ?) AND a.severity >= ? AND (? = 0 OR a.cleared_ns IS NULL) \
-         ORDER BY a.alert_id LIMIT ?"
+         WHERE a.alert_id > $1 AND ($2 IS NULL OR a.channel_key = $3) AND a.severity >= $4 AND ($5 = 0 OR a.cleared_ns IS NULL) \
+         ORDER BY a.alert_id LIMIT $6"
     );
     let rows = sqlx::query(sqlx::AssertSqlSafe(sql))
         .bind(after_id as i64)
@@ -1130,13 +1397,13 @@ pub async fn list_alerts(
 
 /// Stored events after `after_event_id`, oldest first, for replay.
 pub async fn events_after(
-    pool: &SqlitePool,
+    pool: &Pool,
     after_event_id: u64,
     limit: u32,
 ) -> Result<Vec<AlertEvent>, StoreError> {
     let sql = format!(
         "SELECT e.event_id, e.event_kind, {ALERT_COLUMNS} FROM alert_events e JOIN alerts a ON a.alert_id = e.alert_id \
-         JOIN channels c ON c.channel_key = a.channel_key WHERE e.event_id > ? ORDER BY e.event_id LIMIT ?"
+         JOIN channels c ON c.channel_key = a.channel_key WHERE e.event_id > $1 ORDER BY e.event_id LIMIT $2"
     );
     let rows = sqlx::query(sqlx::AssertSqlSafe(sql))
         .bind(after_event_id as i64)
@@ -1154,12 +1421,9 @@ pub async fn events_after(
         .collect()
 }
 
-pub async fn list_cycles(
-    pool: &SqlitePool,
-    channel_key: i64,
-) -> Result<Vec<(i64, String)>, StoreError> {
+pub async fn list_cycles(pool: &Pool, channel_key: i64) -> Result<Vec<(i64, String)>, StoreError> {
     let rows = sqlx::query(
-        "SELECT run_id, record_json FROM cycles WHERE channel_key = ? ORDER BY run_id, cycle_index",
+        "SELECT run_id, record_json FROM cycles WHERE channel_key = $1 ORDER BY run_id, cycle_index",
     )
     .bind(channel_key)
     .fetch_all(pool)
@@ -1169,6 +1433,6 @@ pub async fn list_cycles(
         .collect()
 }
 
-pub async fn count_readings(pool: &SqlitePool, channel_key: i64) -> Result<u64, StoreError> {
+pub async fn count_readings(pool: &Pool, channel_key: i64) -> Result<u64, StoreError> {
     chunks::count(&mut *pool.begin().await?, channel_key).await
 }

@@ -4,8 +4,9 @@
 //! insert), so it is in the same transaction; senders read pending rows
 //! in event order and record each attempt through the writer.
 
+use super::Pool;
 use super::{ALERT_COLUMNS, AlertEvent, EventKind, StoreError, Tx, alert_from_row};
-use sqlx::{Row, SqlitePool};
+use sqlx::Row;
 
 /// A target as the server was started with it.
 #[derive(Debug, Clone, PartialEq)]
@@ -34,7 +35,7 @@ pub async fn set_targets(tx: &mut Tx<'_>, targets: &[Target]) -> Result<(), Stor
             format!(",{},", t.channels.join(","))
         };
         sqlx::query(
-            "INSERT INTO notify_targets (name, kind, min_severity, channels) VALUES (?, ?, ?, ?)",
+            "INSERT INTO notify_targets (name, kind, min_severity, channels) VALUES ($1, $2, $3, $4)",
         )
         .bind(&t.name)
         .bind(t.kind)
@@ -54,17 +55,20 @@ pub(super) async fn enqueue(
     alert_id: u64,
     now_ns: i64,
 ) -> Result<(), StoreError> {
-    sqlx::query(
-        "INSERT OR IGNORE INTO deliveries (target, event_id, created_ns, next_attempt_ns) \
-         SELECT t.name, ?1, ?2, ?2 FROM notify_targets t, alerts a JOIN channels c ON c.channel_key = a.channel_key \
-         WHERE a.alert_id = ?3 AND a.historical = 0 AND a.severity >= t.min_severity \
-           AND (t.channels = '' OR instr(t.channels, ',' || c.channel_id || ',') > 0)",
-    )
-    .bind(event_id as i64)
-    .bind(now_ns)
-    .bind(alert_id as i64)
-    .execute(&mut **tx)
-    .await?;
+    let sql = super::dialect(
+        super::Engine::of(tx),
+        "INSERT INTO deliveries (target, event_id, created_ns, next_attempt_ns) \
+         SELECT t.name, $1, $2, $2 FROM notify_targets t, alerts a JOIN channels c ON c.channel_key = a.channel_key \
+         WHERE a.alert_id = $3 AND a.historical = 0 AND a.severity >= t.min_severity \
+           AND (t.channels = '' OR instr(t.channels, ',' || c.channel_id || ',') > 0) \
+         ON CONFLICT DO NOTHING",
+    );
+    sqlx::query(sqlx::AssertSqlSafe(sql))
+        .bind(event_id as i64)
+        .bind(now_ns)
+        .bind(alert_id as i64)
+        .execute(&mut **tx)
+        .await?;
     Ok(())
 }
 
@@ -82,16 +86,12 @@ pub struct Pending {
 }
 
 /// The oldest pending deliveries of `target`, in event order.
-pub async fn pending(
-    pool: &SqlitePool,
-    target: &str,
-    limit: u32,
-) -> Result<Vec<Pending>, StoreError> {
+pub async fn pending(pool: &Pool, target: &str, limit: u32) -> Result<Vec<Pending>, StoreError> {
     let sql = format!(
         "SELECT d.attempts, d.next_attempt_ns, d.created_ns, e.event_id, e.event_kind, {ALERT_COLUMNS} \
          FROM deliveries d JOIN alert_events e ON e.event_id = d.event_id \
          JOIN alerts a ON a.alert_id = e.alert_id JOIN channels c ON c.channel_key = a.channel_key \
-         WHERE d.target = ? AND d.delivered_ns IS NULL ORDER BY d.event_id LIMIT ?"
+         WHERE d.target = $1 AND d.delivered_ns IS NULL ORDER BY d.event_id LIMIT $2"
     );
     let rows = sqlx::query(sqlx::AssertSqlSafe(sql))
         .bind(target)
@@ -132,11 +132,11 @@ pub async fn record(
 ) -> Result<(), StoreError> {
     let q = match attempt {
         Attempt::Delivered { at_ns } => sqlx::query(
-            "UPDATE deliveries SET attempts = attempts + 1, delivered_ns = ?, last_error = NULL WHERE target = ? AND event_id = ?",
+            "UPDATE deliveries SET attempts = attempts + 1, delivered_ns = $1, last_error = NULL WHERE target = $2 AND event_id = $3",
         )
         .bind(*at_ns),
         Attempt::Failed { error, retry_at_ns } => sqlx::query(
-            "UPDATE deliveries SET attempts = attempts + 1, last_error = ?, next_attempt_ns = ? WHERE target = ? AND event_id = ?",
+            "UPDATE deliveries SET attempts = attempts + 1, last_error = $1, next_attempt_ns = $2 WHERE target = $3 AND event_id = $4",
         )
         .bind(error.clone())
         .bind(*retry_at_ns),
@@ -174,7 +174,7 @@ pub struct DeliveryRow {
 /// Deliveries after `after` (target, event id) in that order; only the
 /// pending ones if asked.
 pub async fn list(
-    pool: &SqlitePool,
+    pool: &Pool,
     pending_only: bool,
     after: (&str, u64),
     limit: u32,
@@ -183,12 +183,12 @@ pub async fn list(
         "SELECT d.target, d.event_id, e.alert_id, c.channel_id, d.created_ns, d.attempts, d.next_attempt_ns, \
          d.delivered_ns, d.last_error FROM deliveries d JOIN alert_events e ON e.event_id = d.event_id \
          JOIN alerts a ON a.alert_id = e.alert_id JOIN channels c ON c.channel_key = a.channel_key \
-         WHERE (d.target, d.event_id) > (?, ?) AND (? = 0 OR d.delivered_ns IS NULL) \
-         ORDER BY d.target, d.event_id LIMIT ?",
+         WHERE (d.target, d.event_id) > ($1, $2) AND ($3 = 0 OR d.delivered_ns IS NULL) \
+         ORDER BY d.target, d.event_id LIMIT $4",
     )
     .bind(after.0)
     .bind(after.1 as i64)
-    .bind(pending_only)
+    .bind(i64::from(pending_only))
     .bind(i64::from(limit))
     .fetch_all(pool)
     .await?;
@@ -210,7 +210,7 @@ pub async fn list(
 }
 
 /// Pending deliveries per target (for metrics).
-pub async fn pending_counts(pool: &SqlitePool) -> Result<Vec<(String, u64)>, StoreError> {
+pub async fn pending_counts(pool: &Pool) -> Result<Vec<(String, u64)>, StoreError> {
     let rows = sqlx::query(
         "SELECT target, COUNT(*) AS n FROM deliveries WHERE delivered_ns IS NULL GROUP BY target ORDER BY target",
     )

@@ -5,14 +5,15 @@
 //! rows at a time, so they share its fsync and never hold the one write
 //! connection apart from it: a pass costs acks milliseconds, not seconds.
 
+use super::Pool;
 use super::{Store, StoreError, Tx};
 use crate::retention::RetentionMarks;
-use sqlx::{Row, SqlitePool};
+use sqlx::Row;
 
 /// A channel's stored marks; none stored means nothing pruned.
-pub async fn load_marks(pool: &SqlitePool, channel_key: i64) -> Result<RetentionMarks, StoreError> {
+pub async fn load_marks(pool: &Pool, channel_key: i64) -> Result<RetentionMarks, StoreError> {
     let row = sqlx::query(
-        "SELECT raw_before_ns, rollup_before_ns FROM retention_marks WHERE channel_key = ?",
+        "SELECT raw_before_ns, rollup_before_ns FROM retention_marks WHERE channel_key = $1",
     )
     .bind(channel_key)
     .fetch_optional(pool)
@@ -36,10 +37,12 @@ pub async fn raise_marks(
     store
         .write(async |tx| {
             sqlx::query(
-                "INSERT INTO retention_marks (channel_key, raw_before_ns, rollup_before_ns) VALUES (?, ?, ?) \
+                "INSERT INTO retention_marks (channel_key, raw_before_ns, rollup_before_ns) VALUES ($1, $2, $3) \
                  ON CONFLICT (channel_key) DO UPDATE SET \
-                 raw_before_ns = MAX(raw_before_ns, excluded.raw_before_ns), \
-                 rollup_before_ns = MAX(rollup_before_ns, excluded.rollup_before_ns)",
+                 raw_before_ns = CASE WHEN excluded.raw_before_ns > retention_marks.raw_before_ns \
+                   THEN excluded.raw_before_ns ELSE retention_marks.raw_before_ns END, \
+                 rollup_before_ns = CASE WHEN excluded.rollup_before_ns > retention_marks.rollup_before_ns \
+                   THEN excluded.rollup_before_ns ELSE retention_marks.rollup_before_ns END",
             )
             .bind(channel_key)
             .bind(marks.raw_before_ns)
@@ -79,9 +82,9 @@ pub async fn prune(
         Pruned::FineRollups => {
             let fine = &super::rollup::TIERS_S[..super::rollup::TIERS_S.len() - 1];
             let done = sqlx::query(
-                "DELETE FROM rollups WHERE channel_key = ?1 AND (width_s, start_ns) IN ( \
-                   SELECT width_s, start_ns FROM rollups WHERE channel_key = ?1 \
-                   AND width_s BETWEEN ?2 AND ?3 AND start_ns < ?4 LIMIT ?5)",
+                "DELETE FROM rollups WHERE channel_key = $1 AND (width_s, start_ns) IN ( \
+                   SELECT width_s, start_ns FROM rollups WHERE channel_key = $1 \
+                   AND width_s BETWEEN $2 AND $3 AND start_ns < $4 LIMIT $5)",
             )
             .bind(channel_key)
             .bind(fine[0])

@@ -12,8 +12,9 @@
 //! what keeps ingest fast at 1 kHz, where a 10 s bucket holds 10,000
 //! readings; recomputing is what keeps the rare cases exact.
 
+use super::Pool;
 use super::{BucketRow, ReadingRow, StoreError, Tx};
-use sqlx::{QueryBuilder, Row, Sqlite, SqlitePool};
+use sqlx::Row;
 use std::collections::{BTreeMap, HashMap};
 
 /// The tiers, seconds, finest first.
@@ -24,11 +25,11 @@ const NS_PER_S: i64 = 1_000_000_000;
 /// The same columns merged from rollup rows of a finer tier.
 macro_rules! rollups_summary {
     () => {
-        "SUM(n) AS n, MAX(last_ns) AS last_ns, \
+        "CAST(SUM(n) AS BIGINT) AS n, MAX(last_ns) AS last_ns, \
          MIN(v_min) AS v_min, MAX(v_max) AS v_max, SUM(v_sum) AS v_sum, \
-         SUM(s_n) AS s_n, MIN(s_min) AS s_min, MAX(s_max) AS s_max, SUM(s_sum) AS s_sum, \
-         SUM(e_n) AS e_n, MIN(e_min) AS e_min, MAX(e_max) AS e_max, SUM(e_sum) AS e_sum, \
-         SUM(d_n) AS d_n, MIN(d_min) AS d_min, MAX(d_max) AS d_max, SUM(d_sum) AS d_sum"
+         CAST(SUM(s_n) AS BIGINT) AS s_n, MIN(s_min) AS s_min, MAX(s_max) AS s_max, SUM(s_sum) AS s_sum, \
+         CAST(SUM(e_n) AS BIGINT) AS e_n, MIN(e_min) AS e_min, MAX(e_max) AS e_max, SUM(e_sum) AS e_sum, \
+         CAST(SUM(d_n) AS BIGINT) AS d_n, MIN(d_min) AS d_min, MAX(d_max) AS d_max, SUM(d_sum) AS d_sum"
     };
 }
 
@@ -256,75 +257,92 @@ async fn upsert(
     buckets: &[(i64, Summary)],
     how: Upsert,
 ) -> Result<(), StoreError> {
-    let verb = match how {
-        Upsert::Add => "INSERT INTO rollups ",
-        Upsert::Replace => "INSERT OR REPLACE INTO rollups ",
-    };
-    let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(verb);
-    qb.push(concat!(rollup_columns!(), " "));
-    qb.push_values(buckets, |mut b, (start, s)| {
-        b.push_bind(key)
-            .push_bind(tier_s)
-            .push_bind(*start)
-            .push_bind(s.n)
-            .push_bind(s.last_ns);
+    let engine = super::Engine::of(tx);
+    let mut q = super::Binds::new(concat!(
+        "INSERT INTO rollups ",
+        rollup_columns!(),
+        " VALUES "
+    ));
+    for (i, (start, s)) in buckets.iter().enumerate() {
+        q.push(if i == 0 { "(" } else { ", (" });
+        q.bind(key)
+            .bind(tier_s)
+            .bind(*start)
+            .bind(s.n)
+            .bind(s.last_ns);
         for v in &s.volts[..3] {
-            b.push_bind(*v);
+            q.bind(*v);
         }
         for p in [&s.soc, &s.equilibrium, &s.driving_force] {
-            b.push_bind(p.n)
-                .push_bind(p.min)
-                .push_bind(p.max)
-                .push_bind(p.sum);
+            q.bind(p.n).bind(p.min).bind(p.max).bind(p.sum);
         }
-        b.push_bind(s.run_id)
-            .push_bind(s.volts[3])
-            .push_bind(s.soc.last)
-            .push_bind(s.equilibrium.last)
-            .push_bind(s.driving_force.last)
-            .push_bind(s.charge_ah_last)
-            .push_bind(s.energy_wh_last);
-    });
-    if how == Upsert::Add {
-        qb.push(merge_on_conflict());
+        q.bind(s.run_id)
+            .bind(s.volts[3])
+            .bind(s.soc.last)
+            .bind(s.equilibrium.last)
+            .bind(s.driving_force.last)
+            .bind(s.charge_ah_last)
+            .bind(s.energy_wh_last);
+        q.push(")");
     }
-    qb.build().execute(&mut **tx).await?;
+    q.push(match how {
+        Upsert::Add => merge_on_conflict(engine),
+        Upsert::Replace => REPLACE_ON_CONFLICT,
+    });
+    q.execute(&mut **tx).await?;
     Ok(())
 }
 
+/// The `ON CONFLICT` clause that replaces a stored bucket with the new
+/// summary (a recomputation).
+const REPLACE_ON_CONFLICT: &str = " ON CONFLICT (channel_key, width_s, start_ns) DO UPDATE SET \
+     n = excluded.n, last_ns = excluded.last_ns, v_min = excluded.v_min, v_max = excluded.v_max, \
+     v_sum = excluded.v_sum, s_n = excluded.s_n, s_min = excluded.s_min, s_max = excluded.s_max, \
+     s_sum = excluded.s_sum, e_n = excluded.e_n, e_min = excluded.e_min, e_max = excluded.e_max, \
+     e_sum = excluded.e_sum, d_n = excluded.d_n, d_min = excluded.d_min, d_max = excluded.d_max, \
+     d_sum = excluded.d_sum, run_id = excluded.run_id, v_last = excluded.v_last, \
+     s_last = excluded.s_last, e_last = excluded.e_last, d_last = excluded.d_last, \
+     c_last = excluded.c_last, w_last = excluded.w_last";
+
 /// The `ON CONFLICT` clause that adds a new summary to a stored bucket.
-/// SET expressions read the row as it was (`last_ns` on the right is the
-/// stored one). SQLite's two-argument MIN/MAX return NULL if either is
-/// NULL, hence the COALESCEs for the values some readings lack.
-fn merge_on_conflict() -> &'static str {
-    static CLAUSE: std::sync::OnceLock<String> = std::sync::OnceLock::new();
-    CLAUSE.get_or_init(|| {
+/// SET expressions read the row as it was (`rollups.last_ns` on the right
+/// is the stored one; the table name keeps PostgreSQL from calling a bare
+/// column ambiguous). SQLite's two-argument MIN/MAX return NULL if either
+/// is NULL (PostgreSQL's LEAST/GREATEST skip it), hence the COALESCEs for
+/// the values some readings lack.
+fn merge_on_conflict(engine: super::Engine) -> &'static str {
+    static CLAUSES: [std::sync::OnceLock<String>; 2] =
+        [std::sync::OnceLock::new(), std::sync::OnceLock::new()];
+    CLAUSES[engine as usize].get_or_init(|| {
+        let (min, max) = (engine.least(), engine.greatest());
         let later = |col: &str| {
-            format!("{col} = CASE WHEN excluded.last_ns >= last_ns THEN excluded.{col} ELSE {col} END")
+            format!(
+                "{col} = CASE WHEN excluded.last_ns >= rollups.last_ns THEN excluded.{col} ELSE rollups.{col} END"
+            )
         };
         let mut set = vec![
-            "n = n + excluded.n".to_string(),
+            "n = rollups.n + excluded.n".to_string(),
             later("run_id"),
-            "v_min = MIN(v_min, excluded.v_min)".into(),
-            "v_max = MAX(v_max, excluded.v_max)".into(),
-            "v_sum = v_sum + excluded.v_sum".into(),
+            format!("v_min = {min}(rollups.v_min, excluded.v_min)"),
+            format!("v_max = {max}(rollups.v_max, excluded.v_max)"),
+            "v_sum = rollups.v_sum + excluded.v_sum".into(),
             later("v_last"),
         ];
         for x in ["s", "e", "d"] {
-            set.push(format!("{x}_n = {x}_n + excluded.{x}_n"));
-            for (stat, f) in [("min", "MIN"), ("max", "MAX")] {
+            set.push(format!("{x}_n = rollups.{x}_n + excluded.{x}_n"));
+            for (stat, f) in [("min", min), ("max", max)] {
                 set.push(format!(
-                    "{x}_{stat} = COALESCE({f}({x}_{stat}, excluded.{x}_{stat}), {x}_{stat}, excluded.{x}_{stat})"
+                    "{x}_{stat} = COALESCE({f}(rollups.{x}_{stat}, excluded.{x}_{stat}), rollups.{x}_{stat}, excluded.{x}_{stat})"
                 ));
             }
             set.push(format!(
-                "{x}_sum = COALESCE({x}_sum + excluded.{x}_sum, {x}_sum, excluded.{x}_sum)"
+                "{x}_sum = COALESCE(rollups.{x}_sum + excluded.{x}_sum, rollups.{x}_sum, excluded.{x}_sum)"
             ));
             set.push(later(&format!("{x}_last")));
         }
         set.push(later("c_last"));
         set.push(later("w_last"));
-        set.push("last_ns = MAX(last_ns, excluded.last_ns)".into());
+        set.push(format!("last_ns = {max}(rollups.last_ns, excluded.last_ns)"));
         format!(
             " ON CONFLICT (channel_key, width_s, start_ns) DO UPDATE SET {}",
             set.join(", ")
@@ -373,11 +391,8 @@ async fn from_readings(tx: &mut Tx<'_>, key: i64, lo: i64, hi: i64) -> Result<()
 
 /// Each of the channel's runs' cells in series (the driving force is per
 /// cell).
-async fn run_cells(
-    conn: &mut sqlx::SqliteConnection,
-    key: i64,
-) -> Result<HashMap<i64, u32>, StoreError> {
-    let rows = sqlx::query("SELECT run_id, cells_in_series FROM runs WHERE channel_key = ?")
+async fn run_cells(conn: &mut super::Conn, key: i64) -> Result<HashMap<i64, u32>, StoreError> {
+    let rows = sqlx::query("SELECT run_id, cells_in_series FROM runs WHERE channel_key = $1")
         .bind(key)
         .fetch_all(conn)
         .await?;
@@ -411,49 +426,66 @@ async fn from_child(
     lo: i64,
     hi: i64,
 ) -> Result<(), StoreError> {
-    sqlx::query(concat!(
-        "INSERT OR REPLACE INTO rollups ", rollup_columns!(), " \
+    let sql = concat!(
+        "INSERT INTO rollups ",
+        rollup_columns!(),
+        " \
          WITH agg AS ( \
-           SELECT (start_ns / ?5) * ?5 AS b, ", rollups_summary!(), " \
-           FROM rollups WHERE channel_key = ?1 AND width_s = ?4 AND start_ns >= ?2 AND start_ns < ?3 \
+           SELECT (start_ns / $5) * $5 AS b, ",
+        rollups_summary!(),
+        " \
+           FROM rollups WHERE channel_key = $1 AND width_s = $4 AND start_ns >= $2 AND start_ns < $3 \
            GROUP BY b \
          ) \
-         SELECT ?1, ?6, a.*, ", rollups_last!(), " \
-         FROM agg a CROSS JOIN rollups c ON c.channel_key = ?1 AND c.width_s = ?4 \
-           AND c.start_ns >= a.b AND c.start_ns < a.b + ?5 AND c.last_ns = a.last_ns",
-    ))
-    .bind(key)
-    .bind(lo)
-    .bind(hi)
-    .bind(child_s)
-    .bind(parent_s * NS_PER_S)
-    .bind(parent_s)
-    .execute(&mut **tx)
-    .await?;
+         SELECT $1, $6, a.*, ",
+        rollups_last!(),
+        " \
+         FROM agg a CROSS JOIN rollups c ON c.channel_key = $1 AND c.width_s = $4 \
+           AND c.start_ns >= a.b AND c.start_ns < a.b + $5 AND c.last_ns = a.last_ns \
+         WHERE true"
+    );
+    let sql = super::dialect(super::Engine::of(tx), sql) + REPLACE_ON_CONFLICT;
+    sqlx::query(sqlx::AssertSqlSafe(sql))
+        .bind(key)
+        .bind(lo)
+        .bind(hi)
+        .bind(child_s)
+        .bind(parent_s * NS_PER_S)
+        .bind(parent_s)
+        .execute(&mut **tx)
+        .await?;
     Ok(())
 }
 
 /// Buckets of `width_ns` from `start_ns` (aligned) to `end_ns`, merged
 /// from the rollups of tier `tier_s` (see [`tier_for`]).
 pub async fn query(
-    pool: &SqlitePool,
+    pool: &Pool,
     key: i64,
     start_ns: i64,
     end_ns: i64,
     width_ns: i64,
     tier_s: i64,
 ) -> Result<Vec<BucketRow>, StoreError> {
-    let rows = sqlx::query(concat!(
+    let sql = concat!(
         "WITH agg AS ( \
-           SELECT (start_ns - ?2) / ?4 AS bucket, ", rollups_summary!(), " \
-           FROM rollups WHERE channel_key = ?1 AND width_s = ?5 AND start_ns >= ?2 AND start_ns < ?3 \
+           SELECT (start_ns - $2) / $4 AS bucket, ",
+        rollups_summary!(),
+        " \
+           FROM rollups WHERE channel_key = $1 AND width_s = $5 AND start_ns >= $2 AND start_ns < $3 \
            GROUP BY bucket \
          ) \
-         SELECT a.*, ", rollups_last!(), " FROM agg a CROSS JOIN rollups c \
-           ON c.channel_key = ?1 AND c.width_s = ?5 AND c.last_ns = a.last_ns \
-           AND c.start_ns >= ?2 + a.bucket * ?4 AND c.start_ns < ?2 + (a.bucket + 1) * ?4 \
+         SELECT a.*, ",
+        rollups_last!(),
+        " FROM agg a CROSS JOIN rollups c \
+           ON c.channel_key = $1 AND c.width_s = $5 AND c.last_ns = a.last_ns \
+           AND c.start_ns >= $2 + a.bucket * $4 AND c.start_ns < $2 + (a.bucket + 1) * $4 \
          ORDER BY a.bucket",
-    ))
+    );
+    let rows = sqlx::query(sqlx::AssertSqlSafe(super::dialect(
+        super::pool_engine(pool),
+        sql,
+    )))
     .bind(key)
     .bind(start_ns)
     .bind(end_ns)
@@ -467,7 +499,7 @@ pub async fn query(
 /// Buckets straight from the readings, for widths no tier tiles (under
 /// 10 s); the same columns as [`query`].
 pub async fn query_readings(
-    pool: &SqlitePool,
+    pool: &Pool,
     key: i64,
     start_ns: i64,
     end_ns: i64,
@@ -509,7 +541,7 @@ fn bucket_of_summary(bucket: i64, s: &Summary) -> BucketRow {
 }
 
 /// One merged bucket; means from sums, so every tier gives the same mean.
-fn bucket_of(r: &sqlx::sqlite::SqliteRow) -> Result<BucketRow, StoreError> {
+fn bucket_of(r: &super::DbRow) -> Result<BucketRow, StoreError> {
     let n: i64 = r.try_get("n")?;
     Ok(BucketRow {
         bucket: r.try_get("bucket")?,
@@ -532,7 +564,7 @@ fn bucket_of(r: &sqlx::sqlite::SqliteRow) -> Result<BucketRow, StoreError> {
 /// min, max, mean and last of a value some readings lack (columns
 /// `<x>_n`, `<x>_min`, …); none when no reading in the bucket had it, and
 /// `last` NaN when the last reading lacked it.
-fn partial_of(r: &sqlx::sqlite::SqliteRow, x: &str) -> Result<Option<[f64; 4]>, StoreError> {
+fn partial_of(r: &super::DbRow, x: &str) -> Result<Option<[f64; 4]>, StoreError> {
     let n: i64 = r.try_get(format!("{x}_n").as_str())?;
     if n == 0 {
         return Ok(None);

@@ -80,10 +80,59 @@ impl Server {
     }
 }
 
+/// A database of its own for one test: a SQLite file in a temporary
+/// directory, or with `GIBBSLINE_TEST_ENGINE=postgres` a fresh PostgreSQL
+/// database (its URL in place of the path; the directory is still there
+/// for the test's other files).
 pub(crate) fn temp_db() -> (tempfile::TempDir, PathBuf) {
     let dir = tempfile::tempdir().unwrap();
+    if on_postgres() {
+        return (dir, PathBuf::from(fresh_pg_database()));
+    }
     let path = dir.path().join("test.db");
     (dir, path)
+}
+
+/// Whether this run's tests use PostgreSQL (`GIBBSLINE_TEST_ENGINE`).
+pub(crate) fn on_postgres() -> bool {
+    std::env::var("GIBBSLINE_TEST_ENGINE").is_ok_and(|e| e == "postgres")
+}
+
+/// The server the PostgreSQL runs use (`GIBBSLINE_TEST_PG`, default the
+/// local one with trust authentication).
+pub(crate) fn pg_admin_url() -> String {
+    std::env::var("GIBBSLINE_TEST_PG")
+        .unwrap_or_else(|_| "postgres://postgres@127.0.0.1:5432/postgres".into())
+}
+
+/// Creates an empty database named `gl_t_<pid>_<n>` and returns its URL.
+/// `.ci/test` drops the `gl_t_` databases of earlier runs.
+pub(crate) fn fresh_pg_database() -> String {
+    use sqlx::Connection;
+    static N: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(0);
+    let n = N.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+    let name = format!("gl_t_{}_{n}", std::process::id());
+    let admin = pg_admin_url();
+    let create = format!("CREATE DATABASE {name}");
+    // Called from inside the tests' runtime, which must not block: a
+    // thread with a runtime of its own makes the database.
+    std::thread::spawn(move || {
+        tokio::runtime::Builder::new_current_thread()
+            .enable_all()
+            .build()
+            .unwrap()
+            .block_on(async move {
+                let mut conn = sqlx::PgConnection::connect(&admin).await.unwrap();
+                sqlx::query(sqlx::AssertSqlSafe(create))
+                    .execute(&mut conn)
+                    .await
+                    .unwrap();
+                let (base, _) = admin.rsplit_once('/').unwrap();
+                format!("{base}/{name}")
+            })
+    })
+    .join()
+    .unwrap()
 }
 
 pub(crate) fn now_ns() -> i64 {

@@ -9,8 +9,9 @@ use sqlx::Connection;
 const KEY: i64 = 5;
 const HOUR: i64 = SPAN_NS;
 
-async fn db() -> SqliteConnection {
-    let mut conn = SqliteConnection::connect("sqlite::memory:").await.unwrap();
+async fn db() -> Conn {
+    crate::store::install_drivers();
+    let mut conn = Conn::connect("sqlite::memory:").await.unwrap();
     sqlx::migrate!("./migrations").run(&mut conn).await.unwrap();
     conn
 }
@@ -41,16 +42,11 @@ fn sorted(rows: &[ReadingRow]) -> Vec<(i64, u64)> {
 }
 
 /// Stores `rows` the way the writer does: only what is new.
-async fn store(conn: &mut SqliteConnection, rows: &[ReadingRow]) -> Vec<bool> {
+async fn store(conn: &mut Conn, rows: &[ReadingRow]) -> Vec<bool> {
     insert_new(conn, KEY, rows).await.unwrap()
 }
 
-async fn all_pages(
-    conn: &mut SqliteConnection,
-    start: i64,
-    end: i64,
-    limit: usize,
-) -> Vec<(i64, u64)> {
+async fn all_pages(conn: &mut Conn, start: i64, end: i64, limit: usize) -> Vec<(i64, u64)> {
     let mut out = Vec::new();
     let mut after = (i64::MIN, i64::MIN);
     loop {
@@ -63,7 +59,7 @@ async fn all_pages(
     }
 }
 
-async fn chunk_spans(conn: &mut SqliteConnection) -> Vec<(i64, i64, i64)> {
+async fn chunk_spans(conn: &mut Conn) -> Vec<(i64, i64, i64)> {
     sqlx::query("SELECT start_ns, end_ns, n FROM chunks WHERE channel_key = ?")
         .bind(KEY)
         .fetch_all(conn)
