@@ -7,7 +7,7 @@ use crate::alerts::rules as alert_rules;
 use crate::config::{ServerConfig, TlsPem};
 use crate::electrochem::{Registry, chemistry::ChemistrySpec};
 use crate::grpc;
-use crate::ingest::{self, Hub, Job, hub::HubHandles, writer};
+use crate::ingest::{self, Hub, Job, hub::HubHandles, ownership::Ownership, writer};
 use crate::pb;
 use crate::store::{self, Store};
 use std::future::Future;
@@ -88,7 +88,15 @@ pub async fn run(
         store.note_holder(&addr.to_string());
     }
     let registry = build_registry(&store, &config.chemistry).await?;
-    let (hub, handles) = Hub::open(store.clone(), registry, config.limits.ingest()).await?;
+    let ownership = shared_ownership(&store, &config, &listener);
+    let owner = ownership.as_ref().map(|o| o.instance.clone());
+    let (hub, handles) = Hub::open(
+        store.clone(),
+        registry,
+        config.limits.ingest(),
+        ownership.clone(),
+    )
+    .await?;
     let HubHandles {
         jobs: writer_rx,
         shutdown: shutdown_tx,
@@ -101,6 +109,7 @@ pub async fn run(
         hub.events(),
         hub.metrics().clone(),
         writer_stop_rx,
+        owner,
     ));
     let (health_reporter, health_service) = tonic_health::server::health_reporter();
     set_health(&health_reporter, tonic_health::ServingStatus::Serving).await;
@@ -136,8 +145,49 @@ pub async fn run(
     // for every sender to go.
     let _ = writer_stop_tx.send(true);
     drop(hub);
-    flush_and_close(writer_task, store, shutdown_budget / 2).await;
+    flush_and_close(writer_task, store, shutdown_budget / 2, ownership).await;
     result.map_err(AppError::from)
+}
+
+/// On a shared PostgreSQL database, this server's leases, advertised at
+/// `advertise` or the address it listens on.
+fn shared_ownership(
+    store: &Store,
+    config: &ServerConfig,
+    listener: &TcpListener,
+) -> Option<Arc<Ownership>> {
+    if store.engine() != store::Engine::Postgres {
+        return None;
+    }
+    let addr = config.advertise.clone().unwrap_or_else(|| {
+        listener
+            .local_addr()
+            .map_or_else(|_| config.listen.clone(), |a| a.to_string())
+    });
+    let own = Ownership::new(store.reader.clone(), addr);
+    tracing::info!(instance = %own.instance, advertise = %own.addr, "shared database: channels are leased");
+    Some(Arc::new(own))
+}
+
+/// Shared database: renews this server's leases (channels whose lease
+/// was lost stop being written here) and re-reads channels owned
+/// elsewhere, on one timer.
+async fn keep_leases(hub: Arc<Hub>) {
+    let Some(own) = hub.ownership().cloned() else {
+        return;
+    };
+    let mut tick = tokio::time::interval(ingest::ownership::RENEW_EVERY);
+    loop {
+        tick.tick().await;
+        match own.renew().await {
+            Ok(lost) if !lost.is_empty() => hub.drop_leases(&lost),
+            Ok(_) => {}
+            Err(e) => tracing::warn!(error = %e, "leases not renewed"),
+        }
+        if let Err(e) = hub.refresh_from_store().await {
+            tracing::warn!(error = %e, "channels not refreshed from the store");
+        }
+    }
 }
 
 /// Starts the console and JSON API on `listener`, with HTTPS when the
@@ -190,6 +240,16 @@ impl Background {
         background
             .aborted
             .extend(crate::notify::start(hub, &config.notify).await?);
+        if hub.ownership().is_some() {
+            background
+                .aborted
+                .push(tokio::spawn(keep_leases(hub.clone())));
+        }
+        if let Some(waker) = store::lease::EventWaker::for_store(hub.store()) {
+            background
+                .aborted
+                .push(tokio::spawn(ingest::relay::run(hub.clone(), waker)));
+        }
         background.aborted.push(tokio::spawn(follow_storage_health(
             hub.store().clone(),
             health_reporter,
@@ -291,12 +351,18 @@ async fn flush_and_close(
     writer_task: tokio::task::JoinHandle<Result<(), store::StoreError>>,
     store: Store,
     budget: Duration,
+    ownership: Option<Arc<Ownership>>,
 ) {
     match tokio::time::timeout(budget, writer_task).await {
         Ok(Ok(Ok(()))) => tracing::info!("writer flushed"),
         Ok(Ok(Err(e))) => tracing::error!(error = %e, "writer failed"),
         Ok(Err(e)) => tracing::error!(error = %e, "writer task panicked"),
         Err(_) => tracing::error!(budget_s = budget.as_secs(), "writer did not flush in time"),
+    }
+    // Only after the last commit: another server that takes a channel
+    // then restores everything this one acknowledged.
+    if let Some(own) = ownership {
+        own.release_all().await;
     }
     if tokio::time::timeout(Duration::from_secs(1), store.close())
         .await
@@ -394,16 +460,22 @@ async fn raise_if_silent(hub: &Hub, rt: &Mutex<ingest::ChannelRuntime>, now: i64
         {
             return;
         }
+        if !hub.owns(&g) {
+            return;
+        }
         let seq = g.max_seq.unwrap_or(0);
         let last = g.last_arrival_wall_ns;
-        alert_rules::raise_silent(&mut g.rule_state, last, now, seq).map(|a| (g.key, g.run_id, a))
+        let lease = hub.lease_of(&g);
+        alert_rules::raise_silent(&mut g.rule_state, last, now, seq)
+            .map(|a| (g.key, g.run_id, a, lease))
     };
-    if let Some((channel_key, run_id, alert)) = job {
+    if let Some((channel_key, run_id, alert, lease)) = job {
         let written = hub
             .submit(|reply| Job::Alerts {
                 channel_key,
                 run_id,
                 raised: vec![alert],
+                lease,
                 reply,
             })
             .await;

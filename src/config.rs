@@ -26,6 +26,8 @@ pub struct ConfigFile {
     pub metrics_listen: Option<String>,
     /// Web console and JSON API (see [`ServerConfig::http_listen`]).
     pub http_listen: Option<String>,
+    /// Where rigs reach this server (see [`ServerConfig::advertise`]).
+    pub advertise: Option<String>,
     /// Confirms serving beyond loopback without TLS.
     #[serde(default)]
     pub allow_insecure: bool,
@@ -272,7 +274,8 @@ pub struct ChannelEntry {
 pub struct ServerConfig {
     /// gRPC address, `host:port`.
     pub listen: String,
-    /// SQLite database file, created and migrated on first start.
+    /// The database: a SQLite file, created and migrated on first start,
+    /// or a `postgres://` URL (several servers may share it).
     pub db: String,
     /// How hard each commit is pushed to disk.
     pub durability: Durability,
@@ -282,6 +285,10 @@ pub struct ServerConfig {
     /// `[tls]`), `host:port`; none (`"off"`) means off.
     #[serde(serialize_with = "off_when_none")]
     pub http_listen: Option<String>,
+    /// On a shared PostgreSQL database: the gRPC address other servers
+    /// name when a rig streams to them for a channel this server owns;
+    /// none means the address it listens on.
+    pub advertise: Option<String>,
     /// Serving beyond loopback without TLS is confirmed.
     pub allow_insecure: bool,
     /// TLS files; none means plain text (loopback, or behind a proxy).
@@ -347,6 +354,8 @@ pub struct Flags {
     pub metrics_listen: Option<String>,
     /// `--http-listen`.
     pub http_listen: Option<String>,
+    /// `--advertise`.
+    pub advertise: Option<String>,
     /// `--allow-insecure`.
     pub allow_insecure: bool,
     /// `--chemistry-file` files as (path, text): their chemistries join
@@ -389,6 +398,7 @@ pub fn load_with_flags(
         ("GIBBSLINE_DB", &flags.db),
         ("GIBBSLINE_METRICS_LISTEN", &flags.metrics_listen),
         ("GIBBSLINE_HTTP_LISTEN", &flags.http_listen),
+        ("GIBBSLINE_ADVERTISE", &flags.advertise),
     ] {
         if let Some(v) = flag {
             env.insert(key.into(), v.clone());
@@ -445,6 +455,10 @@ pub fn resolve(
         .cloned()
         .or(file.db.clone())
         .unwrap_or_else(|| DEFAULT_DB.into());
+    let advertise = env
+        .get("GIBBSLINE_ADVERTISE")
+        .cloned()
+        .or(file.advertise.clone());
     crate::auth::TokenTable::new(&file.token)
         .map_err(|e| fail((table_line(text, "[[token]]", 0), e.to_string())))?;
     check_definitions(text, &file).map_err(fail)?;
@@ -468,6 +482,7 @@ pub fn resolve(
         durability,
         metrics_listen,
         http_listen,
+        advertise,
         allow_insecure,
         tls: file.tls,
         notify,

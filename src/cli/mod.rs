@@ -144,9 +144,14 @@ pub(crate) struct ServeArgs {
     /// Address to listen on [default: 127.0.0.1:50051].
     #[arg(long)]
     pub listen: Option<String>,
-    /// SQLite database file, created and migrated on first start [default: gibbsline.db].
+    /// The database: a SQLite file, created and migrated on first start
+    /// [default: gibbsline.db], or a postgres:// URL several servers share.
     #[arg(long)]
     pub db: Option<PathBuf>,
+    /// On a shared PostgreSQL database: the gRPC address rigs are sent to
+    /// for channels this server owns [default: the listen address].
+    #[arg(long)]
+    pub advertise: Option<String>,
     /// Commit durability: full (survives power loss), normal (survives a crash), off.
     #[arg(long)]
     pub durability: Option<String>,

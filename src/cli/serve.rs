@@ -69,6 +69,7 @@ fn flags_of(args: &ServeArgs) -> anyhow::Result<Flags> {
         durability: args.durability.clone(),
         metrics_listen: args.metrics_listen.clone(),
         http_listen: args.http_listen.clone(),
+        advertise: args.advertise.clone(),
         allow_insecure: args.allow_insecure,
         chemistry_files,
     })

@@ -57,7 +57,7 @@ impl pb::ingest_service_server::IngestService for IngestApi {
         let channel_id = request.into_inner().channel_id;
         auth::check_channel(principal.as_ref(), &channel_id)
             .map_err(|e| deny(e, "GetResumePoint"))?;
-        let max = self.hub.resume_point(&channel_id)?;
+        let max = self.hub.resume_point(&channel_id).await?;
         Ok(Response::new(pb::GetResumePointResponse {
             last_stored_seq: max.unwrap_or(0),
             any_stored: max.is_some(),

@@ -15,7 +15,10 @@ impl From<IngestError> for Status {
             }
             IngestError::Invalid { .. } => Status::invalid_argument(message),
             IngestError::BatchTooLarge(_) => Status::resource_exhausted(message),
-            IngestError::ShuttingDown => Status::unavailable(message),
+            IngestError::ShuttingDown | IngestError::Store(StoreError::Fenced(_)) => {
+                Status::unavailable(message)
+            }
+            IngestError::OwnedElsewhere(o) => owned_elsewhere(&o, message),
             IngestError::StoredUnusable { .. } => Status::failed_precondition(message),
             IngestError::Store(StoreError::Unwritable { fault, .. }) => {
                 tracing::warn!(error = %message, "write refused by storage");
@@ -35,6 +38,16 @@ impl From<IngestError> for Status {
             }
         }
     }
+}
+
+/// UNAVAILABLE (what rigs retry), naming the owner in the message and in
+/// the `gibbsline-owner` metadata a rig or balancer can follow.
+fn owned_elsewhere(o: &crate::ingest::ownership::OwnedElsewhere, message: String) -> Status {
+    let mut status = Status::unavailable(message);
+    if let Ok(v) = o.owner_addr.parse() {
+        status.metadata_mut().insert("gibbsline-owner", v);
+    }
+    status
 }
 
 /// gRPC's own guide to codes: RESOURCE_EXHAUSTED covers "the entire file

@@ -18,7 +18,14 @@ pub const ROWS_PER_STEP: u32 = 20_000;
 pub async fn pass(hub: &Hub) -> Result<u64, IngestError> {
     let mut total = 0;
     for (_, runtime) in hub.runtimes() {
-        let key = runtime.lock().expect("channel state poisoned").key;
+        let (key, owned) = {
+            let rt = runtime.lock().expect("channel state poisoned");
+            (rt.key, hub.owns(&rt))
+        };
+        // Shared database: the channel's owner merges its chunks.
+        if !owned {
+            continue;
+        }
         loop {
             let outcome = hub
                 .submit(|reply| Job::Compact {

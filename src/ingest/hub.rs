@@ -2,6 +2,7 @@
 //! (gRPC, HTTP, CLI) calls into. Fields are private: shells ask.
 
 use super::derive::{DerivedBatch, check_batch_size, derive_batch, snapshot_of};
+use super::ownership::Ownership;
 use super::writer::{self, Job, ReadingsJob, WriteOutcome};
 use super::{
     Ack, ChannelRuntime, IngestError, IngestLimits, RawReading, Rejection, invalid, load_runtime,
@@ -12,7 +13,7 @@ use crate::electrochem::Registry;
 use crate::estimator::{self, EstimatorState};
 use crate::metrics::Metrics;
 use crate::retention::{RetentionMarks, RetentionPolicy};
-use crate::store::{self, AlertEvent, Store, StoreError};
+use crate::store::{self, AlertEvent, Store, StoreError, lease};
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex, RwLock};
 use tokio::sync::{broadcast, mpsc, oneshot, watch};
@@ -29,6 +30,9 @@ pub struct Hub {
     shutdown: watch::Receiver<bool>,
     metrics: Arc<Metrics>,
     limits: IngestLimits,
+    /// Several servers on one PostgreSQL database: this server's leases.
+    /// `None` on SQLite, where this server owns every channel.
+    ownership: Option<Arc<Ownership>>,
 }
 
 /// The other ends of a hub's queues, for the wiring: the writer takes the
@@ -70,6 +74,7 @@ impl Hub {
         store: Store,
         registry: Registry,
         limits: IngestLimits,
+        ownership: Option<Arc<Ownership>>,
     ) -> Result<(Arc<Hub>, HubHandles), IngestError> {
         let mut channels = HashMap::new();
         for row in store::list_channels(&store.writer).await? {
@@ -89,6 +94,7 @@ impl Hub {
             shutdown,
             metrics: Arc::default(),
             limits,
+            ownership,
         };
         let handles = HubHandles {
             jobs,
@@ -191,13 +197,43 @@ impl Hub {
             .key)
     }
 
-    /// The highest committed seq of a channel: where its rig resumes.
-    pub fn resume_point(&self, channel_id: &str) -> Result<Option<u64>, IngestError> {
-        Ok(self
-            .channel(channel_id)?
+    /// The highest committed seq of a channel: where its rig resumes. On
+    /// a shared database the channel is claimed first (a rig asks this
+    /// of the server it is about to stream to), so the answer is the
+    /// store's, restored if another server wrote last.
+    pub async fn resume_point(&self, channel_id: &str) -> Result<Option<u64>, IngestError> {
+        let runtime = if self.ownership.is_some() {
+            self.take_turn(channel_id).await?.0
+        } else {
+            self.channel(channel_id)?
+        };
+        let committed = runtime
             .lock()
             .expect("channel state poisoned")
-            .committed_seq)
+            .committed_seq;
+        Ok(committed)
+    }
+
+    /// This server's leases (a shared PostgreSQL database), if any.
+    pub fn ownership(&self) -> Option<&Arc<Ownership>> {
+        self.ownership.as_ref()
+    }
+
+    /// Whether this server may act for the channel now (always, on SQLite).
+    pub fn owns(&self, rt: &ChannelRuntime) -> bool {
+        match &self.ownership {
+            None => true,
+            Some(own) => {
+                rt.lease_token.is_some()
+                    && own.token(&lease::channel_name(rt.key)) == rt.lease_token
+            }
+        }
+    }
+
+    /// The lease a write for this channel is fenced by (shared database).
+    pub fn lease_of(&self, rt: &ChannelRuntime) -> Option<(String, i64)> {
+        self.ownership.as_ref()?;
+        rt.lease_token.map(|t| (lease::channel_name(rt.key), t))
     }
 
     /// A defined channel's live state; unknown ids are NOT_FOUND.
@@ -302,7 +338,7 @@ impl Hub {
         check_batch_size(&readings)?;
         let (runtime, _turn) = self.take_turn(channel_id).await?;
         let wall_now = now_ns();
-        let (derived, rejected) = {
+        let ((derived, rejected), lease) = {
             let mut rt = runtime.lock().expect("channel state poisoned");
             // A recording is not the rig speaking: it must not set the
             // silent-rig yardstick (the import's pace would then make a
@@ -310,11 +346,12 @@ impl Hub {
             if !historical {
                 rt.note_arrival(wall_now);
             }
-            derive_batch(&mut rt, &readings, wall_now)
+            let derived = derive_batch(&mut rt, &readings, wall_now);
+            (derived, self.lease_of(&rt))
         };
         drop(readings);
         let outcome = match self
-            .submit(|reply| Job::Readings(derived.into_job(reply, historical)))
+            .submit(|reply| Job::Readings(derived.into_job(reply, historical, lease)))
             .await
         {
             Ok(outcome) => outcome,
@@ -374,7 +411,7 @@ impl Hub {
             let changes = alerts::rules::clear_timeline(&mut rt.rule_state, now_ns())
                 .into_iter()
                 .collect();
-            DerivedBatch {
+            let batch = DerivedBatch {
                 channel_key: rt.key,
                 run_id: rt.run_id,
                 cells_in_series: rt.def.cells_in_series,
@@ -383,10 +420,12 @@ impl Hub {
                 changes,
                 cycles: vec![],
                 estimator: Some(snapshot_of(&rt)),
-            }
+            };
+            (batch, self.lease_of(&rt))
         };
+        let (job, lease) = job;
         if let Err(e) = self
-            .submit(|reply| Job::Readings(job.into_job(reply, false)))
+            .submit(|reply| Job::Readings(job.into_job(reply, false, lease)))
             .await
         {
             self.reload_after_failure(&runtime).await;
@@ -431,6 +470,7 @@ impl Hub {
                     serde_json::json!({"soc": soc, "applies_from_ns": time_ns, "note": note})
                         .to_string(),
                 estimator: snapshot_of(&rt),
+                lease: self.lease_of(&rt),
             };
             (change, time_ns)
         };
@@ -490,7 +530,7 @@ impl Hub {
         &self,
         channel_id: &str,
     ) -> Result<(Arc<Mutex<ChannelRuntime>>, tokio::sync::OwnedMutexGuard<()>), IngestError> {
-        let runtime = self.channel(channel_id)?;
+        let runtime = self.find_channel(channel_id).await?;
         let gate = runtime
             .lock()
             .expect("channel state poisoned")
@@ -498,7 +538,104 @@ impl Hub {
             .clone();
         let turn = gate.lock_owned().await;
         self.reload_if_needed(&runtime).await?;
+        self.claim(&runtime).await?;
         Ok((runtime, turn))
+    }
+
+    /// A channel's live state; on a shared database one another server
+    /// defined since this one loaded its channels is loaded now.
+    async fn find_channel(
+        &self,
+        channel_id: &str,
+    ) -> Result<Arc<Mutex<ChannelRuntime>>, IngestError> {
+        match self.channel(channel_id) {
+            Err(IngestError::UnknownChannel(_)) if self.ownership.is_some() => {
+                if let Some(row) = store::get_channel(&self.store.reader, channel_id).await? {
+                    self.insert_loaded(&row).await?;
+                }
+                self.channel(channel_id)
+            }
+            found => found,
+        }
+    }
+
+    /// On a shared database: holds the channel's lease (or says who
+    /// does), and restores its state from the store when the lease is new
+    /// to this state (first use here, or another server wrote since).
+    async fn claim(&self, runtime: &Mutex<ChannelRuntime>) -> Result<(), IngestError> {
+        let Some(own) = &self.ownership else {
+            return Ok(());
+        };
+        let (key, channel_id, held) = {
+            let rt = runtime.lock().expect("channel state poisoned");
+            (rt.key, rt.def.channel_id.clone(), rt.lease_token)
+        };
+        let token = match own.claim(&lease::channel_name(key), &channel_id).await {
+            Ok(token) => token,
+            Err(Ok(elsewhere)) => return Err(elsewhere.into()),
+            Err(Err(e)) => return Err(e.into()),
+        };
+        if held != Some(token) {
+            self.reload(runtime).await?;
+            let mut rt = runtime.lock().expect("channel state poisoned");
+            rt.lease_token = Some(token);
+            // The silent-rig clock starts at the takeover: the last
+            // arrival another server saw is not known here.
+            rt.last_arrival_wall_ns = now_ns();
+            tracing::info!(%channel_id, token, committed_seq = ?rt.committed_seq, "channel taken over: state restored from the store");
+        }
+        Ok(())
+    }
+
+    /// A shared database: loads channels other servers defined, and
+    /// re-reads the state of channels owned elsewhere (what state queries
+    /// and the console show here), skipping any whose gate is busy.
+    pub async fn refresh_from_store(&self) -> Result<(), IngestError> {
+        let rows = store::list_channels(&self.store.reader).await?;
+        for row in rows {
+            let Ok(runtime) = self.channel(&row.channel_id) else {
+                self.insert_loaded(&row).await?;
+                continue;
+            };
+            let gate = runtime
+                .lock()
+                .expect("channel state poisoned")
+                .commit_gate
+                .clone();
+            let Ok(_turn) = gate.try_lock_owned() else {
+                continue;
+            };
+            if self.owns(&runtime.lock().expect("channel state poisoned")) {
+                continue;
+            }
+            self.reload(&runtime).await?;
+        }
+        Ok(())
+    }
+
+    /// Adds a stored channel this server has not loaded yet.
+    async fn insert_loaded(&self, row: &store::ChannelRow) -> Result<(), IngestError> {
+        let registry = self.registry.read().expect("registry poisoned").clone();
+        let mut runtime = load_runtime(&self.store, &registry, row).await?;
+        runtime.limits = self.limits;
+        self.channels
+            .write()
+            .expect("channel map poisoned")
+            .entry(row.channel_id.clone())
+            .or_insert_with(|| Arc::new(Mutex::new(runtime)));
+        Ok(())
+    }
+
+    /// After renewal found leases lost: the channels they cover are no
+    /// longer this server's (their next use here claims and restores).
+    pub fn drop_leases(&self, lost: &[String]) {
+        for (channel_id, rt) in self.runtimes() {
+            let mut g = rt.lock().expect("channel state poisoned");
+            if lost.contains(&lease::channel_name(g.key)) {
+                tracing::warn!(%channel_id, "lease lost: another server owns the channel now");
+                g.lease_token = None;
+            }
+        }
     }
 
     /// After a refused commit the runtime is ahead of the store (front,
@@ -546,6 +683,7 @@ impl DerivedBatch {
         self,
         reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
         historical: bool,
+        lease: Option<(String, i64)>,
     ) -> ReadingsJob {
         ReadingsJob {
             channel_key: self.channel_key,
@@ -557,6 +695,7 @@ impl DerivedBatch {
             cycles: self.cycles,
             estimator: self.estimator,
             historical,
+            lease,
             reply,
         }
     }

@@ -19,6 +19,7 @@ pub mod derive;
 pub mod hub;
 pub mod ownership;
 pub mod prune;
+pub mod relay;
 pub mod runtime;
 pub mod session;
 pub mod writer;
@@ -91,6 +92,9 @@ pub enum IngestError {
         part: &'static str,
         reason: String,
     },
+    /// Several servers on one database: another owns this channel now.
+    #[error(transparent)]
+    OwnedElsewhere(#[from] ownership::OwnedElsewhere),
     #[error(transparent)]
     Store(#[from] StoreError),
 }

@@ -52,14 +52,16 @@ pub struct Ownership {
     pub instance: String,
     /// Where rigs reach this server (told to rigs that stream elsewhere).
     pub addr: String,
+    /// The machine's name: the instance id's prefix.
+    host: String,
     held: Mutex<HashMap<String, Held>>,
 }
 
 impl Ownership {
     pub fn new(pool: Pool, addr: String) -> Ownership {
+        let host = hostname();
         let instance = format!(
-            "{}-{}-{:x}",
-            hostname(),
+            "{host}-{}-{:x}",
             std::process::id(),
             crate::ingest::hub::now_ns() & 0xffff_ffff
         );
@@ -67,6 +69,7 @@ impl Ownership {
             pool,
             instance,
             addr,
+            host,
             held: Mutex::new(HashMap::new()),
         }
     }
@@ -92,7 +95,15 @@ impl Ownership {
         }
         let asked = Instant::now();
         let lease_ms = LEASE.as_millis() as i64;
-        match lease::claim(&self.pool, name, &self.instance, &self.addr, lease_ms).await {
+        let claimed = lease::claim(
+            &self.pool,
+            name,
+            &self.instance,
+            &self.addr,
+            &self.host,
+            lease_ms,
+        );
+        match claimed.await {
             Ok(lease::Claim::Held { token }) => {
                 self.note(name, token, asked);
                 Ok(token)
@@ -167,7 +178,7 @@ fn hostname() -> String {
     std::env::var("HOSTNAME")
         .ok()
         .or_else(|| std::fs::read_to_string("/etc/hostname").ok())
-        .map(|h| h.trim().to_string())
+        .map(|h| h.trim().replace('-', "_"))
         .filter(|h| !h.is_empty())
         .unwrap_or_else(|| "gibbsline".into())
 }

@@ -78,11 +78,15 @@ pub async fn pass(
 ) -> Result<PassReport, IngestError> {
     let mut report = PassReport::default();
     for (channel_id, runtime) in hub.runtimes() {
-        let policy = {
+        let (policy, owned) = {
             let rt = runtime.lock().expect("channel state poisoned");
-            rt.def.retention.unwrap_or_default().over(default)
+            (
+                rt.def.retention.unwrap_or_default().over(default),
+                hub.owns(&rt),
+            )
         };
-        if !policy.prunes() {
+        // Shared database: the channel's owner prunes it.
+        if !policy.prunes() || !owned {
             continue;
         }
         let (key, marks) = hub.raise_retention(&channel_id, default).await?;

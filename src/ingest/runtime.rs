@@ -47,6 +47,11 @@ pub struct ChannelRuntime {
     /// Where the channel's kept history begins: readings stamped before
     /// the raw mark are refused (their bucket could not be recomputed).
     pub retention: RetentionMarks,
+    /// On a shared PostgreSQL database: the fencing token of the lease
+    /// this state was restored or derived under (`None`: not owned here;
+    /// a different token means another server wrote in between and the
+    /// state is reloaded before use).
+    pub lease_token: Option<i64>,
 }
 
 impl ChannelRuntime {
@@ -76,6 +81,7 @@ impl ChannelRuntime {
             last_arrival_wall_ns: 0,
             usual_arrival_interval_s: 0.0,
             retention: RetentionMarks::default(),
+            lease_token: None,
         }
     }
 
@@ -169,5 +175,6 @@ pub fn restore_runtime(
         last_arrival_wall_ns: 0,
         usual_arrival_interval_s: 0.0,
         retention: resume.marks,
+        lease_token: None,
     }
 }

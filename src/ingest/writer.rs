@@ -37,6 +37,9 @@ pub struct ReadingsJob {
     pub estimator: Option<EstimatorSnapshot>,
     /// From a recording: its alerts are stored historical.
     pub historical: bool,
+    /// Shared database: the lease (name, fencing token) the rows were
+    /// derived under; the write is refused if it moved on.
+    pub lease: Option<(String, i64)>,
     pub reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
 }
 
@@ -50,6 +53,8 @@ pub struct OperatorChange {
     pub by: String,
     pub detail_json: String,
     pub estimator: EstimatorSnapshot,
+    /// As [`ReadingsJob::lease`].
+    pub lease: Option<(String, i64)>,
 }
 
 pub enum Job {
@@ -63,6 +68,8 @@ pub enum Job {
         channel_key: i64,
         run_id: i64,
         raised: Vec<RaisedAlert>,
+        /// As [`ReadingsJob::lease`].
+        lease: Option<(String, i64)>,
         reply: oneshot::Sender<Result<WriteOutcome, StoreError>>,
     },
     Acknowledge {
@@ -118,12 +125,19 @@ struct Ids {
 /// Commits jobs until the queue closes or `stop` turns true; on stop, the
 /// jobs already queued are committed and answered, later ones are refused
 /// (their senders see the queue closed: not acknowledged, so resent).
+///
+/// With `owner` (several servers on one PostgreSQL database, this one's
+/// lease owner id) each group commit checks its jobs' leases in its own
+/// transaction, takes alert and event ids under the database-wide lock,
+/// and leaves publishing events to the relay, which reads every server's
+/// from the store in id order.
 pub async fn run(
     store: Store,
     mut jobs: mpsc::Receiver<Job>,
     events: broadcast::Sender<AlertEvent>,
     metrics: std::sync::Arc<crate::metrics::Metrics>,
     stop: tokio::sync::watch::Receiver<bool>,
+    owner: Option<String>,
 ) -> Result<(), StoreError> {
     let (next_alert_id, next_event_id) = store::next_ids(&store.writer).await?;
     let mut ids = Ids {
@@ -140,7 +154,8 @@ pub async fn run(
         };
         let Some(first) = first else { break };
         let batch = gather(first, &mut jobs);
-        commit_and_answer(&store, &mut ids, batch, &events, &metrics).await;
+        let publish = owner.is_none().then_some(&events);
+        commit_and_answer(&store, &mut ids, batch, publish, &metrics, owner.as_deref()).await;
     }
     Ok(())
 }
@@ -162,37 +177,91 @@ fn gather(first: Job, jobs: &mut mpsc::Receiver<Job>) -> Vec<Job> {
 }
 
 /// One group commit; each job is answered after it, events published.
+/// Jobs whose lease moved on are refused and the rest committed without
+/// them.
 async fn commit_and_answer(
     store: &Store,
     ids: &mut Ids,
-    batch: Vec<Job>,
-    events: &broadcast::Sender<AlertEvent>,
+    mut batch: Vec<Job>,
+    events: Option<&broadcast::Sender<AlertEvent>>,
     metrics: &crate::metrics::Metrics,
+    owner: Option<&str>,
 ) {
-    let saved = (ids.next_alert_id, ids.next_event_id);
-    let started = std::time::Instant::now();
-    match commit(store, ids, &batch).await {
-        Ok(outcomes) => {
-            metrics.observe_commit(started.elapsed().as_secs_f64());
-            for (job, outcome) in batch.into_iter().zip(outcomes) {
-                for event in &outcome.events {
-                    if event.kind == store::EventKind::Raised {
-                        metrics.alert_raised(event.alert.kind.code());
-                    }
-                    // No subscriber is fine; a lagging one is told by the channel.
-                    let _ = events.send(event.clone());
-                }
-                let _ = reply_of(job).send(Ok(outcome));
-            }
-        }
-        Err(e) => {
-            tracing::error!(error = %e, jobs = batch.len(), "commit failed");
+    loop {
+        let saved = (ids.next_alert_id, ids.next_event_id);
+        let started = std::time::Instant::now();
+        let result = commit(store, ids, &batch, owner).await;
+        if result.is_err() {
             ids.next_alert_id = saved.0;
             ids.next_event_id = saved.1;
-            for job in batch {
-                let _ = reply_of(job).send(Err(e.replicate()));
+        }
+        match result {
+            Ok(outcomes) => {
+                metrics.observe_commit(started.elapsed().as_secs_f64());
+                answer(batch, outcomes, events, metrics);
+                return;
+            }
+            Err(StoreError::Fenced(names)) => {
+                let (fenced, rest): (Vec<Job>, Vec<Job>) = batch
+                    .into_iter()
+                    .partition(|j| job_lease(j).is_some_and(|(n, _)| names.contains(n)));
+                tracing::warn!(leases = ?names, jobs = fenced.len(), "writes refused: leases lost");
+                for job in fenced {
+                    let _ = reply_of(job).send(Err(StoreError::Fenced(names.clone())));
+                }
+                if rest.is_empty() {
+                    return;
+                }
+                batch = rest;
+            }
+            Err(e) => {
+                tracing::error!(error = %e, jobs = batch.len(), "commit failed");
+                for job in batch {
+                    let _ = reply_of(job).send(Err(e.replicate()));
+                }
+                return;
             }
         }
+    }
+}
+
+/// Answers each job of a committed group and publishes its events.
+fn answer(
+    batch: Vec<Job>,
+    outcomes: Vec<WriteOutcome>,
+    events: Option<&broadcast::Sender<AlertEvent>>,
+    metrics: &crate::metrics::Metrics,
+) {
+    for (job, outcome) in batch.into_iter().zip(outcomes) {
+        for event in &outcome.events {
+            if event.kind == store::EventKind::Raised {
+                metrics.alert_raised(event.alert.kind.code());
+            }
+            // No subscriber is fine; a lagging one is told by the channel.
+            if let Some(events) = events {
+                let _ = events.send(event.clone());
+            }
+        }
+        let _ = reply_of(job).send(Ok(outcome));
+    }
+}
+
+/// The lease a job's write depends on, if any.
+fn job_lease(job: &Job) -> Option<&(String, i64)> {
+    match job {
+        Job::Readings(r) => r.lease.as_ref(),
+        Job::Operator { change, .. } => change.lease.as_ref(),
+        Job::Alerts { lease, .. } => lease.as_ref(),
+        _ => None,
+    }
+}
+
+/// Whether a job may store alert events.
+fn may_store_events(job: &Job) -> bool {
+    match job {
+        Job::Readings(r) => !r.changes.is_empty(),
+        Job::Alerts { .. } | Job::Acknowledge { .. } => true,
+        _ => false,
     }
 }
 
@@ -221,10 +290,44 @@ async fn commit(
     store: &Store,
     ids: &mut Ids,
     batch: &[Job],
+    owner: Option<&str>,
 ) -> Result<Vec<WriteOutcome>, StoreError> {
     store
-        .write(async |tx| write_jobs(tx, ids, batch).await)
+        .write(async |tx| {
+            if let Some(owner) = owner {
+                fence(tx, owner, ids, batch).await?;
+            }
+            let outcomes = write_jobs(tx, ids, batch).await?;
+            if owner.is_some() && outcomes.iter().any(|o| !o.events.is_empty()) {
+                store::lease::notify_events(tx).await?;
+            }
+            Ok(outcomes)
+        })
         .await
+}
+
+/// Shared database: refuses the group (naming the leases) if a job's
+/// lease moved on, and takes the next alert and event ids under the
+/// database-wide lock when the group may store events.
+async fn fence(
+    tx: &mut store::Tx<'_>,
+    owner: &str,
+    ids: &mut Ids,
+    batch: &[Job],
+) -> Result<(), StoreError> {
+    let mut held: Vec<(String, i64)> = batch.iter().filter_map(job_lease).cloned().collect();
+    held.sort();
+    held.dedup();
+    let fenced = store::lease::fenced_out(tx, owner, &held).await?;
+    if !fenced.is_empty() {
+        return Err(StoreError::Fenced(fenced));
+    }
+    if batch.iter().any(may_store_events) {
+        let (alert, event) = store::lease::next_ids_locked(tx).await?;
+        ids.next_alert_id = alert;
+        ids.next_event_id = event;
+    }
+    Ok(())
 }
 
 async fn write_jobs(

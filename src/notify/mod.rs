@@ -225,11 +225,28 @@ pub fn backoff(attempts: u32) -> Duration {
     doubled.min(MAX_BACKOFF)
 }
 
+/// Whether this server delivers `target`'s events: always on SQLite; on
+/// a shared database, while it holds the target's lease (one courier per
+/// target among the servers, so events go out once and in order).
+async fn delivers_here(hub: &Hub, target: &str) -> bool {
+    let Some(own) = hub.ownership() else {
+        return true;
+    };
+    own.claim(&format!("notify:{target}"), target).await.is_ok()
+}
+
 /// Sends one target's deliveries in event order until the server stops.
 async fn courier(hub: Arc<Hub>, target: String, mut sender: Sender) {
     let mut wake = hub.subscribe();
     let stop = hub.shutdown_signal();
     loop {
+        if !delivers_here(&hub, &target).await {
+            tokio::select! {
+                _ = tokio::time::sleep(IDLE_LOOK) => {}
+                _ = stopped(stop.clone()) => return,
+            }
+            continue;
+        }
         let page = match outbox::pending(&hub.store().reader, &target, PENDING_PAGE).await {
             Ok(page) => page,
             Err(e) => {

@@ -30,13 +30,16 @@ pub fn channel_name(channel_key: i64) -> String {
 }
 
 /// Takes or extends the lease `name` for `owner` for `lease_ms`: granted
-/// when free, expired or already ours. The token rises only when the
-/// owner changes.
+/// when free, expired or already ours, or held by a predecessor: an
+/// owner whose id starts with `host` (`<host>-`, this machine) at this
+/// very address, which this server now listens on, so that one is gone.
+/// The token rises only when the owner changes.
 pub async fn claim(
     pool: &Pool,
     name: &str,
     owner: &str,
     owner_addr: &str,
+    host: &str,
     lease_ms: i64,
 ) -> Result<Claim, StoreError> {
     let sql = format!(
@@ -46,6 +49,7 @@ pub async fn claim(
            token = CASE WHEN leases.owner = excluded.owner THEN leases.token ELSE leases.token + 1 END, \
            owner = excluded.owner, owner_addr = excluded.owner_addr, expires_ms = excluded.expires_ms \
          WHERE leases.owner = excluded.owner OR leases.expires_ms < {NOW_MS} \
+           OR (leases.owner_addr = excluded.owner_addr AND left(leases.owner, length($5)) = $5) \
          RETURNING token"
     );
     let granted = sqlx::query(sqlx::AssertSqlSafe(sql))
@@ -53,6 +57,7 @@ pub async fn claim(
         .bind(owner)
         .bind(owner_addr)
         .bind(lease_ms)
+        .bind(format!("{host}-"))
         .fetch_optional(pool)
         .await?;
     if let Some(row) = granted {
@@ -177,4 +182,53 @@ pub async fn last_event_id(pool: &Pool) -> Result<u64, StoreError> {
         .fetch_one(pool)
         .await?;
     Ok(row.try_get::<i64, _>("e")? as u64)
+}
+
+/// Wakes when another server (or this one) commits alert events: a
+/// connection LISTENing on the channel the writers NOTIFY. A broken
+/// connection is opened again at the next wait; waits also end after
+/// their timeout, so a lost notification costs at most that delay.
+pub struct EventWaker {
+    url: String,
+    listener: Option<sqlx::postgres::PgListener>,
+}
+
+impl EventWaker {
+    /// For a PostgreSQL store; `None` on SQLite.
+    pub fn for_store(store: &super::Store) -> Option<EventWaker> {
+        Some(EventWaker {
+            url: store.url.as_deref()?.clone(),
+            listener: None,
+        })
+    }
+
+    /// Until a notification or `timeout`, whichever is first.
+    pub async fn wait(&mut self, timeout: std::time::Duration) {
+        if self.listener.is_none() {
+            match self.listen().await {
+                Ok(l) => self.listener = Some(l),
+                Err(e) => {
+                    tracing::warn!(error = %e, "cannot listen for alert events; polling");
+                    tokio::time::sleep(timeout).await;
+                    return;
+                }
+            }
+        }
+        let Some(listener) = self.listener.as_mut() else {
+            return;
+        };
+        match tokio::time::timeout(timeout, listener.recv()).await {
+            Ok(Ok(_)) | Err(_) => {}
+            Ok(Err(e)) => {
+                tracing::warn!(error = %e, "alert event listener lost; listening again");
+                self.listener = None;
+            }
+        }
+    }
+
+    async fn listen(&self) -> Result<sqlx::postgres::PgListener, sqlx::Error> {
+        let mut l = sqlx::postgres::PgListener::connect(&self.url).await?;
+        l.listen("gibbsline_events").await?;
+        Ok(l)
+    }
 }

@@ -241,6 +241,11 @@ pub enum StoreError {
         lock: PathBuf,
         holder: String,
     },
+    /// Several servers on one database: this server lost the leases
+    /// named (another took the channels over) and its write for them was
+    /// refused by the fencing check.
+    #[error("this server no longer holds {}: another gibbsline server took the channel over; nothing of this request was stored, reconnect and resend from the resume point", .0.join(", "))]
+    Fenced(Vec<String>),
     /// A failure that is neither a storage fault nor corruption, as told
     /// to each job of a failed group commit.
     #[error("database write failed: {0}")]
@@ -267,6 +272,7 @@ impl StoreError {
                 holder: holder.clone(),
             },
             StoreError::Corrupt(m) => StoreError::Corrupt(m.clone()),
+            StoreError::Fenced(names) => StoreError::Fenced(names.clone()),
             other => StoreError::Failed(other.to_string()),
         }
     }
@@ -312,6 +318,9 @@ pub struct Store {
     /// SQLite only: one server per file. On PostgreSQL several servers
     /// share the database and channel leases keep them apart.
     lock: Option<Arc<lock::DbLock>>,
+    /// PostgreSQL: the URL, for the connection that listens for other
+    /// servers' alert events.
+    url: Option<Arc<String>>,
     /// `None` while writes succeed; the fault of the last failed write until
     /// one succeeds again (health follows it).
     health: Arc<tokio::sync::watch::Sender<Option<StorageFault>>>,
@@ -378,6 +387,7 @@ impl Store {
             identity: fault::file_identity(path),
             path: Arc::new(path.to_path_buf()),
             lock: Some(Arc::new(lock)),
+            url: None,
             health: Arc::new(tokio::sync::watch::channel(None).0),
         })
     }
@@ -393,7 +403,13 @@ impl Store {
             Durability::Normal | Durability::Off => "off",
         };
         let name = redact_url(url);
-        let setup = format!("SET synchronous_commit = {sync}");
+        // A server stopped mid-transaction (SIGSTOP, a frozen VM) must not
+        // hold lease rows for ever: its session is ended after 5 s idle in
+        // a transaction; and a claim waits for a lease row at most 3 s.
+        let setup = format!(
+            "SET synchronous_commit = {sync}; SET idle_in_transaction_session_timeout = 5000; \
+             SET lock_timeout = 3000"
+        );
         // sqlx's `Any` declares a NULL f64 as float4; a statement cached
         // after such a first use then takes a later 8-byte f64 as float4
         // and PostgreSQL refuses it ("incorrect binary data format").
@@ -415,6 +431,7 @@ impl Store {
             identity: None,
             path: Arc::new(PathBuf::from(name)),
             lock: None,
+            url: Some(Arc::new(url.clone())),
             health: Arc::new(tokio::sync::watch::channel(None).0),
         })
     }

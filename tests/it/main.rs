@@ -16,6 +16,7 @@ mod hostile;
 mod import;
 mod metrics;
 mod notify;
+mod scale;
 mod security;
 mod service;
 mod surface;
