@@ -289,7 +289,7 @@ async fn upsert(
         Upsert::Add => merge_on_conflict(engine),
         Upsert::Replace => REPLACE_ON_CONFLICT,
     });
-    q.execute(&mut **tx).await?;
+    q.execute(tx).await?;
     Ok(())
 }
 

@@ -26,7 +26,7 @@ const BATCH: u64 = 100;
 /// millisecond, every 997th above the vanadium cell's upper limit (alerts
 /// raised and cleared); `volts_offset` tells two writers' copies apart.
 fn scenario_reading(seq: u64, t0: i64, volts_offset: f64) -> pb::Reading {
-    let volts = if seq % 997 == 0 { 1.36 } else { 1.10 } + volts_offset;
+    let volts = if seq.is_multiple_of(997) { 1.36 } else { 1.10 } + volts_offset;
     reading(seq, t0 + seq as i64 * 1_000_000, volts, Some(2.0))
 }
 
@@ -530,4 +530,123 @@ async fn a_stalled_owner_writes_nothing_after_losing_its_lease() {
         assert_eq!(*volts, want, "seq {seq} was written by the stalled owner");
     }
     drop(servers);
+}
+
+#[tokio::test]
+async fn a_write_under_a_moved_lease_is_fenced_out() {
+    use gibbsline::store::{Location, Store, lease};
+    if !on_postgres() {
+        eprintln!("scale tests run with GIBBSLINE_TEST_ENGINE=postgres");
+        return;
+    }
+    let (_dir, db) = temp_db();
+    let location = Location::parse(&db.display().to_string());
+    let store = Store::open_location(&location, gibbsline::store::Durability::Full)
+        .await
+        .unwrap();
+    let name = lease::channel_name(1);
+    let claim = |owner: &'static str, addr: &'static str| {
+        let pool = store.reader.clone();
+        let name = name.clone();
+        async move {
+            lease::claim(&pool, &name, owner, addr, "host_a", 8_000)
+                .await
+                .unwrap()
+        }
+    };
+    let lease::Claim::Held { token: first } = claim("host_a-1-a", "10.0.0.1:1").await else {
+        panic!("a free lease is granted");
+    };
+    // Another server is refused while the lease runs, naming the owner.
+    match claim("host_b-2-b", "10.0.0.2:1").await {
+        lease::Claim::Busy { owner_addr, .. } => assert_eq!(owner_addr, "10.0.0.1:1"),
+        other => panic!("{other:?}"),
+    }
+    // The owner stalls past its lease; the other takes over.
+    sqlx::query("UPDATE leases SET expires_ms = 0")
+        .execute(&store.writer)
+        .await
+        .unwrap();
+    let lease::Claim::Held { token: second } = claim("host_b-2-b", "10.0.0.2:1").await else {
+        panic!("an expired lease is granted");
+    };
+    assert_eq!(second, first + 1);
+    // The stalled owner's write is refused in its own transaction; the
+    // new owner's passes.
+    let held = vec![(name.clone(), first)];
+    let fenced = store
+        .write(async |tx| lease::fenced_out(tx, "host_a-1-a", &held).await)
+        .await
+        .unwrap();
+    assert_eq!(fenced, vec![name.clone()]);
+    let held = vec![(name.clone(), second)];
+    let fenced = store
+        .write(async |tx| lease::fenced_out(tx, "host_b-2-b", &held).await)
+        .await
+        .unwrap();
+    assert!(fenced.is_empty());
+    // A server started again at the same address on the same machine
+    // takes its predecessor's lease at once (that one is gone).
+    let lease::Claim::Held { token: third } = lease::claim(
+        &store.reader,
+        &name,
+        "host_b-3-c",
+        "10.0.0.2:1",
+        "host_b",
+        8_000,
+    )
+    .await
+    .unwrap() else {
+        panic!("a predecessor's lease is taken over");
+    };
+    assert_eq!(third, second + 1);
+    store.close().await;
+}
+
+#[tokio::test]
+async fn both_schemas_have_the_same_tables_and_columns() {
+    use gibbsline::store::{Durability, Location, Store};
+    use sqlx::Row;
+    if !on_postgres() {
+        eprintln!("scale tests run with GIBBSLINE_TEST_ENGINE=postgres");
+        return;
+    }
+    let (dir, pg) = temp_db();
+    let sqlite = Store::open(&dir.path().join("schema.db"), Durability::Normal)
+        .await
+        .unwrap();
+    let pg = Store::open_location(
+        &Location::parse(&pg.display().to_string()),
+        Durability::Normal,
+    )
+    .await
+    .unwrap();
+    let columns_of = |rows: Vec<sqlx::any::AnyRow>| -> Vec<(String, String)> {
+        let mut v: Vec<(String, String)> = rows
+            .iter()
+            .map(|r| (r.get::<String, _>("t"), r.get::<String, _>("c")))
+            .filter(|(t, _)| !t.starts_with("_sqlx") && t != "leases")
+            .collect();
+        v.sort();
+        v
+    };
+    let on_sqlite = sqlx::query(
+        "SELECT m.name AS t, p.name AS c FROM sqlite_master m, pragma_table_info(m.name) p \
+         WHERE m.type = 'table' AND m.name NOT LIKE 'sqlite_%'",
+    )
+    .fetch_all(&sqlite.reader)
+    .await
+    .unwrap();
+    let on_pg = sqlx::query(
+        "SELECT CAST(table_name AS TEXT) AS t, CAST(column_name AS TEXT) AS c \
+         FROM information_schema.columns WHERE table_schema = 'public'",
+    )
+    .fetch_all(&pg.reader)
+    .await
+    .unwrap();
+    let (on_sqlite, on_pg) = (columns_of(on_sqlite), columns_of(on_pg));
+    assert!(on_sqlite.len() > 50, "{on_sqlite:?}");
+    assert_eq!(on_sqlite, on_pg);
+    sqlite.close().await;
+    pg.close().await;
 }
