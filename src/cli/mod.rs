@@ -7,6 +7,7 @@ pub(crate) mod bench_baseline;
 pub(crate) mod bench_console;
 pub(crate) mod bench_history;
 pub(crate) mod bench_retention;
+pub(crate) mod bench_scale;
 pub(crate) mod channels;
 pub(crate) mod client;
 pub(crate) mod config_check;
@@ -134,6 +135,9 @@ pub(crate) enum BenchCommand {
     /// The console and alert delivery under load: overview load time, live
     /// feed latency, webhook latency.
     Console(bench_console::BenchConsoleArgs),
+    /// Ingest on SQLite, on PostgreSQL with one and two servers, and the
+    /// failover gap when a PostgreSQL owner is SIGKILLed.
+    Scale(bench_scale::BenchScaleArgs),
 }
 
 #[derive(Debug, Args)]
@@ -241,6 +245,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Bench(BenchCommand::History(args)) => block_on(bench_history::run(&args)),
         Command::Bench(BenchCommand::Retention(args)) => block_on(bench_retention::run(&args)),
         Command::Bench(BenchCommand::Console(args)) => block_on(bench_console::run(&args)),
+        Command::Bench(BenchCommand::Scale(args)) => block_on(bench_scale::run(&args)),
         Command::Demo(args) => block_on(demo::run(&args)),
         Command::Rig(cmd) => block_on(simulate::run(&cmd)),
         Command::Readings(args) => block_on(readings::run(&args)),

@@ -663,7 +663,7 @@ impl Hub {
             .def
             .channel_id
             .clone();
-        let row = store::get_channel(&self.store.writer, &channel_id)
+        let row = store::get_channel(self.store.state_pool(), &channel_id)
             .await?
             .ok_or_else(|| StoreError::Corrupt(format!("channel {channel_id} vanished")))?;
         let registry = self.registry.read().expect("registry poisoned").clone();

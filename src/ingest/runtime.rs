@@ -121,7 +121,7 @@ pub async fn load_runtime(
         }
         None => AlertRules::for_chemistry(&chemistry),
     };
-    let resume = store::load_resume_state(&store.writer, row.channel_key).await?;
+    let resume = store::load_resume_state(store.state_pool(), row.channel_key).await?;
     Ok(restore_runtime(
         row.channel_key,
         def,

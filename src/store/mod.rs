@@ -440,6 +440,17 @@ impl Store {
         self.engine
     }
 
+    /// Where a channel's state is restored from: the writer's connection
+    /// on SQLite; on PostgreSQL a read connection (every connection sees
+    /// every commit there, and the writer's one connection stays free for
+    /// commits while other servers' channels are re-read).
+    pub fn state_pool(&self) -> &Pool {
+        match self.engine {
+            Engine::Sqlite => &self.writer,
+            Engine::Postgres => &self.reader,
+        }
+    }
+
     /// The SQLite file, or the PostgreSQL URL without its password.
     pub fn path(&self) -> &Path {
         &self.path

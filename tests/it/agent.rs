@@ -181,8 +181,13 @@ async fn spooled_readings_survive_a_server_outage_and_an_agent_kill() {
     for channel in ["rig-a", "rig-b"] {
         let rows = stored(&addr, channel).await;
         let seqs: Vec<u64> = rows.iter().map(|r| r.seq).collect();
-        // Over 36 s at 10 Hz less failed reads: a gap-free run from 1.
-        assert!(seqs.len() > 200, "{channel}: {} readings", seqs.len());
+        // Over 36 s at 10 Hz less failed reads: a gap-free run from 1. A
+        // reading takes three queries, about a quarter of readings meet a
+        // garbage, late or missing answer, and each timeout costs 300 ms
+        // of the 100 ms period: 190–250 readings seen here, depending on
+        // the machine's load, so the bound only says the agent sampled
+        // through the outage (ten seconds of it would be under 100).
+        assert!(seqs.len() > 150, "{channel}: {} readings", seqs.len());
         assert_eq!(
             seqs,
             (1..=seqs.len() as u64).collect::<Vec<_>>(),
