@@ -22,6 +22,14 @@ pub(crate) enum DbCommand {
 
 pub(crate) async fn run(cmd: &DbCommand) -> anyhow::Result<()> {
     let DbCommand::Stats { db, format } = cmd;
+    let text = db.display().to_string();
+    if text.starts_with("postgres://") || text.starts_with("postgresql://") {
+        return Err(UsageError(format!(
+            "--db {}: db stats reads SQLite files; on PostgreSQL ask the database (pg_total_relation_size, pg_stat_user_tables)",
+            gibbsline::store::redact_url(&text)
+        ))
+        .into());
+    }
     if !db.exists() {
         return Err(UsageError(format!("--db {}: no such file", db.display())).into());
     }

@@ -59,7 +59,8 @@ pub async fn claim(
         .bind(lease_ms)
         .bind(format!("{host}-"))
         .fetch_optional(pool)
-        .await?;
+        .await
+        .map_err(|e| sorted(e, name))?;
     if let Some(row) = granted {
         return Ok(Claim::Held {
             token: row.try_get("token")?,
@@ -77,6 +78,20 @@ pub async fn claim(
         owner_addr: row.try_get("owner_addr")?,
         expires_in_ms: row.try_get::<i64, _>("left_ms")?.max(0),
     })
+}
+
+/// A failed claim as the storage fault it is: a lease row locked by a
+/// stalled server (lock timeout) or a lost connection is one a rig
+/// retries (UNAVAILABLE), not an internal error.
+fn sorted(e: sqlx::Error, name: &str) -> StoreError {
+    match super::fault::of_sqlx(&e, super::Engine::Postgres) {
+        Some(fault) => StoreError::Unwritable {
+            path: std::path::PathBuf::from(format!("lease {name}")),
+            fault,
+            detail: e.to_string(),
+        },
+        None => StoreError::Database(e),
+    }
 }
 
 /// Extends every lease `owner` still holds; returns them with their
