@@ -587,9 +587,11 @@ impl Hub {
         Ok(())
     }
 
-    /// A shared database: loads channels other servers defined, and
-    /// re-reads the state of channels owned elsewhere (what state queries
-    /// and the console show here), skipping any whose gate is busy.
+    /// A shared database: loads channels other servers defined, re-reads
+    /// the state of channels owned elsewhere (what state queries and the
+    /// console show here), and reloads an owned channel another server
+    /// redefined (PutChannel or new rules there), skipping any whose gate
+    /// is busy.
     pub async fn refresh_from_store(&self) -> Result<(), IngestError> {
         let rows = store::list_channels(&self.store.reader).await?;
         for row in rows {
@@ -605,10 +607,13 @@ impl Hub {
             let Ok(_turn) = gate.try_lock_owned() else {
                 continue;
             };
-            if self.owns(&runtime.lock().expect("channel state poisoned")) {
-                continue;
+            let current = {
+                let rt = runtime.lock().expect("channel state poisoned");
+                self.owns(&rt) && !redefined(&rt, &row)
+            };
+            if !current {
+                self.reload(&runtime).await?;
             }
-            self.reload(&runtime).await?;
         }
         Ok(())
     }
@@ -673,9 +678,25 @@ impl Hub {
         fresh.limits = rt.limits;
         fresh.last_arrival_wall_ns = rt.last_arrival_wall_ns;
         fresh.usual_arrival_interval_s = rt.usual_arrival_interval_s;
+        fresh.lease_token = rt.lease_token;
         *rt = fresh;
         Ok(())
     }
+}
+
+/// Whether the stored definition, run or rules of a channel differ from
+/// what its runtime holds (compared as values: a reload of an owned
+/// channel costs its rules' hold timers, so only a real change may cause
+/// one).
+fn redefined(rt: &ChannelRuntime, row: &store::ChannelRow) -> bool {
+    let def_differs =
+        serde_json::from_str::<ChannelDef>(&row.definition_json).is_ok_and(|def| def != rt.def);
+    let rules_differ = row
+        .rules_json
+        .as_deref()
+        .and_then(|json| serde_json::from_str::<AlertRules>(json).ok())
+        .is_some_and(|rules| rules != rt.rules);
+    rt.run_id != row.current_run_id || def_differs || rules_differ
 }
 
 impl DerivedBatch {

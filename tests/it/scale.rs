@@ -712,4 +712,30 @@ async fn a_subscriber_on_any_server_hears_every_servers_alerts() {
     let first = replay.next().await.unwrap().unwrap();
     assert_eq!(first.resume_after_event_id, raised.1);
     assert_eq!(first.alert.unwrap().raised_seq, 997);
+
+    // A channel redefined on B (A owns it) is picked up by A.
+    let redefined = pb::Channel {
+        capacity_ah: 5.0,
+        ..channel_def("fan-a", "daniell")
+    };
+    put_channel(&connect(&b_addr).await, redefined).await;
+    let mut history = HistoryServiceClient::new(connect(&a_addr).await);
+    let started = Instant::now();
+    loop {
+        let state = history
+            .get_channel_state(pb::GetChannelStateRequest {
+                channel_id: "fan-a".into(),
+            })
+            .await
+            .unwrap()
+            .into_inner();
+        if state.channel.unwrap().capacity_ah == 5.0 {
+            break;
+        }
+        assert!(
+            started.elapsed() < Duration::from_secs(8),
+            "the owner kept the old definition"
+        );
+        tokio::time::sleep(Duration::from_millis(200)).await;
+    }
 }
