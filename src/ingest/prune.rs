@@ -78,18 +78,21 @@ pub async fn pass(
 ) -> Result<PassReport, IngestError> {
     let mut report = PassReport::default();
     for (channel_id, runtime) in hub.runtimes() {
-        let (policy, owned) = {
+        let policy = {
             let rt = runtime.lock().expect("channel state poisoned");
-            (
-                rt.def.retention.unwrap_or_default().over(default),
-                hub.owns(&rt),
-            )
+            rt.def.retention.unwrap_or_default().over(default)
         };
-        // Shared database: the channel's owner prunes it.
-        if !policy.prunes() || !owned {
+        if !policy.prunes() {
             continue;
         }
-        let (key, marks) = hub.raise_retention(&channel_id, default).await?;
+        // Shared database: the channel's owner prunes it; a channel no
+        // server owns (no rig streams to it) is claimed by this one, so
+        // its history still stays within bounds.
+        let (key, marks) = match hub.raise_retention(&channel_id, default).await {
+            Ok(raised) => raised,
+            Err(IngestError::OwnedElsewhere(_)) => continue,
+            Err(e) => return Err(e),
+        };
         if marks == RetentionMarks::default() || drained.get(&key) == Some(&marks) {
             continue;
         }

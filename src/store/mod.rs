@@ -45,8 +45,9 @@ pub type DbRow = sqlx::any::AnyRow;
 /// statements that differ ask [`Engine::of`].
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Engine {
-    Sqlite,
-    Postgres,
+    // Explicit: the values index per-engine statement caches.
+    Sqlite = 0,
+    Postgres = 1,
 }
 
 impl Engine {

@@ -474,3 +474,36 @@ fn rollups_equal_a_recomputation_over_random_batches_late_readings_and_restarts(
         runtime.block_on(random_session(seed, n, step_ms));
     });
 }
+
+/// PostgreSQL with several servers: a channel no rig streams to (so no
+/// server owns it) is still pruned, by the server whose pass claims it.
+#[tokio::test]
+async fn an_unowned_channel_is_pruned_by_a_server_that_claims_it() {
+    if !on_postgres() {
+        return;
+    }
+    let (_dir, db) = temp_db();
+    // A server without retention stores three days and stops (its
+    // leases given up): nobody owns the channel.
+    let writer = Server::start(&db).await;
+    let ch = writer.channel().await;
+    put_channel(&ch, channel_def("orphan", "daniell")).await;
+    let n = 3 * 24 * 12;
+    let (_, at) = timeline(n, 300_000_000_000);
+    let seqs: Vec<u64> = (1..=n).collect();
+    send_all(&ch, "orphan", &seqs, &at).await;
+    writer.stop().await;
+    // Another server, keeping one day, prunes it without any rig.
+    let mut config = config_for(&db);
+    config.retention.prune_interval_s = 1;
+    config.retention.raw_days = Some(1.0);
+    let pruner = Server::start_with(config, "127.0.0.1:0").await;
+    let ch = pruner.channel().await;
+    let mark = (at(n) - DAY).div_euclid(HOUR) * HOUR;
+    let stored = wait_pruned_to(&ch, "orphan", mark).await;
+    assert_eq!(
+        stored.len(),
+        seqs.iter().filter(|&&s| at(s) >= mark).count()
+    );
+    pruner.stop().await;
+}
