@@ -236,25 +236,15 @@ async fn stream_once(
     }
 }
 
+/// (seq, volts) of every stored reading of `id`, in seq order, as one
+/// server answers (all pages, through the harness's reader).
 async fn stored_seqs(addr: &str, id: &str) -> Vec<(u64, f64)> {
-    let ch = connect(addr).await;
-    let mut history = HistoryServiceClient::new(ch);
-    let mut stream = history
-        .query_readings(pb::QueryReadingsRequest {
-            channel_id: id.into(),
-            start_unix_ns: 0,
-            end_unix_ns: i64::MAX,
-            ..Default::default()
-        })
+    let mut history = HistoryServiceClient::new(connect(addr).await);
+    let mut out: Vec<(u64, f64)> = stored_readings(&mut history, id)
         .await
-        .unwrap()
-        .into_inner();
-    let mut out = Vec::new();
-    while let Some(page) = stream.next().await {
-        for r in page.unwrap().readings {
-            out.push((r.seq, r.volts));
-        }
-    }
+        .iter()
+        .map(|r| (r.seq, r.volts))
+        .collect();
     out.sort_by_key(|r| r.0);
     out
 }
