@@ -370,10 +370,27 @@ pub struct RuleState {
     pub active: bool,
 }
 
+/// Each kind's debounce state, by kind: a reading looks up eight of
+/// them, so an array index instead of a map walk.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
+pub struct RuleStates([RuleState; AlertKind::ALL.len()]);
+
+impl RuleStates {
+    pub fn get(&self, kind: AlertKind) -> RuleState {
+        self.0[kind as usize]
+    }
+    pub fn get_mut(&mut self, kind: AlertKind) -> &mut RuleState {
+        &mut self.0[kind as usize]
+    }
+    pub fn insert(&mut self, kind: AlertKind, state: RuleState) {
+        self.0[kind as usize] = state;
+    }
+}
+
 /// Per-channel state of all rules.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
 pub struct ChannelRuleState {
-    pub rules: std::collections::BTreeMap<AlertKind, RuleState>,
+    pub rules: RuleStates,
     /// Last reading with current flowing, for "just after it stopped".
     #[serde(default)]
     pub last_flowing_ns: Option<i64>,
@@ -395,7 +412,7 @@ impl ChannelRuleState {
         s
     }
     pub fn is_active(&self, kind: AlertKind) -> bool {
-        self.rules.get(&kind).is_some_and(|r| r.active)
+        self.rules.get(kind).active
     }
 }
 
@@ -800,7 +817,7 @@ fn apply<M: Fn() -> String>(
     check: Check<M>,
     input: &RuleInput,
 ) -> Option<AlertChange> {
-    let rule = state.rules.entry(check.kind).or_default();
+    let rule = state.rules.get_mut(check.kind);
     if rule.active {
         if check.past_clear && !check.past_raise {
             *rule = RuleState::default();

@@ -215,6 +215,11 @@ impl NernstModel {
 
     /// ln Q at `soc` (activities must be positive: checked by [`validate`]).
     pub fn ln_q(&self, soc: f64) -> f64 {
+        if self.inverse.whole_powers {
+            // One `ln` of a product (the estimator's OCV from a counted
+            // SOC asks this under current, reading after reading).
+            return self.ln_q_and_slope(soc).0;
+        }
         self.species
             .iter()
             .map(|s| s.nu * s.activity.at(soc).ln())

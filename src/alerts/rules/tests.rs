@@ -270,3 +270,17 @@ fn distinct_shows_enough_digits_to_tell_a_value_from_its_limit() {
     assert_eq!(distinct(71.5, 70.0, 1), "71.5");
     assert_eq!(distinct(-20.0, 71.5, 1), "-20.0");
 }
+
+#[test]
+fn every_kind_has_its_own_rule_state_slot() {
+    for (i, kind) in AlertKind::ALL.into_iter().enumerate() {
+        assert_eq!(kind as usize, i, "{kind:?}");
+    }
+    let mut state = ChannelRuleState::with_active([AlertKind::Timeline]);
+    assert!(state.is_active(AlertKind::Timeline));
+    assert!(!state.is_active(AlertKind::SilentRig));
+    state
+        .rules
+        .insert(AlertKind::Timeline, RuleState::default());
+    assert!(AlertKind::ALL.into_iter().all(|k| !state.is_active(k)));
+}
