@@ -29,7 +29,13 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         // The JSON API and the CLI print messages as they come off the
         // wire, so their JSON carries the proto's field names and nothing
         // is kept in step by hand.
-        .type_attribute(".gibbsline.v1", "#[derive(serde::Serialize)]");
+        .type_attribute(".gibbsline.v1", "#[derive(serde::Serialize)]")
+        // The JSON API answers in rows; a columns field it never fills
+        // stays out of its JSON.
+        .field_attribute(
+            ".gibbsline.v1.QueryReadingsResponse.columns",
+            "#[serde(skip_serializing_if = \"Option::is_none\")]",
+        );
     // Enum fields are i32 on the Rust side; JSON spells their value's name.
     for (field, serializer) in enum_fields(&fds) {
         builder = builder.field_attribute(
@@ -53,15 +59,16 @@ fn enum_fields(fds: &prost_types::FileDescriptorSet) -> Vec<(String, String)> {
                 if field.r#type() != Type::Enum {
                     continue;
                 }
-                assert!(
-                    field.label() != Label::Repeated,
-                    "repeated enum field {}: give it a serializer",
-                    field.name()
-                );
                 let enum_name = field.type_name().rsplit('.').next().unwrap_or_default();
+                // A repeated field's serializer is its enum's, for a list.
+                let suffix = if field.label() == Label::Repeated {
+                    "_list"
+                } else {
+                    ""
+                };
                 out.push((
                     format!(".{package}.{}.{}", message.name(), field.name()),
-                    snake_case(enum_name),
+                    format!("{}{suffix}", snake_case(enum_name)),
                 ));
             }
         }

@@ -61,6 +61,10 @@ pub(crate) struct BenchReport {
     pub alert_p50_ms: Option<f64>,
     pub alert_p99_ms: Option<f64>,
     pub peak_rss_mib: Option<f64>,
+    /// CPU time of this process while the load ran over its wall time:
+    /// how many of the machine's cores ingest kept busy (server and client
+    /// in one process; not known with `--connect`).
+    pub cpu_cores_busy: Option<f64>,
     pub db_bytes_per_reading: Option<f64>,
     /// Plain SQLite on this machine in the same run (`--baseline`).
     pub baseline: Option<super::bench_baseline::BaselineReport>,
@@ -82,6 +86,18 @@ pub(crate) fn peak_rss_mib() -> Option<f64> {
     let line = status.lines().find(|l| l.starts_with("VmHWM:"))?;
     let kib: f64 = line.split_whitespace().nth(1)?.parse().ok()?;
     Some(kib / 1024.0)
+}
+
+/// User and system CPU time of this process so far, seconds (Linux).
+pub(crate) fn process_cpu_s() -> Option<f64> {
+    let stat = std::fs::read_to_string("/proc/self/stat").ok()?;
+    // Fields after the command (which may hold spaces), from the state on:
+    // utime and stime are the 12th and 13th, in USER_HZ (100 per second).
+    let after = stat.get(stat.rfind(')')? + 2..)?;
+    let mut fields = after.split(' ').skip(11);
+    let utime: f64 = fields.next()?.parse().ok()?;
+    let stime: f64 = fields.next()?.parse().ok()?;
+    Some((utime + stime) / 100.0)
 }
 
 /// The report with the raw-SQLite baseline beside it, when asked for.
@@ -149,9 +165,13 @@ pub(crate) async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
         }),
         ack_log: None,
     };
-    let start = Instant::now();
+    let (start, cpu_at_start) = (Instant::now(), process_cpu_s());
     let (accepted, mut latencies) = load.drive(&conn, ids, &clock).await?;
     let seconds = start.elapsed().as_secs_f64();
+    let cpu_cores_busy = process_cpu_s()
+        .zip(cpu_at_start)
+        .filter(|_| local.is_some())
+        .map(|(end, begin)| (end - begin) / seconds);
     tokio::time::sleep(Duration::from_millis(300)).await;
     watcher.abort();
     latencies.sort_by(f64::total_cmp);
@@ -171,6 +191,7 @@ pub(crate) async fn run(args: &BenchIngestArgs) -> anyhow::Result<()> {
         alert_p50_ms: (!alert_lat.is_empty()).then(|| percentile(&alert_lat, 0.5)),
         alert_p99_ms: (!alert_lat.is_empty()).then(|| percentile(&alert_lat, 0.99)),
         peak_rss_mib: local.as_ref().and_then(|_| peak_rss_mib()),
+        cpu_cores_busy,
         db_bytes_per_reading,
         baseline: None,
         ratio_to_baseline: None,
@@ -564,6 +585,9 @@ fn print_ingest_report(report: &BenchReport, json: bool) -> anyhow::Result<()> {
     }
     if let Some(rss) = report.peak_rss_mib {
         println!("peak RSS        {rss:.0} MiB (server and client in one process)");
+    }
+    if let Some(cores) = report.cpu_cores_busy {
+        println!("cpu             {cores:.2} cores busy while the load ran (server and client)");
     }
     if let Some(b) = report.db_bytes_per_reading {
         println!("disk            {b:.0} bytes per stored reading");

@@ -2,7 +2,8 @@
 //! several history lengths. For each size a fresh in-process server
 //! stores that many readings of one channel (through ingest, so rollups
 //! are what ingest wrote), then `QueryBuckets` over the whole span is
-//! timed, and a raw page of readings beside it.
+//! timed, and a raw page of readings beside it (rows and columns), and a
+//! scan of every reading in columns.
 
 use super::bench::{self, Load, LocalServer, percentile};
 use super::client;
@@ -50,6 +51,12 @@ pub(crate) struct HistoryRow {
     pub buckets_max_ms: f64,
     pub raw_readings: u64,
     pub raw_ms: f64,
+    /// The same readings in READING_LAYOUT_COLUMNS.
+    pub raw_columns_ms: f64,
+    /// Every stored reading of the channel in columns, call after call
+    /// (each at most the server's `limits.max_query_rows`).
+    pub scan_readings: u64,
+    pub scan_ms: f64,
 }
 
 pub(crate) async fn run(args: &BenchHistoryArgs) -> anyhow::Result<()> {
@@ -117,7 +124,11 @@ async fn measure(args: &BenchHistoryArgs, n: u64) -> anyhow::Result<HistoryRow> 
         latencies.push(asked.elapsed().as_secs_f64() * 1e3);
     }
     latencies.sort_by(f64::total_cmp);
-    let (raw_readings, raw_ms) = time_raw(&mut history, &id, start, args.raw.min(n)).await?;
+    let rows = pb::ReadingLayout::Rows;
+    let columns = pb::ReadingLayout::Columns;
+    let (raw_readings, raw_ms) = time_raw(&mut history, &id, start, args.raw.min(n), rows).await?;
+    let (_, raw_columns_ms) = time_raw(&mut history, &id, start, args.raw.min(n), columns).await?;
+    let (scan_readings, scan_ms) = time_scan(&mut history, &id, start).await?;
     let row = HistoryRow {
         readings: stored,
         span_days: (end - start) as f64 / 86_400e9,
@@ -130,6 +141,9 @@ async fn measure(args: &BenchHistoryArgs, n: u64) -> anyhow::Result<HistoryRow> 
         buckets_max_ms: latencies.last().copied().unwrap_or(0.0),
         raw_readings,
         raw_ms,
+        raw_columns_ms,
+        scan_readings,
+        scan_ms,
     };
     server.stop().await;
     Ok(row)
@@ -141,28 +155,82 @@ async fn time_raw(
     id: &str,
     start: i64,
     limit: u64,
+    layout: pb::ReadingLayout,
 ) -> anyhow::Result<(u64, f64)> {
     let asked = Instant::now();
+    let limit = u32::try_from(limit).unwrap_or(u32::MAX);
+    let (got, _) = fetch(history, id, start, limit, layout, None).await?;
+    Ok((got, asked.elapsed().as_secs_f64() * 1e3))
+}
+
+/// Reads every reading from `start` on in columns, a call at a time, each
+/// going on after the last (time, seq) the one before returned.
+async fn time_scan(
+    history: &mut HistoryServiceClient<client::Conn>,
+    id: &str,
+    start: i64,
+) -> anyhow::Result<(u64, f64)> {
+    let asked = Instant::now();
+    let (mut total, mut after) = (0u64, None);
+    loop {
+        let from = after.map_or(start, |(time_ns, _)| time_ns);
+        let layout = pb::ReadingLayout::Columns;
+        let (got, last) = fetch(history, id, from, u32::MAX, layout, after).await?;
+        if got == 0 {
+            break;
+        }
+        total += got;
+        after = last;
+    }
+    Ok((total, asked.elapsed().as_secs_f64() * 1e3))
+}
+
+/// One QueryReadings call from `start`: readings past `after` (time, seq)
+/// and the last of them.
+async fn fetch(
+    history: &mut HistoryServiceClient<client::Conn>,
+    id: &str,
+    start: i64,
+    limit: u32,
+    layout: pb::ReadingLayout,
+    after: Option<(i64, u64)>,
+) -> anyhow::Result<(u64, Option<(i64, u64)>)> {
     let mut pages = history
         .query_readings(pb::QueryReadingsRequest {
             channel_id: id.to_string(),
             start_unix_ns: start,
-            limit: u32::try_from(limit).unwrap_or(u32::MAX),
+            limit,
+            layout: layout as i32,
             ..Default::default()
         })
         .await?
         .into_inner();
-    let mut got = 0u64;
+    let (mut got, mut last) = (0u64, None);
+    let past = |at: (i64, u64)| after.is_none_or(|a| at > a);
     while let Some(page) = pages.next().await {
-        got += page?.readings.len() as u64;
+        let page = page?;
+        for r in &page.readings {
+            if past((r.time_unix_ns, r.seq)) {
+                got += 1;
+                last = Some((r.time_unix_ns, r.seq));
+            }
+        }
+        if let Some(c) = page.columns {
+            for (&time_ns, &seq) in c.time_unix_ns.iter().zip(&c.seq) {
+                if past((time_ns, seq)) {
+                    got += 1;
+                    last = Some((time_ns, seq));
+                }
+            }
+        }
     }
-    Ok((got, asked.elapsed().as_secs_f64() * 1e3))
+    Ok((got, last))
 }
 
 fn print_row(r: &HistoryRow, header: bool) {
     if header {
         println!(
-            "{:>10} {:>8} {:>10} {:>7} {:>8} {:>7} {:>8} {:>8} {:>8} {:>12}",
+            "{:>10} {:>8} {:>10} {:>7} {:>8} {:>7} {:>8} {:>8} {:>8} {:>12} {:>10} {:>18}",
             "readings",
             "span_d",
             "ingest/s",
@@ -172,11 +240,13 @@ fn print_row(r: &HistoryRow, header: bool) {
             "p50_ms",
             "p99_ms",
             "max_ms",
-            "raw_ms"
+            "raw_ms",
+            "columns_ms",
+            "scan_ms"
         );
     }
     println!(
-        "{:>10} {:>8.2} {:>10.0} {:>7.1} {:>8.0} {:>7} {:>8.1} {:>8.1} {:>8.1} {:>12}",
+        "{:>10} {:>8.2} {:>10.0} {:>7.1} {:>8.0} {:>7} {:>8.1} {:>8.1} {:>8.1} {:>12} {:>10.0} {:>18}",
         r.readings,
         r.span_days,
         r.ingest_readings_per_s,
@@ -186,6 +256,8 @@ fn print_row(r: &HistoryRow, header: bool) {
         r.buckets_p50_ms,
         r.buckets_p99_ms,
         r.buckets_max_ms,
-        format!("{:.0} ({})", r.raw_ms, r.raw_readings)
+        format!("{:.0} ({})", r.raw_ms, r.raw_readings),
+        r.raw_columns_ms,
+        format!("{:.0} ({})", r.scan_ms, r.scan_readings)
     );
 }

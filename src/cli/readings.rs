@@ -349,6 +349,7 @@ pub(crate) async fn run(args: &ReadingsArgs) -> anyhow::Result<()> {
         start_unix_ns: start,
         end_unix_ns: end,
         limit: args.limit,
+        layout: pb::ReadingLayout::Rows as i32,
     };
     let mut stream = history
         .query_readings(request)

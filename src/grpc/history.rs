@@ -52,8 +52,11 @@ impl HistoryApi {
     }
 }
 
-/// Rows per QueryReadings response message.
-const QUERY_PAGE_ROWS: u32 = 2_000;
+/// Readings per read transaction of a QueryReadings call: each chunk is
+/// decoded once per store page, and the page is cut into messages.
+const STORE_PAGE_ROWS: u32 = 8_192;
+/// Rows per message in READING_LAYOUT_ROWS.
+const QUERY_PAGE_ROWS: usize = 2_000;
 /// How long a query waits for a free slot before it is refused.
 const QUERY_WAIT: std::time::Duration = std::time::Duration::from_secs(10);
 /// How long a client may leave a page unread before its query is ended
@@ -68,18 +71,39 @@ struct QueryPage {
     end_ns: i64,
 }
 
+/// Store pages on their way from the reading task to the converting one.
+type StorePages = mpsc::Receiver<Result<Vec<store::ReadingRow>, store::StoreError>>;
+
 impl QueryPage {
+    /// Answers the query in two tasks, so that decoding the next store
+    /// page overlaps converting this one (and prost's encoding of the
+    /// message before, on the connection's task): about one store page
+    /// in flight between them.
     async fn stream_to(
         self,
         tx: mpsc::Sender<Result<pb::QueryReadingsResponse, Status>>,
         limit: u32,
+        layout: pb::ReadingLayout,
         runs: &HashMap<i64, RunRow>,
+    ) {
+        let (pages_tx, pages) = mpsc::channel(1);
+        let reading = tokio::spawn(self.read_into(pages_tx, limit));
+        send_pages(pages, &tx, layout, runs).await;
+        // The client left or a send timed out: stop reading the store.
+        reading.abort();
+    }
+
+    /// Reads store pages in (time, seq) order until `limit` readings.
+    async fn read_into(
+        self,
+        pages: mpsc::Sender<Result<Vec<store::ReadingRow>, store::StoreError>>,
+        limit: u32,
     ) {
         let mut after = (self.start_ns, -1i64);
         let mut left = limit;
         while left > 0 {
-            let want = left.min(QUERY_PAGE_ROWS);
-            let rows = match store::query_readings_page(
+            let want = left.min(STORE_PAGE_ROWS);
+            let rows = store::query_readings_page(
                 &self.reader,
                 self.channel_key,
                 self.start_ns,
@@ -87,39 +111,79 @@ impl QueryPage {
                 after,
                 want,
             )
-            .await
-            {
-                Ok(rows) => rows,
+            .await;
+            let (full, rows) = match rows {
+                Ok(rows) => (rows.len() as u32 == want, rows),
                 Err(e) => {
-                    let _ = tx.send(Err(Status::from(e))).await;
+                    let _ = pages.send(Err(e)).await;
                     return;
                 }
             };
             let Some(last) = rows.last() else { return };
             after = (last.time_ns, last.seq as i64);
             left -= rows.len() as u32;
-            let full = rows.len() as u32 == want;
-            let readings = rows
-                .iter()
-                .map(|r| stored_to_pb(r, runs.get(&r.run_id)))
-                .collect();
-            drop(rows);
-            let sent = tokio::time::timeout(
-                QUERY_SEND_TIMEOUT,
-                tx.send(Ok(pb::QueryReadingsResponse { readings })),
-            )
-            .await;
-            match sent {
-                Ok(Ok(())) if full => {}
-                Ok(Ok(())) | Ok(Err(_)) => return,
-                Err(_) => {
-                    let _ = tx.try_send(Err(Status::deadline_exceeded(format!(
-                        "the client read nothing for {} s; query ended to free its memory",
-                        QUERY_SEND_TIMEOUT.as_secs()
-                    ))));
-                    return;
-                }
+            if pages.send(Ok(rows)).await.is_err() || !full {
+                return;
             }
+        }
+    }
+}
+
+/// Converts store pages to messages of `layout` and sends them; ends at
+/// the last page, at an error or when the client stops reading.
+async fn send_pages(
+    mut pages: StorePages,
+    tx: &mpsc::Sender<Result<pb::QueryReadingsResponse, Status>>,
+    layout: pb::ReadingLayout,
+    runs: &HashMap<i64, RunRow>,
+) {
+    while let Some(page) = pages.recv().await {
+        let rows = match page {
+            Ok(rows) => rows,
+            Err(e) => {
+                let _ = tx.send(Err(Status::from(e))).await;
+                return;
+            }
+        };
+        let messages: Vec<pb::QueryReadingsResponse> = match layout {
+            pb::ReadingLayout::Columns => vec![pb::QueryReadingsResponse {
+                readings: Vec::new(),
+                columns: Some(convert::columns_of(&rows)),
+            }],
+            _ => rows
+                .chunks(QUERY_PAGE_ROWS)
+                .map(|part| pb::QueryReadingsResponse {
+                    readings: part
+                        .iter()
+                        .map(|r| stored_to_pb(r, runs.get(&r.run_id)))
+                        .collect(),
+                    columns: None,
+                })
+                .collect(),
+        };
+        drop(rows);
+        for message in messages {
+            if !send_in_time(tx, message).await {
+                return;
+            }
+        }
+    }
+}
+
+/// Sends one message; false when the client is gone or read nothing for
+/// QUERY_SEND_TIMEOUT (then it is told why).
+async fn send_in_time(
+    tx: &mpsc::Sender<Result<pb::QueryReadingsResponse, Status>>,
+    message: pb::QueryReadingsResponse,
+) -> bool {
+    match tokio::time::timeout(QUERY_SEND_TIMEOUT, tx.send(Ok(message))).await {
+        Ok(sent) => sent.is_ok(),
+        Err(_) => {
+            let _ = tx.try_send(Err(Status::deadline_exceeded(format!(
+                "the client read nothing for {} s; query ended to free its memory",
+                QUERY_SEND_TIMEOUT.as_secs()
+            ))));
+            false
         }
     }
 }
@@ -167,6 +231,13 @@ impl pb::history_service_server::HistoryService for HistoryApi {
                 ))
             })?
             .map_err(|_| Status::unavailable("the server is shutting down"))?;
+        let layout = pb::ReadingLayout::try_from(q.layout).map_err(|_| {
+            invalid(
+                "layout",
+                q.layout,
+                "must be READING_LAYOUT_ROWS or READING_LAYOUT_COLUMNS",
+            )
+        })?;
         let runs = self.runs_of(key).await?;
         let page = QueryPage {
             reader: self.hub.store().reader.clone(),
@@ -174,12 +245,13 @@ impl pb::history_service_server::HistoryService for HistoryApi {
             start_ns: q.start_unix_ns,
             end_ns: end,
         };
-        // One page in the channel and one being built at most: a client
-        // that does not read holds ≈ 2 pages, and only for QUERY_SEND_TIMEOUT.
+        // One message in the channel, a store page's messages being sent
+        // and one store page read ahead at most: a client that does not
+        // read holds ≈ 3 MB, and only for QUERY_SEND_TIMEOUT.
         let (tx, rx) = mpsc::channel(1);
         tokio::spawn(async move {
             let _permit = permit;
-            page.stream_to(tx, limit, &runs).await;
+            page.stream_to(tx, limit, layout, &runs).await;
         });
         Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
     }

@@ -123,6 +123,7 @@ pub async fn readings(
         limit: p
             .take("limit", "a whole number")?
             .unwrap_or(DEFAULT_READINGS),
+        layout: pb::ReadingLayout::Rows as i32,
     };
     p.done()?;
     let mut pages = s
@@ -135,7 +136,10 @@ pub async fn readings(
     while let Some(page) = pages.next().await {
         readings.extend(page?.readings);
     }
-    Ok(Json(pb::QueryReadingsResponse { readings }))
+    Ok(Json(pb::QueryReadingsResponse {
+        readings,
+        columns: None,
+    }))
 }
 
 /// `GET /api/v1/channels/{id}/buckets`: `QueryBucketsResponse`.

@@ -186,7 +186,10 @@ impl Follower {
         let readings = thin(&rows, MAX_PER_TICK)
             .map(|r| stored_to_pb(r, self.runs.get(&r.run_id)))
             .collect();
-        Ok(Some(pb::QueryReadingsResponse { readings }))
+        Ok(Some(pb::QueryReadingsResponse {
+            readings,
+            columns: None,
+        }))
     }
 }
 

@@ -38,6 +38,21 @@ serializers! {
     bound_breach: BoundBreach = "BOUND_BREACH_";
     operating_mode: OperatingMode = "OPERATING_MODE_";
     segment_kind: SegmentKind = "SEGMENT_KIND_";
+    reading_layout: ReadingLayout = "READING_LAYOUT_";
+}
+
+/// Serializes a repeated `OcvSource` field as a list of ids.
+pub fn ocv_source_list<S: Serializer>(codes: &[i32], s: S) -> Result<S::Ok, S::Error> {
+    use serde::ser::SerializeSeq;
+    let mut seq = s.serialize_seq(Some(codes.len()))?;
+    for code in codes {
+        let id = match super::OcvSource::try_from(*code) {
+            Ok(v) => id_of(v.as_str_name(), "OCV_SOURCE_"),
+            Err(_) => "unknown".to_string(),
+        };
+        seq.serialize_element(&id)?;
+    }
+    seq.end()
 }
 
 /// The wire value of an id (`warning` → `SEVERITY_WARNING`'s number), for

@@ -47,6 +47,29 @@ fn by_time(a: &ReadingRow, b: &ReadingRow) -> std::cmp::Ordering {
     (a.time_ns, a.seq).cmp(&(b.time_ns, b.seq))
 }
 
+/// The most rows a page reserves before it knows how many it will hold.
+const MAX_PAGE_RESERVE: usize = 16_384;
+
+/// Sorts by (time, seq); chunks read in start order are mostly in order
+/// already, and checking costs less than a sort's moves.
+fn sort_by_time(rows: &mut [ReadingRow]) {
+    if !rows.is_sorted_by(|a, b| by_time(a, b).is_le()) {
+        rows.sort_by(by_time);
+    }
+}
+
+/// Keeps, of the rows from `from` on, those `wanted` says, in order.
+fn keep_tail(rows: &mut Vec<ReadingRow>, from: usize, wanted: impl Fn(&ReadingRow) -> bool) {
+    let mut kept = from;
+    for i in from..rows.len() {
+        if wanted(&rows[i]) {
+            rows.swap(kept, i);
+            kept += 1;
+        }
+    }
+    rows.truncate(kept);
+}
+
 /// Stores readings not stored before as chunks: sorted by (time, seq),
 /// one group per hour, each group cut into near-equal chunks of at most
 /// [`CHUNK_ROWS`].
@@ -258,28 +281,31 @@ pub async fn page(
 ) -> Result<Vec<ReadingRow>, StoreError> {
     let from_ns = start_ns.max(after.0);
     let mut cursor = first_cursor(from_ns);
-    let mut out: Vec<ReadingRow> = Vec::new();
-    let mut rows = Vec::new();
+    // Sized for the page (and a chunk past it) up front: growing it by
+    // doubling copied every row decoded so far, again and again.
+    let mut out: Vec<ReadingRow> = Vec::with_capacity(limit.min(MAX_PAGE_RESERVE));
     // Few chunks first, more while the page is not full: a page of 2,000
     // from chunks of 1,000 decodes two or three, not sixteen.
     let mut count = 2;
     loop {
         let batch = scan(conn, key, from_ns, end_ns, cursor, count).await?;
         for (head, body) in &batch {
-            rows.clear();
-            codec::decode_into(body, key, &mut rows).map_err(corrupt)?;
-            out.extend(rows.drain(..).filter(|r| {
+            // Decoded in place and the rows outside the page dropped there:
+            // a reading is moved once, not three times.
+            let before = out.len();
+            codec::decode_into(body, key, &mut out).map_err(corrupt)?;
+            keep_tail(&mut out, before, |r| {
                 r.time_ns >= from_ns && r.time_ns < end_ns && (r.time_ns, r.seq as i64) > after
-            }));
+            });
             cursor = (head.start_ns, head.id);
         }
         let full = out.len() >= limit;
         if full {
-            out.sort_by(by_time);
+            sort_by_time(&mut out);
             out.truncate(limit);
         }
         if limit == 0 || (batch.len() as i64) < count {
-            out.sort_by(by_time);
+            sort_by_time(&mut out);
             out.truncate(limit);
             return Ok(out);
         }
@@ -495,7 +521,10 @@ pub async fn prune(
 
 async fn delete(conn: &mut Conn, ids: &[i64]) -> Result<(), StoreError> {
     for part in ids.chunks(500) {
-        let mut q = super::Binds::new("DELETE FROM chunks WHERE chunk_id IN ");
+        let mut q = super::Binds::new(
+            super::Engine::of(conn),
+            "DELETE FROM chunks WHERE chunk_id IN ",
+        );
         q.list(part.iter().copied());
         q.execute(&mut *conn).await?;
     }
@@ -537,7 +566,10 @@ pub async fn compact(conn: &mut Conn, key: i64, limit: u64) -> Result<u64, Store
 async fn merge(conn: &mut Conn, key: i64, ids: &[i64]) -> Result<u64, StoreError> {
     let mut rows = Vec::new();
     for part in ids.chunks(500) {
-        let mut q = super::Binds::new("SELECT body FROM chunks WHERE chunk_id IN ");
+        let mut q = super::Binds::new(
+            super::Engine::of(conn),
+            "SELECT body FROM chunks WHERE chunk_id IN ",
+        );
         q.list(part.iter().copied());
         for b in q.query().fetch_all(&mut *conn).await? {
             codec::decode_into(b.try_get("body")?, key, &mut rows).map_err(corrupt)?;

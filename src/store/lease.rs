@@ -136,7 +136,10 @@ pub async fn fenced_out(
     if held.is_empty() {
         return Ok(Vec::new());
     }
-    let mut q = super::Binds::new("SELECT name, owner, token FROM leases WHERE name IN ");
+    let mut q = super::Binds::new(
+        super::Engine::Postgres,
+        "SELECT name, owner, token FROM leases WHERE name IN ",
+    );
     q.list(held.iter().map(|(name, _)| name.clone()));
     q.push(" FOR SHARE");
     let rows = q.query().fetch_all(&mut **tx).await?;

@@ -119,21 +119,26 @@ pub fn redact_url(url: &str) -> String {
     }
 }
 
-/// A statement built piece by piece with its binds, numbered `$1, $2, …`
-/// as both engines read them (sqlx's `QueryBuilder` writes `?` for the
-/// `Any` driver, which PostgreSQL refuses).
+/// A statement built piece by piece with its binds: `$1, $2, …` for
+/// PostgreSQL (sqlx's `QueryBuilder` writes `?` for the `Any` driver,
+/// which PostgreSQL refuses), plain `?` for SQLite. sqlx-sqlite looks up
+/// each parameter's name in SQLite's list of named parameters, a walk of
+/// the list per parameter: a rollup upsert of a thousand buckets (27,000
+/// binds) spent most of its time there, and anonymous `?` have no names.
 pub(crate) struct Binds {
     sql: String,
     args: sqlx::any::AnyArguments,
     n: usize,
+    engine: Engine,
 }
 
 impl Binds {
-    pub(crate) fn new(sql: &str) -> Binds {
+    pub(crate) fn new(engine: Engine, sql: &str) -> Binds {
         Binds {
             sql: sql.to_string(),
             args: Default::default(),
             n: 0,
+            engine,
         }
     }
 
@@ -154,7 +159,12 @@ impl Binds {
             self.sql.push_str(", ");
         }
         self.n += 1;
-        let _ = write!(self.sql, "${}", self.n);
+        match self.engine {
+            Engine::Sqlite => self.sql.push('?'),
+            Engine::Postgres => {
+                let _ = write!(self.sql, "${}", self.n);
+            }
+        }
         // Encoding into `Any`'s buffer only records the value: it cannot fail.
         let _ = self.args.add(value);
         self

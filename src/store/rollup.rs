@@ -258,11 +258,10 @@ async fn upsert(
     how: Upsert,
 ) -> Result<(), StoreError> {
     let engine = super::Engine::of(tx);
-    let mut q = super::Binds::new(concat!(
-        "INSERT INTO rollups ",
-        rollup_columns!(),
-        " VALUES "
-    ));
+    let mut q = super::Binds::new(
+        engine,
+        concat!("INSERT INTO rollups ", rollup_columns!(), " VALUES "),
+    );
     for (i, (start, s)) in buckets.iter().enumerate() {
         q.push(if i == 0 { "(" } else { ", (" });
         q.bind(key)

@@ -507,3 +507,153 @@ async fn an_unowned_channel_is_pruned_by_a_server_that_claims_it() {
     );
     pruner.stop().await;
 }
+
+/// Every reading of `channel` in columns (READING_LAYOUT_COLUMNS), at most `limit`.
+async fn stored_columns(ch: &Channel, channel: &str, limit: u32) -> pb::ReadingColumns {
+    use tokio_stream::StreamExt;
+    let mut pages = HistoryServiceClient::new(ch.clone())
+        .query_readings(pb::QueryReadingsRequest {
+            channel_id: channel.into(),
+            limit,
+            layout: pb::ReadingLayout::Columns as i32,
+            ..Default::default()
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    let mut all = pb::ReadingColumns::default();
+    while let Some(page) = pages.next().await {
+        let page = page.unwrap();
+        assert!(page.readings.is_empty(), "columns only");
+        let c = page.columns.expect("a columns message");
+        assert!(
+            c.seq.len() <= 16_384,
+            "{} readings in one message",
+            c.seq.len()
+        );
+        all.seq.extend(c.seq);
+        all.time_unix_ns.extend(c.time_unix_ns);
+        all.volts.extend(c.volts);
+        all.amps_charge_positive.extend(c.amps_charge_positive);
+        all.temp_c.extend(c.temp_c);
+        all.run_id.extend(c.run_id);
+        all.equilibrium_cell_volts.extend(c.equilibrium_cell_volts);
+        all.ocv_source.extend(c.ocv_source);
+        all.soc_from_model.extend(c.soc_from_model);
+        all.soc_fused.extend(c.soc_fused);
+        all.charge_ah.extend(c.charge_ah);
+        all.energy_wh.extend(c.energy_wh);
+    }
+    all
+}
+
+/// NaN for an absent value, bit for bit otherwise.
+fn same(column: f64, row: Option<f64>) -> bool {
+    match row {
+        Some(v) => column.to_bits() == v.to_bits(),
+        None => column.is_nan(),
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn columns_carry_what_rows_carry_across_store_pages_late_readings_and_limits() {
+    let (_dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    put_channel(&ch, channel_def("columns", "daniell")).await;
+    // 20,000 readings (three store pages), some without current or
+    // temperature, under current and at rest; every 1,000th held back
+    // and sent late, so stored chunks overlap in time.
+    let n = 20_000u64;
+    let (_, at) = timeline(n, 100_000_000);
+    let make = |s: u64| pb::Reading {
+        seq: s,
+        time_unix_ns: at(s),
+        volts: volts(s),
+        amps: (!s.is_multiple_of(7)).then_some(if (s / 3_000).is_multiple_of(2) {
+            0.5
+        } else {
+            0.0
+        }),
+        temp_c: s.is_multiple_of(2).then_some(24.0 + (s % 10) as f64 * 0.1),
+    };
+    let (late, on_time): (Vec<u64>, Vec<u64>) = (1..=n).partition(|s| s % 1_000 == 500);
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    for (i, seqs) in [on_time, late].iter().enumerate() {
+        let batches = seqs
+            .chunks(2_000)
+            .enumerate()
+            .map(|(j, part)| pb::ReadingBatch {
+                historical: false,
+                channel_id: "columns".into(),
+                batch_id: (i * 100 + j) as u64,
+                readings: part.iter().map(|&s| make(s)).collect(),
+            })
+            .collect();
+        for ack in send_batches(&mut ingest, batches).await {
+            assert!(ack.rejected.is_empty(), "{:?}", ack.rejected);
+        }
+    }
+    let rows = stored_readings(&mut HistoryServiceClient::new(ch.clone()), "columns").await;
+    let c = stored_columns(&ch, "columns", 10_000_000).await;
+    assert_eq!(rows.len(), n as usize);
+    assert_eq!(c.seq.len(), rows.len());
+    for (i, r) in rows.iter().enumerate() {
+        let d = r.derived.as_ref().expect("derived");
+        assert_eq!(
+            (c.seq[i], c.time_unix_ns[i], c.run_id[i]),
+            (r.seq, r.time_unix_ns, r.run_id)
+        );
+        assert!(same(c.volts[i], Some(r.volts)), "volts of seq {}", r.seq);
+        assert!(
+            same(c.amps_charge_positive[i], r.amps_charge_positive),
+            "amps of seq {}",
+            r.seq
+        );
+        assert!(same(c.temp_c[i], r.temp_c), "temp_c of seq {}", r.seq);
+        assert!(same(
+            c.equilibrium_cell_volts[i],
+            Some(d.equilibrium_cell_volts)
+        ));
+        assert_eq!(c.ocv_source[i], d.ocv_source, "ocv_source of seq {}", r.seq);
+        assert!(
+            same(c.soc_from_model[i], d.soc_from_model),
+            "soc of seq {}",
+            r.seq
+        );
+        assert!(
+            same(c.soc_fused[i], d.soc_fused),
+            "fused soc of seq {}",
+            r.seq
+        );
+        assert!(same(c.charge_ah[i], Some(d.charge_ah)));
+        assert!(same(c.energy_wh[i], Some(d.energy_wh)));
+    }
+    assert!(
+        c.amps_charge_positive.iter().any(|a| a.is_nan()),
+        "absent current is NaN"
+    );
+    assert!(
+        c.soc_from_model.iter().any(|s| !s.is_nan()),
+        "some SOC known"
+    );
+    // A limit ends the answer at exactly that many, in time order.
+    let first = stored_columns(&ch, "columns", 9_000).await;
+    assert_eq!(first.seq, c.seq[..9_000]);
+    // An unknown layout is refused naming the field.
+    let refused = HistoryServiceClient::new(ch.clone())
+        .query_readings(pb::QueryReadingsRequest {
+            channel_id: "columns".into(),
+            layout: 7,
+            ..Default::default()
+        })
+        .await
+        .unwrap_err();
+    assert_eq!(refused.code(), tonic::Code::InvalidArgument);
+    assert!(
+        refused.message().contains("layout"),
+        "{}",
+        refused.message()
+    );
+    server.stop().await;
+}

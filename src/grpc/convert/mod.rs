@@ -8,5 +8,5 @@ mod state;
 
 pub use alert::{alert_to_pb, event_to_pb, rules_from_pb, rules_to_pb};
 pub use channel::{channel_from_pb, channel_to_pb, chemistry_to_pb, gas_from_pb, sign_from_pb};
-pub use reading::{cycle_to_pb, hydrogen_to_pb, state_to_pb, stored_to_pb};
+pub use reading::{columns_of, cycle_to_pb, hydrogen_to_pb, state_to_pb, stored_to_pb};
 pub use state::{buckets_to_pb, estimator_to_pb};

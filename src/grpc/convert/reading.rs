@@ -175,6 +175,42 @@ pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading
     }
 }
 
+/// Stored readings as columns (READING_LAYOUT_COLUMNS): the stored values
+/// only, NaN where a reading lacks one.
+pub fn columns_of(rows: &[ReadingRow]) -> pb::ReadingColumns {
+    let n = rows.len();
+    let mut c = pb::ReadingColumns {
+        seq: Vec::with_capacity(n),
+        time_unix_ns: Vec::with_capacity(n),
+        volts: Vec::with_capacity(n),
+        amps_charge_positive: Vec::with_capacity(n),
+        temp_c: Vec::with_capacity(n),
+        run_id: Vec::with_capacity(n),
+        equilibrium_cell_volts: Vec::with_capacity(n),
+        ocv_source: Vec::with_capacity(n),
+        soc_from_model: Vec::with_capacity(n),
+        soc_fused: Vec::with_capacity(n),
+        charge_ah: Vec::with_capacity(n),
+        energy_wh: Vec::with_capacity(n),
+    };
+    for r in rows {
+        c.seq.push(r.seq);
+        c.time_unix_ns.push(r.time_ns);
+        c.volts.push(r.volts);
+        c.amps_charge_positive.push(r.amps.unwrap_or(f64::NAN));
+        c.temp_c.push(r.temp_c.unwrap_or(f64::NAN));
+        c.run_id.push(r.run_id as u64);
+        c.equilibrium_cell_volts.push(r.cell_volts_used);
+        c.ocv_source
+            .push(ocv_source_to_pb(flags::ocv_source(r.flags)));
+        c.soc_from_model.push(r.soc_model.unwrap_or(f64::NAN));
+        c.soc_fused.push(r.soc_fused.unwrap_or(f64::NAN));
+        c.charge_ah.push(r.charge_ah);
+        c.energy_wh.push(r.energy_wh);
+    }
+    c
+}
+
 /// One charge–discharge cycle of run `run_id` as the wire has it.
 pub fn cycle_to_pb(run_id: i64, c: &CycleRecord) -> pb::Cycle {
     pb::Cycle {
