@@ -49,6 +49,8 @@ fn by_time(a: &ReadingRow, b: &ReadingRow) -> std::cmp::Ordering {
 
 /// The most rows a page reserves before it knows how many it will hold.
 const MAX_PAGE_RESERVE: usize = 16_384;
+/// Room past the page's rows for the rest of the chunk that filled it.
+const PAGE_RESERVE_SLACK: usize = 4_096;
 
 /// Sorts by (time, seq); chunks read in start order are mostly in order
 /// already, and checking costs less than a sort's moves.
@@ -281,15 +283,23 @@ pub async fn page(
 ) -> Result<Vec<ReadingRow>, StoreError> {
     let from_ns = start_ns.max(after.0);
     let mut cursor = first_cursor(from_ns);
-    // Sized for the page (and a chunk past it) up front: growing it by
+    // Sized for the page and a chunk past it up front: growing it by
     // doubling copied every row decoded so far, again and again.
-    let mut out: Vec<ReadingRow> = Vec::with_capacity(limit.min(MAX_PAGE_RESERVE));
-    // Few chunks first, more while the page is not full: a page of 2,000
-    // from chunks of 1,000 decodes two or three, not sixteen.
-    let mut count = 2;
+    let mut out: Vec<ReadingRow> =
+        Vec::with_capacity(limit.min(MAX_PAGE_RESERVE) + PAGE_RESERVE_SLACK);
+    // Enough chunks for the page in one query if they hold a thousand
+    // readings or more (a rig's batches; compaction merges smaller ones);
+    // a chunk fetched but not needed is not decoded. Each query is a
+    // round trip to the database's thread, which costs more than a body.
+    let mut count = (limit as i64 / 1_000 + 2).min(SCAN_CHUNKS);
     loop {
         let batch = scan(conn, key, from_ns, end_ns, cursor, count).await?;
         for (head, body) in &batch {
+            // Full, and this chunk starts after the page's last reading:
+            // neither it nor any after it can hold a reading before.
+            if trim_full(&mut out, limit) && head.start_ns > out[limit - 1].time_ns {
+                return Ok(out);
+            }
             // Decoded in place and the rows outside the page dropped there:
             // a reading is moved once, not three times.
             let before = out.len();
@@ -299,11 +309,7 @@ pub async fn page(
             });
             cursor = (head.start_ns, head.id);
         }
-        let full = out.len() >= limit;
-        if full {
-            sort_by_time(&mut out);
-            out.truncate(limit);
-        }
+        let full = trim_full(&mut out, limit);
         if limit == 0 || (batch.len() as i64) < count {
             sort_by_time(&mut out);
             out.truncate(limit);
@@ -319,6 +325,17 @@ pub async fn page(
         }
         count = (count * 2).min(SCAN_CHUNKS);
     }
+}
+
+/// Whether `rows` hold a full page of `limit` (and then sorts and cuts
+/// them to it).
+fn trim_full(rows: &mut Vec<ReadingRow>, limit: usize) -> bool {
+    let full = limit > 0 && rows.len() >= limit;
+    if full {
+        sort_by_time(rows);
+        rows.truncate(limit);
+    }
+    full
 }
 
 /// Decodes the chunks a query selected (binds: the channel, then `binds`)

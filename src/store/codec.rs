@@ -613,8 +613,13 @@ impl<'a> BitReader<'a> {
             self.skip(n)?;
             return Ok(window >> (64 - n));
         }
-        let hi = self.take(n - 32)?;
-        Ok((hi << 32) | self.take(32)?)
+        // Wider than a window: two, without recursion (so it inlines).
+        let high_bits = n - 32;
+        let high = self.peek() >> (64 - high_bits);
+        self.skip(high_bits)?;
+        let low = self.peek() >> 32;
+        self.skip(32)?;
+        Ok((high << 32) | low)
     }
 }
 
