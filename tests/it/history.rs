@@ -527,7 +527,7 @@ async fn stored_columns(ch: &Channel, channel: &str, limit: u32) -> pb::ReadingC
         assert!(page.readings.is_empty(), "columns only");
         let c = page.columns.expect("a columns message");
         assert!(
-            c.seq.len() <= 16_384,
+            c.seq.len() <= 8_192,
             "{} readings in one message",
             c.seq.len()
         );
