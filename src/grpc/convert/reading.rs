@@ -54,11 +54,8 @@ fn run_definition(run: &RunRow) -> Option<ChannelDef> {
     serde_json::from_str(run.definition_json.as_deref()?).ok()
 }
 
-/// An electrolyser's or fuel cell's figures for a stored reading.
-pub fn hydrogen_to_pb(row: &ReadingRow, run: &RunRow, temp_k: f64) -> Option<pb::HydrogenFigures> {
-    if run.chemistry_id != WATER_CELL_ID {
-        return None;
-    }
+/// A water cell's stack facts and rest threshold from its run's definition.
+fn water_facts(run: &RunRow) -> (hydrogen::StackFacts, f64) {
     let def = run_definition(run);
     let facts = hydrogen::StackFacts {
         gas: def.as_ref().map(ChannelDef::water_gas).unwrap_or_default(),
@@ -69,6 +66,38 @@ pub fn hydrogen_to_pb(row: &ReadingRow, run: &RunRow, temp_k: f64) -> Option<pb:
     let rest_amps = def
         .as_ref()
         .map_or(1e-3, |d| d.estimator_config().rest_current_amps);
+    (facts, rest_amps)
+}
+
+thread_local! {
+    /// The last definition read by [`water_facts_cached`] on this thread
+    /// and what it gave: the readings of a page share one run, and parsing
+    /// its JSON for each of them cost more than all the rest of the
+    /// conversion. Keyed by the text itself, so a hit is always right.
+    static LAST_WATER_FACTS: std::cell::RefCell<Option<(Option<String>, hydrogen::StackFacts, f64)>> =
+        const { std::cell::RefCell::new(None) };
+}
+
+fn water_facts_cached(run: &RunRow) -> (hydrogen::StackFacts, f64) {
+    LAST_WATER_FACTS.with(|last| {
+        let mut last = last.borrow_mut();
+        if let Some((json, facts, rest_amps)) = last.as_ref()
+            && *json == run.definition_json
+        {
+            return (*facts, *rest_amps);
+        }
+        let (facts, rest_amps) = water_facts(run);
+        *last = Some((run.definition_json.clone(), facts, rest_amps));
+        (facts, rest_amps)
+    })
+}
+
+/// An electrolyser's or fuel cell's figures for a stored reading.
+pub fn hydrogen_to_pb(row: &ReadingRow, run: &RunRow, temp_k: f64) -> Option<pb::HydrogenFigures> {
+    if run.chemistry_id != WATER_CELL_ID {
+        return None;
+    }
+    let (facts, rest_amps) = water_facts_cached(run);
     let f = hydrogen::figures(
         hydrogen::StackReading {
             stack_volts: row.volts,
@@ -232,5 +261,69 @@ pub fn cycle_to_pb(run_id: i64, c: &CycleRecord) -> pb::Cycle {
         open: c.open,
         partial: c.partial,
         discharge_only: c.discharge_only,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn water_run(run_id: i64, resistance_ohm: Option<f64>) -> RunRow {
+        let chem = crate::electrochem::Registry::builtin()
+            .get(WATER_CELL_ID)
+            .expect("built in");
+        let def = ChannelDef {
+            resistance_ohm,
+            ..ChannelDef::of_chemistry("stack", &chem)
+        };
+        RunRow {
+            run_id,
+            channel_key: 1,
+            chemistry_id: WATER_CELL_ID.into(),
+            n_electrons: chem.n_electrons,
+            e_standard_298_v: 1.229,
+            de_dt_v_per_k: -0.00085,
+            cells_in_series: 1,
+            default_temp_c: 60.0,
+            equilibrium_tolerance_v: 1e-3,
+            soc_model: "none".into(),
+            definition_json: Some(serde_json::to_string(&def).expect("serializes")),
+        }
+    }
+
+    #[test]
+    fn each_run_gets_its_own_definition_whatever_was_converted_before() {
+        let row = ReadingRow {
+            channel_key: 1,
+            seq: 1,
+            run_id: 1,
+            time_ns: 1_800_000_000_000_000_000,
+            volts: 1.9,
+            amps: Some(10.0),
+            temp_c: Some(60.0),
+            cell_volts_used: 1.2,
+            soc_model: None,
+            soc_fused: None,
+            charge_ah: 0.0,
+            energy_wh: 0.0,
+            flags: 0,
+            soc_counted_unclamped: None,
+        };
+        let (with_r, without_r) = (water_run(1, Some(0.01)), water_run(2, None));
+        let ir_free = |run: &RunRow| {
+            hydrogen_to_pb(&row, run, 333.15)
+                .expect("a water cell")
+                .overpotential_ir_free_v
+        };
+        let first = ir_free(&with_r);
+        let other = ir_free(&without_r);
+        // The definition read for one run must not answer for another.
+        assert_eq!(ir_free(&with_r), first);
+        assert_ne!(
+            first, other,
+            "a resistance changes the iR-free overpotential"
+        );
+        let (facts, _) = water_facts(&with_r);
+        assert_eq!(facts.resistance_ohm, Some(0.01));
     }
 }
