@@ -281,8 +281,10 @@ mod tests {
             channel_key: 1,
             chemistry_id: WATER_CELL_ID.into(),
             n_electrons: chem.n_electrons,
-            e_standard_298_v: 1.229,
-            de_dt_v_per_k: -0.00085,
+            // The built-in chemistry's own E° and dE°/dT (its sources are
+            // in its file), not numbers of this test's.
+            e_standard_298_v: chem.standard_potential().e_standard_298_volts,
+            de_dt_v_per_k: chem.standard_potential().de_dt_volts_per_k,
             cells_in_series: 1,
             default_temp_c: 60.0,
             equilibrium_tolerance_v: 1e-3,
