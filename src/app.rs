@@ -82,7 +82,10 @@ pub async fn run(
         http: http_listener,
     } = listeners;
     let tls = config.read_tls()?;
-    let db = store::Location::parse(&config.db);
+    let db = store::Location::parse(&config.db).map_err(|reason| store::StoreError::Open {
+        path: config.db.clone().into(),
+        reason,
+    })?;
     let store = Store::open_location(&db, config.durability).await?;
     if let Ok(addr) = listener.local_addr() {
         store.note_holder(&addr.to_string());
@@ -204,6 +207,7 @@ fn spawn_console(
         apis: apis.clone(),
         hub: hub.clone(),
         tokens: tokens.clone(),
+        feeds: Default::default(),
     });
     let addr = listener.local_addr().ok();
     tracing::info!(?addr, https = acceptor.is_some(), "console and JSON API");

@@ -114,14 +114,15 @@ pub struct Limits {
     /// From SIGTERM to exit at most, s: streams end, the writer flushes,
     /// then every connection still open is closed.
     pub shutdown_timeout_s: u64,
-    /// An ingest stream with no batch for this long is ended, s.
+    /// An ingest stream with no readings for this long is ended, s (an
+    /// empty batch does not count as one).
     pub stream_idle_timeout_s: u64,
     /// A connection that has not spoken HTTP/2 for this long is closed, s
     /// (live connections answer keepalive pings, so only dead or idle
     /// ones reach it).
     pub connection_idle_timeout_s: u64,
-    /// Ingest streams one token (or, on an open server, one peer address)
-    /// may hold at once.
+    /// Ingest streams one token, and one peer address, may hold at once
+    /// (a quarter of the server's 128 by default).
     pub max_streams_per_client: u64,
     /// Rows one QueryReadings call returns at most.
     pub max_query_rows: u32,
@@ -135,7 +136,7 @@ impl Default for Limits {
             shutdown_timeout_s: 10,
             stream_idle_timeout_s: 300,
             connection_idle_timeout_s: 120,
-            max_streams_per_client: 64,
+            max_streams_per_client: 32,
             max_query_rows: 1_000_000,
         }
     }
@@ -327,6 +328,18 @@ pub struct ConfigError {
 }
 
 /// Line (1-based) of the `index`-th `[[header]]` table in `text`.
+/// The line of a top-level `key = …`, if the file has one.
+fn key_line(text: &str, key: &str) -> Option<usize> {
+    text.lines()
+        .take_while(|l| !l.trim_start().starts_with('['))
+        .position(|l| {
+            l.trim_start()
+                .strip_prefix(key)
+                .is_some_and(|rest| rest.trim_start().starts_with('='))
+        })
+        .map(|i| i + 1)
+}
+
 fn table_line(text: &str, header: &str, index: usize) -> Option<usize> {
     text.lines()
         .enumerate()
@@ -450,11 +463,19 @@ pub fn resolve(
         Some(v) => matches!(v.as_str(), "1" | "true" | "yes"),
         None => file.allow_insecure,
     };
-    let db = env
-        .get("GIBBSLINE_DB")
-        .cloned()
-        .or(file.db.clone())
-        .unwrap_or_else(|| DEFAULT_DB.into());
+    let db = match env.get("GIBBSLINE_DB") {
+        Some(v) => v.clone(),
+        None => file.db.clone().unwrap_or_else(|| DEFAULT_DB.into()),
+    };
+    let db_key = if env.contains_key("GIBBSLINE_DB") {
+        "GIBBSLINE_DB (or --db)"
+    } else {
+        "db"
+    };
+    crate::store::Location::parse(&db).map_err(|reason| {
+        let line = file.db.is_some().then(|| key_line(text, "db")).flatten();
+        fail((line, format!("{db_key} = {db:?}: {reason}")))
+    })?;
     let advertise = env
         .get("GIBBSLINE_ADVERTISE")
         .cloned()

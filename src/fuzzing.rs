@@ -476,12 +476,17 @@ fn check_rows(id: &str, max_seq_before: Option<u64>, derived: &ingest::DerivedBa
 /// the channel's front).
 fn check_alerts_name_stored_seqs(id: &str, rt: &ChannelRuntime, derived: &ingest::DerivedBatch) {
     let fresh_seqs: HashSet<u64> = derived.rows.iter().map(|r| r.seq).collect();
+    // Limit rules also judge readings out of the channel's order, kept
+    // (stored unless already stored) among the possible duplicates.
+    let late_seqs: HashSet<u64> = derived.maybe_dup.iter().map(|r| r.seq).collect();
     for change in &derived.changes {
         if let crate::alerts::AlertChange::Raise(a) = change {
             // The timeline alert is raised for readings the rules did not
             // see; it names the channel's front, stored in this batch or before.
             let named = if a.kind == crate::alerts::AlertKind::Timeline {
                 rt.max_seq.is_some_and(|front| a.seq <= front)
+            } else if a.severity == crate::alerts::Severity::Critical {
+                fresh_seqs.contains(&a.seq) || late_seqs.contains(&a.seq)
             } else {
                 fresh_seqs.contains(&a.seq)
             };

@@ -531,6 +531,35 @@ pub fn evaluate(
     changes
 }
 
+/// The limit rules alone (voltage, current, temperature), for a reading
+/// out of the channel's order: each judges a reading on its own values, so
+/// a garbled timeline must not hide a cell outside its safe window. Such a
+/// reading may raise a limit alert but never clears one: a reading from
+/// before the front says nothing about the cell now.
+pub fn evaluate_limits(
+    rules: &AlertRules,
+    state: &mut ChannelRuleState,
+    input: &RuleInput,
+) -> Vec<AlertChange> {
+    let mut changes = Vec::new();
+    let c = &mut changes;
+    raise_only_into(c, state, Some(voltage_limit_check(rules, input)), input);
+    raise_only_into(c, state, current_limit_check(rules, input), input);
+    raise_only_into(c, state, temperature_limit_check(rules, input), input);
+    changes
+}
+
+fn raise_only_into<M: Fn() -> String>(
+    changes: &mut Vec<AlertChange>,
+    state: &mut ChannelRuleState,
+    check: Option<Check<M>>,
+    input: &RuleInput,
+) {
+    if let Some(check) = check.filter(|c| c.past_raise) {
+        changes.extend(apply(state, check, input));
+    }
+}
+
 /// Reaction equilibrium: |ΔG| of the cell reaction small (a concentration
 /// or teaching cell run down); rarer than a spent driving force.
 fn equilibrium_check(rules: &AlertRules, input: &RuleInput) -> Option<Check<impl Fn() -> String>> {

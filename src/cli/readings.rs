@@ -348,7 +348,9 @@ pub(crate) async fn run(args: &ReadingsArgs) -> anyhow::Result<()> {
         channel_id: args.channel.clone(),
         start_unix_ns: start,
         end_unix_ns: end,
-        limit: args.limit,
+        // One more than asked: whether the answer stopped at the limit
+        // or at the end of the window is then known, not guessed.
+        limit: args.limit.saturating_add(1),
         layout: pb::ReadingLayout::Rows as i32,
     };
     let mut stream = history
@@ -360,9 +362,19 @@ pub(crate) async fn run(args: &ReadingsArgs) -> anyhow::Result<()> {
     while let Some(page) = stream.next().await {
         rows.extend(page?.readings.into_iter().map(ReadingOut::from));
     }
+    let cut = rows.len() > args.limit as usize;
+    rows.truncate(args.limit as usize);
     output::print_all(&rows, args.format)?;
     if args.format == Format::Table {
         eprintln!("{} readings", rows.len());
+    }
+    if cut {
+        // stderr, so a CSV or JSON export stays clean and the shell still
+        // shows that it is not the whole window.
+        eprintln!(
+            "stopped at --limit {}: more readings follow in this window; raise --limit or narrow --since/--until",
+            args.limit
+        );
     }
     Ok(())
 }

@@ -10,11 +10,26 @@ use crate::pb;
 use crate::store::{self, RunRow};
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex};
-use tokio::sync::mpsc;
+use tokio::sync::{mpsc, oneshot};
 use tokio_stream::wrappers::ReceiverStream;
 use tonic::{Request, Response, Status};
 
-/// QueryReadings calls producing pages at once; more wait their turn.
+/// Buckets one QueryBuckets call answers at most.
+pub const MAX_BUCKETS: u32 = 100_000;
+
+/// The refusal of a width that gives more than [`MAX_BUCKETS`] buckets.
+fn too_many_buckets(width_ns: i64) -> Status {
+    invalid(
+        "bucket_width_ns",
+        width_ns,
+        &format!(
+            "gives more than {MAX_BUCKETS} buckets over the window; widen it or narrow the window"
+        ),
+    )
+}
+
+/// History queries (QueryReadings producing pages, QueryBuckets) at
+/// once; more wait their turn.
 pub const MAX_CONCURRENT_QUERIES: usize = 32;
 
 /// `HistoryService`: stored readings, buckets, a channel's state and its cycles.
@@ -43,6 +58,19 @@ impl HistoryApi {
             .into_iter()
             .map(|r| (r.run_id, r))
             .collect())
+    }
+
+    /// A place among the history queries running at once (QueryReadings
+    /// and QueryBuckets, over gRPC and the JSON API alike).
+    async fn query_slot(&self) -> Result<tokio::sync::OwnedSemaphorePermit, Status> {
+        tokio::time::timeout(QUERY_WAIT, self.queries.clone().acquire_owned())
+            .await
+            .map_err(|_| {
+                Status::resource_exhausted(format!(
+                    "{MAX_CONCURRENT_QUERIES} history queries are running; retry shortly"
+                ))
+            })?
+            .map_err(|_| Status::unavailable("the server is shutting down"))
     }
 
     fn key_of(&self, channel_id: &str) -> Result<(Arc<Mutex<ChannelRuntime>>, i64), Status> {
@@ -82,13 +110,18 @@ impl QueryPage {
     async fn stream_to(
         self,
         tx: mpsc::Sender<Result<pb::QueryReadingsResponse, Status>>,
+        ending: oneshot::Sender<Status>,
         limit: u32,
         layout: pb::ReadingLayout,
         runs: &HashMap<i64, RunRow>,
     ) {
         let (pages_tx, pages) = mpsc::channel(1);
         let reading = tokio::spawn(self.read_into(pages_tx, limit));
-        send_pages(pages, &tx, layout, runs).await;
+        if let Err(status) = send_pages(pages, &tx, layout, runs).await {
+            // Delivered after what the client has not read yet: a cut
+            // answer never ends with OK.
+            let _ = ending.send(status);
+        }
         // The client left or a send timed out: stop reading the store.
         reading.abort();
     }
@@ -130,21 +163,16 @@ impl QueryPage {
 }
 
 /// Converts store pages to messages of `layout` and sends them; ends at
-/// the last page, at an error or when the client stops reading.
+/// the last page, when the client has gone, or with the status the answer
+/// must end with (a store error, a client that stopped reading).
 async fn send_pages(
     mut pages: StorePages,
     tx: &mpsc::Sender<Result<pb::QueryReadingsResponse, Status>>,
     layout: pb::ReadingLayout,
     runs: &HashMap<i64, RunRow>,
-) {
+) -> Result<(), Status> {
     while let Some(page) = pages.recv().await {
-        let rows = match page {
-            Ok(rows) => rows,
-            Err(e) => {
-                let _ = tx.send(Err(Status::from(e))).await;
-                return;
-            }
-        };
+        let rows = page?;
         let messages: Vec<pb::QueryReadingsResponse> = match layout {
             pb::ReadingLayout::Columns => vec![pb::QueryReadingsResponse {
                 readings: Vec::new(),
@@ -163,28 +191,48 @@ async fn send_pages(
         };
         drop(rows);
         for message in messages {
-            if !send_in_time(tx, message).await {
-                return;
+            match tokio::time::timeout(QUERY_SEND_TIMEOUT, tx.send(Ok(message))).await {
+                Ok(Ok(())) => {}
+                // The client has gone: nobody to tell.
+                Ok(Err(_)) => return Ok(()),
+                Err(_) => {
+                    return Err(Status::deadline_exceeded(format!(
+                        "the client read nothing for {} s; query ended to free its memory (the answer is cut)",
+                        QUERY_SEND_TIMEOUT.as_secs()
+                    )));
+                }
             }
         }
     }
+    Ok(())
 }
 
-/// Sends one message; false when the client is gone or read nothing for
-/// QUERY_SEND_TIMEOUT (then it is told why).
-async fn send_in_time(
-    tx: &mpsc::Sender<Result<pb::QueryReadingsResponse, Status>>,
-    message: pb::QueryReadingsResponse,
-) -> bool {
-    match tokio::time::timeout(QUERY_SEND_TIMEOUT, tx.send(Ok(message))).await {
-        Ok(sent) => sent.is_ok(),
-        Err(_) => {
-            let _ = tx.try_send(Err(Status::deadline_exceeded(format!(
-                "the client read nothing for {} s; query ended to free its memory",
-                QUERY_SEND_TIMEOUT.as_secs()
-            ))));
-            false
+/// Messages as the producing task sends them, then the status it ended
+/// with, if it left one.
+struct Ending<T> {
+    messages: ReceiverStream<Result<T, Status>>,
+    end: Option<oneshot::Receiver<Status>>,
+}
+
+impl<T> tokio_stream::Stream for Ending<T> {
+    type Item = Result<T, Status>;
+
+    fn poll_next(
+        mut self: std::pin::Pin<&mut Self>,
+        cx: &mut std::task::Context<'_>,
+    ) -> std::task::Poll<Option<Self::Item>> {
+        use std::future::Future;
+        use std::task::Poll;
+        if let Some(item) = std::task::ready!(std::pin::Pin::new(&mut self.messages).poll_next(cx))
+        {
+            return Poll::Ready(Some(item));
         }
+        let Some(end) = self.end.as_mut() else {
+            return Poll::Ready(None);
+        };
+        let ended = std::task::ready!(std::pin::Pin::new(end).poll(cx));
+        self.end = None;
+        Poll::Ready(ended.ok().map(Err))
     }
 }
 const DEFAULT_QUERY_LIMIT: u32 = 100_000;
@@ -223,14 +271,7 @@ impl pb::history_service_server::HistoryService for HistoryApi {
             q.limit
         }
         .min(self.max_query_rows);
-        let permit = tokio::time::timeout(QUERY_WAIT, self.queries.clone().acquire_owned())
-            .await
-            .map_err(|_| {
-                Status::resource_exhausted(format!(
-                    "{MAX_CONCURRENT_QUERIES} history queries are running; retry shortly"
-                ))
-            })?
-            .map_err(|_| Status::unavailable("the server is shutting down"))?;
+        let permit = self.query_slot().await?;
         let layout = pb::ReadingLayout::try_from(q.layout).map_err(|_| {
             invalid(
                 "layout",
@@ -249,11 +290,15 @@ impl pb::history_service_server::HistoryService for HistoryApi {
         // and one store page read ahead at most: a client that does not
         // read holds ≈ 3 MB, and only for QUERY_SEND_TIMEOUT.
         let (tx, rx) = mpsc::channel(1);
+        let (ending, end) = oneshot::channel();
         tokio::spawn(async move {
             let _permit = permit;
-            page.stream_to(tx, limit, layout, &runs).await;
+            page.stream_to(tx, ending, limit, layout, &runs).await;
         });
-        Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
+        Ok(Response::new(Box::pin(Ending {
+            messages: ReceiverStream::new(rx),
+            end: Some(end),
+        })))
     }
 
     async fn query_buckets(
@@ -270,14 +315,12 @@ impl pb::history_service_server::HistoryService for HistoryApi {
             ));
         }
         let end = window_end(q.start_unix_ns, q.end_unix_ns)?;
-        if (end.saturating_sub(q.start_unix_ns)) / q.bucket_width_ns > 100_000 && q.end_unix_ns != 0
+        if (end.saturating_sub(q.start_unix_ns)) / q.bucket_width_ns > i64::from(MAX_BUCKETS)
+            && q.end_unix_ns != 0
         {
-            return Err(invalid(
-                "bucket_width_ns",
-                q.bucket_width_ns,
-                "gives more than 100,000 buckets; widen it",
-            ));
+            return Err(too_many_buckets(q.bucket_width_ns));
         }
+        let _permit = self.query_slot().await?;
         // Buckets sit on whole multiples of their width since the epoch, so
         // the same query gives the same buckets whenever it is asked (a
         // dashboard's "last hour" moves its start every second); the first
@@ -287,7 +330,12 @@ impl pb::history_service_server::HistoryService for HistoryApi {
         let width = store::rollup::answered_width(q.bucket_width_ns);
         let start = q.start_unix_ns.div_euclid(width) * width;
         let reader = &self.hub.store().reader;
-        let rows = store::query_buckets(reader, key, start, end, width).await?;
+        // One more than the bound is asked for, to tell "exactly the
+        // bound" from "more": an open-ended window is only counted here.
+        let rows = store::query_buckets(reader, key, start, end, width, MAX_BUCKETS + 1).await?;
+        if rows.len() > MAX_BUCKETS as usize {
+            return Err(too_many_buckets(q.bucket_width_ns));
+        }
         let before = store::counts_before(reader, key, start).await?;
         let runs = self.runs_of(key).await?;
         let buckets = convert::buckets_to_pb(&rows, before, start, width, &runs);

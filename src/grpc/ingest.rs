@@ -28,17 +28,14 @@ impl pb::ingest_service_server::IngestService for IngestApi {
         request: Request<Streaming<pb::StreamReadingsRequest>>,
     ) -> Result<Response<Self::StreamReadingsStream>, Status> {
         let principal = caller(&request);
-        let client = match &principal {
-            Some(p) => format!("token {:?}", p.name),
-            None => request
-                .remote_addr()
-                .map(|a| a.ip().to_string())
-                .unwrap_or_else(|| "unknown".into()),
-        };
+        let address = request
+            .remote_addr()
+            .map(|a| a.ip().to_string())
+            .unwrap_or_else(|| "unknown".into());
         let session = Session {
             hub: self.hub.clone(),
             principal,
-            client,
+            address,
             idle: std::time::Duration::from_secs(self.limits.stream_idle_timeout_s),
             max_streams_per_client: self.limits.max_streams_per_client,
         };

@@ -27,6 +27,7 @@ impl From<IngestError> for Status {
             IngestError::Store(StoreError::InUse { .. } | StoreError::Open { .. }) => {
                 Status::failed_precondition(message)
             }
+            IngestError::Store(StoreError::Connect { .. }) => Status::unavailable(message),
             IngestError::Store(
                 StoreError::Database(_)
                 | StoreError::Migrate(_)

@@ -16,8 +16,10 @@ use crate::pb::channel_service_server::ChannelService;
 use crate::pb::chemistry_service_server::ChemistryService;
 use crate::pb::history_service_server::HistoryService;
 use axum::Json;
+use axum::body::Bytes;
 use axum::extract::{Path, Query, State};
 use axum::http::HeaderMap;
+use axum::response::{IntoResponse, Response};
 use std::collections::HashMap;
 use std::sync::Arc;
 use tokio_stream::StreamExt;
@@ -31,6 +33,8 @@ pub struct ApiState {
     pub hub: Arc<Hub>,
     /// The same tokens as gRPC.
     pub tokens: Arc<TokenTable>,
+    /// Live feeds' places and the followed channels' tails.
+    pub feeds: Arc<super::live::Feeds>,
 }
 
 /// Shared state as axum hands it to handlers.
@@ -104,12 +108,17 @@ pub async fn state(
 
 /// `GET /api/v1/channels/{id}/readings`: `QueryReadingsResponse`, one
 /// list (at most `limit`, default 10,000, the server's row limit at most).
+/// Written as the store pages come, so a request holds a few pages of
+/// memory whatever its limit, and takes a place among the history queries
+/// gRPC counts too. An answer cut short (a store error, a client that
+/// stopped reading) ends without its closing chunk, so no client takes it
+/// for whole.
 pub async fn readings(
     State(s): Shared,
     headers: HeaderMap,
     Path(channel_id): Path<String>,
     Query(q): QueryMap,
-) -> Result<Json<pb::QueryReadingsResponse>, ApiError> {
+) -> Result<Response, ApiError> {
     s.allow(&headers, "/gibbsline.v1.HistoryService/QueryReadings")?;
     let mut p = Params::new(q);
     let request = pb::QueryReadingsRequest {
@@ -132,14 +141,54 @@ pub async fn readings(
         .query_readings(Request::new(request))
         .await?
         .into_inner();
-    let mut readings = Vec::new();
-    while let Some(page) = pages.next().await {
-        readings.extend(page?.readings);
+    // The first page decides the status: a refusal before any reading is
+    // an ordinary error answer.
+    let first = pages.next().await.transpose()?;
+    let (open, close) = readings_frame();
+    let mut written = 0usize;
+    let body = tokio_stream::once(Ok::<Bytes, std::io::Error>(open))
+        .chain(
+            tokio_stream::iter(first.map(Ok))
+                .chain(pages)
+                .map(move |page| {
+                    let page =
+                        page.map_err(|status| std::io::Error::other(status.message().to_string()))?;
+                    let json = page_json(&page, written > 0);
+                    written += page.readings.len();
+                    Ok(json)
+                }),
+        )
+        .chain(tokio_stream::once(Ok(close)));
+    Ok((
+        [(axum::http::header::CONTENT_TYPE, "application/json")],
+        axum::body::Body::from_stream(body),
+    )
+        .into_response())
+}
+
+/// The JSON of an answer without readings, cut where they go: the same
+/// shape `Json(QueryReadingsResponse)` writes.
+fn readings_frame() -> (Bytes, Bytes) {
+    let empty = serde_json::to_string(&pb::QueryReadingsResponse::default())
+        .expect("a response serialises");
+    let at = empty.find("[]").expect("readings serialise as a list") + 1;
+    (
+        Bytes::copy_from_slice(&empty.as_bytes()[..at]),
+        Bytes::copy_from_slice(&empty.as_bytes()[at..]),
+    )
+}
+
+/// One page's readings as list members, each after a comma unless it is
+/// the answer's first.
+fn page_json(page: &pb::QueryReadingsResponse, after_others: bool) -> Bytes {
+    let mut out = Vec::with_capacity(page.readings.len() * 400);
+    for (i, reading) in page.readings.iter().enumerate() {
+        if i > 0 || after_others {
+            out.push(b',');
+        }
+        serde_json::to_writer(&mut out, reading).expect("a reading serialises");
     }
-    Ok(Json(pb::QueryReadingsResponse {
-        readings,
-        columns: None,
-    }))
+    Bytes::from(out)
 }
 
 /// `GET /api/v1/channels/{id}/buckets`: `QueryBucketsResponse`.

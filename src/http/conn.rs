@@ -148,3 +148,80 @@ pub fn acceptor(pem: &TlsPem) -> Result<TlsAcceptor, FieldError> {
     config.alpn_protocols = vec![b"http/1.1".to_vec()];
     Ok(TlsAcceptor::from(Arc::new(config)))
 }
+
+/// How long a client may take to send a whole request head (and how long
+/// a kept-alive connection may wait for its next one): a client that
+/// trickles a header byte at a time is cut off here, whatever the idle
+/// limit says.
+pub const HEAD_LIMIT: Duration = Duration::from_secs(10);
+
+/// The peer of the connection a request came on, for per-client limits.
+#[derive(Debug, Clone, Copy)]
+pub struct Peer(pub SocketAddr);
+
+/// Serves `app` on every connection `listener` hands over until `stop`
+/// resolves, then lets the open ones finish their answers (live feeds end
+/// by themselves when the server stops). Each request carries its
+/// [`Peer`], and every answer `X-Content-Type-Options: nosniff`.
+pub async fn serve(
+    mut listener: Bounded,
+    app: axum::Router,
+    stop: impl std::future::Future<Output = ()>,
+) {
+    let (closing_tx, closing_rx) = tokio::sync::watch::channel(());
+    tokio::pin!(stop);
+    loop {
+        let (io, addr) = tokio::select! {
+            next = axum::serve::Listener::accept(&mut listener) => next,
+            () = &mut stop => break,
+        };
+        let service = with_peer(app.clone(), addr);
+        let mut closing = closing_rx.clone();
+        tokio::spawn(async move {
+            let mut builder = hyper::server::conn::http1::Builder::new();
+            builder
+                .timer(hyper_util::rt::TokioTimer::new())
+                .header_read_timeout(HEAD_LIMIT);
+            let conn = builder.serve_connection(hyper_util::rt::TokioIo::new(io), service);
+            tokio::pin!(conn);
+            tokio::select! {
+                result = conn.as_mut() => {
+                    if let Err(e) = result {
+                        tracing::debug!(%addr, error = %e, "HTTP connection ended");
+                    }
+                    return;
+                }
+                _ = closing.changed() => conn.as_mut().graceful_shutdown(),
+            }
+            let _ = conn.await;
+        });
+    }
+    drop(closing_rx);
+    let _ = closing_tx.send(());
+    closing_tx.closed().await;
+}
+
+/// `app` as hyper calls it on one connection.
+fn with_peer(
+    app: axum::Router,
+    addr: SocketAddr,
+) -> impl hyper::service::Service<
+    http::Request<hyper::body::Incoming>,
+    Response = axum::response::Response,
+    Error = std::convert::Infallible,
+    Future = impl Send,
+> + Clone {
+    hyper::service::service_fn(move |mut request: http::Request<hyper::body::Incoming>| {
+        request.extensions_mut().insert(Peer(addr));
+        let mut app = app.clone();
+        async move {
+            let mut answer =
+                tower_service::Service::call(&mut app, request.map(axum::body::Body::new)).await?;
+            answer.headers_mut().insert(
+                http::header::X_CONTENT_TYPE_OPTIONS,
+                http::HeaderValue::from_static("nosniff"),
+            );
+            Ok(answer)
+        }
+    })
+}

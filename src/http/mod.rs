@@ -9,7 +9,7 @@ pub mod api;
 pub mod conn;
 mod console;
 pub mod error;
-mod live;
+pub mod live;
 mod params;
 
 use crate::ingest::{Hub, stopped};
@@ -29,8 +29,12 @@ use tokio_rustls::TlsAcceptor;
 const METRICS_CONNECTIONS: usize = 16;
 /// A metrics connection that says nothing for this long is closed.
 const METRICS_IDLE: Duration = Duration::from_secs(5);
-/// Console and API connections at once (a browser opens about six).
-const HTTP_CONNECTIONS: usize = 128;
+/// Console and API connections at once (a browser opens about six; each
+/// idle one costs a few KiB). Live feeds take at most
+/// [`live::FEEDS_IN_ALL`] of them, and a connection still sending its
+/// request head is cut off after [`conn::HEAD_LIMIT`], so feeds and slow
+/// clients leave room for the API and health.
+const HTTP_CONNECTIONS: usize = 1_024;
 /// A console connection that says nothing for this long is closed; the
 /// live feed sends a keep-alive well inside it.
 const HTTP_IDLE: Duration = Duration::from_secs(30);
@@ -89,12 +93,7 @@ pub async fn serve(listener: TcpListener, state: Arc<ApiState>, tls: Option<TlsA
             return;
         }
     };
-    if let Err(e) = axum::serve(listener, app)
-        .with_graceful_shutdown(stop)
-        .await
-    {
-        tracing::error!(error = %e, "console stopped");
-    }
+    conn::serve(listener, app, stop).await;
 }
 
 /// Serves `/metrics` alone (no tokens: `metrics_listen` is for scrapers
@@ -110,9 +109,7 @@ pub async fn serve_metrics(listener: TcpListener, hub: Arc<Hub>) {
             return;
         }
     };
-    if let Err(e) = axum::serve(listener, app).await {
-        tracing::error!(error = %e, "metrics endpoint stopped");
-    }
+    conn::serve(listener, app, std::future::pending()).await;
 }
 
 async fn metrics(State(hub): State<Arc<Hub>>) -> impl IntoResponse {

@@ -266,11 +266,15 @@ pub fn derive_batch(
             });
             continue;
         }
+        let disordered = rt.max_seq.is_none_or(|m| r.seq > m) || r.time_unix_ns > rt.last_time_ns;
         let fresh = timeline.classify(rt, r);
         let derived = if fresh {
             derive_fresh(rt, r, &mut parts)
         } else {
-            derive_late(rt, r, &mut parts)
+            // A plain resend (seq and time both at or behind the front) was
+            // judged when it first came; one the timeline disagrees with
+            // was never judged, and its limits must still be.
+            derive_late(rt, r, &mut parts, disordered)
         };
         // Every reading must end stored, duplicate or rejected: one the
         // core cannot evaluate is rejected with the core's reason.
@@ -303,6 +307,7 @@ fn derive_late(
     rt: &mut ChannelRuntime,
     r: &RawReading,
     parts: &mut BatchParts,
+    judge_limits: bool,
 ) -> Result<(), EstimatorError> {
     let amps = r.amps.map(|a| rt.def.current_sign.to_charge_positive(a));
     let temp_k = r
@@ -323,6 +328,10 @@ fn derive_late(
     if rt.max_seq.is_some_and(|m| r.seq > m) {
         rt.max_seq = Some(r.seq);
         parts.front_moved = true;
+    }
+    if judge_limits {
+        let cell_volts = r.volts / f64::from(rt.def.cells_in_series);
+        parts.changes.extend(late_limits(rt, r, amps, cell_volts));
     }
     let clamped = if ev.soc_clamped {
         flags::SOC_CLAMPED
@@ -346,6 +355,32 @@ fn derive_late(
         },
     ));
     Ok(())
+}
+
+/// The limit rules on an out-of-order reading's own values (no estimator
+/// figures: those follow the channel's order).
+fn late_limits(
+    rt: &mut ChannelRuntime,
+    r: &RawReading,
+    amps: Option<f64>,
+    cell_volts: f64,
+) -> Vec<AlertChange> {
+    let input = alerts::rules::RuleInput {
+        time_ns: r.time_unix_ns,
+        seq: r.seq,
+        cell_volts_terminal: cell_volts,
+        amps,
+        temp_c: r.temp_c,
+        delta_g_kj_per_mol: None,
+        driving_force_volts: None,
+        soc: None,
+        charging: false,
+        discharging: false,
+        resting: false,
+        dv_dt_mv_per_min: None,
+        soc_rate_per_s: None,
+    };
+    alerts::rules::evaluate_limits(&rt.rules, &mut rt.rule_state, &input)
 }
 
 /// A reading past the front: the estimator and the alert rules move on.

@@ -58,7 +58,7 @@ pub enum Reply {
 #[derive(Debug, thiserror::Error)]
 pub enum End<E: std::fmt::Display> {
     #[error(
-        "no batch for {} s (limits.stream_idle_timeout_s): stream closed to free its slot; reconnect and resend after last_stored_seq",
+        "no readings for {} s (limits.stream_idle_timeout_s): stream closed to free its slot; reconnect and resend after last_stored_seq",
         .0.as_secs()
     )]
     Idle(Duration),
@@ -87,8 +87,8 @@ pub enum AdmitError {
     ShuttingDown,
 }
 
-/// Ingest streams open per client (token name, or peer address on an
-/// open server): one client cannot take every slot.
+/// Ingest streams open per client (by token name and by peer address):
+/// one client cannot take every slot.
 #[derive(Clone, Default)]
 pub struct ClientSlots(Arc<Mutex<HashMap<String, u64>>>);
 
@@ -111,14 +111,15 @@ impl Drop for ClientSlot {
 }
 
 impl ClientSlots {
-    fn take(&self, client: String, limit: u64) -> Result<ClientSlot, AdmitError> {
+    /// A place for `client` if it holds fewer than `limit`.
+    pub fn take(&self, client: String, limit: u64) -> Option<ClientSlot> {
         let mut map = self.0.lock().expect("client map poisoned");
         let open = map.entry(client.clone()).or_insert(0);
         if *open >= limit {
-            return Err(AdmitError::ClientBusy { client, limit });
+            return None;
         }
         *open += 1;
-        Ok(ClientSlot {
+        Some(ClientSlot {
             slots: self.clone(),
             client,
         })
@@ -129,15 +130,16 @@ impl ClientSlots {
 pub struct Session {
     pub hub: Arc<Hub>,
     pub principal: Option<Principal>,
-    /// Token name, or the peer address on an open server.
-    pub client: String,
+    /// The peer's address (IP), or "unknown".
+    pub address: String,
     pub idle: Duration,
     pub max_streams_per_client: u64,
 }
 
 /// The slots an admitted stream holds until it ends.
 struct Admitted {
-    _client: ClientSlot,
+    _token: Option<ClientSlot>,
+    _address: ClientSlot,
     _server: Slot,
 }
 
@@ -153,7 +155,28 @@ impl Session {
         S: Stream<Item = Result<Inbound, E>> + Send + Unpin + 'static,
         E: std::fmt::Display + Send + 'static,
     {
-        let client = slots.take(self.client.clone(), self.max_streams_per_client)?;
+        let limit = self.max_streams_per_client;
+        let busy = |client: &str| AdmitError::ClientBusy {
+            client: client.to_string(),
+            limit,
+        };
+        // Held to the limit by token and by address alike: several tokens
+        // from one machine, or one token from many, take no more.
+        let by_token = match &self.principal {
+            Some(p) => {
+                let client = format!("token {:?}", p.name);
+                Some(
+                    slots
+                        .take(client.clone(), limit)
+                        .ok_or_else(|| busy(&client))?,
+                )
+            }
+            None => None,
+        };
+        let address = format!("address {}", self.address);
+        let by_address = slots
+            .take(address.clone(), limit)
+            .ok_or_else(|| busy(&address))?;
         if self.hub.is_shutting_down() {
             return Err(AdmitError::ShuttingDown);
         }
@@ -166,7 +189,8 @@ impl Session {
                 what: "ingest streams",
             })?;
         let admitted = Admitted {
-            _client: client,
+            _token: by_token,
+            _address: by_address,
             _server: server,
         };
         let (tx, rx) = mpsc::channel(REPLY_BUFFER);
@@ -182,8 +206,11 @@ impl Session {
         S: Stream<Item = Result<Inbound, E>> + Unpin,
         E: std::fmt::Display,
     {
+        // Idleness counts from the last batch that carried readings: an
+        // empty batch or a message without one keeps no slot alive.
+        let mut idle_from = tokio::time::Instant::now();
         loop {
-            let message = match self.next_message(&mut inbound).await {
+            let message = match self.next_message(&mut inbound, idle_from + self.idle).await {
                 Ok(Some(m)) => m,
                 Ok(None) => return,
                 Err(end) => {
@@ -191,6 +218,9 @@ impl Session {
                     return;
                 }
             };
+            if matches!(&message, Inbound::Batch { readings, .. } if !readings.is_empty()) {
+                idle_from = tokio::time::Instant::now();
+            }
             let reply = self.answer(message).await;
             let fatal = reply.is_err();
             if tx.send(reply).await.is_err() || fatal {
@@ -201,13 +231,17 @@ impl Session {
 
     /// The next message, or why there is none: idle limit, shutdown, a
     /// broken message. `Ok(None)` when the client closed its side.
-    async fn next_message<S, E>(&self, inbound: &mut S) -> Result<Option<Inbound>, End<E>>
+    async fn next_message<S, E>(
+        &self,
+        inbound: &mut S,
+        idle_at: tokio::time::Instant,
+    ) -> Result<Option<Inbound>, End<E>>
     where
         S: Stream<Item = Result<Inbound, E>> + Unpin,
         E: std::fmt::Display,
     {
         tokio::select! {
-            m = tokio::time::timeout(self.idle, inbound.next()) => match m {
+            m = tokio::time::timeout_at(idle_at, inbound.next()) => match m {
                 Ok(Some(Ok(m))) => Ok(Some(m)),
                 Ok(Some(Err(e))) => {
                     tracing::debug!(error = %e, "ingest stream ended by a bad message");

@@ -86,12 +86,30 @@ pub enum Location {
 }
 
 impl Location {
-    pub fn parse(db: &str) -> Location {
-        if db.starts_with("postgres://") || db.starts_with("postgresql://") {
-            Location::Postgres(db.to_string())
-        } else {
-            Location::File(PathBuf::from(db.strip_prefix("sqlite://").unwrap_or(db)))
+    /// The database `db` names, or why it names none: an empty setting
+    /// (SQLite would take it for a temporary database that vanishes at
+    /// exit) and schemes other than `sqlite://` and `postgres://` are
+    /// refused, not read as file names.
+    pub fn parse(db: &str) -> Result<Location, String> {
+        if db.trim().is_empty() {
+            return Err(
+                "empty: name a SQLite file (e.g. /var/lib/gibbsline/gibbsline.db) or a postgres:// URL"
+                    .into(),
+            );
         }
+        if db.starts_with("postgres://") || db.starts_with("postgresql://") {
+            return Ok(Location::Postgres(db.to_string()));
+        }
+        let path = db.strip_prefix("sqlite://").unwrap_or(db);
+        if let Some((scheme, _)) = path.split_once("://") {
+            return Err(format!(
+                "the scheme {scheme}:// is not served: a SQLite file path, sqlite://PATH or postgres://…"
+            ));
+        }
+        if path.is_empty() || path == ":memory:" {
+            return Err("names no file: a SQLite file path, sqlite://PATH or postgres://…".into());
+        }
+        Ok(Location::File(PathBuf::from(path)))
     }
 
     /// How logs and messages name it: the path, or the URL without its
@@ -235,6 +253,15 @@ pub enum StoreError {
     /// The database file could not be opened or created at all.
     #[error("database {}: cannot open it ({reason}); does its directory exist and may this user write there?", path.display())]
     Open { path: PathBuf, reason: String },
+    /// A database server that did not answer or refused the connection.
+    #[error(
+        "database server {url}: cannot connect within {seconds} s ({reason}); is PostgreSQL running there and is the address, port and user right?"
+    )]
+    Connect {
+        url: String,
+        seconds: u64,
+        reason: String,
+    },
     /// A write the database could not take, classified (see [`StorageFault`]).
     #[error("{}", fault.describe(path, detail))]
     Unwritable {
@@ -427,10 +454,16 @@ impl Store {
         // Unnamed statements, typed at each use, avoid that.
         let sep = if url.contains('?') { '&' } else { '?' };
         let url = &format!("{url}{sep}statement-cache-capacity=0");
+        probe(url).await.map_err(|reason| StoreError::Connect {
+            url: name.clone(),
+            seconds: PG_CONNECT.as_secs(),
+            reason,
+        })?;
         let writer = connect(url, 1, setup.clone())
             .await
-            .map_err(|e| StoreError::Open {
-                path: PathBuf::from(&name),
+            .map_err(|e| StoreError::Connect {
+                url: name.clone(),
+                seconds: PG_CONNECT.as_secs(),
                 reason: e.to_string(),
             })?;
         sqlx::migrate!("./migrations/postgres").run(&writer).await?;
@@ -569,6 +602,20 @@ impl Store {
         if let Some(lock) = &self.lock {
             lock.release();
         }
+    }
+}
+
+/// How long opening a PostgreSQL store waits for its server: a refused or
+/// silent port is reported in seconds, not after the pool's 30 s of retries.
+const PG_CONNECT: std::time::Duration = std::time::Duration::from_secs(5);
+
+/// One plain connection to `url` within [`PG_CONNECT`], before any pool.
+async fn probe(url: &str) -> Result<(), String> {
+    let options = AnyConnectOptions::from_str(url).map_err(|e| e.to_string())?;
+    match tokio::time::timeout(PG_CONNECT, sqlx::AnyConnection::connect_with(&options)).await {
+        Ok(Ok(conn)) => conn.close().await.map_err(|e| e.to_string()),
+        Ok(Err(e)) => Err(e.to_string()),
+        Err(_) => Err("no answer".into()),
     }
 }
 
@@ -1402,10 +1449,24 @@ pub async fn query_buckets(
     start_ns: i64,
     end_ns: i64,
     width_ns: i64,
+    max_buckets: u32,
 ) -> Result<Vec<BucketRow>, StoreError> {
     match rollup::tier_for(width_ns) {
-        Some(tier_s) => rollup::query(pool, channel_key, start_ns, end_ns, width_ns, tier_s).await,
-        None => rollup::query_readings(pool, channel_key, start_ns, end_ns, width_ns).await,
+        Some(tier_s) => {
+            rollup::query(
+                pool,
+                channel_key,
+                start_ns,
+                end_ns,
+                width_ns,
+                tier_s,
+                max_buckets,
+            )
+            .await
+        }
+        None => {
+            rollup::query_readings(pool, channel_key, start_ns, end_ns, width_ns, max_buckets).await
+        }
     }
 }
 

@@ -465,6 +465,7 @@ pub async fn query(
     end_ns: i64,
     width_ns: i64,
     tier_s: i64,
+    max_buckets: u32,
 ) -> Result<Vec<BucketRow>, StoreError> {
     let sql = concat!(
         "WITH agg AS ( \
@@ -479,7 +480,7 @@ pub async fn query(
         " FROM agg a CROSS JOIN rollups c \
            ON c.channel_key = $1 AND c.width_s = $5 AND c.last_ns = a.last_ns \
            AND c.start_ns >= $2 + a.bucket * $4 AND c.start_ns < $2 + (a.bucket + 1) * $4 \
-         ORDER BY a.bucket",
+         ORDER BY a.bucket LIMIT $6",
     );
     let rows = sqlx::query(sqlx::AssertSqlSafe(super::dialect(
         super::pool_engine(pool),
@@ -490,25 +491,42 @@ pub async fn query(
     .bind(end_ns)
     .bind(width_ns)
     .bind(tier_s)
+    .bind(i64::from(max_buckets))
     .fetch_all(pool)
     .await?;
     rows.iter().map(bucket_of).collect()
 }
 
 /// Buckets straight from the readings, for widths no tier tiles (under
-/// 10 s); the same columns as [`query`].
+/// 10 s); the same columns as [`query`]. At most `max_buckets`: the
+/// readings past the last of them are read but not kept, so a width of
+/// 1 ns over a million readings holds no more than the bound.
 pub async fn query_readings(
     pool: &Pool,
     key: i64,
     start_ns: i64,
     end_ns: i64,
     width_ns: i64,
+    max_buckets: u32,
 ) -> Result<Vec<BucketRow>, StoreError> {
     let mut conn = pool.begin().await?;
     let cells = run_cells(&mut conn, key).await?;
     let mut buckets: BTreeMap<i64, Summary> = BTreeMap::new();
+    let max = max_buckets as usize;
     super::chunks::for_each_between(&mut conn, key, start_ns, end_ns, |r| {
-        add_to(&mut buckets, (r.time_ns - start_ns) / width_ns, r, &cells);
+        let bucket = (r.time_ns - start_ns) / width_ns;
+        if buckets.len() < max || buckets.contains_key(&bucket) {
+            add_to(&mut buckets, bucket, r, &cells);
+        } else if buckets
+            .last_key_value()
+            .is_some_and(|(last, _)| bucket < *last)
+        {
+            // A reading earlier than the kept last bucket (readings come
+            // in time order per chunk, not across late chunks): keep the
+            // earliest buckets.
+            add_to(&mut buckets, bucket, r, &cells);
+            buckets.pop_last();
+        }
     })
     .await?;
     Ok(buckets

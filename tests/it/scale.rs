@@ -538,7 +538,7 @@ async fn a_write_under_a_moved_lease_is_fenced_out() {
         return;
     }
     let (_dir, db) = temp_db();
-    let location = Location::parse(&db.display().to_string());
+    let location = Location::parse(&db.display().to_string()).unwrap();
     let store = Store::open_location(&location, gibbsline::store::Durability::Full)
         .await
         .unwrap();
@@ -614,7 +614,7 @@ async fn both_schemas_have_the_same_tables_and_columns() {
         .await
         .unwrap();
     let pg = Store::open_location(
-        &Location::parse(&pg.display().to_string()),
+        &Location::parse(&pg.display().to_string()).unwrap(),
         Durability::Normal,
     )
     .await
