@@ -83,10 +83,15 @@ pub struct TokenSpec {
     pub role: Role,
     /// Hex SHA-256 of the token (`gibbsline token hash` prints it).
     pub sha256: String,
-    /// For rigs: the channels it may stream; empty means all.
+    /// For rigs: the channels it may stream, `["*"]` for every channel.
+    /// A rig token without any is refused at load (it would fail open or
+    /// be useless); other roles ignore it.
     #[serde(default)]
     pub channels: Vec<String>,
 }
+
+/// The `channels` entry that grants a rig every channel.
+pub const ALL_CHANNELS: &str = "*";
 
 #[derive(Debug, Clone)]
 struct Entry {
@@ -109,7 +114,7 @@ pub struct Principal {
     pub name: String,
     /// What it may do.
     pub role: Role,
-    /// For rigs: the channels granted; empty means all.
+    /// For rigs: the channels granted ([`ALL_CHANNELS`] for all).
     pub channels: Vec<String>,
 }
 
@@ -169,28 +174,48 @@ fn ct_eq(a: &[u8; 32], b: &[u8; 32]) -> bool {
 }
 
 impl TokenTable {
-    /// The table of `specs`; a digest that is not 64 hex digits is refused.
+    /// The table of `specs`. Refused, naming the entry: a digest that is
+    /// not 64 hex digits, a digest given twice (which entry would win is
+    /// not the operator's choice to leave to order), and a rig token
+    /// without `channels`.
     pub fn new(specs: &[TokenSpec]) -> Result<TokenTable, FieldError> {
-        let entries = specs
-            .iter()
-            .enumerate()
-            .map(|(i, s)| {
-                let digest = parse_hex32(&s.sha256.to_ascii_lowercase()).ok_or_else(|| {
-                    let shown: String = s.sha256.chars().take(80).collect();
-                    FieldError::new(
-                        format!("token[{i}] ({:?}).sha256", s.name),
-                        format!("{shown:?}"),
-                        "must be 64 hex digits (a SHA-256 digest)",
-                    )
-                })?;
-                Ok(Entry {
-                    digest,
-                    name: s.name.clone(),
-                    role: s.role,
-                    channels: s.channels.clone(),
-                })
-            })
-            .collect::<Result<Vec<_>, FieldError>>()?;
+        let mut entries: Vec<Entry> = Vec::with_capacity(specs.len());
+        for (i, s) in specs.iter().enumerate() {
+            let field = |key: &str| format!("token[{i}] ({:?}).{key}", s.name);
+            let digest = parse_hex32(&s.sha256.to_ascii_lowercase()).ok_or_else(|| {
+                let shown: String = s.sha256.chars().take(80).collect();
+                FieldError::new(
+                    field("sha256"),
+                    format!("{shown:?}"),
+                    "must be 64 hex digits (a SHA-256 digest)",
+                )
+            })?;
+            if let Some(j) = entries.iter().position(|e| e.digest == digest) {
+                return Err(FieldError::new(
+                    field("sha256"),
+                    s.sha256.clone(),
+                    format!(
+                        "the same digest as token[{j}] ({:?}): one token, two entries; give each holder a token of its own",
+                        entries[j].name
+                    ),
+                ));
+            }
+            if s.role == Role::Rig && s.channels.is_empty() {
+                return Err(FieldError::new(
+                    field("channels"),
+                    "[]",
+                    format!(
+                        "a rig token must name the channels it may stream, or [\"{ALL_CHANNELS}\"] for every channel"
+                    ),
+                ));
+            }
+            entries.push(Entry {
+                digest,
+                name: s.name.clone(),
+                role: s.role,
+                channels: s.channels.clone(),
+            });
+        }
         Ok(TokenTable { entries })
     }
 
@@ -246,13 +271,16 @@ impl TokenTable {
     }
 }
 
-/// A rig may stream only its granted channels (admins any).
+/// A rig may stream only its granted channels (admins any); a rig with
+/// none is granted none.
 pub fn check_channel(principal: Option<&Principal>, channel_id: &str) -> Result<(), AuthError> {
     match principal {
         Some(p)
             if p.role == Role::Rig
-                && !p.channels.is_empty()
-                && !p.channels.iter().any(|c| c == channel_id) =>
+                && !p
+                    .channels
+                    .iter()
+                    .any(|c| c == channel_id || c == ALL_CHANNELS) =>
         {
             Err(AuthError::ChannelNotGranted {
                 name: p.name.clone(),
@@ -351,6 +379,61 @@ mod tests {
             .check(Some("Bearer a1"), Permission::Ingest, "StreamReadings")
             .unwrap();
         assert!(check_channel(admin.as_ref(), "anything").is_ok());
+    }
+
+    #[test]
+    fn a_rig_without_channels_is_refused_and_star_grants_all() {
+        let spec = |name: &str, token: &str, channels: &[&str]| TokenSpec {
+            name: name.into(),
+            role: Role::Rig,
+            sha256: sha256_hex(token),
+            channels: channels.iter().map(|c| c.to_string()).collect(),
+        };
+        let e = TokenTable::new(&[spec("rig-b", "r2", &[])])
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains("token[0] (\"rig-b\").channels") && e.contains("[\"*\"]"),
+            "{e}"
+        );
+        let t = TokenTable::new(&[spec("rig-all", "r3", &["*"])]).unwrap();
+        let p = t
+            .check(Some("Bearer r3"), Permission::Ingest, "StreamReadings")
+            .unwrap();
+        assert!(check_channel(p.as_ref(), "any-channel").is_ok());
+        // A principal with no channels (as no table builds any more) is
+        // granted none: the rule fails closed.
+        let none = Principal {
+            name: "x".into(),
+            role: Role::Rig,
+            channels: vec![],
+        };
+        assert!(check_channel(Some(&none), "any-channel").is_err());
+    }
+
+    #[test]
+    fn one_digest_in_two_entries_is_refused_naming_both() {
+        let same = sha256_hex("shared");
+        let e = TokenTable::new(&[
+            TokenSpec {
+                name: "lead".into(),
+                role: Role::Admin,
+                sha256: same.clone(),
+                channels: vec![],
+            },
+            TokenSpec {
+                name: "screen".into(),
+                role: Role::Viewer,
+                sha256: same.to_ascii_uppercase(),
+                channels: vec![],
+            },
+        ])
+        .unwrap_err()
+        .to_string();
+        assert!(
+            e.contains("token[1] (\"screen\").sha256") && e.contains("token[0] (\"lead\")"),
+            "{e}"
+        );
     }
 
     #[test]

@@ -19,6 +19,13 @@ pub(crate) fn run(cmd: &TokenCommand) -> anyhow::Result<()> {
                     UsageError("--channel: only a rig token is held to channels".into()).into(),
                 );
             }
+            if role == Role::Rig && channel.is_empty() {
+                return Err(UsageError(format!(
+                    "--channel: a rig token must name the channels it may stream (repeat --channel), or --channel '{}' for every channel",
+                    gibbsline::auth::ALL_CHANNELS
+                ))
+                .into());
+            }
             // 32 bytes from the kernel's CSPRNG: 256 bits, beyond guessing.
             let mut secret = [0u8; 32];
             std::io::Read::read_exact(&mut std::fs::File::open("/dev/urandom")?, &mut secret)?;

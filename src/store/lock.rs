@@ -15,8 +15,22 @@ pub(crate) struct DbLock {
     file: Mutex<Option<File>>,
 }
 
+/// The lock beside the file itself, not beside the path's text: through
+/// a symlink, a `..` or a second spelling, two servers must meet at one
+/// lock. A database not yet created is resolved through its directory.
 fn lock_path(db: &Path) -> PathBuf {
-    let mut name = db.as_os_str().to_owned();
+    let real = std::fs::canonicalize(db).unwrap_or_else(|_| match (db.parent(), db.file_name()) {
+        (Some(dir), Some(name)) => {
+            let dir = if dir.as_os_str().is_empty() {
+                Path::new(".")
+            } else {
+                dir
+            };
+            std::fs::canonicalize(dir).map_or_else(|_| db.to_path_buf(), |d| d.join(name))
+        }
+        _ => db.to_path_buf(),
+    });
+    let mut name = real.into_os_string();
     name.push(".lock");
     PathBuf::from(name)
 }
@@ -79,5 +93,39 @@ impl DbLock {
     /// Drops the lock (closing the file releases it).
     pub(crate) fn release(&self) {
         self.file.lock().expect("lock file mutex poisoned").take();
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn one_file_reached_through_a_symlink_or_a_second_spelling_is_one_lock() {
+        let dir = tempfile::tempdir().unwrap();
+        let real = dir.path().join("rig.db");
+        std::fs::write(&real, b"").unwrap();
+        let link = dir.path().join("link.db");
+        std::os::unix::fs::symlink(&real, &link).unwrap();
+        let first = DbLock::acquire(&real).unwrap();
+        for other in [link.clone(), dir.path().join(".").join("rig.db")] {
+            match DbLock::acquire(&other) {
+                Err(StoreError::InUse { holder, .. }) => {
+                    assert!(holder.contains(&format!("pid {}", std::process::id())))
+                }
+                other => panic!("second lock through another path: {other:?}"),
+            }
+        }
+        first.release();
+        // A database not created yet is keyed by its real directory.
+        let missing = dir.path().join("new.db");
+        let a = DbLock::acquire(&missing).unwrap();
+        let linked_dir = dir.path().join("dirlink");
+        std::os::unix::fs::symlink(dir.path(), &linked_dir).unwrap();
+        assert!(matches!(
+            DbLock::acquire(&linked_dir.join("new.db")),
+            Err(StoreError::InUse { .. })
+        ));
+        a.release();
     }
 }

@@ -223,6 +223,23 @@ plausible_max_cell_volts = 2.0
     }
 }
 
+/// A rig token without channels would either fail open or admit nothing:
+/// `token new` refuses to make one and says how to grant all.
+#[test]
+fn token_new_for_a_rig_needs_its_channels() {
+    let out = bin()
+        .args(["token", "new", "--name", "bench-9 rig", "--role", "rig"])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2), "{out:?}");
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        stderr.contains("--channel") && stderr.contains("'*'"),
+        "{stderr}"
+    );
+    assert!(out.stdout.is_empty(), "no token may be shown: {out:?}");
+}
+
 /// `token new` prints a token once and the entry that admits it; `token
 /// hash` gives the same digest; the config loads and the table knows the
 /// token's holder, role and channels.

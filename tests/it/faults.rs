@@ -212,6 +212,14 @@ async fn a_second_server_on_one_file_is_refused_naming_the_holder() {
         "{message}"
     );
     assert!(message.contains(&first.addr.to_string()), "{message}");
+    // Through a symlink it is still the same file, and still refused.
+    let link = db.with_file_name("through-a-link.db");
+    std::os::unix::fs::symlink(&db, &link).unwrap();
+    let message = refusal_at_start(&link).await;
+    assert!(
+        message.contains("in use by another gibbsline server"),
+        "through a symlink: {message}"
+    );
     first.stop().await;
     // Once the holder has stopped, the file is free again.
     let again = Server::start(&db).await;

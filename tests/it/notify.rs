@@ -335,3 +335,144 @@ async fn mqtt_carries_alert_events_and_channel_state() {
     assert_eq!(state.unwrap()["seq"], 10);
     server.stop().await;
 }
+
+/// A broker of a few lines: accepts one client, acknowledges every QoS-1
+/// publish to a state topic, and those to other topics only once told to.
+/// It records (topic, acknowledged) in arrival order.
+#[derive(Default)]
+struct PickyBroker {
+    ack_all: AtomicBool,
+    seen: Mutex<Vec<(String, bool)>>,
+}
+
+impl PickyBroker {
+    async fn start() -> (std::net::SocketAddr, Arc<PickyBroker>) {
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let addr = listener.local_addr().unwrap();
+        let broker = Arc::new(PickyBroker::default());
+        let b = broker.clone();
+        tokio::spawn(async move {
+            while let Ok((conn, _)) = listener.accept().await {
+                let b = b.clone();
+                tokio::spawn(async move {
+                    let _ = b.serve(conn).await;
+                });
+            }
+        });
+        (addr, broker)
+    }
+
+    async fn serve(&self, mut conn: tokio::net::TcpStream) -> std::io::Result<()> {
+        use tokio::io::{AsyncReadExt, AsyncWriteExt};
+        loop {
+            let first = conn.read_u8().await?;
+            let (mut len, mut shift) = (0usize, 0);
+            loop {
+                let b = conn.read_u8().await?;
+                len |= usize::from(b & 0x7f) << shift;
+                shift += 7;
+                if b & 0x80 == 0 {
+                    break;
+                }
+            }
+            let mut body = vec![0u8; len];
+            conn.read_exact(&mut body).await?;
+            match first >> 4 {
+                1 => conn.write_all(&[0x20, 0x02, 0x00, 0x00]).await?,
+                3 => {
+                    let topic_len = usize::from(u16::from_be_bytes([body[0], body[1]]));
+                    let topic = String::from_utf8_lossy(&body[2..2 + topic_len]).to_string();
+                    let qos = (first >> 1) & 3;
+                    let ack = qos == 1
+                        && (topic.contains("/state/") || self.ack_all.load(Ordering::SeqCst));
+                    if ack {
+                        let pkid = &body[2 + topic_len..4 + topic_len];
+                        conn.write_all(&[0x40, 0x02, pkid[0], pkid[1]]).await?;
+                    }
+                    self.seen.lock().unwrap().push((topic, ack));
+                }
+                12 => conn.write_all(&[0xd0, 0x00]).await?,
+                14 => return Ok(()),
+                _ => {}
+            }
+        }
+    }
+
+    /// State messages acknowledged after the first alert publish.
+    fn state_acks_after_alert(&self) -> usize {
+        let seen = self.seen.lock().unwrap();
+        let Some(first) = seen.iter().position(|(t, _)| t.contains("/alerts/")) else {
+            return 0;
+        };
+        seen[first..]
+            .iter()
+            .filter(|(t, acked)| t.contains("/state/") && *acked)
+            .count()
+    }
+}
+
+async fn mqtt_delivery(ch: tonic::transport::Channel) -> pb::Delivery {
+    let deliveries = AlertServiceClient::new(ch)
+        .list_deliveries(pb::ListDeliveriesRequest::default())
+        .await
+        .unwrap()
+        .into_inner()
+        .deliveries;
+    deliveries
+        .into_iter()
+        .find(|d| d.target.contains("mqtt"))
+        .unwrap_or_else(|| panic!("no MQTT delivery"))
+}
+
+/// With state messages on a timer, their PUBACKs arrive while an alert
+/// waits for its own: only the alert's packet id may count it delivered.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_alert_is_delivered_on_its_own_puback_not_a_state_message() {
+    let (addr, broker) = PickyBroker::start().await;
+    let (_dir, db) = temp_db();
+    let mut config = config_for(&db);
+    config.notify.mqtt = Some(gibbsline::notify::MqttSpec {
+        broker: addr.to_string(),
+        client_id: "picky-test".into(),
+        topic_prefix: "lab".into(),
+        min_severity: gibbsline::alerts::Severity::Critical,
+        channels: vec![],
+        state_interval_s: 1,
+    });
+    let server = Server::start_with(config, "127.0.0.1:0").await;
+    let ch = server.channel().await;
+    put_channel(&ch, channel_def("bus-2", "daniell")).await;
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    let mut one = crossing_batch("bus-2", now_ns() - 60_000_000_000, 1);
+    // One raise, no clear: a single event to deliver.
+    one.readings.truncate(5);
+    send_batches(&mut ingest, vec![one]).await;
+
+    let deadline = Instant::now() + Duration::from_secs(8);
+    while broker.state_acks_after_alert() < 2 {
+        assert!(
+            Instant::now() < deadline,
+            "the alert and two acknowledged state messages within 8 s: {:?}",
+            broker.seen.lock().unwrap()
+        );
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    let waiting = mqtt_delivery(ch.clone()).await;
+    assert_eq!(
+        waiting.delivered_unix_ns, None,
+        "counted delivered on a state message's PUBACK: {waiting:?}"
+    );
+
+    // Once the broker acknowledges alerts too, the retry is delivered.
+    broker.ack_all.store(true, Ordering::SeqCst);
+    let deadline = Instant::now() + Duration::from_secs(30);
+    loop {
+        let d = mqtt_delivery(ch.clone()).await;
+        if d.delivered_unix_ns.is_some() {
+            break;
+        }
+        assert!(Instant::now() < deadline, "not delivered in 30 s: {d:?}");
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
+    server.stop().await;
+}
