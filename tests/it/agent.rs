@@ -221,6 +221,113 @@ async fn spooled_readings_survive_a_server_outage_and_an_agent_kill() {
     server.wait().unwrap();
 }
 
+/// The agent's /metrics and /health pages, once it answers (10 s).
+async fn agent_page(metrics: &str, path: &str) -> crate::web::Answer {
+    let addr: std::net::SocketAddr = metrics.parse().unwrap();
+    for _ in 0..200 {
+        if tokio::net::TcpStream::connect(addr).await.is_ok() {
+            return crate::web::request(addr, "GET", path, None, None).await;
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    panic!("the agent's metrics endpoint {metrics} did not answer in 10 s");
+}
+
+/// A spool on a disk with no room left: the agent cannot keep a reading
+/// (each is spooled before it is sent), so it must say so, naming the
+/// spool, in its log, its metrics and its health; and measure again once
+/// there is room.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_full_spool_disk_is_named_in_the_log_the_metrics_and_health() {
+    let Some(disk) = crate::faults::SmallDisk::mount("1m") else {
+        return;
+    };
+    let (dir, db) = temp_db();
+    let (instrument, _) = instrument().await;
+    let addr = free_addr();
+    let off: [&std::ffi::OsStr; 2] = ["--http-listen".as_ref(), "off".as_ref()];
+    let mut server = spawn_server_with(&db, &addr, &off);
+    let ch = connect(&addr).await;
+    for id in ["rig-a", "rig-b"] {
+        put_channel(&ch, channel_def(id, "vanadium-redox")).await;
+    }
+    let config = dir.path().join("rig.toml");
+    let spool = disk.path().join("spool.db");
+    let metrics = free_addr();
+    let log = dir.path().join("agent.log");
+    // The spool's file and tables, made while there was room, by an agent
+    // that reaches no server (it writes nothing more).
+    std::fs::write(
+        &config,
+        rig_toml(&free_addr(), instrument, &spool, &metrics),
+    )
+    .unwrap();
+    let mut first = spawn_agent(&config, &dir.path().join("first.log"));
+    agent_page(&metrics, "/health").await;
+    first.kill().unwrap();
+    first.wait().unwrap();
+    let fill = disk.path().join("fill");
+    let mut filler = std::fs::File::create(&fill).unwrap();
+    while std::io::Write::write_all(&mut filler, &[0u8; 4096]).is_ok() {}
+    drop(filler);
+
+    std::fs::write(&config, rig_toml(&addr, instrument, &spool, &metrics)).unwrap();
+    let mut agent = spawn_agent(&config, &log);
+    let mut health = agent_page(&metrics, "/health").await;
+    for _ in 0..200 {
+        if health.status == 503 {
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+        health = agent_page(&metrics, "/health").await;
+    }
+    let why = String::from_utf8_lossy(&health.body).to_string();
+    assert_eq!(health.status, 503, "{why}");
+    let named = format!("spool {}: cannot write", spool.display());
+    assert!(
+        why.contains(&named) && why.contains("disk is full"),
+        "{why}"
+    );
+    let page = agent_page(&metrics, "/metrics").await;
+    let text = String::from_utf8(page.body).unwrap();
+    assert!(
+        text.contains("\ngibbsline_rig_spool_writable 0\n"),
+        "{text}"
+    );
+    assert!(
+        !text.contains("\ngibbsline_rig_spool_write_errors_total 0\n"),
+        "{text}"
+    );
+    let log_text = std::fs::read_to_string(&log).unwrap();
+    assert!(log_text.contains(&named), "{log_text}");
+    assert!(
+        !log_text.contains("server link"),
+        "a spool fault is not blamed on the server:\n{log_text}"
+    );
+
+    // Room again: the agent measures and streams by itself.
+    // (Its link retries at most 10 s apart.)
+    std::fs::remove_file(&fill).unwrap();
+    let mut rows = Vec::new();
+    for _ in 0..300 {
+        rows = stored(&addr, "rig-a").await;
+        if !rows.is_empty() {
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
+    assert_eq!(
+        rows.first().map(|r| r.seq),
+        Some(1),
+        "measuring again within 30 s"
+    );
+    assert_eq!(agent_page(&metrics, "/health").await.status, 200);
+    agent.kill().unwrap();
+    agent.wait().unwrap();
+    server.kill().unwrap();
+    server.wait().unwrap();
+}
+
 /// A file an instrument program writes: `;`-separated with decimal
 /// commas, elapsed seconds, mA; lines appended, one arriving in two
 /// parts, the agent SIGKILLed and restarted, then the file cut short and

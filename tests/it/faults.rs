@@ -77,12 +77,12 @@ async fn resume_point(ch: &Channel, channel: &str) -> u64 {
 
 /// A small tmpfs: the real "disk full", as root. Elsewhere the test says
 /// why it did not run (CI runs as root).
-struct SmallDisk {
+pub(crate) struct SmallDisk {
     dir: tempfile::TempDir,
 }
 
 impl SmallDisk {
-    fn mount(size: &str) -> Option<SmallDisk> {
+    pub(crate) fn mount(size: &str) -> Option<SmallDisk> {
         let dir = tempfile::tempdir().unwrap();
         let ok = Command::new("mount")
             .args(["-t", "tmpfs", "-o", &format!("size={size}"), "tmpfs"])
@@ -106,7 +106,7 @@ impl SmallDisk {
         assert!(ok, "remount failed");
     }
 
-    fn path(&self) -> &Path {
+    pub(crate) fn path(&self) -> &Path {
         self.dir.path()
     }
 }

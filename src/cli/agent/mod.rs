@@ -335,23 +335,39 @@ pub(crate) fn load(path: &std::path::Path) -> Result<(RigFile, Vec<Source>), Usa
     Ok((file, sources))
 }
 
-/// `/metrics` for the agent (Prometheus text).
+/// `/metrics` for the agent (Prometheus text), and `/health`: 200 while
+/// the spool takes writes, 503 naming the spool and why while it cannot.
 async fn serve_metrics(listener: tokio::net::TcpListener, spool: Arc<spool::Spool>) {
-    let app = axum::Router::new().route(
-        "/metrics",
-        axum::routing::get(move || {
-            let page = spool.render_metrics();
-            async move {
-                (
-                    [(
-                        axum::http::header::CONTENT_TYPE,
-                        "text/plain; version=0.0.4",
-                    )],
-                    page,
-                )
-            }
-        }),
-    );
+    let for_health = spool.clone();
+    let app = axum::Router::new()
+        .route(
+            "/metrics",
+            axum::routing::get(move || {
+                let page = spool.render_metrics();
+                async move {
+                    (
+                        [(
+                            axum::http::header::CONTENT_TYPE,
+                            "text/plain; version=0.0.4",
+                        )],
+                        page,
+                    )
+                }
+            }),
+        )
+        .route(
+            "/health",
+            axum::routing::get(move || {
+                let answer = match for_health.fault() {
+                    None => (axum::http::StatusCode::OK, "ok\n".to_string()),
+                    Some(why) => (
+                        axum::http::StatusCode::SERVICE_UNAVAILABLE,
+                        format!("{why}\n"),
+                    ),
+                };
+                async move { answer }
+            }),
+        );
     if let Err(e) = axum::serve(listener, app).await {
         tracing::error!(error = %e, "agent metrics endpoint stopped");
     }

@@ -11,6 +11,12 @@ use std::sync::atomic::{AtomicU64, Ordering::SeqCst};
 
 pub(crate) struct Spool {
     pool: SqlitePool,
+    /// The file, for every message about it.
+    path: std::path::PathBuf,
+    /// Why the last write failed, until one succeeds: the log says it
+    /// once, the metrics and `/health` for as long as it lasts.
+    fault: std::sync::Mutex<Option<String>>,
+    pub(crate) write_errors_total: AtomicU64,
     max_rows: u64,
     /// Readings older than this go unsent.
     max_age: Option<std::time::Duration>,
@@ -83,13 +89,19 @@ impl Spool {
             .connect_with(options)
             .await
             .map_err(|e| anyhow::anyhow!("spool {}: {e}", path.display()))?;
-        sqlx::raw_sql(SCHEMA).execute(&pool).await?;
+        sqlx::raw_sql(SCHEMA)
+            .execute(&pool)
+            .await
+            .map_err(|e| SpoolFault::of(path, &e.into()))?;
         let rows: i64 = sqlx::query("SELECT COUNT(*) AS n FROM spooled")
             .fetch_one(&pool)
             .await?
             .get("n");
         Ok(Spool {
             pool,
+            path: path.to_path_buf(),
+            fault: std::sync::Mutex::new(None),
+            write_errors_total: AtomicU64::new(0),
             max_rows,
             max_age,
             rows: AtomicU64::new(rows as u64),
@@ -111,12 +123,12 @@ impl Spool {
     /// Sets where a channel's seqs go on when the spool did not know
     /// (a new spool): after what the server has.
     pub(crate) async fn learn_next_seq(&self, channel_id: &str, next: u64) -> anyhow::Result<()> {
-        sqlx::query("INSERT OR IGNORE INTO next_seq (channel_id, next) VALUES (?, ?)")
+        let done = sqlx::query("INSERT OR IGNORE INTO next_seq (channel_id, next) VALUES (?, ?)")
             .bind(channel_id)
             .bind(next as i64)
             .execute(&self.pool)
-            .await?;
-        Ok(())
+            .await;
+        self.written(done.map(|_| ()).map_err(Into::into))
     }
 
     /// Stores readings and the next seq together; drops the oldest
@@ -133,6 +145,17 @@ impl Spool {
     /// [`Spool::append`], with how far a followed file has been read
     /// stored in the same transaction: a restart reads on from there.
     pub(crate) async fn append_at(
+        &self,
+        channel_id: &str,
+        rows: &[Spooled],
+        next: u64,
+        pos: Option<FilePos>,
+    ) -> anyhow::Result<u64> {
+        let done = self.append_in_one(channel_id, rows, next, pos).await;
+        self.written(done)
+    }
+
+    async fn append_in_one(
         &self,
         channel_id: &str,
         rows: &[Spooled],
@@ -211,12 +234,12 @@ impl Spool {
 
     /// Forgets the channel's readings up to `seq` (the server has them).
     pub(crate) async fn trim(&self, channel_id: &str, seq: u64) -> anyhow::Result<()> {
-        let gone = sqlx::query("DELETE FROM spooled WHERE channel_id = ? AND seq <= ?")
+        let done = sqlx::query("DELETE FROM spooled WHERE channel_id = ? AND seq <= ?")
             .bind(channel_id)
             .bind(seq as i64)
             .execute(&self.pool)
-            .await?
-            .rows_affected();
+            .await;
+        let gone = self.written(done.map_err(Into::into))?.rows_affected();
         self.rows
             .fetch_sub(gone.min(self.rows.load(SeqCst)), SeqCst);
         self.acked_total.fetch_add(gone, SeqCst);
@@ -235,10 +258,51 @@ impl Spool {
         }))
     }
 
+    /// Notes how a write went: a failure is kept, with the file's path,
+    /// until a write succeeds again.
+    fn written<T>(&self, done: anyhow::Result<T>) -> anyhow::Result<T> {
+        let mut fault = self.fault.lock().expect("spool fault poisoned");
+        match done {
+            Ok(v) => {
+                if fault.take().is_some() {
+                    tracing::info!(spool = %self.path.display(), "spool writable again");
+                }
+                Ok(v)
+            }
+            Err(e) => {
+                self.write_errors_total.fetch_add(1, SeqCst);
+                let failed = SpoolFault::of(&self.path, &e);
+                if fault.as_deref() != Some(failed.0.as_str()) {
+                    tracing::error!(spool = %self.path.display(), "{failed}");
+                }
+                *fault = Some(failed.0.clone());
+                Err(failed.into())
+            }
+        }
+    }
+
+    /// Why the spool cannot be written now, if it cannot.
+    pub(crate) fn fault(&self) -> Option<String> {
+        self.fault.lock().expect("spool fault poisoned").clone()
+    }
+
     /// The agent's metrics, Prometheus text.
     pub(crate) fn render_metrics(&self) -> String {
         let mut page = String::new();
+        let writable = u64::from(self.fault().is_none());
         for (name, kind, help, value) in [
+            (
+                "gibbsline_rig_spool_writable",
+                "gauge",
+                "1 while the spool takes writes; 0 while it cannot (nothing is measured then).",
+                writable,
+            ),
+            (
+                "gibbsline_rig_spool_write_errors_total",
+                "counter",
+                "Spool writes that failed (a full disk, a read-only file).",
+                self.write_errors_total.load(SeqCst),
+            ),
             (
                 "gibbsline_rig_spooled_readings",
                 "gauge",
@@ -273,6 +337,26 @@ impl Spool {
 
     pub(crate) async fn close(&self) {
         self.pool.close().await;
+    }
+}
+
+/// A spool write that failed, naming the file: nothing is measured or
+/// sent until the spool takes writes again (a reading is spooled first).
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub(crate) struct SpoolFault(String);
+
+impl SpoolFault {
+    fn of(path: &Path, e: &anyhow::Error) -> SpoolFault {
+        let disk = if e.to_string().contains("full") {
+            "its disk is full"
+        } else {
+            "is its disk full, or the file or directory read-only?"
+        };
+        SpoolFault(format!(
+            "spool {}: cannot write ({e}); {disk}: no reading is measured or sent until it can be written",
+            path.display()
+        ))
     }
 }
 

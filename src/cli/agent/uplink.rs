@@ -34,6 +34,12 @@ pub(crate) async fn run(
     loop {
         match session(&addr, &channel, &spool, &wake, &known).await {
             Ok(()) => retry = RETRY_FIRST,
+            // A spool fault was logged where it happened, with its path;
+            // it is not the server's doing.
+            Err(e) if e.downcast_ref::<super::spool::SpoolFault>().is_some() => {
+                tokio::time::sleep(retry).await;
+                retry = (retry * 2).min(RETRY_MAX);
+            }
             Err(e) => {
                 tracing::warn!(channel, error = %e, retry_ms = retry.as_millis() as u64, "server link");
                 tokio::time::sleep(retry).await;
