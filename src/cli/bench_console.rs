@@ -75,6 +75,7 @@ pub(crate) async fn run(args: &BenchConsoleArgs) -> anyhow::Result<()> {
             min_severity: gibbsline::alerts::Severity::Info,
             channels: vec![],
             secret: SECRET.into(),
+            allow_link_local: false,
         }];
     };
     let local =

@@ -301,6 +301,17 @@ fn block_on<F: std::future::Future<Output = anyhow::Result<()>>>(f: F) -> anyhow
 }
 
 /// Parses durations like 90s, 5m, 2h, 1d, 250ms (a bare number is seconds).
+/// A field of a file as an error message shows it: quoted, and cut to
+/// its first 60 characters with its length said (a 100 MB garbled field
+/// must not become a 100 MB message).
+pub(crate) fn excerpt(text: &str) -> String {
+    const SHOWN: usize = 60;
+    match text.char_indices().nth(SHOWN) {
+        None => format!("{text:?}"),
+        Some((end, _)) => format!("{:?}… ({} bytes)", &text[..end], text.len()),
+    }
+}
+
 pub(crate) fn parse_duration(text: &str) -> Result<std::time::Duration, UsageError> {
     let t = text.trim();
     let split = t.find(|c: char| c.is_ascii_alphabetic()).unwrap_or(t.len());
@@ -325,4 +336,20 @@ pub(crate) fn parse_duration(text: &str) -> Result<std::time::Duration, UsageErr
         return Err(UsageError(format!("{text:?} is out of range")));
     }
     Ok(std::time::Duration::from_secs_f64(secs))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_long_field_is_shown_cut_with_its_length() {
+        assert_eq!(excerpt("1,5"), "\"1,5\"");
+        let long = "x".repeat(100_000_000);
+        let shown = excerpt(&long);
+        assert!(shown.len() < 100, "{shown}");
+        assert!(shown.ends_with("… (100000000 bytes)"), "{shown}");
+        // Cut on a character, not inside one.
+        assert!(excerpt(&"é".repeat(100)).starts_with("\"éé"));
+    }
 }

@@ -3,7 +3,8 @@
 //! store's outbox in the transaction that stores the event
 //! (`store::outbox`); one courier per target sends its rows in event
 //! order, records each attempt through the writer, and retries a failure
-//! with exponential backoff (1 s doubling to 5 min) before anything after
+//! with exponential backoff (1 s doubling to 10 s: a receiver back from an
+//! outage is sent to within seconds) before anything after
 //! it: at least once, in order, across restarts. Ingest never waits for
 //! a target: couriers only read the store and queue small writer jobs.
 
@@ -27,8 +28,9 @@ Hardware interlocks, local codes and licensed practice govern.";
 const PENDING_PAGE: u32 = 64;
 /// First retry after a failure; doubles per attempt up to [`MAX_BACKOFF`].
 const FIRST_BACKOFF: Duration = Duration::from_secs(1);
-/// Longest wait between attempts.
-const MAX_BACKOFF: Duration = Duration::from_secs(300);
+/// Longest wait between attempts: one small request per 10 s to an
+/// absent receiver costs nothing, and a returning one is served at once.
+const MAX_BACKOFF: Duration = Duration::from_secs(10);
 /// A courier with nothing to send looks again after this (events wake it sooner).
 const IDLE_LOOK: Duration = Duration::from_secs(2);
 
@@ -61,6 +63,11 @@ pub struct WebhookSpec {
     pub channels: Vec<String>,
     /// Key of the HMAC-SHA256 signature (at least 16 characters).
     pub secret: String,
+    /// Send to a link-local address (169.254.0.0/16, fe80::/10) or a cloud
+    /// metadata name; refused unless set, for a URL and for what its name
+    /// resolves to.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub allow_link_local: bool,
 }
 
 /// The lab's MQTT broker.
@@ -111,8 +118,16 @@ impl NotifySettings {
         let mut names = std::collections::BTreeSet::new();
         for (i, w) in self.webhook.iter().enumerate() {
             let field = |f: &str| format!("notify.webhook[{i}].{f}");
-            webhook::Endpoint::parse(&w.url)
-                .map_err(|e| FieldError::new(field("url"), &w.url, e))?;
+            let shown: String = w.url.chars().take(200).collect::<String>().escape_debug().to_string();
+            let endpoint = webhook::Endpoint::parse(&w.url)
+                .map_err(|e| FieldError::new(field("url"), &shown, e))?;
+            if !w.allow_link_local && webhook::names_link_local(endpoint.host()) {
+                return Err(FieldError::new(
+                    field("url"),
+                    &shown,
+                    "a link-local or cloud-metadata address; set allow_link_local = true on this webhook if that is meant",
+                ));
+            }
             if w.secret.chars().count() < 16 {
                 return Err(FieldError::new(
                     field("secret"),
@@ -324,9 +339,9 @@ mod tests {
     use super::*;
 
     #[test]
-    fn backoff_doubles_from_one_second_to_five_minutes() {
-        let waits: Vec<u64> = (1..=12).map(|a| backoff(a).as_secs()).collect();
-        assert_eq!(waits, [1, 2, 4, 8, 16, 32, 64, 128, 256, 300, 300, 300]);
+    fn backoff_doubles_from_one_second_to_ten() {
+        let waits: Vec<u64> = (1..=6).map(|a| backoff(a).as_secs()).collect();
+        assert_eq!(waits, [1, 2, 4, 8, 10, 10]);
         assert_eq!(backoff(u32::MAX), MAX_BACKOFF);
     }
 
@@ -338,10 +353,19 @@ mod tests {
             min_severity: Severity::Warning,
             channels: vec![],
             secret: secret.into(),
+            allow_link_local: false,
         };
         let cases = [
             (
                 hook("ftp://x/y", "0123456789abcdef"),
+                "notify.webhook[0].url",
+            ),
+            (
+                hook("http://169.254.169.254/latest", "0123456789abcdef"),
+                "notify.webhook[0].url",
+            ),
+            (
+                hook("http://x/y\r\nX-Extra: 1", "0123456789abcdef"),
                 "notify.webhook[0].url",
             ),
             (hook("http://x:1/y", "short"), "notify.webhook[0].secret"),
@@ -358,6 +382,14 @@ mod tests {
                 "a secret is never repeated: {e}"
             );
         }
+        let allowed = NotifySettings {
+            webhook: vec![WebhookSpec {
+                allow_link_local: true,
+                ..hook("http://169.254.10.2:8080/x", "0123456789abcdef")
+            }],
+            mqtt: None,
+        };
+        assert!(allowed.validate().is_ok());
         let twice = NotifySettings {
             webhook: vec![
                 hook("http://a/x", "0123456789abcdef"),

@@ -31,8 +31,12 @@ pub(super) struct Endpoint {
 }
 
 impl Endpoint {
-    /// `http[s]://host[:port][/path]`.
+    /// `http[s]://host[:port][/path]`. A URL with a control character or
+    /// a space is refused (CR/LF in it would write headers of their own).
     pub(super) fn parse(url: &str) -> Result<Endpoint, &'static str> {
+        if url.chars().any(|c| c.is_control() || c == ' ') {
+            return Err("contains a control character or a space (CR/LF would inject headers)");
+        }
         let (https, rest) = if let Some(r) = url.strip_prefix("https://") {
             (true, r)
         } else if let Some(r) = url.strip_prefix("http://") {
@@ -63,8 +67,36 @@ impl Endpoint {
     }
 }
 
+/// Link-local addresses (169.254.0.0/16, fe80::/10), where cloud metadata
+/// services answer with credentials: an alert body must not be sent there
+/// by a config typo or a hostile DNS answer unless the operator said so.
+pub(super) fn is_link_local(ip: std::net::IpAddr) -> bool {
+    match ip {
+        std::net::IpAddr::V4(v4) => v4.is_link_local(),
+        std::net::IpAddr::V6(v6) => {
+            v6.to_ipv4_mapped().is_some_and(|v4| v4.is_link_local())
+                || (v6.segments()[0] & 0xffc0) == 0xfe80
+        }
+    }
+}
+
+/// A host that names a metadata service or a link-local address.
+pub(super) fn names_link_local(host: &str) -> bool {
+    let host = host.trim_end_matches('.').to_ascii_lowercase();
+    host == "metadata.google.internal"
+        || host == "metadata"
+        || host.parse::<std::net::IpAddr>().is_ok_and(is_link_local)
+}
+
+impl Endpoint {
+    pub(super) fn host(&self) -> &str {
+        &self.host
+    }
+}
+
 pub(super) struct Webhook {
     endpoint: Endpoint,
+    allow_link_local: bool,
     authority: String,
     secret: Vec<u8>,
     tls: Option<TlsConnector>,
@@ -77,6 +109,7 @@ impl Webhook {
         Webhook {
             authority: format!("{}:{}", endpoint.host, endpoint.port),
             endpoint,
+            allow_link_local: spec.allow_link_local,
             secret: spec.secret.as_bytes().to_vec(),
             tls,
         }
@@ -84,12 +117,7 @@ impl Webhook {
 
     /// POSTs `body`; `Ok` on a 2xx answer.
     pub(super) async fn post(&self, event_id: u64, body: &[u8]) -> Result<(), String> {
-        let tcp = within(TcpStream::connect((
-            self.endpoint.host.as_str(),
-            self.endpoint.port,
-        )))
-        .await?
-        .map_err(|e| format!("connect {}: {e}", self.authority))?;
+        let tcp = within(self.connect()).await??;
         let _ = tcp.set_nodelay(true);
         let request = self.request(event_id, body)?;
         match &self.tls {
@@ -103,6 +131,26 @@ impl Webhook {
                 exchange(stream, request).await
             }
         }
+    }
+
+    /// Resolves and connects, refusing a link-local address the name
+    /// resolved to (unless allowed).
+    async fn connect(&self) -> Result<TcpStream, String> {
+        let target = (self.endpoint.host.as_str(), self.endpoint.port);
+        let addrs: Vec<std::net::SocketAddr> = tokio::net::lookup_host(target)
+            .await
+            .map_err(|e| format!("resolve {}: {e}", self.authority))?
+            .filter(|a| self.allow_link_local || !is_link_local(a.ip()))
+            .collect();
+        if addrs.is_empty() {
+            return Err(format!(
+                "{} resolves to no address but link-local ones (metadata services); set allow_link_local = true on this webhook if that is meant",
+                self.authority
+            ));
+        }
+        TcpStream::connect(&addrs[..])
+            .await
+            .map_err(|e| format!("connect {}: {e}", self.authority))
     }
 
     fn request(&self, event_id: u64, body: &[u8]) -> Result<hyper::Request<Full<Bytes>>, String> {
@@ -211,6 +259,26 @@ mod tests {
         assert!(Endpoint::parse("http://user:pw@host/x").is_err());
         assert!(Endpoint::parse("mqtt://host").is_err());
         assert!(Endpoint::parse("http://host:port/").is_err());
+        for injected in ["http://host/x\r\nX-Evil: 1", "http://host/a b", "http://ho\nst/"] {
+            assert!(Endpoint::parse(injected).is_err(), "{injected:?}");
+        }
+    }
+
+    #[test]
+    fn link_local_and_metadata_hosts_are_recognised() {
+        for host in [
+            "169.254.169.254",
+            "169.254.0.1",
+            "fe80::1",
+            "::ffff:169.254.169.254",
+            "metadata.google.internal",
+            "METADATA.google.internal.",
+        ] {
+            assert!(names_link_local(host), "{host}");
+        }
+        for host in ["127.0.0.1", "10.0.0.5", "alerts.lab.example", "::1", "fec0::1"] {
+            assert!(!names_link_local(host), "{host}");
+        }
     }
 
     /// The primitive against RFC 4231 section 4.3 (test case 2: key

@@ -130,7 +130,12 @@ impl Header {
         let cells: Vec<&str> = line.split(delimiter as char).collect();
         let find = |wanted: &str| {
             column(&cells, wanted)
-                .ok_or_else(|| format!("no column {wanted:?} in the header {line:?}"))
+                .ok_or_else(|| {
+                    format!(
+                        "no column {wanted:?} in the header {}",
+                        crate::cli::excerpt(line)
+                    )
+                })
         };
         Ok(Header {
             delimiter,
@@ -160,11 +165,13 @@ impl Header {
             text.parse::<f64>()
                 .ok()
                 .filter(|v| v.is_finite())
-                .ok_or_else(|| format!("{name} = {:?} is not a number", cell(i)))
+                .ok_or_else(|| format!("{name} = {} is not a number", crate::cli::excerpt(cell(i))))
         };
         let time_ns = match layout.time_format {
             TimeFormat::Iso8601 => parse_iso(cell(self.time))
-                .ok_or_else(|| format!("time {:?} is not ISO 8601", cell(self.time)))?,
+                .ok_or_else(|| {
+                    format!("time {} is not ISO 8601", crate::cli::excerpt(cell(self.time)))
+                })?,
             TimeFormat::EpochS => (number(self.time, "time")? * 1e9).round() as i64,
             TimeFormat::EpochMs => (number(self.time, "time")? * 1e6).round() as i64,
             TimeFormat::ElapsedS(start) => {
