@@ -151,7 +151,19 @@ pub(super) async fn live(
         min_severity: severity_param(&mut p)?,
     };
     p.done()?;
-    let place = s.feeds.take(peer.map(|p| p.0))?;
+    let place = match s.feeds.take(peer.map(|p| p.0)) {
+        Ok(place) => place,
+        // The connection is closed after the refusal: a client that
+        // asked for a feed and does not read the answer must not keep a
+        // connection the API needs.
+        Err(refused) => {
+            let mut answer = refused.into_response();
+            let h = answer.headers_mut();
+            h.insert(header::CONNECTION, header::HeaderValue::from_static("close"));
+            h.insert(header::RETRY_AFTER, header::HeaderValue::from_static("5"));
+            return Ok(answer);
+        }
+    };
     let readings = if channel_id.is_empty() {
         None
     } else {

@@ -520,7 +520,7 @@ async fn idle_streams_and_connections_are_closed_and_one_client_cannot_take_ever
 }
 
 /// Fills a channel of a server process with `n` readings.
-async fn fill(ch: &Channel, channel: &str, n: u64) {
+pub(crate) async fn fill(ch: &Channel, channel: &str, n: u64) {
     put_channel(ch, channel_def(channel, "daniell")).await;
     let mut ingest = IngestServiceClient::new(ch.clone());
     let t0 = now_ns() - 3_600_000_000_000;

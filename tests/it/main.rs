@@ -2,6 +2,7 @@
 //! file, spoken to by a real tonic client.
 
 mod agent;
+mod bounds;
 mod alerts;
 mod browser;
 mod chunks;
