@@ -712,6 +712,40 @@ plausible_min_cell_volts = 0.5
 plausible_max_cell_volts = 2.0
 "#;
 
+    /// An empty `db` would be a temporary database SQLite throws away at
+    /// exit: refused, naming where it came from; other schemes as such.
+    #[test]
+    fn an_empty_or_unknown_db_is_refused_naming_its_key() {
+        let text = GOOD.replace("db = \"lab.db\"", "db = \"\"");
+        let e = load("f.toml", &text, &env(&[])).unwrap_err().to_string();
+        assert!(e.contains("db = \"\": empty"), "{e}");
+        assert!(e.starts_with("f.toml:3:"), "{e}");
+        let e = load("f.toml", GOOD, &env(&[("GIBBSLINE_DB", "")]))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("GIBBSLINE_DB (or --db) = \"\": empty"), "{e}");
+        for (db, says) in [
+            ("mysql://lab@db/gl", "the scheme mysql:// is not served"),
+            (":memory:", "names no file"),
+            ("sqlite://", "names no file"),
+        ] {
+            let e = load("f.toml", GOOD, &env(&[("GIBBSLINE_DB", db)]))
+                .unwrap_err()
+                .to_string();
+            assert!(e.contains(says), "{db}: {e}");
+        }
+        for db in [
+            "lab.db",
+            "sqlite:///var/lib/gl.db",
+            "postgres://127.0.0.1/test",
+        ] {
+            assert!(
+                load("f.toml", GOOD, &env(&[("GIBBSLINE_DB", db)])).is_ok(),
+                "{db}"
+            );
+        }
+    }
+
     fn env(pairs: &[(&str, &str)]) -> BTreeMap<String, String> {
         pairs
             .iter()

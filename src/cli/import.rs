@@ -118,12 +118,10 @@ impl Columns {
             name: &str,
         ) -> Result<T, (String, String)> {
             let text = r.get(i).unwrap_or("");
-            text.trim()
-                .parse()
-                .map_err(|_| {
-                    let shown = crate::cli::excerpt(text);
-                    (name.to_string(), format!("{shown} is not a number"))
-                })
+            text.trim().parse().map_err(|_| {
+                let shown = crate::cli::excerpt(text);
+                (name.to_string(), format!("{shown} is not a number"))
+            })
         }
         let optional = |i: Option<usize>, name: &str| -> Result<Option<f64>, (String, String)> {
             match i.and_then(|i| r.get(i)).map(str::trim) {

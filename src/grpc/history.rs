@@ -386,3 +386,91 @@ impl pb::history_service_server::HistoryService for HistoryApi {
         Ok(Response::new(pb::ListCyclesResponse { cycles }))
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use tokio_stream::StreamExt;
+
+    fn row(seq: u64) -> store::ReadingRow {
+        store::ReadingRow {
+            channel_key: 1,
+            seq,
+            run_id: 1,
+            time_ns: seq as i64,
+            volts: 1.1,
+            amps: None,
+            temp_c: None,
+            cell_volts_used: 1.1,
+            soc_model: None,
+            soc_fused: None,
+            charge_ah: 0.0,
+            energy_wh: 0.0,
+            flags: 0,
+            soc_counted_unclamped: None,
+        }
+    }
+
+    /// On paused time: a client that reads one message and then nothing
+    /// gets what was queued and then DEADLINE_EXCEEDED, never a clean end.
+    #[tokio::test(start_paused = true)]
+    async fn an_answer_cut_for_an_unread_client_ends_with_deadline_exceeded() {
+        let (pages_tx, pages) = mpsc::channel(4);
+        for first in [1u64, 5_001] {
+            let rows = (first..first + 5_000).map(row).collect();
+            pages_tx.send(Ok(rows)).await.unwrap();
+        }
+        drop(pages_tx);
+        let (tx, rx) = mpsc::channel(1);
+        let (ending_tx, ending_rx) = oneshot::channel();
+        let sender = tokio::spawn(async move {
+            if let Err(status) =
+                send_pages(pages, &tx, pb::ReadingLayout::Rows, &HashMap::new()).await
+            {
+                let _ = ending_tx.send(status);
+            }
+        });
+        let mut answer = Ending {
+            messages: ReceiverStream::new(rx),
+            end: Some(ending_rx),
+        };
+        let first = answer.next().await.unwrap().unwrap();
+        assert_eq!(first.readings.len(), QUERY_PAGE_ROWS);
+        // The client stops reading; the paused clock runs to the limit.
+        sender.await.unwrap();
+        let mut rows = first.readings.len();
+        let end = loop {
+            match answer.next().await {
+                Some(Ok(m)) => rows += m.readings.len(),
+                Some(Err(status)) => break status,
+                None => panic!("a cut answer ended as if complete after {rows} rows"),
+            }
+        };
+        assert_eq!(end.code(), tonic::Code::DeadlineExceeded, "{end:?}");
+        assert!(rows < 10_000, "{rows} rows");
+        assert!(answer.next().await.is_none());
+    }
+
+    #[tokio::test]
+    async fn a_whole_answer_ends_cleanly() {
+        let (pages_tx, pages) = mpsc::channel(1);
+        pages_tx
+            .send(Ok((1..=10).map(row).collect()))
+            .await
+            .unwrap();
+        drop(pages_tx);
+        let (tx, rx) = mpsc::channel(8);
+        let (ending_tx, ending_rx) = oneshot::channel::<Status>();
+        send_pages(pages, &tx, pb::ReadingLayout::Rows, &HashMap::new())
+            .await
+            .unwrap();
+        drop((tx, ending_tx));
+        let answer = Ending {
+            messages: ReceiverStream::new(rx),
+            end: Some(ending_rx),
+        };
+        let all: Vec<_> = answer.collect().await;
+        assert_eq!(all.len(), 1);
+        assert_eq!(all[0].as_ref().unwrap().readings.len(), 10);
+    }
+}

@@ -159,7 +159,10 @@ pub(super) async fn live(
         Err(refused) => {
             let mut answer = refused.into_response();
             let h = answer.headers_mut();
-            h.insert(header::CONNECTION, header::HeaderValue::from_static("close"));
+            h.insert(
+                header::CONNECTION,
+                header::HeaderValue::from_static("close"),
+            );
             h.insert(header::RETRY_AFTER, header::HeaderValue::from_static("5"));
             return Ok(answer);
         }

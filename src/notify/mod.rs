@@ -118,7 +118,13 @@ impl NotifySettings {
         let mut names = std::collections::BTreeSet::new();
         for (i, w) in self.webhook.iter().enumerate() {
             let field = |f: &str| format!("notify.webhook[{i}].{f}");
-            let shown: String = w.url.chars().take(200).collect::<String>().escape_debug().to_string();
+            let shown: String = w
+                .url
+                .chars()
+                .take(200)
+                .collect::<String>()
+                .escape_debug()
+                .to_string();
             let endpoint = webhook::Endpoint::parse(&w.url)
                 .map_err(|e| FieldError::new(field("url"), &shown, e))?;
             if !w.allow_link_local && webhook::names_link_local(endpoint.host()) {

@@ -259,7 +259,11 @@ mod tests {
         assert!(Endpoint::parse("http://user:pw@host/x").is_err());
         assert!(Endpoint::parse("mqtt://host").is_err());
         assert!(Endpoint::parse("http://host:port/").is_err());
-        for injected in ["http://host/x\r\nX-Evil: 1", "http://host/a b", "http://ho\nst/"] {
+        for injected in [
+            "http://host/x\r\nX-Evil: 1",
+            "http://host/a b",
+            "http://ho\nst/",
+        ] {
             assert!(Endpoint::parse(injected).is_err(), "{injected:?}");
         }
     }
@@ -276,7 +280,13 @@ mod tests {
         ] {
             assert!(names_link_local(host), "{host}");
         }
-        for host in ["127.0.0.1", "10.0.0.5", "alerts.lab.example", "::1", "fec0::1"] {
+        for host in [
+            "127.0.0.1",
+            "10.0.0.5",
+            "alerts.lab.example",
+            "::1",
+            "fec0::1",
+        ] {
             assert!(!names_link_local(host), "{host}");
         }
     }

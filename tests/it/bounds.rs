@@ -26,10 +26,9 @@ fn spawn_with_http(db: &std::path::Path, grpc: &str, http: &str) -> Child {
 async fn get_counting(http: SocketAddr, path: &'static str) -> (u16, u64, usize) {
     use http_body_util::BodyExt;
     let tcp = TcpStream::connect(http).await.unwrap();
-    let (mut send, conn) =
-        hyper::client::conn::http1::handshake(hyper_util::rt::TokioIo::new(tcp))
-            .await
-            .unwrap();
+    let (mut send, conn) = hyper::client::conn::http1::handshake(hyper_util::rt::TokioIo::new(tcp))
+        .await
+        .unwrap();
     tokio::spawn(conn);
     let request = hyper::Request::get(path)
         .header("host", "127.0.0.1")

@@ -349,6 +349,72 @@ async fn one_garbled_reading_does_not_silence_alerts() {
     server.stop().await;
 }
 
+/// A reading 200 s ahead (inside the 300 s tolerance) moves the front;
+/// the cell's next readings, over its safe window and behind it in time, must still
+/// raise the voltage limit at its own severity beside the timeline alert.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_garble_inside_the_tolerances_keeps_the_limit_alerts() {
+    let (_dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    put_channel(&ch, channel_def("ahead-1", "daniell")).await;
+    let mut ingest = IngestServiceClient::new(ch.clone());
+    let now = now_ns();
+    let send = |readings: Vec<pb::Reading>| pb::ReadingBatch {
+        historical: false,
+        channel_id: "ahead-1".into(),
+        batch_id: 0,
+        readings,
+    };
+    let ack = try_batch(
+        &mut ingest,
+        send(vec![
+            reading(1, now - 10_000_000_000, 1.10, Some(0.0)),
+            reading(2, now + 200_000_000_000, 1.10, Some(0.0)),
+        ]),
+    )
+    .await
+    .unwrap();
+    assert_eq!(ack.accepted, 2, "inside the tolerance: {ack:?}");
+    let over: Vec<_> = (3..23)
+        .map(|s| {
+            reading(
+                s,
+                now - 8_000_000_000 + s as i64 * 100_000_000,
+                1.35,
+                Some(0.0),
+            )
+        })
+        .collect();
+    let ack = try_batch(&mut ingest, send(over)).await.unwrap();
+    assert_eq!(ack.accepted, 20, "{ack:?}");
+    let alerts = AlertServiceClient::new(ch.clone())
+        .list_alerts(pb::ListAlertsRequest {
+            channel_id: "ahead-1".into(),
+            ..Default::default()
+        })
+        .await
+        .unwrap()
+        .into_inner()
+        .alerts;
+    let limit = alerts
+        .iter()
+        .find(|a| a.kind == pb::AlertKind::VoltageLimit as i32)
+        .unwrap_or_else(|| panic!("no voltage limit alert: {alerts:?}"));
+    assert_eq!(limit.severity, pb::Severity::Critical as i32, "{limit:?}");
+    assert_eq!(
+        limit.raised_seq, 3,
+        "raised on the first reading over: {limit:?}"
+    );
+    assert!(
+        alerts
+            .iter()
+            .any(|a| a.kind == pb::AlertKind::Timeline as i32),
+        "{alerts:?}"
+    );
+    server.stop().await;
+}
+
 /// A seq jump inside the bound still moves the front; the real readings
 /// behind it raise the timeline alert, and an operator's reset brings them
 /// back to the rules, across a restart too.
@@ -392,8 +458,10 @@ async fn a_reset_timeline_brings_real_readings_back_to_the_rules() {
         kinds.contains(&(pb::AlertKind::Timeline as i32)),
         "{kinds:?}"
     );
+    // Limit rules judge each reading on its own values, in the channel's
+    // order or not: 150 °C behind a jumped seq is still 150 °C.
     assert!(
-        !kinds.contains(&(pb::AlertKind::TemperatureLimit as i32)),
+        kinds.contains(&(pb::AlertKind::TemperatureLimit as i32)),
         "{kinds:?}"
     );
 
@@ -492,14 +560,34 @@ async fn idle_streams_and_connections_are_closed_and_one_client_cannot_take_ever
         third.message().contains("max_streams_per_client"),
         "{third:?}"
     );
+    // One of them sends messages without readings, every 200 ms: that is
+    // not activity, and must not keep the slot.
+    let chatter = idle[0].0.clone();
+    tokio::spawn(async move {
+        while chatter
+            .send(pb::StreamReadingsRequest { batch: None })
+            .await
+            .is_ok()
+        {
+            tokio::time::sleep(Duration::from_millis(200)).await;
+        }
+    });
     // An idle stream is ended, naming the limit; its slot comes back.
     for (_tx, acks) in &mut idle {
-        let ended = tokio::time::timeout(Duration::from_secs(10), acks.next())
-            .await
-            .expect("an idle stream was never ended")
-            .unwrap()
-            .unwrap_err();
+        // The chatty one's empty messages are answered in its acks.
+        let ended = tokio::time::timeout(Duration::from_secs(10), async {
+            loop {
+                match acks.next().await {
+                    Some(Ok(_)) => continue,
+                    Some(Err(status)) => return status,
+                    None => panic!("an idle stream ended without a status"),
+                }
+            }
+        })
+        .await
+        .expect("an idle stream was never ended");
         assert_eq!(ended.code(), tonic::Code::DeadlineExceeded, "{ended:?}");
+        assert!(ended.message().contains("no readings for"), "{ended:?}");
         assert!(
             ended.message().contains("stream_idle_timeout_s"),
             "{ended:?}"
@@ -745,4 +833,24 @@ async fn refusal_at_start(db: &Path) -> String {
     .expect("the server must refuse at once, not serve")
     .unwrap_err()
     .to_string()
+}
+
+/// A PostgreSQL URL whose port nobody listens on is reported as such,
+/// with the server's address, not with advice about SQLite directories.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_refused_postgres_port_is_named_as_a_connection_failure() {
+    let port = crate::crash::free_addr();
+    let url = format!("postgres://gibbsline@{port}/test");
+    let location = gibbsline::store::Location::parse(&url).unwrap();
+    let e = gibbsline::store::Store::open_location(&location, gibbsline::store::Durability::Normal)
+        .await
+        .err()
+        .expect("nothing listens there")
+        .to_string();
+    assert!(
+        e.contains(&port) && e.contains("cannot connect within 5 s"),
+        "{e}"
+    );
+    assert!(e.contains("is PostgreSQL running there"), "{e}");
+    assert!(!e.contains("directory"), "{e}");
 }

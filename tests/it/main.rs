@@ -2,8 +2,8 @@
 //! file, spoken to by a real tonic client.
 
 mod agent;
-mod bounds;
 mod alerts;
+mod bounds;
 mod browser;
 mod chunks;
 mod cli;

@@ -129,13 +129,12 @@ impl Header {
         });
         let cells: Vec<&str> = line.split(delimiter as char).collect();
         let find = |wanted: &str| {
-            column(&cells, wanted)
-                .ok_or_else(|| {
-                    format!(
-                        "no column {wanted:?} in the header {}",
-                        crate::cli::excerpt(line)
-                    )
-                })
+            column(&cells, wanted).ok_or_else(|| {
+                format!(
+                    "no column {wanted:?} in the header {}",
+                    crate::cli::excerpt(line)
+                )
+            })
         };
         Ok(Header {
             delimiter,
@@ -168,10 +167,12 @@ impl Header {
                 .ok_or_else(|| format!("{name} = {} is not a number", crate::cli::excerpt(cell(i))))
         };
         let time_ns = match layout.time_format {
-            TimeFormat::Iso8601 => parse_iso(cell(self.time))
-                .ok_or_else(|| {
-                    format!("time {} is not ISO 8601", crate::cli::excerpt(cell(self.time)))
-                })?,
+            TimeFormat::Iso8601 => parse_iso(cell(self.time)).ok_or_else(|| {
+                format!(
+                    "time {} is not ISO 8601",
+                    crate::cli::excerpt(cell(self.time))
+                )
+            })?,
             TimeFormat::EpochS => (number(self.time, "time")? * 1e9).round() as i64,
             TimeFormat::EpochMs => (number(self.time, "time")? * 1e6).round() as i64,
             TimeFormat::ElapsedS(start) => {
