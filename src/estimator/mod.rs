@@ -13,6 +13,7 @@
 #![allow(missing_docs)]
 
 mod cycles;
+pub mod ocv_fit;
 
 pub use cycles::{Counters, CycleRecord, CycleTracker};
 
