@@ -40,6 +40,11 @@ pub struct ChannelDef {
     /// E° at 298.15 K for this channel instead of the chemistry's, V.
     #[serde(default, alias = "e_standard_override_v")]
     pub e_standard_298_override_v: Option<f64>,
+    /// Apparent electron number of a Nernst chemistry's OCV curve, fitted
+    /// to this cell's rests (`ApplyOcvFit`); unset: the chemistry's n.
+    /// ΔG = −nFE keeps the chemistry's n.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub n_apparent: Option<f64>,
     /// Known stack resistance for V − I·R under load, Ω; unset: estimated
     /// from current steps.
     #[serde(default)]
@@ -68,6 +73,13 @@ pub struct ChannelDef {
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub retention: Option<RetentionPolicy>,
 }
+
+/// The least apparent electron number taken: a fitted n_app outside
+/// [`MIN_N_APPARENT`, `MAX_N_APPARENT`] says the model does not describe
+/// the cell at all.
+pub const MIN_N_APPARENT: f64 = 0.2;
+/// The largest apparent electron number taken.
+pub const MAX_N_APPARENT: f64 = 8.0;
 
 fn default_temp_c() -> f64 {
     25.0
@@ -98,6 +110,7 @@ pub struct RunKey {
     chemistry_id: String,
     cells_in_series: u32,
     e_standard_override_bits: Option<u64>,
+    n_apparent_bits: Option<u64>,
     water: Option<[String; 3]>,
 }
 
@@ -147,6 +160,21 @@ impl ChannelDef {
             gas.validate()
                 .map_err(|(field, v, reason)| err(&format!("gas.{field}"), shown(v), reason))?;
         }
+        let chemistry = match self.n_apparent {
+            Some(n) if !(n.is_finite() && (MIN_N_APPARENT..=MAX_N_APPARENT).contains(&n)) => {
+                return Err(err(
+                    "n_apparent",
+                    n,
+                    format!("must be from {MIN_N_APPARENT} to {MAX_N_APPARENT}"),
+                ));
+            }
+            Some(n) => Arc::new(
+                chemistry
+                    .with_apparent_electrons(n)
+                    .map_err(|reason| err("n_apparent", n, reason))?,
+            ),
+            None => chemistry,
+        };
         match self.e_standard_298_override_v {
             Some(e) if !e.is_finite() => Err(err("e_standard_298_override_v", e, "must be finite")),
             Some(e) => Ok(Arc::new(chemistry.with_e_standard_override(e))),
@@ -240,6 +268,7 @@ impl ChannelDef {
             chemistry_id: self.chemistry_id.clone(),
             cells_in_series: self.cells_in_series,
             e_standard_override_bits: self.e_standard_298_override_v.map(f64::to_bits),
+            n_apparent_bits: self.n_apparent.map(f64::to_bits),
             // History recomputes an electrolyser's figures with these.
             water: self.is_water_cell().then(|| {
                 [
@@ -292,6 +321,7 @@ impl ChannelDef {
             plausible_min_cell_volts,
             plausible_max_cell_volts,
             e_standard_298_override_v: None,
+            n_apparent: None,
             resistance_ohm: None,
             equilibrium_tolerance_mv: default_tolerance_mv(),
             coulombic_efficiency: one(),

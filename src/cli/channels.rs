@@ -46,6 +46,35 @@ pub(crate) enum ChannelsCommand {
         #[arg(long, default_value = DEFAULT_ADDR)]
         connect: String,
     },
+    /// Fit the cell's own OCV model (E°′, apparent n, SOC scale) to a
+    /// run's settled rests and show it with its uncertainty; changes nothing.
+    FitOcv {
+        id: String,
+        /// The run (default: the channel's current run).
+        #[arg(long, default_value_t = 0)]
+        run: u64,
+        /// Fit the capacity too, instead of taking the channel's.
+        #[arg(long)]
+        fit_capacity: bool,
+        #[arg(long, default_value = DEFAULT_ADDR)]
+        connect: String,
+        #[arg(long, value_enum, default_value_t = super::output::TableOrJson::Table)]
+        format: super::output::TableOrJson,
+    },
+    /// Put a fitted OCV model on the channel (operator role); a new run starts.
+    ApplyOcvFit {
+        id: String,
+        /// Formal potential at 298.15 K, V (from `fit-ocv`).
+        #[arg(long)]
+        e_formal_298_v: f64,
+        /// Apparent electron number (from `fit-ocv`).
+        #[arg(long)]
+        n_apparent: f64,
+        #[command(flatten)]
+        signed: Signed,
+        #[arg(long, default_value = DEFAULT_ADDR)]
+        connect: String,
+    },
     /// Move a channel's front back to a stored reading after a garbled
     /// time or seq (operator role); nothing stored is deleted.
     ResetTimeline {
@@ -160,6 +189,30 @@ pub(crate) async fn run(cmd: &ChannelsCommand) -> anyhow::Result<()> {
             after_seq,
             connect,
         } => reset_timeline(connect, id, *after_seq).await,
+        ChannelsCommand::FitOcv {
+            id,
+            run,
+            fit_capacity,
+            connect,
+            format,
+        } => super::ocv_fit::fit(connect, id, *run, *fit_capacity, *format).await,
+        ChannelsCommand::ApplyOcvFit {
+            id,
+            e_formal_298_v,
+            n_apparent,
+            signed,
+            connect,
+        } => {
+            super::ocv_fit::apply(
+                connect,
+                id,
+                *e_formal_298_v,
+                *n_apparent,
+                &signed.by,
+                &signed.note,
+            )
+            .await
+        }
     }
 }
 

@@ -18,6 +18,7 @@ pub(crate) mod demo;
 pub(crate) mod eval;
 pub(crate) mod import;
 pub(crate) mod names;
+pub(crate) mod ocv_fit;
 pub(crate) mod output;
 pub(crate) mod readings;
 pub(crate) mod rig;

@@ -59,6 +59,33 @@ impl Chemistry {
         c.e_standard_298_volts = e_standard_298_volts;
         c
     }
+
+    /// The same chemistry with its OCV curve following an apparent
+    /// electron number: E = E° − (RT/(n_app·F))·ln Q. Written as every
+    /// exponent ν scaled by n/n_app, so the reaction quotient is the
+    /// apparent one consistent with the measured voltage and ΔG = −nFE
+    /// keeps the reaction's n.
+    pub fn with_apparent_electrons(&self, n_apparent: f64) -> Result<Chemistry, String> {
+        let SocModel::Nernst(model) = &self.soc_model else {
+            return Err(format!(
+                "applies to a Nernst chemistry only; {} uses {}",
+                self.id,
+                self.soc_model.name()
+            ));
+        };
+        let k = f64::from(self.n_electrons) / n_apparent;
+        let species = model
+            .species
+            .iter()
+            .map(|s| Species {
+                nu: s.nu * k,
+                ..s.clone()
+            })
+            .collect();
+        let mut c = self.clone();
+        c.soc_model = SocModel::Nernst(NernstModel::new(species));
+        Ok(c)
+    }
 }
 
 /// A file of chemistries: `[[chemistry]]` tables.

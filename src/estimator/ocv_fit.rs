@@ -105,6 +105,43 @@ pub enum FitError {
     NotFinite { index: usize },
 }
 
+/// Gathers calibration points from a run's stored readings in time order:
+/// one per settled rest, its last settled reading (the most relaxed).
+#[derive(Debug, Default)]
+pub struct RestCollector {
+    rests: Vec<(u64, RestPoint)>,
+    in_rest: bool,
+    /// The count at the last reading at or before the anchor's time.
+    anchor_charge: Option<f64>,
+}
+
+impl RestCollector {
+    /// One stored reading; `settled` is its settled-rest flag.
+    pub fn push(&mut self, seq: u64, point: RestPoint, settled: bool) {
+        if settled {
+            if self.in_rest {
+                self.rests.pop();
+            }
+            self.rests.push((seq, point));
+        }
+        self.in_rest = settled;
+    }
+
+    /// Notes the count of a reading at or before an operator's anchor.
+    pub fn note_anchor_charge(&mut self, charge_ah: f64) {
+        self.anchor_charge = Some(charge_ah);
+    }
+
+    pub fn anchor_charge(&self) -> Option<f64> {
+        self.anchor_charge
+    }
+
+    /// (seq, rest) per settled rest, in time order.
+    pub fn finish(self) -> Vec<(u64, RestPoint)> {
+        self.rests
+    }
+}
+
 /// Levenberg–Marquardt bounds: plenty for 3–4 parameters from a start
 /// within a few tens of mV.
 const MAX_ITERATIONS: u32 = 200;

@@ -18,7 +18,7 @@ use tonic::Status;
 const PACKAGE_PREFIX: &str = "/gibbsline.v1.";
 
 /// Each RPC's full path and the permission it needs.
-pub static METHODS: [(&str, Permission); 19] = [
+pub static METHODS: [(&str, Permission); 21] = [
     (
         "/gibbsline.v1.ChannelService/PutChannel",
         Permission::Administer,
@@ -34,6 +34,11 @@ pub static METHODS: [(&str, Permission); 19] = [
     ),
     (
         "/gibbsline.v1.ChannelService/SetChannelSoc",
+        Permission::Operate,
+    ),
+    ("/gibbsline.v1.ChannelService/FitOcvModel", Permission::Read),
+    (
+        "/gibbsline.v1.ChannelService/ApplyOcvFit",
         Permission::Operate,
     ),
     (

@@ -1,4 +1,5 @@
-//! `ChannelService`: channel definitions, timeline resets, operator SOC.
+//! `ChannelService`: channel definitions, timeline resets, operator SOC,
+//! a cell's own OCV model (fitted in `ocv.rs`).
 
 use super::convert::{channel_from_pb, channel_to_pb};
 use super::status::{check_person, invalid};
@@ -96,5 +97,28 @@ impl pb::channel_service_server::ChannelService for ChannelApi {
             soc: q.soc,
             time_unix_ns: time_ns,
         }))
+    }
+
+    async fn fit_ocv_model(
+        &self,
+        request: Request<pb::FitOcvModelRequest>,
+    ) -> Result<Response<pb::FitOcvModelResponse>, Status> {
+        let q = request.into_inner();
+        let gathered = super::ocv::gather(&self.hub, &q.channel_id, q.run_id).await?;
+        let fit = super::ocv::fit(&self.hub, &gathered, q.fit_capacity)?;
+        Ok(Response::new(pb::FitOcvModelResponse {
+            channel_id: q.channel_id,
+            run_id: gathered.run_id as u64,
+            fit: Some(fit),
+        }))
+    }
+
+    async fn apply_ocv_fit(
+        &self,
+        request: Request<pb::ApplyOcvFitRequest>,
+    ) -> Result<Response<pb::ApplyOcvFitResponse>, Status> {
+        let q = request.into_inner();
+        check_person("applied_by", &q.applied_by, &q.note)?;
+        Ok(Response::new(super::ocv::apply(&self.hub, &q).await?))
     }
 }

@@ -10,6 +10,7 @@ pub mod codec;
 pub mod convert;
 pub mod history;
 pub mod ingest;
+mod ocv;
 pub mod status;
 
 use crate::config::Limits;

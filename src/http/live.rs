@@ -214,6 +214,9 @@ async fn pump(
                 None => break,
             },
             _ = keep_alive.tick() => Bytes::from_static(b":\n\n"),
+            // The connection went (its body was dropped): give the place
+            // back now, not at the next event.
+            _ = tx.closed() => break,
             _ = stopped(hub.shutdown_signal()) => break,
         };
         // A client that does not keep up is let go; it reconnects.

@@ -482,6 +482,37 @@ impl Hub {
         Ok(time_ns)
     }
 
+    /// Records an operator's action on a channel that changes no live
+    /// state of its own (applying an OCV fit, say): in the operator events
+    /// of the channel's current run.
+    pub async fn note_operator_event(
+        &self,
+        channel_id: &str,
+        kind: &'static str,
+        by: &str,
+        detail_json: String,
+    ) -> Result<(), IngestError> {
+        let (runtime, _turn) = self.take_turn(channel_id).await?;
+        let change = {
+            let rt = runtime.lock().expect("channel state poisoned");
+            writer::OperatorChange {
+                channel_key: rt.key,
+                run_id: rt.run_id,
+                time_ns: now_ns(),
+                kind,
+                by: by.to_string(),
+                detail_json,
+                estimator: snapshot_of(&rt),
+                lease: self.lease_of(&rt),
+            }
+        };
+        if let Err(e) = self.submit(|reply| Job::Operator { change, reply }).await {
+            self.reload_after_failure(&runtime).await;
+            return Err(e);
+        }
+        Ok(())
+    }
+
     /// Raises a channel's retention marks as its policy (over `default`)
     /// asks at its current front, stored before the runtime refuses
     /// anything by them. Returns the channel's key and marks in force.

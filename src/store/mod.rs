@@ -1350,6 +1350,27 @@ pub async fn query_readings_page(
 
 /// Records what an operator did to a channel (in the transaction that
 /// applies it).
+/// A run's operator events of one kind, oldest first: (time, detail JSON).
+pub async fn operator_events(
+    pool: &Pool,
+    channel_key: i64,
+    run_id: i64,
+    kind: &str,
+) -> Result<Vec<(i64, String)>, StoreError> {
+    let rows = sqlx::query(
+        "SELECT time_ns, detail_json FROM operator_events \
+         WHERE channel_key = $1 AND run_id = $2 AND kind = $3 ORDER BY time_ns",
+    )
+    .bind(channel_key)
+    .bind(run_id)
+    .bind(kind)
+    .fetch_all(pool)
+    .await?;
+    rows.iter()
+        .map(|r| Ok((r.try_get("time_ns")?, r.try_get("detail_json")?)))
+        .collect()
+}
+
 pub async fn insert_operator_event(
     tx: &mut Tx<'_>,
     channel_key: i64,

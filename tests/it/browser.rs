@@ -136,10 +136,24 @@ impl Browser {
         v[ELEMENT].as_str().unwrap().to_string()
     }
 
+    /// Clicks the element `css` names. A list that live events redraw may
+    /// replace the element between finding and clicking it (WebDriver's
+    /// "stale element reference"): it is found again, a few times.
     async fn click(&self, css: &str) {
-        let id = self.element(css).await;
-        self.call("POST", &format!("/element/{id}/click"), json!({}))
-            .await;
+        for _ in 0..5 {
+            let id = self.element(css).await;
+            let path = format!("/session/{}/element/{id}/click", self.session);
+            let answer = request(self.driver, "POST", &path, None, Some(&json!({}))).await;
+            let v = answer.json();
+            if answer.status == 200 {
+                return;
+            }
+            assert_eq!(
+                v["value"]["error"], "stale element reference",
+                "click {css}: {v}"
+            );
+        }
+        panic!("{css}: replaced on every one of 5 clicks");
     }
 
     async fn type_into(&self, css: &str, text: &str) {

@@ -70,11 +70,15 @@ async fn flood_keeps_memory_bounded() {
     let t0 = now_ns() - 80_000_000_000_000;
     let deadline = Instant::now() + Duration::from_secs(6);
     let mut tasks = Vec::new();
-    // Three rigs, each on its own connection, twenty streams each, batches
-    // of 10,000 readings sent as fast as the server takes them.
+    // Three rigs, each on its own connection from its own address (the
+    // server holds each address to limits.max_streams_per_client, 32),
+    // twenty streams each, batches of 10,000 readings sent as fast as the
+    // server takes them.
     for rig in 0..3 {
+        let source = std::net::Ipv4Addr::new(127, 0, 2, 1 + rig as u8);
         let conn = tonic::transport::Channel::from_shared(format!("http://{addr}"))
             .unwrap()
+            .local_address(Some(source.into()))
             .connect()
             .await
             .unwrap();

@@ -5,6 +5,7 @@ mod agent;
 mod alerts;
 mod bounds;
 mod browser;
+mod calibration;
 mod chunks;
 mod cli;
 mod console;

@@ -208,3 +208,22 @@ fn the_t_table_matches_scipy() {
     assert_eq!(t_95(31), 1.960);
     assert!(t_95(0).is_infinite());
 }
+
+#[test]
+fn each_settled_rest_gives_its_last_settled_reading() {
+    let at = |t: i64, v: f64| RestPoint {
+        time_ns: t,
+        cell_volts: v,
+        temp_k: 298.15,
+        charge_ah: t as f64,
+    };
+    let mut c = RestCollector::default();
+    let flags = [
+        false, true, true, true, false, false, true, false, true, true,
+    ];
+    for (i, settled) in flags.iter().enumerate() {
+        c.push(i as u64, at(i as i64, 1.0 + i as f64), *settled);
+    }
+    let seqs: Vec<u64> = c.finish().iter().map(|(s, _)| *s).collect();
+    assert_eq!(seqs, [3, 6, 9]);
+}
