@@ -293,12 +293,14 @@ fn solve(mut a: Vec<Vec<f64>>, mut b: Vec<f64>) -> Option<Vec<f64>> {
         }
         a.swap(col, pivot);
         b.swap(col, pivot);
-        for row in col + 1..n {
-            let f = a[row][col] / a[col][col];
-            for k in col..n {
-                a[row][k] -= f * a[col][k];
+        let (upper, lower) = a.split_at_mut(col + 1);
+        let pivot_row = &upper[col];
+        for (offset, row) in lower.iter_mut().enumerate() {
+            let f = row[col] / pivot_row[col];
+            for (x, p) in row[col..].iter_mut().zip(&pivot_row[col..]) {
+                *x -= f * p;
             }
-            b[row] -= f * b[col];
+            b[col + 1 + offset] -= f * b[col];
         }
     }
     let mut x = vec![0.0; n];
