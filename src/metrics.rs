@@ -10,7 +10,7 @@ const COMMIT_BUCKETS_S: [f64; 10] = [0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1,
 /// Rejection reasons that get their own series (the field that was wrong).
 pub const REJECT_FIELDS: [&str; 6] = ["volts", "amps", "temp_c", "time_unix_ns", "seq", "other"];
 /// Indexed by alert kind code − 1 (the proto's numbering).
-const ALERT_KIND_NAMES: [&str; 10] = [
+const ALERT_KIND_NAMES: [&str; 11] = [
     "equilibrium_approach",
     "end_of_charge",
     "end_of_discharge",
@@ -21,6 +21,7 @@ const ALERT_KIND_NAMES: [&str; 10] = [
     "silent_rig",
     "timeline",
     "driving_force_spent",
+    "ocv_model_mismatch",
 ];
 
 /// The server's counters and gauges, shared by every task and read by

@@ -30,10 +30,14 @@ pub enum AlertKind {
     /// the driving force is spent (end of a constant-voltage taper, a
     /// relaxation done, a load the cell can no longer push).
     DrivingForceSpent,
+    /// A settled rest's open-circuit voltage lies far from the SOC model
+    /// at the counted SOC: the model (a built-in one, typically) does not
+    /// describe this cell, and SOC read off it is off too.
+    OcvModelMismatch,
 }
 
 impl AlertKind {
-    pub const ALL: [AlertKind; 10] = [
+    pub const ALL: [AlertKind; 11] = [
         AlertKind::EquilibriumApproach,
         AlertKind::EndOfCharge,
         AlertKind::EndOfDischarge,
@@ -44,6 +48,7 @@ impl AlertKind {
         AlertKind::SilentRig,
         AlertKind::Timeline,
         AlertKind::DrivingForceSpent,
+        AlertKind::OcvModelMismatch,
     ];
     pub fn code(self) -> i64 {
         self as i64 + 1
@@ -134,6 +139,18 @@ pub struct AlertRules {
     pub driving_force_cell_volts: Threshold,
     #[serde(default = "default_after_stop_s")]
     pub driving_force_after_stop_s: f64,
+    /// |settled-rest OCV − model OCV at the counted SOC| per cell, V, at
+    /// or above raise_at.
+    #[serde(default = "default_ocv_mismatch")]
+    pub ocv_model_mismatch_cell_volts: Threshold,
+}
+
+/// 15 mV per cell, cleared below 10 mV: well beyond a settled rest's
+/// relaxation left (about 1 mV/min) and a day's count drift on a good
+/// shunt, well inside the 45–85 mV a built-in vanadium model is off real
+/// cells (from memory). Our own choice, set per channel.
+fn default_ocv_mismatch() -> Threshold {
+    Threshold::new(0.015, 0.010, 0.0)
 }
 
 /// 10 mV per cell for 10 s, cleared past 20 mV: the taper of a
@@ -203,6 +220,7 @@ impl AlertRules {
             silent_min_s: 30.0,
             driving_force_cell_volts: default_driving_force(),
             driving_force_after_stop_s: default_after_stop_s(),
+            ocv_model_mismatch_cell_volts: default_ocv_mismatch(),
         }
     }
 
@@ -257,8 +275,13 @@ impl AlertRules {
     }
 
     /// The hysteresis thresholds, and whether each raises on a rising value.
-    fn thresholds(&self) -> [(&'static str, Threshold, bool); 7] {
+    fn thresholds(&self) -> [(&'static str, Threshold, bool); 8] {
         [
+            (
+                "ocv_model_mismatch_cell_volts",
+                self.ocv_model_mismatch_cell_volts,
+                true,
+            ),
             (
                 "driving_force_cell_volts",
                 self.driving_force_cell_volts,
@@ -435,6 +458,9 @@ pub struct RuleInput {
     pub resting: bool,
     pub dv_dt_mv_per_min: Option<f64>,
     pub soc_rate_per_s: Option<f64>,
+    /// During a settled rest: OCV minus the model's at the counted SOC, V
+    /// per cell.
+    pub ocv_model_gap_volts: Option<f64>,
 }
 
 /// A change the caller must store and publish.
@@ -518,6 +544,7 @@ pub fn evaluate(
     apply_into(c, state, Some(voltage_limit_check(rules, input)), input);
     apply_into(c, state, current_limit_check(rules, input), input);
     apply_into(c, state, temperature_limit_check(rules, input), input);
+    apply_into(c, state, ocv_mismatch_check(rules, input), input);
     // A reading arriving ends a silence.
     if state.is_active(AlertKind::SilentRig) {
         state
@@ -744,6 +771,31 @@ fn rest_settled_check(rules: &AlertRules, input: &RuleInput) -> Option<Check<imp
             format!(
                 "rest settled: |dV/dt| {:.3} mV/min; the open-circuit SOC is now trustworthy",
                 rate.unwrap_or(0.0)
+            )
+        }),
+        seconds_to_target: None,
+    })
+}
+
+/// The model against the cell, once per settled rest (no input between
+/// rests: the alert stands until a later rest agrees).
+fn ocv_mismatch_check(rules: &AlertRules, input: &RuleInput) -> Option<Check<impl Fn() -> String>> {
+    let t = rules.ocv_model_mismatch_cell_volts;
+    let gap = input.ocv_model_gap_volts.filter(|_| t.enabled)?;
+    let (past_raise, past_clear) = compare(&t, Side::AtOrAbove, gap.abs());
+    Some(Check {
+        kind: AlertKind::OcvModelMismatch,
+        past_raise,
+        past_clear,
+        hold_s: t.hold_s,
+        trigger_value: gap,
+        threshold: t.raise_at,
+        unit: "V",
+        message: (move || {
+            format!(
+                "settled-rest OCV {:+.1} mV per cell from the SOC model at the counted SOC (bound ±{:.1} mV): the model does not describe this cell and its SOC readings are off; fit the cell's own (`gibbsline channels fit-ocv`), or check capacity and current sign",
+                gap * 1e3,
+                t.raise_at * 1e3
             )
         }),
         seconds_to_target: None,

@@ -16,6 +16,7 @@ pub(crate) fn kind_id(code: i32) -> &'static str {
         Ok(pb::AlertKind::SilentRig) => "silent_rig",
         Ok(pb::AlertKind::Timeline) => "timeline",
         Ok(pb::AlertKind::DrivingForceSpent) => "driving_force_spent",
+        Ok(pb::AlertKind::OcvModelMismatch) => "ocv_model_mismatch",
         _ => "unknown",
     }
 }

@@ -139,6 +139,10 @@ pub struct EstimatorState {
     pub anchor: Option<SocAnchor>,
     pub gaps: u64,
     pub cycles: CycleTracker,
+    /// The OCV-model gap of the current settled rest and the rest it
+    /// belongs to (its `rest_since_ns`): computed once per rest.
+    #[serde(default)]
+    pub ocv_gap: Option<(i64, f64)>,
 }
 
 impl Counters {
@@ -313,6 +317,10 @@ pub struct Estimate {
     pub rest_settled: bool,
     /// Per-cell relaxation rate during a rest, mV/min.
     pub dv_dt_mv_per_min: Option<f64>,
+    /// During a settled rest: its OCV minus the model's OCV at the SOC
+    /// counted from the previous anchor, V per cell. Large, it says the
+    /// model does not describe this cell (see [`ocv_model_gap`]).
+    pub ocv_model_gap_volts: Option<f64>,
     /// dSOC/dt from the current (per second), when capacity is known.
     pub soc_rate_per_s: Option<f64>,
     pub charge_ah: f64,
@@ -363,6 +371,7 @@ pub fn step(
         input.amps,
     );
     let (at_model, soc_model) = model_soc(chemistry, config, &terminal, input, temp_k)?;
+    let ocv_model_gap_volts = ocv_model_gap(chemistry, config, state, &rest, &terminal, temp_k);
     let anchor_by_resistance =
         terminal.compensated_stack_volts.is_some() && config.resistance_ohm.is_some();
     let fused = fuse_soc(
@@ -392,6 +401,7 @@ pub fn step(
         resting: rest.resting,
         rest_settled: rest.settled,
         dv_dt_mv_per_min: rest.dv_dt_mv_per_min,
+        ocv_model_gap_volts,
         soc_rate_per_s: soc_rate_per_s(config, input.amps),
         charge_ah: state.charge_ah,
         energy_wh: state.energy_wh,
@@ -399,6 +409,49 @@ pub fn step(
         cycle_closed,
         evaluation: eq.evaluation,
     })
+}
+
+/// SOC this close to 0 or 1 is not judged: the model's OCV runs steep at
+/// the ends, and a small count error would read as a large gap.
+const GAP_SOC_MARGIN: f64 = 0.03;
+
+/// At the first settled reading of a rest, its OCV minus the model's OCV
+/// at the SOC counted from the anchor before it (a previous rest or an
+/// operator's entry), V per cell; kept for the rest's duration. Where the
+/// model describes the cell, counted charge and voltage agree to within
+/// the count's drift; a model tens of mV off the cell disagrees with
+/// itself from rest to rest. Computed before this rest re-anchors.
+fn ocv_model_gap(
+    chemistry: &Chemistry,
+    config: &EstimatorConfig,
+    state: &mut EstimatorState,
+    rest: &RestState,
+    terminal: &Terminal,
+    temp_k: f64,
+) -> Option<f64> {
+    let (Some(rest_id), true) = (state.rest_since_ns, rest.settled) else {
+        state.ocv_gap = None;
+        return None;
+    };
+    if let Some((id, gap)) = state.ocv_gap
+        && id == rest_id
+    {
+        return Some(gap);
+    }
+    let anchor = state.anchor.filter(|_| config.capacity_ah > 0.0)?;
+    let soc = anchor.soc + (state.stored_charge_ah - anchor.stored_charge_ah) / config.capacity_ah;
+    if !(GAP_SOC_MARGIN..=1.0 - GAP_SOC_MARGIN).contains(&soc) {
+        return None;
+    }
+    let ctx = electrochem::soc::NernstContext {
+        n_electrons: chemistry.n_electrons,
+        e_standard_volts: chemistry.standard_potential().at(temp_k),
+        temp_k,
+    };
+    let model_volts = chemistry.soc_model.ocv_volts(soc, ctx)?;
+    let gap = terminal.cell_volts - model_volts;
+    state.ocv_gap = Some((rest_id, gap));
+    Some(gap)
 }
 
 /// The open-circuit estimate, the thermodynamics there and the driving force.

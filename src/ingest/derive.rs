@@ -379,6 +379,7 @@ fn late_limits(
         resting: false,
         dv_dt_mv_per_min: None,
         soc_rate_per_s: None,
+        ocv_model_gap_volts: None,
     };
     alerts::rules::evaluate_limits(&rt.rules, &mut rt.rule_state, &input)
 }
@@ -414,6 +415,7 @@ fn derive_fresh(
         resting: est.resting,
         dv_dt_mv_per_min: est.dv_dt_mv_per_min,
         soc_rate_per_s: est.soc_rate_per_s,
+        ocv_model_gap_volts: est.ocv_model_gap_volts,
     };
     parts.changes.extend(alerts::rules::evaluate(
         &rt.rules,

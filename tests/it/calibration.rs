@@ -132,6 +132,32 @@ async fn a_cell_70_mv_off_the_built_in_model_is_fitted_and_then_read_true() {
     assert!((fit.n_apparent - 1.0).abs() < 0.01, "{fit:?}");
     assert!((fit.soc_at_first_rest - 0.15).abs() < 0.005, "{fit:?}");
 
+    // The mismatch alert said so while the rests came in.
+    let mismatch = |ch: tonic::transport::Channel| async move {
+        pb::alert_service_client::AlertServiceClient::new(ch)
+            .list_alerts(pb::ListAlertsRequest {
+                channel_id: "cal-1".into(),
+                ..Default::default()
+            })
+            .await
+            .unwrap()
+            .into_inner()
+            .alerts
+            .into_iter()
+            .filter(|a| a.kind == pb::AlertKind::OcvModelMismatch as i32)
+            .collect::<Vec<_>>()
+    };
+    let raised = mismatch(ch.clone()).await;
+    let first = raised.first().expect("an OCV model mismatch alert");
+    eprintln!(
+        "mismatch: {} ({:+.1} mV)",
+        first.message,
+        first.trigger_value * 1e3
+    );
+    assert_eq!(first.severity, pb::Severity::Warning as i32);
+    assert!(first.trigger_value.abs() >= 0.015, "{first:?}");
+    assert!(first.message.contains("fit-ocv"), "{first:?}");
+
     // Before: the built-in model reads the last rest's SOC far too high.
     let state = |ch: tonic::transport::Channel| async move {
         pb::history_service_client::HistoryServiceClient::new(ch)

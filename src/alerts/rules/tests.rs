@@ -22,7 +22,41 @@ fn quiet(time_s: i64) -> RuleInput {
         resting: false,
         dv_dt_mv_per_min: None,
         soc_rate_per_s: None,
+        ocv_model_gap_volts: None,
     }
+}
+
+/// Raised by a settled rest 20 mV off the model, kept between rests (no
+/// input), cleared by a rest that agrees to 5 mV.
+#[test]
+fn an_ocv_model_gap_raises_once_and_clears_at_an_agreeing_rest() {
+    let rules = AlertRules::defaults_for(1.0, 1.6);
+    let at = |t: i64, gap: Option<f64>| RuleInput {
+        ocv_model_gap_volts: gap,
+        ..quiet(t)
+    };
+    let changes = run(
+        &rules,
+        &[
+            at(1, Some(0.012)),
+            at(2, Some(-0.020)),
+            at(3, None),
+            at(4, Some(0.005)),
+        ],
+    );
+    let kinds: Vec<_> = changes
+        .iter()
+        .filter_map(|c| match c {
+            AlertChange::Raise(a) if a.kind == AlertKind::OcvModelMismatch => {
+                Some(("raise", a.time_ns / S, a.trigger_value))
+            }
+            AlertChange::Clear { kind, time_ns } if *kind == AlertKind::OcvModelMismatch => {
+                Some(("clear", time_ns / S, 0.0))
+            }
+            _ => None,
+        })
+        .collect();
+    assert_eq!(kinds, [("raise", 2, -0.020), ("clear", 4, 0.0)]);
 }
 
 fn run(rules: &AlertRules, inputs: &[RuleInput]) -> Vec<AlertChange> {

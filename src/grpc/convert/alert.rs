@@ -18,6 +18,7 @@ fn kind_to_pb(k: AlertKind) -> i32 {
         AlertKind::SilentRig => pb::AlertKind::SilentRig,
         AlertKind::Timeline => pb::AlertKind::Timeline,
         AlertKind::DrivingForceSpent => pb::AlertKind::DrivingForceSpent,
+        AlertKind::OcvModelMismatch => pb::AlertKind::OcvModelMismatch,
     }) as i32
 }
 
@@ -101,6 +102,7 @@ pub fn rules_to_pb(r: &AlertRules) -> pb::AlertRules {
         silent_min_s: r.silent_min_s,
         driving_force_cell_volts: Some(threshold_to_pb(&r.driving_force_cell_volts)),
         driving_force_after_stop_s: Some(r.driving_force_after_stop_s),
+        ocv_model_mismatch_cell_volts: Some(threshold_to_pb(&r.ocv_model_mismatch_cell_volts)),
     }
 }
 
@@ -142,6 +144,10 @@ pub fn rules_from_pb(r: pb::AlertRules) -> Result<AlertRules, Status> {
         driving_force_after_stop_s: r
             .driving_force_after_stop_s
             .unwrap_or(AlertRules::defaults_for(0.0, 1.0).driving_force_after_stop_s),
+        ocv_model_mismatch_cell_volts: match r.ocv_model_mismatch_cell_volts {
+            None => AlertRules::defaults_for(0.0, 1.0).ocv_model_mismatch_cell_volts,
+            t => threshold_from_pb("ocv_model_mismatch_cell_volts", t)?,
+        },
     };
     rules
         .validate()
