@@ -79,6 +79,16 @@ pub(crate) fn ocv_source_name(code: i32) -> &'static str {
     }
 }
 
+/// Which OCV model a reading was read off: `chemistry` (uncalibrated),
+/// `cell` (fitted or set for this cell), `none`.
+pub(crate) fn ocv_model_name(code: i32) -> &'static str {
+    match pb::OcvModelBasis::try_from(code) {
+        Ok(pb::OcvModelBasis::Chemistry) => "chemistry",
+        Ok(pb::OcvModelBasis::Cell) => "cell",
+        _ => "none",
+    }
+}
+
 pub(crate) fn breach_name(code: i32) -> Option<&'static str> {
     match pb::BoundBreach::try_from(code) {
         Ok(pb::BoundBreach::Reversible) => Some("reversible"),

@@ -2,7 +2,7 @@
 //! as a table, CSV or JSON.
 
 use super::client;
-use super::names::{mode_name, ocv_source_name, state_name};
+use super::names::{mode_name, ocv_model_name, ocv_source_name, state_name};
 use super::output::{self, Col, Format, Row, fixed, percent};
 use super::time::{iso, iso_utc};
 use super::{DEFAULT_ADDR, UsageError};
@@ -79,6 +79,9 @@ pub(crate) struct ReadingOut {
     ocv_source: &'static str,
     driving_force_v: Option<f64>,
     time_utc: String,
+    /// `chemistry`: SOC, ΔG and Q read off the chemistry's model,
+    /// uncalibrated for this cell; `cell`: a model of this cell.
+    ocv_model: &'static str,
 }
 
 impl From<pb::StoredReading> for ReadingOut {
@@ -107,6 +110,7 @@ impl From<pb::StoredReading> for ReadingOut {
             ocv_source: ocv_source_name(d.ocv_source),
             driving_force_v: d.driving_force_v,
             time_utc: iso_utc(r.time_unix_ns),
+            ocv_model: ocv_model_name(d.ocv_model_basis),
         }
     }
 }
@@ -135,6 +139,7 @@ impl Row for ReadingOut {
         "ocv_source",
         "driving_force_v",
         "time_utc",
+        "ocv_model",
     ];
     const TABLE: &'static [Col] = &[
         Col::right("seq", 8),

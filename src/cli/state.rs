@@ -3,7 +3,7 @@
 
 use super::DEFAULT_ADDR;
 use super::client;
-use super::names::{breach_name, mode_name, ocv_source_name, state_name};
+use super::names::{breach_name, mode_name, ocv_model_name, ocv_source_name, state_name};
 use super::output::{self, Col, Row, TableOrJson, percent};
 use gibbsline::pb;
 use gibbsline::pb::history_service_client::HistoryServiceClient;
@@ -153,7 +153,7 @@ fn prose(id: &str, s: &pb::GetChannelStateResponse) -> Vec<String> {
         output::fixed(r.amps_charge_positive, 3),
         output::fixed(r.temp_c, 2),
         d.soc_fused
-            .map(|_| format!("{} %", percent(d.soc_fused, 1)))
+            .map(|_| format!("{} %{}", percent(d.soc_fused, 1), uncalibrated(&d)))
             .unwrap_or_else(|| "unknown".into()),
         thermo_text(&d),
         state_name(d.state)
@@ -201,6 +201,16 @@ fn resistance_source_text(source: &str) -> &str {
         "current_step" => "measured from current steps",
         "configured" => "configured",
         other => other,
+    }
+}
+
+/// Said beside SOC read off a chemistry's model that was not fitted to the
+/// cell: built-in models are tens of mV off real cells.
+fn uncalibrated(d: &pb::DerivedState) -> &'static str {
+    if ocv_model_name(d.ocv_model_basis) == "chemistry" {
+        " (uncalibrated: the chemistry's OCV model; `channels fit-ocv`)"
+    } else {
+        ""
     }
 }
 

@@ -275,6 +275,7 @@ impl Hub {
             equilibrium_tolerance_v: def.equilibrium_tolerance_mv / 1e3,
             soc_model: chemistry.soc_model.name().to_string(),
             definition_json: Some(json.clone()),
+            ocv_model_of_cell: def.e_standard_298_override_v.is_some() || def.n_apparent.is_some(),
         });
         let (_, run_id) =
             store::put_channel(&self.store, &def.channel_id, &json, run, now_ns()).await?;

@@ -35,6 +35,7 @@ serializers! {
     current_sign: CurrentSign = "CURRENT_SIGN_";
     reaction_state: ReactionState = "REACTION_STATE_";
     ocv_source: OcvSource = "OCV_SOURCE_";
+    ocv_model_basis: OcvModelBasis = "OCV_MODEL_BASIS_";
     bound_breach: BoundBreach = "BOUND_BREACH_";
     operating_mode: OperatingMode = "OPERATING_MODE_";
     segment_kind: SegmentKind = "SEGMENT_KIND_";

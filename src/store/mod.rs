@@ -757,6 +757,20 @@ pub struct RunRow {
     pub soc_model: String,
     /// The channel definition as JSON (runs since migration 0004).
     pub definition_json: Option<String>,
+    /// The run's definition carries a model of this cell (an E° override
+    /// or an apparent n), not only the chemistry's.
+    pub ocv_model_of_cell: bool,
+}
+
+impl RunRow {
+    /// Whether a definition (JSON) carries a model of its own cell.
+    pub fn definition_models_cell(definition_json: Option<&str>) -> bool {
+        definition_json
+            .and_then(|j| serde_json::from_str::<serde_json::Value>(j).ok())
+            .is_some_and(|v| {
+                !v["e_standard_298_override_v"].is_null() || !v["n_apparent"].is_null()
+            })
+    }
 }
 
 #[derive(Debug, Clone, PartialEq)]
@@ -875,6 +889,10 @@ fn run_from_row(row: &DbRow) -> Result<RunRow, StoreError> {
         default_temp_c: row.try_get("default_temp_c")?,
         equilibrium_tolerance_v: row.try_get("equilibrium_tolerance_v")?,
         soc_model: row.try_get("soc_model")?,
+        ocv_model_of_cell: RunRow::definition_models_cell(
+            row.try_get::<Option<String>, _>("definition_json")?
+                .as_deref(),
+        ),
         definition_json: row.try_get("definition_json")?,
     })
 }

@@ -191,6 +191,11 @@ pub fn stored_to_pb(row: &ReadingRow, run: Option<&RunRow>) -> pb::StoredReading
                 f64::from(run.n_electrons) * electrochem::constants::FARADAY_C_PER_MOL * eta / 1e3
             }),
             hydrogen: hydrogen_to_pb(row, run, temp_k),
+            ocv_model_basis: (match (run.soc_model.as_str(), run.ocv_model_of_cell) {
+                ("none", _) => pb::OcvModelBasis::Unspecified,
+                (_, true) => pb::OcvModelBasis::Cell,
+                (_, false) => pb::OcvModelBasis::Chemistry,
+            }) as i32,
         }
     });
     pb::StoredReading {
@@ -290,6 +295,7 @@ mod tests {
             equilibrium_tolerance_v: 1e-3,
             soc_model: "none".into(),
             definition_json: Some(serde_json::to_string(&def).expect("serializes")),
+            ocv_model_of_cell: false,
         }
     }
 

@@ -62,9 +62,12 @@ function age(ms) {
 // open-circuit estimate; unknown otherwise (never guessed under load).
 function socOf(d) {
   if (!d) return { value: null, source: 'unknown' };
-  if (d.soc_fused !== null && d.soc_fused !== undefined) return { value: d.soc_fused, source: 'counted' };
+  // A chemistry's model not fitted to this cell is said so: built-in
+  // models sit tens of mV off real cells.
+  const note = d.ocv_model_basis === 'chemistry' ? ' · uncalibrated model' : '';
+  if (d.soc_fused !== null && d.soc_fused !== undefined) return { value: d.soc_fused, source: 'counted' + note };
   if (d.soc_from_model !== null && d.soc_from_model !== undefined) {
-    return { value: d.soc_from_model, source: 'model · ' + d.ocv_source.replace(/_/g, ' ') };
+    return { value: d.soc_from_model, source: 'model · ' + d.ocv_source.replace(/_/g, ' ') + note };
   }
   return { value: null, source: 'unknown' };
 }
