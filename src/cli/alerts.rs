@@ -15,7 +15,8 @@ use tokio_stream::StreamExt;
 pub(crate) enum AlertsCommand {
     /// Stream alerts as they happen; reconnects and resumes by itself.
     Watch {
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
         /// Resume after this event id (each watched line shows its event
         /// id; 0 replays everything stored).
@@ -33,12 +34,14 @@ pub(crate) enum AlertsCommand {
         id: u64,
         #[command(flatten)]
         signed: Signed,
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
     },
     /// Where each alert event went (webhooks, MQTT) or is waiting to go.
     Deliveries {
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
         /// Only deliveries not yet made.
         #[arg(long)]
@@ -48,7 +51,8 @@ pub(crate) enum AlertsCommand {
     },
     /// List stored alerts.
     List {
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
         #[arg(long)]
         channel: Option<String>,

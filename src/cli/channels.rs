@@ -19,18 +19,21 @@ pub(crate) enum ChannelsCommand {
     /// Create or replace the channels of a TOML file ([[channel]] tables).
     Put {
         file: PathBuf,
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
     },
     List {
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
         #[arg(long, value_enum, default_value_t = Format::Table)]
         format: Format,
     },
     Get {
         id: String,
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
         #[arg(long, value_enum, default_value_t = Format::Table)]
         format: Format,
@@ -43,7 +46,8 @@ pub(crate) enum ChannelsCommand {
         soc: f64,
         #[command(flatten)]
         signed: Signed,
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
     },
     /// Fit the cell's own OCV model (E°′, apparent n, SOC scale) to a
@@ -56,7 +60,8 @@ pub(crate) enum ChannelsCommand {
         /// Fit the capacity too, instead of taking the channel's.
         #[arg(long)]
         fit_capacity: bool,
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
         #[arg(long, value_enum, default_value_t = super::output::TableOrJson::Table)]
         format: super::output::TableOrJson,
@@ -72,7 +77,8 @@ pub(crate) enum ChannelsCommand {
         n_apparent: f64,
         #[command(flatten)]
         signed: Signed,
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
     },
     /// Move a channel's front back to a stored reading after a garbled
@@ -83,7 +89,8 @@ pub(crate) enum ChannelsCommand {
         /// was taken out of order).
         #[arg(long)]
         after_seq: Option<u64>,
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
     },
 }

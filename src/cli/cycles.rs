@@ -9,7 +9,8 @@ use gibbsline::pb::history_service_client::HistoryServiceClient;
 
 #[derive(Debug, clap::Args)]
 pub(crate) struct CyclesArgs {
-    #[arg(long, default_value = DEFAULT_ADDR)]
+    /// The server, host:port.
+    #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
     pub connect: String,
     #[arg(long)]
     pub channel: String,

@@ -56,8 +56,14 @@ async fn start_server(
     let mut listeners = gibbsline::app::Listeners::grpc_only(listener);
     if args.http_listen != "off" {
         listeners.http = super::serve::bind_console(&args.http_listen).await?;
-        if let Some(l) = &listeners.http {
-            println!("console: http://{}/", l.local_addr()?);
+        match &listeners.http {
+            Some(l) => println!("console: http://{}/", l.local_addr()?),
+            // Said on stdout, where the demo's user looks: what answers on
+            // that port now is another server, with other data.
+            None => println!(
+                "console: not served: {} is in use by another program (what answers there is not this demo); run with --http-listen 127.0.0.1:8090, say",
+                args.http_listen
+            ),
         }
     }
     let server = tokio::spawn(gibbsline::app::run(config, listeners, async move {

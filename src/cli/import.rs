@@ -26,7 +26,8 @@ pub(crate) struct ImportArgs {
     /// The channel the readings go into (defined already).
     #[arg(long)]
     pub channel: String,
-    #[arg(long, default_value = DEFAULT_ADDR)]
+    /// The server, host:port.
+    #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
     pub connect: String,
     /// Readings per batch.
     #[arg(long, default_value_t = 1000)]

@@ -14,14 +14,16 @@ use tokio_stream::StreamExt;
 
 #[derive(Debug, clap::Args)]
 pub(crate) struct ReadingsArgs {
-    #[arg(long, default_value = DEFAULT_ADDR)]
+    /// The server, host:port.
+    #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
     pub connect: String,
     #[arg(long)]
     pub channel: String,
-    /// Start: a unix time in seconds, or an age such as 2h (two hours ago).
+    /// Start: a time as tables print it (2026-12-04T18:00:00Z; no offset:
+    /// UTC), unix seconds, or an age such as 2h (two hours ago).
     #[arg(long)]
     pub since: Option<String>,
-    /// End (exclusive), same forms as --since.
+    /// End (exclusive), in the forms of --since.
     #[arg(long)]
     pub until: Option<String>,
     /// Downsample into buckets of this width, e.g. 1m, 10s.
@@ -44,11 +46,15 @@ pub(crate) fn parse_time(flag: &str, text: &str, now_ns: i64) -> Result<i64, Usa
     {
         return Ok((secs * 1e9) as i64);
     }
+    // The times every table prints (RFC 3339 / ISO 8601; no offset: UTC).
+    if let Some(ns) = super::agent::file::parse_iso(text) {
+        return Ok(ns);
+    }
     super::parse_duration(text)
         .map(|age| now_ns - age.as_nanos() as i64)
         .map_err(|e| {
             UsageError(format!(
-                "{flag} {text}: {e}; give unix seconds or an age like 90m"
+                "{flag} {text}: {e}; give a time like 2026-12-04T18:00:00Z, unix seconds or an age like 90m"
             ))
         })
 }
@@ -388,6 +394,32 @@ pub(crate) async fn run(args: &ReadingsArgs) -> anyhow::Result<()> {
 mod tests {
     use super::*;
     use crate::cli::output::derived_csv_header;
+
+    #[test]
+    fn since_takes_printed_times_unix_seconds_and_ages() {
+        let now = 1_800_000_000_000_000_000;
+        // 2026-12-04T18:00:00Z is 1,796,407,200 s after the epoch
+        // (GNU coreutils: `date -u -d @1796407200`).
+        let want = 1_796_407_200_000_000_000;
+        for text in [
+            "2026-12-04T18:00:00Z",
+            "2026-12-04T19:00:00+01:00",
+            "2026-12-04T18:00:00",
+            "2026-12-04 18:00:00.000",
+            "1796407200",
+        ] {
+            assert_eq!(parse_time("--since", text, now).ok(), Some(want), "{text}");
+        }
+        assert_eq!(
+            parse_time("--since", "2h", now).ok(),
+            Some(now - 7_200_000_000_000)
+        );
+        let e = parse_time("--since", "yesterday", now).unwrap_err().0;
+        assert!(
+            e.contains("--since yesterday") && e.contains("2026-12-04T18:00:00Z"),
+            "{e}"
+        );
+    }
 
     #[test]
     fn csv_headers_name_every_field_in_order() {

@@ -14,7 +14,8 @@ pub(crate) enum RigCommand {
     },
     /// Stream the simulated bench to a server; resumes after restarts.
     Simulate {
-        #[arg(long, default_value = DEFAULT_ADDR)]
+        /// The server, host:port.
+        #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
         /// How many simulated channels (the bench's four, repeated).
         #[arg(long, default_value_t = 4)]

@@ -11,7 +11,8 @@ use serde::Serialize;
 
 #[derive(Debug, clap::Args)]
 pub(crate) struct StateArgs {
-    #[arg(long, default_value = DEFAULT_ADDR)]
+    /// The server, host:port.
+    #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
     pub connect: String,
     /// One channel; all when omitted.
     #[arg(long)]

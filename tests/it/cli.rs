@@ -480,3 +480,56 @@ fn a_command_whose_reader_left_ends_quietly() {
     assert!(!stderr.contains("panicked"), "{stderr}");
     assert!(out.status.success(), "{:?}", out.status);
 }
+
+/// With the console's default port taken, the demo says on stdout that it
+/// serves no console (what answers there is another program), and runs.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_demo_says_when_its_console_port_is_taken() {
+    // Held for the test, unless something else holds it already: either
+    // way the demo cannot have it.
+    let _held = std::net::TcpListener::bind(gibbsline::config::DEFAULT_HTTP_LISTEN);
+    let (_dir, db) = temp_db();
+    let mut demo = bin();
+    demo.args([
+        "demo",
+        "--duration",
+        "2s",
+        "--listen",
+        "127.0.0.1:0",
+        "--db",
+    ])
+    .arg(&db)
+    .stdin(Stdio::null());
+    let out = output_of(demo).await;
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success(), "{stdout}");
+    assert!(
+        stdout.contains("console: not served")
+            && stdout.contains(gibbsline::config::DEFAULT_HTTP_LISTEN)
+            && stdout.contains("--http-listen"),
+        "{stdout}"
+    );
+}
+
+/// A user on their own port sets GIBBSLINE_CONNECT once instead of
+/// `--connect` on every command; the flag still wins.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_server_address_comes_from_the_environment() {
+    let (_dir, db) = temp_db();
+    let server = Server::start(&db).await;
+    let ch = server.channel().await;
+    put_channel(&ch, channel_def("env-1", "daniell")).await;
+    let mut list = bin();
+    list.args(["channels", "list", "--format", "csv"])
+        .env("GIBBSLINE_CONNECT", server.addr.to_string());
+    let out = output_of(list).await;
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success() && stdout.contains("env-1"), "{out:?}");
+    let mut wrong = bin();
+    wrong
+        .args(["channels", "list", "--connect", "127.0.0.1:1"])
+        .env("GIBBSLINE_CONNECT", server.addr.to_string());
+    let out = output_of(wrong).await;
+    assert_eq!(out.status.code(), Some(3), "the flag wins: {out:?}");
+    server.stop().await;
+}
