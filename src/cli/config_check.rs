@@ -9,8 +9,18 @@ use std::path::Path;
 pub(crate) fn run(file: &Path, no_files: bool) -> anyhow::Result<()> {
     let label = file.display().to_string();
     let text = std::fs::read_to_string(file).map_err(|e| UsageError(format!("{label}: {e}")))?;
-    let config = gibbsline::config::load(&label, &text, &Default::default())
-        .map_err(|e| UsageError(e.to_string()))?;
+    let config = gibbsline::config::load(&label, &text, &Default::default()).map_err(|e| {
+        // A rig agent's file given here by mistake: say what it is.
+        let agent = ["connect", "spool", "source"]
+            .iter()
+            .any(|key| e.to_string().contains(&format!("unknown field `{key}`")));
+        let hint = if agent {
+            format!(" — this looks like a rig agent's file: `gibbsline rig check {label}`")
+        } else {
+            String::new()
+        };
+        UsageError(format!("{e}{hint}"))
+    })?;
     config
         .check_exposure()
         .map_err(|e| UsageError(format!("{}: {e}", file.display())))?;

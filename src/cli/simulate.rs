@@ -12,6 +12,12 @@ pub(crate) enum RigCommand {
         #[arg(long)]
         config: std::path::PathBuf,
     },
+    /// Check a rig agent's file as `rig run` would read it, without
+    /// touching an instrument, the spool or the server.
+    Check {
+        /// The agent's file.
+        file: std::path::PathBuf,
+    },
     /// Stream the simulated bench to a server; resumes after restarts.
     Simulate {
         /// The server, host:port.
@@ -31,6 +37,7 @@ pub(crate) enum RigCommand {
 pub(crate) async fn run(cmd: &RigCommand) -> anyhow::Result<()> {
     match cmd {
         RigCommand::Run { config } => super::agent::run(config).await,
+        RigCommand::Check { file } => super::agent::check(file),
         RigCommand::Simulate {
             connect,
             channels,

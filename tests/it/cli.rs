@@ -533,3 +533,40 @@ async fn the_server_address_comes_from_the_environment() {
     assert_eq!(out.status.code(), Some(3), "the flag wins: {out:?}");
     server.stop().await;
 }
+
+/// An agent's file is checked by `rig check`; given to `config check` by
+/// mistake it is recognised, not refused for an "unknown field".
+#[test]
+fn a_rig_file_is_checked_by_rig_check_and_recognised_by_config_check() {
+    let dir = tempfile::tempdir().unwrap();
+    let rig = dir.path().join("rig.toml");
+    std::fs::write(
+        &rig,
+        "connect = \"127.0.0.1:50051\"\nspool = \"spool.db\"\n\n[[source]]\nchannel_id = \"b3\"\nkind = \"scpi\"\n\
+         address = \"10.0.0.5:5025\"\nperiod = \"500ms\"\nvolts = { query = \"MEAS:VOLT?\", unit = \"V\" }\n",
+    )
+    .unwrap();
+    let out = bin().args(["rig", "check"]).arg(&rig).output().unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success(), "{out:?}");
+    assert!(
+        stdout.contains("ok (1 source") && stdout.contains("b3: scpi 10.0.0.5:5025"),
+        "{stdout}"
+    );
+    let out = bin().args(["config", "check"]).arg(&rig).output().unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{out:?}");
+    assert!(stderr.contains("gibbsline rig check"), "{stderr}");
+    // A broken agent file is refused naming the entry.
+    std::fs::write(
+        &rig,
+        std::fs::read_to_string(&rig)
+            .unwrap()
+            .replace("\"V\"", "\"uV\""),
+    )
+    .unwrap();
+    let out = bin().args(["rig", "check"]).arg(&rig).output().unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{out:?}");
+    assert!(stderr.contains("source[0].volts.unit = \"uV\""), "{stderr}");
+}

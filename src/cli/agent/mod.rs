@@ -335,6 +335,35 @@ pub(crate) fn load(path: &std::path::Path) -> Result<(RigFile, Vec<Source>), Usa
     Ok((file, sources))
 }
 
+/// `rig check`: the file read and every source resolved as `rig run`
+/// would, then one line per source.
+pub(crate) fn check(path: &std::path::Path) -> anyhow::Result<()> {
+    let (file, sources) = load(path)?;
+    if let Some(age) = &file.max_spooled_age {
+        super::parse_duration(age).map_err(|e| UsageError(format!("max_spooled_age: {e}")))?;
+    }
+    println!(
+        "{}: ok ({} source{}, server {}, spool {})",
+        path.display(),
+        sources.len(),
+        if sources.len() == 1 { "" } else { "s" },
+        file.connect,
+        file.spool.display()
+    );
+    for s in &sources {
+        let kind = match s.kind {
+            Kind::Scpi => "scpi",
+            Kind::File(_) => "file",
+            Kind::Modbus { .. } => "modbus",
+        };
+        println!(
+            "  {}: {kind} {} every {:?}",
+            s.channel_id, s.address, s.period
+        );
+    }
+    Ok(())
+}
+
 /// `/metrics` for the agent (Prometheus text), and `/health`: 200 while
 /// the spool takes writes, 503 naming the spool and why while it cannot.
 async fn serve_metrics(listener: tokio::net::TcpListener, spool: Arc<spool::Spool>) {
