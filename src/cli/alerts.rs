@@ -22,10 +22,13 @@ pub(crate) enum AlertsCommand {
         /// id; 0 replays everything stored).
         #[arg(long, default_value_t = 0)]
         after: u64,
+        /// Only this channel (default: all).
         #[arg(long)]
         channel: Option<String>,
+        /// The least severity shown.
         #[arg(long, value_enum, default_value_t = MinSeverity::Info)]
         min_severity: MinSeverity,
+        /// Output: a table for people, CSV or JSON for programs.
         #[arg(long, value_enum, default_value_t = Format::Table)]
         format: Format,
     },
@@ -46,6 +49,7 @@ pub(crate) enum AlertsCommand {
         /// Only deliveries not yet made.
         #[arg(long)]
         pending: bool,
+        /// Output: a table for people, CSV or JSON for programs.
         #[arg(long, value_enum, default_value_t = Format::Table)]
         format: Format,
     },
@@ -54,12 +58,16 @@ pub(crate) enum AlertsCommand {
         /// The server, host:port.
         #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
+        /// Only this channel (default: all).
         #[arg(long)]
         channel: Option<String>,
+        /// Only alerts still active (not cleared).
         #[arg(long)]
         active: bool,
+        /// The least severity shown.
         #[arg(long, value_enum, default_value_t = MinSeverity::Info)]
         min_severity: MinSeverity,
+        /// Output: a table for people, CSV or JSON for programs.
         #[arg(long, value_enum, default_value_t = Format::Table)]
         format: Format,
     },

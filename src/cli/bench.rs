@@ -18,17 +18,20 @@ pub(crate) struct BenchIngestArgs {
     /// temporary database (then peak RSS covers both ends).
     #[arg(long)]
     pub connect: Option<String>,
+    /// Channels streamed at once.
     #[arg(long, default_value_t = 100)]
     pub channels: u32,
     /// Readings in total, spread over the channels.
     #[arg(long, default_value_t = 1_000_000)]
     pub readings: u64,
+    /// Readings per batch.
     #[arg(long, default_value_t = 1000)]
     pub batch: u32,
     /// Offered load in readings/s over all channels; 0 sends as fast as the
     /// server takes them (then ack latency is mostly queueing, by Little's law).
     #[arg(long, default_value_t = 0.0)]
     pub rate: f64,
+    /// The chemistry id of the benched channels.
     #[arg(long, default_value = "daniell")]
     pub chemistry: String,
     /// One reading in this many goes over the voltage limit (and the next
@@ -42,6 +45,7 @@ pub(crate) struct BenchIngestArgs {
     /// same durability) and report the server's rate against it.
     #[arg(long)]
     pub baseline: bool,
+    /// Print the figures as one JSON object.
     #[arg(long)]
     pub json: bool,
 }
@@ -612,8 +616,10 @@ pub(crate) struct BenchDeriveArgs {
     /// Readings to derive.
     #[arg(long, default_value_t = 1_000_000)]
     pub readings: u64,
+    /// The chemistry id of the benched channels.
     #[arg(long, default_value = "vanadium-redox")]
     pub chemistry: String,
+    /// Print the figures as one JSON object.
     #[arg(long)]
     pub json: bool,
 }

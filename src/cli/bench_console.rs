@@ -17,6 +17,7 @@ use tokio::io::{AsyncReadExt, AsyncWriteExt};
 
 #[derive(Debug, clap::Args)]
 pub(crate) struct BenchConsoleArgs {
+    /// Channels streamed at once.
     #[arg(long, default_value_t = 100)]
     pub channels: u32,
     /// Offered load during the live phase, readings/s over all channels.
@@ -32,8 +33,10 @@ pub(crate) struct BenchConsoleArgs {
     /// Overview loads timed.
     #[arg(long, default_value_t = 50)]
     pub loads: u32,
+    /// The database durability: full, normal or off.
     #[arg(long, default_value = "normal")]
     pub durability: String,
+    /// Print the figures as one JSON object.
     #[arg(long)]
     pub json: bool,
 }

@@ -33,6 +33,7 @@ pub(crate) struct BenchHistoryArgs {
     /// Durability of the in-process server while it stores.
     #[arg(long, default_value = "normal")]
     pub durability: String,
+    /// Print the figures as one JSON object.
     #[arg(long)]
     pub json: bool,
 }

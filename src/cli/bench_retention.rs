@@ -12,6 +12,7 @@ use std::time::{Duration, Instant};
 
 #[derive(Debug, clap::Args)]
 pub(crate) struct BenchRetentionArgs {
+    /// Channels streamed at once.
     #[arg(long, default_value_t = 10)]
     pub channels: u32,
     /// Rig time the soak covers, hours.
@@ -29,11 +30,13 @@ pub(crate) struct BenchRetentionArgs {
     /// Offered load over all channels, readings/s.
     #[arg(long, default_value_t = 150_000.0)]
     pub rate: f64,
+    /// Readings per batch.
     #[arg(long, default_value_t = 1000)]
     pub batch: u32,
     /// Durability of the in-process server (full, normal, off).
     #[arg(long, default_value = "full")]
     pub durability: String,
+    /// Print the figures as one JSON object.
     #[arg(long)]
     pub json: bool,
 }

@@ -21,11 +21,13 @@ pub(crate) struct BenchScaleArgs {
     /// databases.
     #[arg(long, default_value = "postgres://postgres@127.0.0.1:5432/postgres")]
     pub pg: String,
+    /// Channels streamed at once.
     #[arg(long, default_value_t = 100)]
     pub channels: u32,
     /// Readings per setup, over all channels.
     #[arg(long, default_value_t = 1_000_000)]
     pub readings: u64,
+    /// Readings per batch.
     #[arg(long, default_value_t = 1000)]
     pub batch: u32,
     /// Offered rate of the throughput setups, readings/s over all
@@ -42,6 +44,7 @@ pub(crate) struct BenchScaleArgs {
     /// twice that).
     #[arg(long, default_value_t = 6)]
     pub failover_warmup_s: u64,
+    /// Print the figures as one JSON object.
     #[arg(long)]
     pub json: bool,
 }

@@ -27,6 +27,7 @@ pub(crate) enum ChannelsCommand {
         /// The server, host:port.
         #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
+        /// Output: a table for people, CSV or JSON for programs.
         #[arg(long, value_enum, default_value_t = Format::Table)]
         format: Format,
     },
@@ -35,6 +36,7 @@ pub(crate) enum ChannelsCommand {
         /// The server, host:port.
         #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
+        /// Output: a table for people, CSV or JSON for programs.
         #[arg(long, value_enum, default_value_t = Format::Table)]
         format: Format,
     },
@@ -63,6 +65,7 @@ pub(crate) enum ChannelsCommand {
         /// The server, host:port.
         #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
         connect: String,
+        /// Output: a table for people or JSON for programs.
         #[arg(long, value_enum, default_value_t = super::output::TableOrJson::Table)]
         format: super::output::TableOrJson,
     },

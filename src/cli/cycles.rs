@@ -12,8 +12,10 @@ pub(crate) struct CyclesArgs {
     /// The server, host:port.
     #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
     pub connect: String,
+    /// The channel id.
     #[arg(long)]
     pub channel: String,
+    /// Output: a table for people, CSV or JSON for programs.
     #[arg(long, value_enum, default_value_t = Format::Table)]
     pub format: Format,
 }

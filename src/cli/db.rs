@@ -15,6 +15,7 @@ pub(crate) enum DbCommand {
         /// The database file [default: gibbsline.db].
         #[arg(long, default_value = gibbsline::config::DEFAULT_DB)]
         db: PathBuf,
+        /// Output: a table for people or JSON for programs.
         #[arg(long, value_enum, default_value_t = TableOrJson::Table)]
         format: TableOrJson,
     },

@@ -42,6 +42,7 @@ pub(crate) struct ImportArgs {
     /// the same --seq-from stores nothing twice.
     #[arg(long, default_value_t = 0)]
     pub seq_from: u64,
+    /// Output: a table for people or JSON for programs.
     #[arg(long, value_enum, default_value_t = TableOrJson::Table)]
     pub format: TableOrJson,
 }

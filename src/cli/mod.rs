@@ -37,6 +37,7 @@ pub(crate) struct Signed {
     /// Your name, stored with the action.
     #[arg(long)]
     pub by: String,
+    /// Why, stored with the action (optional).
     #[arg(long, default_value = "")]
     pub note: String,
 }
@@ -69,7 +70,7 @@ pub(crate) enum Command {
     Eval(EvalArgs),
     /// List the known chemistries with their parameters and sources.
     Chemistries(ChemistriesArgs),
-    /// Run the gRPC service on an embedded SQLite file.
+    /// Run the service (gRPC, web console, JSON API) on a SQLite file or a PostgreSQL database.
     Serve(ServeArgs),
     /// Benchmarks.
     #[command(subcommand)]
@@ -82,20 +83,20 @@ pub(crate) enum Command {
     Db(db::DbCommand),
     /// The whole job in one process: server, simulated bench, live table, alerts.
     Demo(demo::DemoArgs),
-    /// Simulated rigs.
+    /// Rigs: the agent beside real instruments (run, check) and the simulated bench.
     #[command(subcommand)]
     Rig(simulate::RigCommand),
     /// Stored readings of a channel, raw or in time buckets.
     Readings(readings::ReadingsArgs),
-    /// A recorded file (as `readings --format csv` writes it) into a
-    /// channel's history, through the normal ingest path.
+    /// A recorded file into a channel's history through the normal ingest
+    /// path: as `readings --format csv` writes it, or any layout by `--map`.
     Import(import::ImportArgs),
     /// Live state of one or all channels.
     State(state::StateArgs),
     /// Watch, list and acknowledge alerts.
     #[command(subcommand)]
     Alerts(alerts::AlertsCommand),
-    /// Define and inspect channels.
+    /// Define and inspect channels; anchor SOC, reset a timeline, fit a cell's OCV model.
     #[command(subcommand)]
     Channels(channels::ChannelsCommand),
     /// Charge/discharge cycles of a channel with efficiencies.
@@ -342,6 +343,33 @@ pub(crate) fn parse_duration(text: &str) -> Result<std::time::Duration, UsageErr
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Every option and argument of every command says what it is in
+    /// `--help` (positional ids excepted: their command says it).
+    #[test]
+    fn every_option_has_a_help_line() {
+        use clap::CommandFactory;
+        fn walk(cmd: &clap::Command, path: &str, missing: &mut Vec<String>) {
+            for arg in cmd.get_arguments() {
+                let id = arg.get_id().as_str();
+                if arg.is_positional() || matches!(id, "help" | "version") {
+                    continue;
+                }
+                if arg.get_help().is_none() {
+                    missing.push(format!("{path} --{id}"));
+                }
+            }
+            for sub in cmd.get_subcommands() {
+                walk(sub, &format!("{path} {}", sub.get_name()), missing);
+            }
+        }
+        let mut missing = Vec::new();
+        walk(&Cli::command(), "gibbsline", &mut missing);
+        assert!(
+            missing.is_empty(),
+            "options without a help line: {missing:#?}"
+        );
+    }
 
     #[test]
     fn a_long_field_is_shown_cut_with_its_length() {

@@ -17,6 +17,7 @@ pub(crate) struct ReadingsArgs {
     /// The server, host:port.
     #[arg(long, env = "GIBBSLINE_CONNECT", default_value = DEFAULT_ADDR)]
     pub connect: String,
+    /// The channel id.
     #[arg(long)]
     pub channel: String,
     /// Start: a time as tables print it (2026-12-04T18:00:00Z; no offset:
@@ -29,8 +30,10 @@ pub(crate) struct ReadingsArgs {
     /// Downsample into buckets of this width, e.g. 1m, 10s.
     #[arg(long, value_parser = super::parse_duration)]
     pub bucket: Option<Duration>,
+    /// Readings at most; the command says so when it stops there.
     #[arg(long, default_value_t = 100_000)]
     pub limit: u32,
+    /// Output: a table for people, CSV or JSON for programs.
     #[arg(long, value_enum, default_value_t = Format::Table)]
     pub format: Format,
 }

@@ -26,6 +26,7 @@ pub(crate) enum RigCommand {
         /// How many simulated channels (the bench's four, repeated).
         #[arg(long, default_value_t = 4)]
         channels: usize,
+        /// Simulated seconds per real second.
         #[arg(long, default_value_t = 60.0)]
         speed: f64,
         /// Stop after this long (default: run until Ctrl-C).
