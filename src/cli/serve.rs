@@ -118,9 +118,12 @@ pub(crate) async fn bind_console(addr: &str) -> anyhow::Result<Option<tokio::net
     }
 }
 
-/// Logs to stderr, `RUST_LOG` or info (the server and the rig agent).
+/// Logs to stdout, `RUST_LOG` or info (the server and the rig agent):
+/// coloured on a terminal, plain text into a file or a journal.
 pub(crate) fn init_logging() {
+    use std::io::IsTerminal;
     tracing_subscriber::fmt()
+        .with_ansi(std::io::stdout().is_terminal())
         .with_env_filter(
             tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
         )

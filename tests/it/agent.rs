@@ -301,6 +301,10 @@ async fn a_full_spool_disk_is_named_in_the_log_the_metrics_and_health() {
     let log_text = std::fs::read_to_string(&log).unwrap();
     assert!(log_text.contains(&named), "{log_text}");
     assert!(
+        !log_text.contains('\u{1b}'),
+        "a log into a file is plain text, no terminal colours:\n{log_text}"
+    );
+    assert!(
         !log_text.contains("server link"),
         "a spool fault is not blamed on the server:\n{log_text}"
     );

@@ -329,11 +329,16 @@ pub(crate) async fn follow(
             }
         };
         if restarted {
-            tracing::info!(
-                channel,
-                path,
-                "the file shrank or was replaced: reading it from its start"
-            );
+            // A file never read before (no inode kept) is simply new.
+            if pos.inode == 0 {
+                tracing::info!(channel, path, "following the file from its start");
+            } else {
+                tracing::info!(
+                    channel,
+                    path,
+                    "the file shrank or was replaced: reading it from its start"
+                );
+            }
             header = None;
         }
         let lines = text.lines().filter(|l| !l.trim().is_empty()).count() as u64;

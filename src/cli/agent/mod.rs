@@ -446,6 +446,7 @@ pub(crate) async fn run(config: &std::path::Path) -> anyhow::Result<()> {
     }
     tracing::info!(spool = %file.spool.display(), "rig agent running");
     super::serve::shutdown_signal().await;
+    tracing::info!(spool = %file.spool.display(), "stopping on a signal: what is spooled stays for the next start");
     for t in tasks {
         t.abort();
     }
