@@ -31,11 +31,11 @@ pub struct ChannelDef {
     pub default_temp_c: f64,
     /// Lower end of the per-cell plausibility window, V: a reading below
     /// it is a broken input and refused. (`min_volts` is read for one
-    /// release.)
-    #[serde(alias = "min_volts")]
+    /// release.) Left out (both ends 0): the chemistry's default window.
+    #[serde(alias = "min_volts", default)]
     pub plausible_min_cell_volts: f64,
     /// Upper end of the per-cell plausibility window, V.
-    #[serde(alias = "max_volts")]
+    #[serde(alias = "max_volts", default)]
     pub plausible_max_cell_volts: f64,
     /// E° at 298.15 K for this channel instead of the chemistry's, V.
     #[serde(default, alias = "e_standard_override_v")]
@@ -137,12 +137,32 @@ fn err(field: &str, value: impl std::fmt::Display, reason: impl Into<String>) ->
 pub const MAX_TEXT_BYTES: usize = 4096;
 
 impl ChannelDef {
-    /// Checks the definition and resolves its chemistry (with the E° override).
+    /// The chemistry's default plausibility window where the definition
+    /// gives none (both ends 0, as a channels file that leaves them out
+    /// reads; the wire's unset fields read the same).
+    pub fn with_default_window(mut self, registry: &Registry) -> ChannelDef {
+        if self.plausible_min_cell_volts == 0.0
+            && self.plausible_max_cell_volts == 0.0
+            && let Ok(chemistry) = registry.get(&self.chemistry_id)
+        {
+            (self.plausible_min_cell_volts, self.plausible_max_cell_volts) =
+                ChannelDef::default_window(&chemistry);
+        }
+        self
+    }
+
+    /// Checks the definition and resolves its chemistry (with the E°
+    /// override and the apparent n).
     pub fn validate(&self, registry: &Registry) -> Result<Arc<Chemistry>, ChannelError> {
         self.check_names()?;
         let chemistry = registry.get(&self.chemistry_id).map_err(|_| {
             let id: String = self.chemistry_id.chars().take(80).collect();
-            err("chemistry_id", format!("{id:?}"), "unknown chemistry id")
+            let known: Vec<String> = registry.iter().map(|c| c.id.clone()).collect();
+            err(
+                "chemistry_id",
+                format!("{id:?}"),
+                format!("unknown chemistry id; known: {}", known.join(", ")),
+            )
         })?;
         if self.cells_in_series == 0 || self.cells_in_series > 10_000 {
             return Err(err(

@@ -588,6 +588,8 @@ fn check_definitions(text: &str, file: &ConfigFile) -> Result<(), Problem> {
         let id = &entry.def.channel_id;
         entry
             .def
+            .clone()
+            .with_default_window(&registry)
             .validate(&registry)
             .map_err(|e| (line, format!("channel[{i}] ({id:?}): {e}")))?;
         if !seen.insert(id.clone()) {
@@ -711,6 +713,37 @@ current_sign = "charge_positive"
 plausible_min_cell_volts = 0.5
 plausible_max_cell_volts = 2.0
 "#;
+
+    /// A channel that leaves its plausibility window out gets its
+    /// chemistry's; an unknown chemistry is refused listing the known ones.
+    #[test]
+    fn a_channel_without_a_window_takes_its_chemistrys_and_unknown_ids_list_the_known() {
+        let text = "[[channel]]\nchannel_id = \"b1\"\nchemistry_id = \"vanadium-redox\"\n\
+                    cells_in_series = 1\ncurrent_sign = \"charge_positive\"\n";
+        let config = load("c.toml", text, &env(&[])).unwrap();
+        let def = config.channel[0]
+            .def
+            .clone()
+            .with_default_window(&crate::electrochem::Registry::builtin());
+        let chem = crate::electrochem::Registry::builtin()
+            .get("vanadium-redox")
+            .unwrap();
+        assert_eq!(
+            (def.plausible_min_cell_volts, def.plausible_max_cell_volts),
+            ChannelDef::default_window(&chem)
+        );
+        let e = load(
+            "c.toml",
+            &text.replace("vanadium-redox", "vanadium"),
+            &env(&[]),
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(
+            e.contains("chemistry_id = \"vanadium\"") && e.contains("known: daniell"),
+            "{e}"
+        );
+    }
 
     /// An empty `db` would be a temporary database SQLite throws away at
     /// exit: refused, naming where it came from; other schemes as such.

@@ -251,6 +251,7 @@ impl Hub {
     /// old definition); other changes keep the running state.
     pub async fn put_channel(&self, def: ChannelDef) -> Result<(i64, bool), IngestError> {
         let registry = self.registry.read().expect("registry poisoned").clone();
+        let def = def.with_default_window(&registry);
         let chemistry = def.validate(&registry).map_err(|e| IngestError::Invalid {
             field: format!("channel.{}", e.field),
             value: e.value,
