@@ -108,6 +108,17 @@ async fn retention_deletes_exactly_what_it_should_across_a_restart() {
     let rollup_mark = (front - 3 * DAY).div_euclid(HOUR) * HOUR;
 
     let stored = wait_pruned_to(&ch, "keep-2d", raw_mark).await;
+    // A pass deletes readings first, then fine rollups: wait for both.
+    for _ in 0..300 {
+        let minutes = buckets(&ch, "keep-2d", t0, front + 1, 60_000_000_000).await;
+        if bucket_counts(&minutes)
+            .keys()
+            .all(|start| *start >= rollup_mark)
+        {
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
     let kept: Vec<u64> = seqs
         .iter()
         .copied()
