@@ -333,6 +333,8 @@ async fn watch(
     format: Format,
 ) -> anyhow::Result<()> {
     let mut out = RowStream::new(format);
+    // On stderr: a program reading the stream's CSV or JSON gets only rows.
+    eprintln!("{}", gibbsline::notify::NOTICE);
     loop {
         let conn = match client::connect(connect).await {
             Ok(c) => c,

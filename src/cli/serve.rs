@@ -15,6 +15,7 @@ pub(crate) fn run(args: &ServeArgs) -> anyhow::Result<()> {
         .check_exposure()
         .map_err(|e| UsageError(e.to_string()))?;
     init_logging();
+    tracing::info!(notice = gibbsline::notify::NOTICE, "gibbsline serving");
     // Each connection is a descriptor; the common soft limit of 1024 would
     // make a few hundred idle clients lock the rest out. Raised to the hard
     // limit (the accept loop still backs off if even that runs out).

@@ -570,3 +570,46 @@ fn a_rig_file_is_checked_by_rig_check_and_recognised_by_config_check() {
     assert_eq!(out.status.code(), Some(2), "{out:?}");
     assert!(stderr.contains("source[0].volts.unit = \"uV\""), "{stderr}");
 }
+
+/// The monitoring notice where an operator looks: the server's first log
+/// lines, and `alerts watch` (on stderr, so its CSV or JSON stays rows).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn serve_and_alerts_watch_say_this_is_not_a_safety_system() {
+    use std::io::BufRead;
+    let (_dir, db) = temp_db();
+    let addr = crate::crash::free_addr();
+    let lines = tokio::task::spawn_blocking(move || {
+        let mut serve = bin()
+            .args(["serve", "--listen", &addr, "--http-listen", "off", "--db"])
+            .arg(&db)
+            .env("RUST_LOG", "info")
+            .stdout(Stdio::piped())
+            .stderr(Stdio::null())
+            .spawn()
+            .unwrap();
+        let mut first = String::new();
+        std::io::BufReader::new(serve.stdout.take().unwrap())
+            .read_line(&mut first)
+            .unwrap();
+        let mut watch = bin()
+            .args(["alerts", "watch", "--connect", &addr])
+            .stdout(Stdio::null())
+            .stderr(Stdio::piped())
+            .spawn()
+            .unwrap();
+        let mut said = String::new();
+        std::io::BufReader::new(watch.stderr.take().unwrap())
+            .read_line(&mut said)
+            .unwrap();
+        for mut child in [watch, serve] {
+            let _ = child.kill();
+            let _ = child.wait();
+        }
+        (first, said)
+    })
+    .await
+    .unwrap();
+    for line in [&lines.0, &lines.1] {
+        assert!(line.contains("not a safety system"), "{line}");
+    }
+}
