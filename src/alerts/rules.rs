@@ -463,6 +463,35 @@ pub struct RuleInput {
     pub ocv_model_gap_volts: Option<f64>,
 }
 
+impl RuleInput {
+    /// A reading's own values with no estimator figures (none known, or a
+    /// reading out of the channel's order, which the estimator skips).
+    pub fn reading_only(
+        time_ns: i64,
+        seq: u64,
+        cell_volts_terminal: f64,
+        amps: Option<f64>,
+        temp_c: Option<f64>,
+    ) -> RuleInput {
+        RuleInput {
+            time_ns,
+            seq,
+            cell_volts_terminal,
+            amps,
+            temp_c,
+            delta_g_kj_per_mol: None,
+            driving_force_volts: None,
+            soc: None,
+            charging: false,
+            discharging: false,
+            resting: false,
+            dv_dt_mv_per_min: None,
+            soc_rate_per_s: None,
+            ocv_model_gap_volts: None,
+        }
+    }
+}
+
 /// A change the caller must store and publish.
 #[derive(Debug, Clone, PartialEq)]
 pub enum AlertChange {

@@ -365,22 +365,8 @@ fn late_limits(
     amps: Option<f64>,
     cell_volts: f64,
 ) -> Vec<AlertChange> {
-    let input = alerts::rules::RuleInput {
-        time_ns: r.time_unix_ns,
-        seq: r.seq,
-        cell_volts_terminal: cell_volts,
-        amps,
-        temp_c: r.temp_c,
-        delta_g_kj_per_mol: None,
-        driving_force_volts: None,
-        soc: None,
-        charging: false,
-        discharging: false,
-        resting: false,
-        dv_dt_mv_per_min: None,
-        soc_rate_per_s: None,
-        ocv_model_gap_volts: None,
-    };
+    let input =
+        alerts::rules::RuleInput::reading_only(r.time_unix_ns, r.seq, cell_volts, amps, r.temp_c);
     alerts::rules::evaluate_limits(&rt.rules, &mut rt.rule_state, &input)
 }
 

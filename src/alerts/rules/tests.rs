@@ -9,20 +9,9 @@ fn rules() -> AlertRules {
 
 fn quiet(time_s: i64) -> RuleInput {
     RuleInput {
-        time_ns: time_s * S,
-        seq: time_s as u64,
-        cell_volts_terminal: 1.3,
-        amps: Some(0.0),
-        temp_c: Some(25.0),
         delta_g_kj_per_mol: Some(-125.0),
-        driving_force_volts: None,
         soc: Some(0.5),
-        charging: false,
-        discharging: false,
-        resting: false,
-        dv_dt_mv_per_min: None,
-        soc_rate_per_s: None,
-        ocv_model_gap_volts: None,
+        ..RuleInput::reading_only(time_s * S, time_s as u64, 1.3, Some(0.0), Some(25.0))
     }
 }
 
